@@ -1,0 +1,152 @@
+"""Turn a saliency map into its top regions: threshold, connected components, crops."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+from typing import Literal
+
+import numpy as np
+import numpy.typing as npt
+from PIL import Image, ImageDraw
+from scipy import ndimage
+
+from .errors import InvalidInputError
+
+PolicyName = Literal["fraction_of_max", "mass"]
+OUTLINE_COLOUR = (255, 0, 170)
+
+
+@dataclass(frozen=True)
+class ThresholdPolicy:
+    """How salient pixels are chosen; recorded with every run.
+
+    ``fraction_of_max``: pixels at or above ``value`` x the map's maximum.
+    ``mass``: the fewest highest pixels that together hold ``value`` of the map's total.
+    """
+
+    name: PolicyName = "fraction_of_max"
+    value: float = 0.5
+
+    def __post_init__(self) -> None:
+        if self.name not in ("fraction_of_max", "mass"):
+            raise InvalidInputError(f"threshold policy must be 'fraction_of_max' or 'mass'; got {self.name!r}.")
+        if not 0 < self.value <= 1:
+            raise InvalidInputError(f"threshold policy value must be in (0, 1]; got {self.value}. E.g. 0.5.")
+
+    def to_json(self) -> dict[str, object]:
+        return {"policy": self.name, "value": self.value}
+
+
+@dataclass(frozen=True)
+class Region:
+    """A connected salient area in model-input pixels; box is [x0, x1) x [y0, y1)."""
+
+    rank: int  # 0 = most saliency mass
+    x0: int
+    y0: int
+    x1: int
+    y1: int
+    area: int  # pixels in the component
+    mass_share: float  # share of the whole map's saliency inside the component
+    peak_x: int
+    peak_y: int
+
+    def to_json(self) -> dict[str, object]:
+        return asdict(self)
+
+
+def threshold_mask(saliency: npt.NDArray[np.float32], policy: ThresholdPolicy) -> npt.NDArray[np.bool_]:
+    """Boolean mask of the salient pixels of one H x W map under ``policy``."""
+    peak = float(saliency.max())
+    if peak <= 0:
+        return np.zeros(saliency.shape, dtype=bool)
+    if policy.name == "fraction_of_max":
+        return saliency >= policy.value * peak
+    flat = np.sort(saliency.ravel())[::-1]
+    cumulative = np.cumsum(flat, dtype=np.float64)
+    k = int(np.searchsorted(cumulative, policy.value * cumulative[-1]))
+    cut = flat[min(k, flat.size - 1)]
+    return saliency >= cut
+
+
+def extract_regions(
+    saliency: npt.NDArray[np.float32],
+    *,
+    policy: ThresholdPolicy = ThresholdPolicy(),
+    max_regions: int = 3,
+    min_area: int = 4,
+) -> tuple[list[Region], npt.NDArray[np.int32]]:
+    """Top connected components (8-connected) of one map, by saliency mass.
+
+    Returns the regions, best first, and an H x W label image where pixel value r + 1
+    marks region rank r (0 elsewhere). An all-zero map gives no regions.
+    """
+    if saliency.ndim != 2:
+        raise InvalidInputError(f"saliency must be one H x W map; got shape {saliency.shape}.")
+    if max_regions < 1:
+        raise InvalidInputError(f"max_regions must be at least 1; got {max_regions}.")
+    mask = threshold_mask(saliency, policy)
+    labels = np.zeros(saliency.shape, dtype=np.int32)
+    total = float(saliency.sum(dtype=np.float64))
+    if total <= 0 or not mask.any():
+        return [], labels
+    components, n = ndimage.label(mask, structure=np.ones((3, 3), dtype=int))
+    index = np.arange(1, n + 1)
+    masses = np.asarray(ndimage.sum(saliency, components, index), dtype=np.float64)
+    areas = np.asarray(ndimage.sum(np.ones_like(saliency), components, index), dtype=np.int64)
+    order = [i for i in np.argsort(-masses, kind="stable") if areas[i] >= min_area][:max_regions]
+    slices = ndimage.find_objects(components)
+    regions = []
+    for rank, i in enumerate(order):
+        sl = slices[i]
+        comp = components == i + 1
+        peak = np.unravel_index(int(np.argmax(np.where(comp, saliency, -1.0))), saliency.shape)
+        labels[comp] = rank + 1
+        regions.append(
+            Region(
+                rank=rank,
+                x0=int(sl[1].start),
+                y0=int(sl[0].start),
+                x1=int(sl[1].stop),
+                y1=int(sl[0].stop),
+                area=int(areas[i]),
+                mass_share=float(masses[i] / total),
+                peak_x=int(peak[1]),
+                peak_y=int(peak[0]),
+            )
+        )
+    return regions, labels
+
+
+def scaled_box(region: Region, *, map_size: tuple[int, int], image_size: tuple[int, int], margin: float) -> tuple[int, int, int, int]:
+    """The region's box in the original image's pixels, grown by ``margin`` of its size on each side.
+
+    ``map_size`` is (height, width) of the saliency map; ``image_size`` is (width, height), as Pillow gives it.
+    """
+    mh, mw = map_size
+    iw, ih = image_size
+    sx, sy = iw / mw, ih / mh
+    bw, bh = region.x1 - region.x0, region.y1 - region.y0
+    pad_x = max(2.0, margin * bw) if margin > 0 else 0.0
+    pad_y = max(2.0, margin * bh) if margin > 0 else 0.0
+    x0 = max(0, int(np.floor((region.x0 - pad_x) * sx)))
+    y0 = max(0, int(np.floor((region.y0 - pad_y) * sy)))
+    x1 = min(iw, int(np.ceil((region.x1 + pad_x) * sx)))
+    y1 = min(ih, int(np.ceil((region.y1 + pad_y) * sy)))
+    return x0, y0, x1, y1
+
+
+def crop_region(image: Image.Image, region: Region, *, map_size: tuple[int, int], margin: float = 0.25) -> Image.Image:
+    """The region cut from the original image with a margin around it."""
+    return image.crop(scaled_box(region, map_size=map_size, image_size=image.size, margin=margin))
+
+
+def outline_region(image: Image.Image, region: Region, *, map_size: tuple[int, int], min_side: int = 256) -> Image.Image:
+    """The full image (enlarged to at least ``min_side``) with the region's box drawn on it."""
+    scale = max(1, int(np.ceil(min_side / max(1, min(image.size)))))
+    big = image.convert("RGB").resize((image.width * scale, image.height * scale), Image.NEAREST)
+    x0, y0, x1, y1 = scaled_box(region, map_size=map_size, image_size=image.size, margin=0.0)
+    draw = ImageDraw.Draw(big)
+    width = max(2, scale // 2)
+    draw.rectangle([x0 * scale, y0 * scale, x1 * scale - 1, y1 * scale - 1], outline=OUTLINE_COLOUR, width=width)
+    return big
