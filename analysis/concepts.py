@@ -1,0 +1,139 @@
+"""From annotators' words to concepts: normalisation, majority per region, image-by-concept table."""
+
+from __future__ import annotations
+
+import re
+import unicodedata
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import pandas as pd
+
+from .errors import InvalidInputError
+
+_SPACE = re.compile(r"\s+")
+_EDGE_PUNCT = re.compile(r"^[\W_]+|[\W_]+$")
+_INNER = re.compile(r"[-_/]+")
+_NO_SINGULAR = ("ss", "us", "is", "glass")
+
+
+def singular(word: str) -> str:
+    """English singular of a plural noun by the common suffix rules (common practice, not a dictionary)."""
+    if len(word) <= 3 or word.endswith(_NO_SINGULAR):
+        return word
+    if word.endswith("ies"):
+        return word[:-3] + "y"
+    if word.endswith(("ches", "shes", "xes", "sses", "zes")):
+        return word[:-2]
+    if word.endswith("s"):
+        return word[:-1]
+    return word
+
+
+def normalise_label(text: str) -> str:
+    """Canonical form of a label: NFKC, case-folded, single spaces, no edge punctuation, last word singular."""
+    s = unicodedata.normalize("NFKC", text).casefold()
+    s = _INNER.sub(" ", s)
+    s = _SPACE.sub(" ", s).strip()
+    s = _EDGE_PUNCT.sub("", s)
+    if not s:
+        return ""
+    words = s.split(" ")
+    words[-1] = singular(words[-1])
+    return " ".join(words)
+
+
+@dataclass(frozen=True)
+class Judgment:
+    """One annotator's label of one region: the entities named, each with attributes."""
+
+    region_id: int
+    annotator: str
+    entities: tuple[tuple[str, tuple[str, ...]], ...]  # (entity, attributes); empty = nothing recognisable
+
+
+def judgment_concepts(j: Judgment, *, synonyms: dict[str, str] | None = None) -> set[str]:
+    """Concepts one judgment names: each entity, and ``"<attribute> <entity>"`` for each attribute."""
+    synonyms = synonyms or {}
+    out: set[str] = set()
+    for entity, attributes in j.entities:
+        e = normalise_label(entity)
+        e = synonyms.get(e, e)
+        if not e:
+            continue
+        out.add(e)
+        for a in attributes:
+            na = normalise_label(a)
+            if na:
+                out.add(f"{na} {e}")
+    return out
+
+
+def majority_concepts(judgments: Iterable[Judgment], *, synonyms: dict[str, str] | None = None) -> dict[int, dict[str, float]]:
+    """Per region, the concepts named by more than half of its annotators, with that share.
+
+    Returns ``{region_id: {concept: share of the region's annotators who named it}}``.
+    """
+    votes: dict[int, dict[str, int]] = {}
+    raters: dict[int, set[str]] = {}
+    for j in judgments:
+        raters.setdefault(j.region_id, set()).add(j.annotator)
+        for c in judgment_concepts(j, synonyms=synonyms):
+            votes.setdefault(j.region_id, {}).setdefault(c, 0)
+            votes[j.region_id][c] += 1
+    result: dict[int, dict[str, float]] = {}
+    for region, people in raters.items():
+        n = len(people)
+        result[region] = {c: v / n for c, v in sorted(votes.get(region, {}).items()) if v / n > 0.5}
+    return result
+
+
+def concept_table(image_regions: dict[int, Sequence[int]], region_concepts: dict[int, dict[str, float]]) -> pd.DataFrame:
+    """Image-by-concept boolean table: an image has a concept if any of its regions carries it.
+
+    ``image_regions`` maps every image to its regions (an image with none gets an all-False row).
+    """
+    if not image_regions:
+        raise InvalidInputError("no images given; run saliency and collect labels first.")
+    concepts = sorted({c for cs in region_concepts.values() for c in cs})
+    rows = {
+        image: {c: any(c in region_concepts.get(r, {}) for r in regions) for c in concepts}
+        for image, regions in image_regions.items()
+    }
+    table = pd.DataFrame.from_dict(rows, orient="index", columns=concepts).astype(bool)
+    table.index.name = "image_id"
+    return table.sort_index()
+
+
+MAX_ENTITIES = 10
+MAX_ATTRIBUTES = 10
+MAX_WORD_LENGTH = 60
+
+
+def parse_label_text(text: str) -> list[tuple[str, list[str]]]:
+    """Parse ``"cap: red; label band: torn, white"`` into [(entity, [attributes]), ...].
+
+    Entities are separated by ``;`` or new lines, attributes follow a ``:`` and are
+    separated by commas. Raw words are kept (NFKC, trimmed); normalisation happens later.
+    """
+    text = unicodedata.normalize("NFKC", text)
+    entities: list[tuple[str, list[str]]] = []
+    for chunk in re.split(r"[;\n]+", text):
+        if not chunk.strip():
+            continue
+        name, _, rest = chunk.partition(":")
+        name = _SPACE.sub(" ", name).strip()
+        attrs = [_SPACE.sub(" ", a).strip() for a in rest.split(",") if a.strip()]
+        if not name:
+            raise InvalidInputError(f"{chunk.strip()!r} has attributes but no entity; write it as 'entity: attribute, attribute'.")
+        for word in [name, *attrs]:
+            if len(word) > MAX_WORD_LENGTH:
+                raise InvalidInputError(f"{word[:20]!r}... is longer than {MAX_WORD_LENGTH} characters; shorten it.")
+            if any(unicodedata.category(ch).startswith("C") for ch in word):
+                raise InvalidInputError(f"{word!r} contains control characters; type plain text.")
+        if len(attrs) > MAX_ATTRIBUTES:
+            raise InvalidInputError(f"{name!r} has {len(attrs)} attributes; give at most {MAX_ATTRIBUTES}.")
+        entities.append((name, attrs))
+    if len(entities) > MAX_ENTITIES:
+        raise InvalidInputError(f"{len(entities)} entities given; name at most {MAX_ENTITIES} per region.")
+    return entities

@@ -1,0 +1,1 @@
+"""heedmap web backend and command line; imports analysis/, never the reverse."""

@@ -1,0 +1,45 @@
+"""Settings: defaults < HEEDMAP_* environment < command-line flags; validated at start-up."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+
+class SettingsError(ValueError):
+    pass
+
+
+@dataclass(frozen=True)
+class Settings:
+    project_dir: Path = Path("heedmap-demo/project")
+    host: str = "127.0.0.1"
+    port: int = 8000
+    labels_per_region: int = 3
+    min_support: float = 0.02
+    debug: bool = False
+
+    def __post_init__(self) -> None:
+        if not 1 <= self.port <= 65535:
+            raise SettingsError(f"port must be 1..65535; got {self.port}.")
+        if not 1 <= self.labels_per_region <= 50:
+            raise SettingsError(f"labels_per_region must be 1..50; got {self.labels_per_region}.")
+        if not 0 < self.min_support <= 1:
+            raise SettingsError(f"min_support must be in (0, 1]; got {self.min_support}.")
+
+
+def get_settings(**overrides: object) -> Settings:
+    """Defaults, then HEEDMAP_PROJECT / HEEDMAP_PORT / HEEDMAP_LABELS_PER_REGION, then ``overrides``."""
+    s = Settings()
+    env = os.environ
+    try:
+        if "HEEDMAP_PROJECT" in env:
+            s = replace(s, project_dir=Path(env["HEEDMAP_PROJECT"]))
+        if "HEEDMAP_PORT" in env:
+            s = replace(s, port=int(env["HEEDMAP_PORT"]))
+        if "HEEDMAP_LABELS_PER_REGION" in env:
+            s = replace(s, labels_per_region=int(env["HEEDMAP_LABELS_PER_REGION"]))
+    except ValueError as exc:
+        raise SettingsError(f"a HEEDMAP_* environment variable is not a number: {exc}") from None
+    return replace(s, **{k: v for k, v in overrides.items() if v is not None})  # type: ignore[arg-type]
