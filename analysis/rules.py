@@ -6,6 +6,7 @@ import csv
 import io
 from dataclasses import dataclass
 
+import numpy as np
 import pandas as pd
 from mlxtend.frequent_patterns import association_rules, fpgrowth
 
@@ -60,7 +61,10 @@ def mine_rules(table: pd.DataFrame, classes: pd.Series, *, min_support: float = 
     empty = pd.DataFrame(columns=RULE_COLUMNS)
     if itemsets.empty:
         return RuleTable(empty, len(table), min_support, max_len)
-    rules = association_rules(itemsets, num_itemsets=len(data), metric="confidence", min_threshold=0.0)
+    # mlxtend also computes metrics we do not report (conviction, certainty) and divides by
+    # zero in them when a class or concept holds for every image; those values are dropped.
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rules = association_rules(itemsets, num_itemsets=len(data), metric="confidence", min_threshold=0.0)
     n = len(data)
     keep = rules[
         rules["consequents"].map(lambda s: len(s) == 1 and next(iter(s)).startswith(_CLASS_PREFIX))

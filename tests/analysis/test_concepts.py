@@ -1,0 +1,30 @@
+from __future__ import annotations
+
+import pytest
+
+from analysis.concepts import Judgment, concept_table, majority_concepts, normalise_label, parse_label_text
+from analysis.errors import InvalidInputError
+
+
+@pytest.mark.parametrize(("raw", "norm"), [("  Caps ", "cap"), ("Label-Band", "label band"), ("BOTTLES!", "bottle"), ("batteries", "battery"), ("glass", "glass"), ("ｔａｇ", "tag"), ("boxes", "box")])
+def test_normalise_label(raw: str, norm: str) -> None:
+    assert normalise_label(raw) == norm
+
+
+def test_parse_label_text() -> None:
+    assert parse_label_text("label: torn, white; cap:red") == [("label", ["torn", "white"]), ("cap", ["red"])]
+    assert parse_label_text("  ") == []
+    with pytest.raises(InvalidInputError, match="no entity"):
+        parse_label_text(": red")
+
+
+def test_majority_needs_more_than_half() -> None:
+    js = [
+        Judgment(1, "a", (("Caps", ("red",)),)), Judgment(1, "b", (("cap", ()),)), Judgment(1, "c", (("tag", ()),)),
+        Judgment(2, "a", ()), Judgment(2, "b", (("tag", ()),)),
+    ]
+    got = majority_concepts(js)
+    assert got[1] == {"cap": pytest.approx(2 / 3)}
+    assert got[2] == {}
+    table = concept_table({10: [1], 11: [2], 12: []}, got)
+    assert table.loc[10, "cap"] and not table.loc[11, "cap"] and not table.loc[12].any()

@@ -1,0 +1,110 @@
+"""Grad-CAM against a direct computation of its formula (Selvaraju et al., 2017, eq. 1-2)."""
+
+from __future__ import annotations
+
+import pytest
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from analysis.architectures import SorterCNN
+from analysis.errors import GradientUnavailableError, ModelInputError
+from analysis.model_io import Sidecar, prepare_model
+from analysis.saliency import compute_saliency
+
+SIDECAR = Sidecar(classes=("a", "b", "c"), input_size=(32, 32), mean=(0.0, 0.0, 0.0), std=(1.0, 1.0, 1.0), target_layer="features")
+
+
+def _model(seed: int = 0) -> nn.Module:
+    torch.manual_seed(seed)
+    return SorterCNN(num_classes=3, width=8).eval()
+
+
+def direct_gradcam(model: nn.Module, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """ReLU(sum_k alpha_k A^k), alpha_k = spatial mean of d y_c / d A^k, upsampled bilinearly."""
+    feats = model.features(x)
+    logits = model.head(feats)
+    pred = logits.argmax(1)
+    grads = torch.autograd.grad(logits.gather(1, pred[:, None]).sum(), feats)[0]
+    alpha = grads.mean(dim=(2, 3), keepdim=True)
+    cam = F.relu((alpha * feats).sum(1, keepdim=True))
+    return F.interpolate(cam, size=x.shape[2:], mode="bilinear")[:, 0].detach(), pred
+
+
+def test_gradcam_matches_direct_formula() -> None:
+    model = _model()
+    x = torch.randn(6, 3, 32, 32, generator=torch.Generator().manual_seed(1))
+    ours = compute_saliency(prepare_model(model, SIDECAR), x)
+    ref, pred = direct_gradcam(model, x)
+    assert ours.predicted.tolist() == pred.tolist()
+    torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-6)
+    assert (ours.maps >= 0).all()
+
+
+def test_gradcam_batched_equals_unbatched_and_leaves_input() -> None:
+    loaded = prepare_model(_model(), SIDECAR)
+    x = torch.randn(5, 3, 32, 32, generator=torch.Generator().manual_seed(2))
+    before = x.clone()
+    whole = compute_saliency(loaded, x)
+    torch.testing.assert_close(x, before)
+    for i in range(5):
+        one = compute_saliency(loaded, x[i : i + 1])
+        torch.testing.assert_close(torch.from_numpy(one.maps[0]), torch.from_numpy(whole.maps[i]), rtol=1e-4, atol=1e-6)
+
+
+def test_torchscript_with_stages_matches_python_model() -> None:
+    model = _model()
+    scripted = torch.jit.script(model)
+    staged = prepare_model(scripted, Sidecar(**{**SIDECAR.__dict__, "stages": ("features", "head")}), kind="torchscript")
+    x = torch.randn(3, 3, 32, 32, generator=torch.Generator().manual_seed(3))
+    a = compute_saliency(staged, x)
+    b = compute_saliency(prepare_model(model, SIDECAR), x)
+    torch.testing.assert_close(torch.from_numpy(a.maps), torch.from_numpy(b.maps), rtol=1e-4, atol=1e-6)
+
+
+def test_torchscript_without_stages_is_refused() -> None:
+    with pytest.raises(ModelInputError, match="stages"):
+        prepare_model(torch.jit.script(_model()), SIDECAR, kind="torchscript")
+
+
+class _Tuple(nn.Module):
+    def __init__(self) -> None:
+        super().__init__()
+        self.features = nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(inplace=True))
+        self.fc = nn.Linear(4, 3)
+
+    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        f = self.features(x)
+        return self.fc(f.mean((2, 3))), f
+
+
+class _NoGrad(_Tuple):
+    def forward(self, x: torch.Tensor) -> torch.Tensor:  # type: ignore[override]
+        with torch.no_grad():
+            return self.fc(self.features(x).mean((2, 3)))
+
+
+def test_tuple_output_and_inplace_relu_are_handled() -> None:
+    loaded = prepare_model(_Tuple(), SIDECAR)
+    assert any("inplace" in n for n in loaded.notes) and any("tuple" in n for n in loaded.notes)
+    out = compute_saliency(loaded, torch.randn(2, 3, 32, 32))
+    assert out.maps.shape == (2, 32, 32)
+
+
+def test_no_grad_model_is_refused() -> None:
+    with pytest.raises(GradientUnavailableError, match="no_grad"):
+        prepare_model(_NoGrad(), SIDECAR)
+
+
+def test_output_size_mismatch_is_refused() -> None:
+    with pytest.raises(ModelInputError, match="lists 2 classes"):
+        prepare_model(_model(), Sidecar(**{**SIDECAR.__dict__, "classes": ("a", "b")}))
+
+
+def test_empty_map_is_flagged() -> None:
+    model = _model()
+    with torch.no_grad():
+        for p in model.features.parameters():
+            p.zero_()
+    out = compute_saliency(prepare_model(model, SIDECAR), torch.randn(2, 3, 32, 32))
+    assert out.empty.all() and (out.maps == 0).all()

@@ -1,0 +1,24 @@
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import torch
+
+from analysis.architectures import SorterCNN
+from analysis.model_io import LoadedModel, Sidecar, prepare_model
+from demo_data.scenes import CLASSES, SceneConfig, generate_dataset
+
+
+@pytest.fixture(scope="session")
+def small_scenes(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    root = tmp_path_factory.mktemp("scenes")
+    generate_dataset(root, SceneConfig(seed=3, n_train=0, n_test=12, n_counterfactual=6))
+    return root
+
+
+@pytest.fixture()
+def tiny_model() -> LoadedModel:
+    torch.manual_seed(0)
+    sidecar = Sidecar(classes=CLASSES, input_size=(64, 64), mean=(0.4, 0.4, 0.4), std=(0.2, 0.2, 0.2), target_layer="features")
+    return prepare_model(SorterCNN(num_classes=3, width=8), sidecar)
