@@ -47,12 +47,12 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
-def _serve(project: Path, port: int | None) -> None:
+def _serve(project: Path, port: int | None, labels_per_region: int | None = None) -> None:
     import uvicorn
 
     from .main import create_app
 
-    settings = get_settings(project_dir=project, port=port)
+    settings = get_settings(project_dir=project, port=port, labels_per_region=labels_per_region)
     print(f"heedmap is serving {project} at http://{settings.host}:{settings.port}/", flush=True)
     uvicorn.run(create_app(settings), host=settings.host, port=settings.port, log_level="warning")
 
@@ -89,7 +89,8 @@ def main(argv: list[str] | None = None) -> int:
             print(json.dumps(summary, indent=2))
             print(f"wrote {args.out / 'demo.json'}" + (f" and {args.out / 'rules.csv'}" if args.simulate_annotators else ""))
             if not args.no_serve:
-                _serve(args.out / "project", args.port)
+                # Simulated people already gave each region their labels; leave room for real ones.
+                _serve(args.out / "project", args.port, labels_per_region=args.simulate_annotators + 2)
         elif args.command == "saliency":
             from analysis.images import find_images
             from analysis.model_io import load_model
