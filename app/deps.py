@@ -8,6 +8,7 @@ from typing import Annotated
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
+from .db import write_session
 from .settings import Settings
 
 
@@ -17,14 +18,8 @@ def _session(request: Request) -> Iterator[Session]:
 
 
 def _write_session(request: Request) -> Iterator[Session]:
-    with request.app.state.sessions() as s:
-        s.connection(execution_options={"immediate": True})
-        try:
-            yield s
-            s.commit()
-        except BaseException:
-            s.rollback()
-            raise
+    with write_session(request.app.state.sessions) as s:
+        yield s
 
 
 def _settings(request: Request) -> Settings:
