@@ -21,6 +21,7 @@ from demo_data.train import train_demo_model
 
 from . import store
 from .db import make_engine, session_factory, write_session
+from .errors import ConflictError
 from .jobs import register_images, run_saliency
 from .models import ImageRow, Prediction, RegionRow
 
@@ -60,7 +61,7 @@ def simulate_annotations(factory, project_dir: Path, data_root: Path, run_id: in
                 try:
                     store.save_annotation(s, region_id=region_id, annotator=ids[a.name], entities=entities, client_id=f"sim-{uuid.uuid4().hex}", seconds_spent=None)
                     stored += 1
-                except Exception:  # noqa: BLE001 - already labelled in an earlier demo run
+                except ConflictError:  # this simulated person labelled the region in an earlier demo run
                     pass
     return stored
 
