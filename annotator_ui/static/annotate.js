@@ -12,4 +12,6 @@
       form.querySelector("[data-nothing]").click();
     }
   });
+  // Keys pressed before this point are lost; tests (and impatient people) can wait for it.
+  form.setAttribute("data-ready", "1");
 })();
