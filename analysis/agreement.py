@@ -21,6 +21,29 @@ def _codes(ratings: npt.ArrayLike) -> tuple[npt.NDArray[np.int64], int]:
     return codes, len(values)
 
 
+def _pairable(counts: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+    """Units x values count table, keeping only units with two or more ratings (the pairable ones)."""
+    counts = np.asarray(counts, dtype=float)
+    return counts[counts.sum(axis=1) >= 2]
+
+
+def _alpha_from_counts(counts: npt.NDArray[np.float64], weights: npt.NDArray[np.float64] | None = None) -> float:
+    """Nominal alpha = 1 - (n - 1) * sum_u D_u / (n^2 - sum_c n_c^2), with D_u = (m_u^2 - sum_c n_uc^2) / (m_u - 1).
+
+    This is the coincidence-matrix form with the sums taken per unit; ``weights`` counts each
+    unit that many times (a bootstrap resample).
+    """
+    m = counts.sum(axis=1)
+    d = (m**2 - (counts**2).sum(axis=1)) / (m - 1)
+    w = np.ones(len(m)) if weights is None else weights
+    n_c = w @ counts
+    n = n_c.sum()
+    expected = n * n - (n_c**2).sum()
+    if expected == 0:
+        raise InvalidInputError("every rating has the same value; alpha is undefined (no variation to agree on).")
+    return float(1 - (n - 1) * (w @ d) / expected)
+
+
 def krippendorff_alpha_nominal(ratings: npt.ArrayLike) -> float:
     """Krippendorff's alpha for nominal data with missing values (annotators x items).
 
@@ -29,27 +52,48 @@ def krippendorff_alpha_nominal(ratings: npt.ArrayLike) -> float:
     Reference: Krippendorff (2011), "Computing Krippendorff's Alpha-Reliability": the
     four-observer, twelve-unit example gives 0.743 (nominal).
     """
+    return alpha_from_counts(unit_counts(ratings))
+
+
+def unit_counts(ratings: npt.ArrayLike) -> npt.NDArray[np.float64]:
+    """Units x values table of how many annotators gave each value, from annotators x items ratings."""
     codes, k = _codes(ratings)
     if k == 0:
         raise InvalidInputError("ratings hold no values; give at least one unit rated twice.")
-    counts = np.zeros((codes.shape[1], k))
-    for j in range(codes.shape[1]):
-        col = codes[:, j]
-        counts[j] = np.bincount(col[col >= 0], minlength=k)
-    m = counts.sum(axis=1)
-    counts = counts[m >= 2]
-    m = m[m >= 2]
-    if len(m) == 0:
+    n_units = codes.shape[1]
+    unit = np.broadcast_to(np.arange(n_units), codes.shape)[codes >= 0]
+    return np.bincount(unit * k + codes[codes >= 0], minlength=n_units * k).reshape(n_units, k).astype(float)
+
+
+def alpha_from_counts(counts: npt.ArrayLike) -> float:
+    """Nominal alpha from a units x values count table (missing ratings simply not counted)."""
+    pairable = _pairable(np.asarray(counts, dtype=float))
+    if len(pairable) == 0:
         raise InvalidInputError("no unit has two or more ratings; alpha is undefined.")
-    # Coincidence matrix o_ck = sum_u n_uc n_uk (c != k, or n_uc (n_uc - 1) on the diagonal) / (m_u - 1).
-    o = np.einsum("uc,uk->ck", counts / (m - 1)[:, None], counts) - np.diag((counts / (m - 1)[:, None]).sum(0))
-    n_c = o.sum(axis=1)
-    n = n_c.sum()
-    observed = n - np.trace(o)
-    expected = (n * n - (n_c**2).sum()) / (n - 1)
-    if expected == 0:
-        raise InvalidInputError("every rating has the same value; alpha is undefined (no variation to agree on).")
-    return float(1 - observed / expected)
+    return _alpha_from_counts(pairable)
+
+
+def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float = 0.95, seed: int = 0) -> tuple[float, float]:
+    """Percentile bootstrap interval for nominal alpha, resampling units with replacement.
+
+    Resampling whole units is common practice for agreement coefficients (Krippendorff's own
+    bootstrap resamples pairable values instead); resamples without variation are skipped.
+    """
+    pairable = _pairable(np.asarray(counts, dtype=float))
+    if len(pairable) < 2:
+        raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
+    rng = np.random.default_rng(seed)
+    stats = []
+    for _ in range(n_boot):
+        w = np.bincount(rng.integers(0, len(pairable), len(pairable)), minlength=len(pairable)).astype(float)
+        try:
+            stats.append(_alpha_from_counts(pairable, w))
+        except InvalidInputError:
+            continue
+    if not stats:
+        raise InvalidInputError("every bootstrap resample lacked variation; alpha has no interval here.")
+    lo, hi = np.quantile(stats, [(1 - level) / 2, (1 + level) / 2])
+    return float(lo), float(hi)
 
 
 def fleiss_kappa(table: npt.ArrayLike) -> float:

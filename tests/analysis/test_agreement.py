@@ -7,7 +7,7 @@ from sklearn.metrics import cohen_kappa_score
 from statsmodels.stats.inter_rater import aggregate_raters
 from statsmodels.stats.inter_rater import fleiss_kappa as sm_fleiss
 
-from analysis.agreement import cohen_kappa, fleiss_kappa, krippendorff_alpha_nominal
+from analysis.agreement import alpha_bootstrap, alpha_from_counts, cohen_kappa, fleiss_kappa, krippendorff_alpha_nominal, unit_counts
 from analysis.errors import InvalidInputError
 
 N = None
@@ -53,3 +53,43 @@ def test_degenerate_inputs_raise() -> None:
         fleiss_kappa([[2, 0], [1, 2]])
     with pytest.raises(InvalidInputError, match="undefined"):
         krippendorff_alpha_nominal([[1, 1], [1, 1]])
+
+
+# Fleiss' kappa, the ten-subject, fourteen-rater, five-category example of the Wikipedia article
+# "Fleiss' kappa" (table recalled from memory; its printed kappa 0.210 is also what statsmodels gives).
+FLEISS_EXAMPLE = [
+    [0, 0, 0, 0, 14], [0, 2, 6, 4, 2], [0, 0, 3, 5, 6], [0, 3, 9, 2, 0], [2, 2, 8, 1, 1],
+    [7, 7, 0, 0, 0], [3, 2, 6, 3, 0], [2, 5, 3, 2, 2], [6, 5, 2, 1, 0], [0, 2, 2, 3, 7],
+]
+# Cohen (1960), Table 1: 200 cases, two judges, three categories, as proportions .44 .07 .09 /
+# .05 .20 .05 / .01 .03 .06 (recalled from memory; the marginals give p_o .70, p_c .41, kappa .492).
+COHEN_1960 = np.array([[88, 14, 18], [10, 40, 10], [2, 6, 12]])
+
+
+def test_published_fleiss_and_cohen_examples() -> None:
+    assert fleiss_kappa(FLEISS_EXAMPLE) == pytest.approx(0.210, abs=5e-4)
+    assert fleiss_kappa(FLEISS_EXAMPLE) == pytest.approx(sm_fleiss(np.array(FLEISS_EXAMPLE), method="fleiss"))
+    a = np.repeat(np.repeat(np.arange(3), 3), COHEN_1960.ravel())
+    b = np.repeat(np.tile(np.arange(3), 3), COHEN_1960.ravel())
+    assert cohen_kappa(a, b) == pytest.approx(0.492, abs=5e-4)
+
+
+def test_alpha_from_unit_counts_equals_alpha_from_ratings() -> None:
+    assert alpha_from_counts(unit_counts(KRIPP_2011)) == pytest.approx(krippendorff_alpha_nominal(KRIPP_2011))
+
+
+def test_bootstrap_interval_brackets_alpha_and_narrows_with_more_units() -> None:
+    rng = np.random.default_rng(3)
+
+    def counts(n_units: int) -> np.ndarray:
+        truth = rng.integers(0, 3, n_units)
+        ratings = np.where(rng.random((4, n_units)) < 0.7, truth, rng.integers(0, 3, (4, n_units)))
+        return unit_counts(ratings.tolist())
+
+    small, large = counts(40), counts(640)
+    lo_s, hi_s = alpha_bootstrap(small, n_boot=400)
+    lo_l, hi_l = alpha_bootstrap(large, n_boot=400)
+    assert lo_s <= alpha_from_counts(small) <= hi_s and lo_l <= alpha_from_counts(large) <= hi_l
+    # The interval width shrinks roughly with the square root of the units (16x units -> about 1/4).
+    assert (hi_l - lo_l) < 0.5 * (hi_s - lo_s)
+    assert alpha_bootstrap(small, n_boot=400, seed=1) == alpha_bootstrap(small, n_boot=400, seed=1)
