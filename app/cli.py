@@ -11,6 +11,7 @@ from pathlib import Path
 import pandas as pd
 
 from analysis.errors import AnalysisError
+from analysis.reliability import METHODS
 from analysis.rules import mine_rules, to_csv
 
 from .errors import AppError
@@ -44,6 +45,17 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--min-support", type=float, default=0.02)
     r.add_argument("--max-len", type=int, default=2)
     r.add_argument("--json", action="store_true")
+    g = sub.add_parser("agreement", help="agreement among annotators from a LABELS.csv (item,annotator,label)")
+    g.add_argument("labels", type=Path)
+    g.add_argument("--bootstrap", type=int, default=1000, metavar="N", help="resamples for alpha's 95%% interval (0 = none)")
+    g.add_argument("--seed", type=int, default=0)
+    g.add_argument("--json", action="store_true")
+    a = sub.add_parser("aggregate", help="one label per item from a LABELS.csv, with posteriors and annotator estimates")
+    a.add_argument("labels", type=Path)
+    a.add_argument("--method", choices=list(METHODS), default="dawid-skene", help="one-coin = Dawid-Skene with one accuracy per annotator (sparse data)")
+    a.add_argument("--known", type=Path, help="CSV item,label of check items with known answers, held fixed")
+    a.add_argument("--threshold", type=float, default=0.0, help="leave an item's label empty below this posterior")
+    a.add_argument("--json", action="store_true")
     return p
 
 
@@ -73,6 +85,54 @@ def _rules(args: argparse.Namespace) -> int:
         print(json.dumps({"n_images": table.n_images, "min_support": table.min_support, "rules": table.rules.to_dict("records")}, indent=2))
     else:
         sys.stdout.write(to_csv(table.rules))
+    return 0
+
+
+def _agreement(args: argparse.Namespace) -> int:
+    from analysis.agreement_report import agreement_report
+    from analysis.long_labels import read_long_labels
+
+    rep = agreement_report(read_long_labels(args.labels), n_boot=args.bootstrap, seed=args.seed)
+    if args.json:
+        print(json.dumps(rep.to_dict(), indent=2))
+        return 0
+    print(f"{rep.n_items} items, {rep.n_annotators} annotators, {rep.n_judgments} judgments; {rep.n_pairable} items rated twice or more")
+    if rep.alpha is None:
+        print(f"Krippendorff's alpha (nominal): undefined - {rep.alpha_note}")
+    else:
+        ci = f" (95% bootstrap interval {rep.alpha_interval[0]:.3f} to {rep.alpha_interval[1]:.3f})" if rep.alpha_interval else ""
+        print(f"Krippendorff's alpha (nominal): {rep.alpha:.3f}{ci}")
+    print(f"Fleiss' kappa: {rep.fleiss:.3f}" if rep.fleiss is not None else f"Fleiss' kappa: {rep.fleiss_note}")
+    print("annotator, judgments, agreement with others, mean Cohen's kappa")
+    for a in rep.annotators:
+        fmt = lambda v: "-" if v is None else f"{v:.3f}"  # noqa: E731
+        print(f"{a.annotator}, {a.judgments}, {fmt(a.agreement_with_others)}, {fmt(a.mean_kappa)}")
+    return 0
+
+
+def _aggregate(args: argparse.Namespace) -> int:
+    from analysis.label_aggregation import aggregate_labels
+    from analysis.long_labels import read_long_labels
+
+    labels = read_long_labels(args.labels)
+    known: dict[str, str] = {}
+    if args.known:
+        try:
+            gold = pd.read_csv(args.known, dtype=str, keep_default_na=False)
+        except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
+            raise AppError(f"cannot read {args.known}: {exc}") from None
+        if not {"item", "label"} <= set(gold.columns):
+            raise AppError(f"{args.known} needs the columns item,label; it has {list(gold.columns)}.")
+        known = {str(i).strip(): str(v).strip() for i, v in zip(gold["item"], gold["label"])}
+    _, summary = aggregate_labels(labels, method=args.method, known=known, threshold=args.threshold)
+    if args.json:
+        print(json.dumps(summary, indent=2))
+        return 0
+    state = "converged" if summary["converged"] else "did NOT converge"
+    print(f"{summary['method']}: {len(summary['items'])} items, {state} after {summary['iterations']} iterations")
+    print("item,label,probability,ratings")
+    for it in summary["items"]:
+        print(f"{it['item']},{it['label'] or ''},{it['probability']:.4f},{it['ratings']}")
     return 0
 
 
@@ -109,6 +169,10 @@ def main(argv: list[str] | None = None) -> int:
             _serve(args.project, args.port)
         elif args.command == "rules":
             return _rules(args)
+        elif args.command == "agreement":
+            return _agreement(args)
+        elif args.command == "aggregate":
+            return _aggregate(args)
     except (AnalysisError, AppError, SettingsError) as exc:
         if args.debug:
             traceback.print_exc()

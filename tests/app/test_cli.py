@@ -17,3 +17,62 @@ def test_rules_command_json_and_errors(tmp_path: Path, capsys: pytest.CaptureFix
     assert top["concepts"] == "tag" and top["confidence"] == 1.0 and top["n_images"] == 8
     assert main(["rules", str(tmp_path / "t.csv"), "--target", "nope"]) == 1
     assert "no column 'nope'" in capsys.readouterr().err
+
+
+def _crowd_csv(path: Path, seed: int = 0) -> dict[str, str]:
+    """A simulated crowd: two careful annotators, four careless ones, 150 items; returns the truth."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    truth = rng.choice(["bottle", "can", "carton"], 150)
+    rows = ["item,annotator,label"]
+    for a, acc in enumerate([0.95, 0.9, 0.4, 0.4, 0.35, 0.35]):
+        for u, t in enumerate(truth):
+            if rng.random() < 0.8:
+                label = t if rng.random() < acc else rng.choice([c for c in ("bottle", "can", "carton") if c != t])
+                rows.append(f"r{u},p{a},{label}")
+            elif rng.random() < 0.5:
+                rows.append(f"r{u},p{a},")  # a blank label is no judgment
+    path.write_text("\n".join(rows) + "\n")
+    return {f"r{u}": str(t) for u, t in enumerate(truth)}
+
+
+def test_agreement_and_aggregate_commands(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import krippendorff
+    import numpy as np
+    import pandas as pd
+
+    truth = _crowd_csv(tmp_path / "labels.csv")
+    assert main(["agreement", str(tmp_path / "labels.csv"), "--json", "--bootstrap", "200"]) == 0
+    rep = json.loads(capsys.readouterr().out)
+    frame = pd.read_csv(tmp_path / "labels.csv", keep_default_na=False)
+    wide = frame[frame.label != ""].pivot(index="annotator", columns="item", values="label")
+    codes = wide.apply(lambda col: col.map({"bottle": 0, "can": 1, "carton": 2})).to_numpy(dtype=float)
+    assert rep["alpha"] == pytest.approx(krippendorff.alpha(reliability_data=codes, level_of_measurement="nominal"))
+    assert rep["alpha_interval"][0] <= rep["alpha"] <= rep["alpha_interval"][1]
+    assert "not applicable" in rep["fleiss_note"] and len(rep["pairs"]) == 15
+
+    accuracy = {}
+    for method in ("majority", "dawid-skene", "one-coin"):
+        assert main(["aggregate", str(tmp_path / "labels.csv"), "--method", method, "--json"]) == 0
+        out = json.loads(capsys.readouterr().out)
+        assert out["method"] == method and out["converged"]
+        accuracy[method] = np.mean([it["label"] == truth[it["item"]] for it in out["items"]])
+    assert accuracy["dawid-skene"] > accuracy["majority"] and accuracy["one-coin"] > accuracy["majority"]
+    careful = {a["annotator"]: a["accuracy"] for a in out["annotators"]}
+    assert careful["p0"] > 0.85 and careful["p5"] < 0.5
+
+    (tmp_path / "gold.csv").write_text("item,label\nr0,carton\n")
+    assert main(["aggregate", str(tmp_path / "labels.csv"), "--known", str(tmp_path / "gold.csv"), "--json"]) == 0
+    fixed = json.loads(capsys.readouterr().out)["items"][0]
+    assert fixed["item"] == "r0" and fixed["posterior"]["carton"] == 1.0
+
+
+def test_aggregate_rejects_duplicates_and_unknown_answers(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    (tmp_path / "dup.csv").write_text("item,annotator,label\nr1,ann,can\nr1,ann,bottle\nr2,bob,can\n")
+    assert main(["aggregate", str(tmp_path / "dup.csv")]) == 1
+    assert "judge one item twice" in capsys.readouterr().err
+    _crowd_csv(tmp_path / "labels.csv")
+    (tmp_path / "gold.csv").write_text("item,label\nr0,glass\n")
+    assert main(["aggregate", str(tmp_path / "labels.csv"), "--known", str(tmp_path / "gold.csv")]) == 1
+    assert "not a label anyone used" in capsys.readouterr().err
