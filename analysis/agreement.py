@@ -27,21 +27,19 @@ def _pairable(counts: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
     return counts[counts.sum(axis=1) >= 2]
 
 
-def _alpha_from_counts(counts: npt.NDArray[np.float64], weights: npt.NDArray[np.float64] | None = None) -> float:
+def _alpha_from_counts(counts: npt.NDArray[np.float64]) -> float:
     """Nominal alpha = 1 - (n - 1) * sum_u D_u / (n^2 - sum_c n_c^2), with D_u = (m_u^2 - sum_c n_uc^2) / (m_u - 1).
 
-    This is the coincidence-matrix form with the sums taken per unit; ``weights`` counts each
-    unit that many times (a bootstrap resample).
+    This is the coincidence-matrix form with the sums taken per unit.
     """
     m = counts.sum(axis=1)
     d = (m**2 - (counts**2).sum(axis=1)) / (m - 1)
-    w = np.ones(len(m)) if weights is None else weights
-    n_c = w @ counts
+    n_c = counts.sum(axis=0)
     n = n_c.sum()
     expected = n * n - (n_c**2).sum()
     if expected == 0:
         raise InvalidInputError("every rating has the same value; alpha is undefined (no variation to agree on).")
-    return float(1 - (n - 1) * (w @ d) / expected)
+    return float(1 - (n - 1) * d.sum() / expected)
 
 
 def krippendorff_alpha_nominal(ratings: npt.ArrayLike) -> float:
@@ -83,16 +81,21 @@ def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float =
     if len(pairable) < 2:
         raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
     rng = np.random.default_rng(seed)
+    u = len(pairable)
+    m = pairable.sum(axis=1)
+    d = (m**2 - (pairable**2).sum(axis=1)) / (m - 1)
     stats = []
-    for _ in range(n_boot):
-        w = np.bincount(rng.integers(0, len(pairable), len(pairable)), minlength=len(pairable)).astype(float)
-        try:
-            stats.append(_alpha_from_counts(pairable, w))
-        except InvalidInputError:
-            continue
-    if not stats:
+    for start in range(0, n_boot, 64):  # chunks keep the weight matrix small for many units
+        w = rng.multinomial(u, np.full(u, 1.0 / u), size=min(64, n_boot - start)).astype(float)
+        n_c = w @ pairable
+        n = n_c.sum(axis=1)
+        expected = n * n - (n_c**2).sum(axis=1)
+        ok = expected > 0
+        stats.append(1 - (n[ok] - 1) * (w[ok] @ d) / expected[ok])
+    values = np.concatenate(stats)
+    if len(values) == 0:
         raise InvalidInputError("every bootstrap resample lacked variation; alpha has no interval here.")
-    lo, hi = np.quantile(stats, [(1 - level) / 2, (1 + level) / 2])
+    lo, hi = np.quantile(values, [(1 - level) / 2, (1 + level) / 2])
     return float(lo), float(hi)
 
 

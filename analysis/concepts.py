@@ -4,12 +4,13 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import pandas as pd
 
 from .errors import InvalidInputError
+from .synonyms import SynonymRules
 
 _SPACE = re.compile(r"\s+")
 _EDGE_PUNCT = re.compile(r"^[\W_]+|[\W_]+$")
@@ -45,47 +46,48 @@ def normalise_label(text: str) -> str:
 
 @dataclass(frozen=True)
 class Judgment:
-    """One annotator's label of one region: the entities named, each with attributes."""
+    """One annotator's label of one region: the entities named, each with attributes.
+
+    ``unsure`` marks a judgment its author flagged "not sure": kept, but not counted as a vote.
+    """
 
     region_id: int
     annotator: str
     entities: tuple[tuple[str, tuple[str, ...]], ...]  # (entity, attributes); empty = nothing recognisable
+    unsure: bool = False
 
 
-def judgment_concepts(j: Judgment, *, synonyms: dict[str, str] | None = None) -> set[str]:
-    """Concepts one judgment names: each entity, and ``"<attribute> <entity>"`` for each attribute."""
-    synonyms = synonyms or {}
+NOTHING = "nothing recognisable"
+
+
+def judgment_concepts(j: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None) -> set[str]:
+    """Concepts one judgment names: each entity, and ``"<attribute> <entity>"`` for each attribute.
+
+    Labels are normalised, then read through the synonym ``rules`` (splits by ``cls``, the region's
+    predicted class).
+    """
+    rules = rules or SynonymRules()
     out: set[str] = set()
     for entity, attributes in j.entities:
-        e = normalise_label(entity)
-        e = synonyms.get(e, e)
+        e = rules.entity(normalise_label(entity), cls)
         if not e:
             continue
         out.add(e)
         for a in attributes:
-            na = normalise_label(a)
+            na = rules.attribute(normalise_label(a))
             if na:
                 out.add(f"{na} {e}")
     return out
 
 
-def majority_concepts(judgments: Iterable[Judgment], *, synonyms: dict[str, str] | None = None) -> dict[int, dict[str, float]]:
-    """Per region, the concepts named by more than half of its annotators, with that share.
-
-    Returns ``{region_id: {concept: share of the region's annotators who named it}}``.
-    """
-    votes: dict[int, dict[str, int]] = {}
-    raters: dict[int, set[str]] = {}
-    for j in judgments:
-        raters.setdefault(j.region_id, set()).add(j.annotator)
-        for c in judgment_concepts(j, synonyms=synonyms):
-            votes.setdefault(j.region_id, {}).setdefault(c, 0)
-            votes[j.region_id][c] += 1
-    result: dict[int, dict[str, float]] = {}
-    for region, people in raters.items():
-        n = len(people)
-        result[region] = {c: v / n for c, v in sorted(votes.get(region, {}).items()) if v / n > 0.5}
-    return result
+def main_entity(j: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None) -> str:
+    """The first entity a judgment names (normalised, through the rules), or :data:`NOTHING`."""
+    rules = rules or SynonymRules()
+    for entity, _ in j.entities:
+        e = rules.entity(normalise_label(entity), cls)
+        if e:
+            return e
+    return NOTHING
 
 
 def concept_table(image_regions: dict[int, Sequence[int]], region_concepts: dict[int, dict[str, float]]) -> pd.DataFrame:

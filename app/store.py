@@ -9,7 +9,9 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from analysis.concepts import Judgment, concept_table, majority_concepts
+from analysis.concept_votes import estimate_concepts, presence_votes
+from analysis.concepts import Judgment, concept_table
+from analysis.reliability import Method
 from analysis.rules import RuleTable, mine_rules
 
 from .errors import ConflictError, NotFoundError
@@ -122,10 +124,14 @@ class Results:
     n_labelled_regions: int
 
 
-def compute_results(s: Session, run_id: int, *, min_support: float = 0.02, max_len: int = 2) -> Results:
-    """Majority concepts per region, the image-by-concept table and per-predicted-class rules."""
+def compute_results(s: Session, run_id: int, *, min_support: float = 0.02, max_len: int = 2, method: Method = "majority") -> Results:
+    """Concepts per region (majority or Dawid-Skene), the image-by-concept table and per-predicted-class rules."""
     preds = prediction_frame(s, run_id)
-    region_concepts = majority_concepts(judgments(s, run_id))
+    found = judgments(s, run_id)
+    if not found:
+        raise NotFoundError("no labels yet; label some regions first.")
+    region_class = {r: cls for cls, rs in zip(preds["predicted"], preds["regions"]) for r in rs}
+    region_concepts = estimate_concepts(presence_votes(found, region_class=region_class), method=method).region_concepts()
     labelled = set(region_concepts)
     # Only images whose regions all have labels count; an image with no region has no concept.
     complete = preds[preds["regions"].map(lambda rs: all(r in labelled for r in rs))]

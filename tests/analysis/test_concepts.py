@@ -2,7 +2,8 @@ from __future__ import annotations
 
 import pytest
 
-from analysis.concepts import Judgment, concept_table, majority_concepts, normalise_label, parse_label_text
+from analysis.concept_votes import estimate_concepts, presence_votes
+from analysis.concepts import Judgment, concept_table, normalise_label, parse_label_text
 from analysis.errors import InvalidInputError
 
 
@@ -23,7 +24,7 @@ def test_majority_needs_more_than_half() -> None:
         Judgment(1, "a", (("Caps", ("red",)),)), Judgment(1, "b", (("cap", ()),)), Judgment(1, "c", (("tag", ()),)),
         Judgment(2, "a", ()), Judgment(2, "b", (("tag", ()),)),
     ]
-    got = majority_concepts(js)
+    got = estimate_concepts(presence_votes(js), method="majority").region_concepts()
     assert got[1] == {"cap": pytest.approx(2 / 3)}
     assert got[2] == {}
     table = concept_table({10: [1], 11: [2], 12: []}, got)

@@ -1,0 +1,217 @@
+"""From judgments to concepts per region: yes/no votes per (region, concept), their agreement, and
+majority or Dawid-Skene estimates of which concepts each region really shows.
+
+An annotator who labelled a region votes "yes" on every concept they named there and "no" on
+every concept somebody else named there. Dawid-Skene then learns one 2 x 2 confusion matrix per
+annotator over all (region, concept) pairs (sensitivity and specificity), which is the data a
+sparse team produces; per concept it would be starved.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import numpy.typing as npt
+
+from .agreement import alpha_bootstrap, alpha_from_counts
+from .concepts import Judgment, judgment_concepts, main_entity, normalise_label
+from .errors import InvalidInputError
+from .long_labels import LongLabels
+from .reliability import Method, aggregate
+from .synonyms import SynonymRules
+
+IntArray = npt.NDArray[np.int64]
+FloatArray = npt.NDArray[np.float64]
+BoolArray = npt.NDArray[np.bool_]
+
+
+@dataclass(frozen=True)
+class PresenceVotes:
+    """Binary votes on (region, concept) pairs, plus each judgment's main entity.
+
+    Codes index into ``regions``, ``annotators`` and ``concepts``. ``known`` is 1/0 for pairs
+    whose answer is known (check items) and -1 elsewhere.
+    """
+
+    regions: tuple[int, ...]
+    annotators: tuple[str, ...]
+    concepts: tuple[str, ...]
+    pair_region: IntArray  # (P,)
+    pair_concept: IntArray  # (P,)
+    known: IntArray  # (P,)
+    vote_pair: IntArray  # (V,)
+    vote_annotator: IntArray  # (V,)
+    vote_yes: BoolArray  # (V,)
+    main_entities: LongLabels  # items = regions (as str), label = first entity named
+
+    @property
+    def raters(self) -> IntArray:
+        """Annotators who judged each region, (regions,)."""
+        return np.bincount(self.main_entities.item_codes, minlength=len(self.regions))
+
+
+def presence_votes(
+    judgments: Iterable[Judgment],
+    *,
+    rules: SynonymRules | None = None,
+    region_class: Mapping[int, str] | None = None,
+    known: Mapping[int, Iterable[str]] | None = None,
+) -> PresenceVotes:
+    """Turn judgments into yes/no votes; judgments flagged unsure are left out.
+
+    ``region_class`` gives each region's predicted class (for class-dependent splits);
+    ``known`` gives the concepts a check region is known to show (normalised on the way in),
+    which become known-yes pairs, and every other concept named there a known no.
+    """
+    region_class = region_class or {}
+    known_sets = {int(r): {normalise_label(c) for c in cs} - {""} for r, cs in (known or {}).items()}
+    named: dict[tuple[int, str], set[str]] = {}
+    entity: dict[tuple[int, str], str] = {}
+    for j in judgments:
+        if j.unsure:
+            continue
+        key = (int(j.region_id), j.annotator)
+        if key in named:
+            raise InvalidInputError(f"annotator {j.annotator!r} judged region {j.region_id} twice; keep one judgment per region and annotator.")
+        cls = region_class.get(j.region_id)
+        named[key] = judgment_concepts(j, rules=rules, cls=cls)
+        entity[key] = main_entity(j, rules=rules, cls=cls)
+    if not named:
+        raise InvalidInputError("no judgments to aggregate (none given, or all marked not sure); collect labels first.")
+    regions = tuple(sorted({r for r, _ in named}))
+    annotators = tuple(sorted({a for _, a in named}))
+    concept_set = {c for cs in named.values() for c in cs}
+    for r in regions:
+        concept_set |= known_sets.get(r, set())
+    concepts = tuple(sorted(concept_set))
+    r_index = {r: i for i, r in enumerate(regions)}
+    a_index = {a: i for i, a in enumerate(annotators)}
+    c_index = {c: i for i, c in enumerate(concepts)}
+    per_region: dict[int, list[tuple[int, set[str]]]] = {}
+    for (r, a), cs in named.items():
+        per_region.setdefault(r, []).append((a_index[a], cs))
+    pr, pc, kn, vp, va, vy = [], [], [], [], [], []
+    for r in regions:
+        raters = per_region[r]
+        answer = known_sets.get(r)
+        union = set().union(*(cs for _, cs in raters)) | (answer or set())
+        for c in sorted(union):
+            p = len(pr)
+            pr.append(r_index[r])
+            pc.append(c_index[c])
+            kn.append(-1 if answer is None else int(c in answer))
+            for a, cs in raters:
+                vp.append(p)
+                va.append(a)
+                vy.append(c in cs)
+    keys = sorted(entity)
+    ent_names = tuple(sorted(set(entity.values())))
+    e_index = {e: i for i, e in enumerate(ent_names)}
+    main = LongLabels(
+        tuple(str(r) for r in regions), annotators, ent_names,
+        np.array([r_index[r] for r, _ in keys], dtype=np.int64),
+        np.array([a_index[a] for _, a in keys], dtype=np.int64),
+        np.array([e_index[entity[k]] for k in keys], dtype=np.int64),
+    )
+    as_int = lambda v: np.array(v, dtype=np.int64)  # noqa: E731
+    return PresenceVotes(regions, annotators, concepts, as_int(pr), as_int(pc), as_int(kn), as_int(vp), as_int(va), np.array(vy, dtype=bool), main)
+
+
+@dataclass(frozen=True)
+class ConceptEstimate:
+    """Probability that each (region, concept) pair is present, and what the method learned of each annotator."""
+
+    method: Method
+    threshold: float  # a pair is present when its probability exceeds this
+    votes: PresenceVotes
+    probability: FloatArray  # (P,)
+    sensitivity: FloatArray  # (annotators,) P(says yes | present)
+    specificity: FloatArray  # (annotators,) P(says no | absent)
+    iterations: int
+    converged: bool
+
+    @property
+    def present(self) -> BoolArray:
+        return self.probability > self.threshold
+
+    def region_concepts(self) -> dict[int, dict[str, float]]:
+        """``{region_id: {concept: probability}}`` for the present pairs; every judged region has an entry."""
+        v = self.votes
+        out: dict[int, dict[str, float]] = {r: {} for r in v.regions}
+        for p in np.nonzero(self.present)[0]:
+            out[v.regions[v.pair_region[p]]][v.concepts[v.pair_concept[p]]] = float(self.probability[p])
+        return out
+
+
+def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", threshold: float = 0.5, **options: float) -> ConceptEstimate:
+    """Aggregate the yes/no votes with ``method`` (majority, dawid-skene or one-coin).
+
+    Majority gives each pair the share of its region's annotators who named it, so with the
+    default threshold a concept needs more than half of them. Known pairs keep their answer.
+    """
+    if not 0 <= threshold < 1:
+        raise InvalidInputError(f"threshold must be in [0, 1); got {threshold}. 0.5 keeps what more than half support.")
+    n_pairs = len(votes.pair_region)
+    if n_pairs == 0:
+        probability = np.zeros(0)
+        sens = spec = np.full(len(votes.annotators), np.nan)
+        return ConceptEstimate(method, threshold, votes, probability, sens, spec, 0, True)
+    known = {int(p): int(votes.known[p]) for p in np.nonzero(votes.known >= 0)[0]}
+    yes = votes.vote_yes.astype(np.int64)
+    agg = aggregate(votes.vote_pair, votes.vote_annotator, yes, n_classes=2, method=method, known=known, **options)
+    probability = np.asarray(agg.posterior[:, 1], dtype=np.float64)  # every pair has its region's votes
+    n_ann = len(votes.annotators)
+    if agg.confusion is not None:
+        # An annotator who only ever said "nothing recognisable" where nobody named anything casts no vote.
+        sens = np.full(n_ann, np.nan)
+        spec = np.full(n_ann, np.nan)
+        sens[: len(agg.confusion)] = agg.confusion[:, 1, 1]
+        spec[: len(agg.confusion)] = agg.confusion[:, 0, 0]
+    else:
+        # Majority: how often an annotator's yes/no matches the aggregated presence.
+        truth = (probability > threshold)[votes.vote_pair]
+        a = votes.vote_annotator
+        said = votes.vote_yes
+        sens = np.bincount(a, weights=(truth & said), minlength=n_ann) / np.maximum(np.bincount(a, weights=truth, minlength=n_ann), 1)
+        spec = np.bincount(a, weights=(~truth & ~said), minlength=n_ann) / np.maximum(np.bincount(a, weights=~truth, minlength=n_ann), 1)
+    return ConceptEstimate(method, threshold, votes, probability, sens, spec, agg.iterations, agg.converged)
+
+
+@dataclass(frozen=True)
+class ConceptAgreement:
+    """Krippendorff's alpha on one concept's presence (yes/no per region and annotator)."""
+
+    concept: str
+    regions_named: int  # regions where at least one annotator named it
+    alpha: float | None
+    interval: tuple[float, float] | None
+    note: str
+
+
+def presence_agreement(votes: PresenceVotes, *, concepts: Sequence[str] | None = None, n_boot: int = 200, seed: int = 0) -> list[ConceptAgreement]:
+    """Alpha per concept over every region rated twice or more (absent votes included), most named first.
+
+    A concept nobody disagrees on, or that every pairable region has, leaves alpha undefined;
+    the note says why instead of returning NaN.
+    """
+    m = votes.raters.astype(np.float64)
+    wanted = range(len(votes.concepts)) if concepts is None else [votes.concepts.index(c) for c in concepts if c in votes.concepts]
+    yes_pair = np.bincount(votes.vote_pair, weights=votes.vote_yes, minlength=len(votes.pair_region))
+    out = []
+    for c in wanted:
+        sel = votes.pair_concept == c
+        yes = np.zeros(len(votes.regions))
+        np.add.at(yes, votes.pair_region[sel], yes_pair[sel])
+        counts = np.column_stack([m - yes, yes])
+        named = int((yes > 0).sum())
+        alpha = interval = None
+        note = ""
+        try:
+            alpha = alpha_from_counts(counts)
+            interval = alpha_bootstrap(counts, n_boot=n_boot, seed=seed) if n_boot else None
+        except InvalidInputError as exc:
+            note = str(exc)
+        out.append(ConceptAgreement(votes.concepts[c], named, alpha, interval, note))
+    return sorted(out, key=lambda a: (-a.regions_named, a.concept))

@@ -1,0 +1,93 @@
+from __future__ import annotations
+
+import krippendorff
+import numpy as np
+import pandas as pd
+import pytest
+from crowdkit.aggregation import DawidSkene
+
+from analysis.concept_votes import estimate_concepts, presence_agreement, presence_votes
+from analysis.concepts import Judgment
+from analysis.errors import InvalidInputError
+from analysis.synonyms import Merge, build_rules
+from tests.analysis.test_reliability import crowd_kit_warnings
+
+PARTS = ["cap", "neck", "label band", "tag", "rim", "body"]
+
+
+def _crowd(seed: int, sens: list[float], fp: list[float], n_regions: int = 300) -> tuple[dict[int, set[str]], list[Judgment]]:
+    """Regions with 1-3 true parts; annotator a names a true part with probability sens[a] and
+    adds a wrong part with probability fp[a]."""
+    rng = np.random.default_rng(seed)
+    truth = {r: set(rng.choice(PARTS, int(rng.integers(1, 4)), replace=False)) for r in range(n_regions)}
+    js = []
+    for r, parts in truth.items():
+        for a in range(len(sens)):
+            named = {p for p in parts if rng.random() < sens[a]}
+            if rng.random() < fp[a]:
+                named.add(str(rng.choice(PARTS)))
+            js.append(Judgment(r, f"a{a}", tuple((p, ()) for p in sorted(named))))
+    return truth, js
+
+
+def test_votes_cover_every_concept_named_in_a_region() -> None:
+    js = [Judgment(1, "x", (("Caps", ("red",)),)), Judgment(1, "y", (("lid", ()),)), Judgment(2, "x", ()), Judgment(2, "z", (("tag", ()),), unsure=True)]
+    votes = presence_votes(js, rules=build_rules([Merge("lid", "cap")]))
+    assert votes.concepts == ("cap", "red cap") and votes.regions == (1, 2)
+    # Region 1: cap (x yes, y yes), red cap (x yes, y no); region 2 has no concept; z's unsure vote is left out.
+    assert sorted(zip(votes.vote_pair.tolist(), votes.vote_annotator.tolist(), votes.vote_yes.tolist())) == [(0, 0, True), (0, 1, True), (1, 0, True), (1, 1, False)]
+    assert votes.main_entities.classes == ("cap", "nothing recognisable")
+    est = estimate_concepts(votes, method="majority")
+    assert est.region_concepts() == {1: {"cap": 1.0}, 2: {}}  # "red cap" has half, not more than half
+    with pytest.raises(InvalidInputError, match="twice"):
+        presence_votes([Judgment(1, "x", ()), Judgment(1, "x", ())])
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_dawid_skene_presence_beats_majority_with_unreliable_annotators(seed: int) -> None:
+    truth, js = _crowd(seed, sens=[0.95, 0.9, 0.5, 0.45, 0.5], fp=[0.05, 0.05, 0.8, 0.8, 0.8])
+    votes = presence_votes(js)
+
+    def accuracy(method: str) -> float:
+        est = estimate_concepts(votes, method=method)  # type: ignore[arg-type]
+        got = est.region_concepts()
+        pairs = [(votes.regions[r], votes.concepts[c]) for r, c in zip(votes.pair_region, votes.pair_concept)]
+        return float(np.mean([(c in got[r]) == (c in truth[r]) for r, c in pairs]))
+
+    # Dawid-Skene learns to discount the three careless people; at least a quarter fewer errors.
+    assert 1 - accuracy("dawid-skene") < 0.75 * (1 - accuracy("majority"))
+    ds = estimate_concepts(votes, method="dawid-skene")
+    assert ds.converged and ds.sensitivity[0] > 0.85 and ds.sensitivity[3] < 0.65
+
+
+@crowd_kit_warnings
+def test_presence_dawid_skene_matches_crowd_kit_on_the_same_votes() -> None:
+    _, js = _crowd(4, sens=[0.9, 0.8, 0.6], fp=[0.1, 0.3, 0.5], n_regions=25)
+    votes = presence_votes(js)
+    ours = estimate_concepts(votes, method="dawid-skene", smoothing=1e-10, tol=1e-10, max_iter=2000)
+    frame = pd.DataFrame({"task": votes.vote_pair, "worker": votes.vote_annotator, "label": votes.vote_yes.astype(int)})
+    ref = DawidSkene(n_iter=2000, tol=1e-12).fit(frame)
+    np.testing.assert_allclose(ours.probability, ref.probas_.sort_index()[1].to_numpy(), atol=1e-4)
+
+
+def test_presence_alpha_per_concept_matches_krippendorff_package() -> None:
+    _, js = _crowd(5, sens=[0.9, 0.7, 0.6, 0.8], fp=[0.1, 0.2, 0.4, 0.1], n_regions=120)
+    js = [j for k, j in enumerate(js) if k % 7 != 3]  # some regions lose a rater: missing data
+    votes = presence_votes(js)
+    rep = {a.concept: a for a in presence_agreement(votes, n_boot=100)}
+    for concept in ("cap", "tag"):
+        data = np.full((len(votes.annotators), len(votes.regions)), np.nan)
+        for j in js:
+            named = {e for e, _ in j.entities}
+            data[votes.annotators.index(j.annotator), votes.regions.index(j.region_id)] = float(concept in named)
+        assert rep[concept].alpha == pytest.approx(krippendorff.alpha(reliability_data=data, level_of_measurement="nominal"))
+        lo, hi = rep[concept].interval  # type: ignore[misc]
+        assert lo <= rep[concept].alpha <= hi
+
+
+def test_check_regions_keep_their_known_answer() -> None:
+    truth, js = _crowd(6, sens=[0.6, 0.6, 0.6], fp=[0.5, 0.5, 0.5], n_regions=40)
+    known = {r: truth[r] for r in range(10)}
+    est = estimate_concepts(presence_votes(js, known=known), method="dawid-skene")
+    got = est.region_concepts()
+    assert all(set(got[r]) == truth[r] for r in known)
