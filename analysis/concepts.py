@@ -139,3 +139,24 @@ def parse_label_text(text: str) -> list[tuple[str, list[str]]]:
     if len(entities) > MAX_ENTITIES:
         raise InvalidInputError(f"{len(entities)} entities given; name at most {MAX_ENTITIES} per region.")
     return entities
+
+
+def format_label_text(entities: Sequence[tuple[str, Sequence[str]]]) -> str:
+    """The text form :func:`parse_label_text` reads back: ``"cap: red; label band: torn, white"``."""
+    return "; ".join(f"{e}: {', '.join(a)}" if a else e for e, a in entities)
+
+
+def entity_overlap(answer: Judgment, given: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None) -> float:
+    """How well ``given`` names the entities of a known ``answer``: Jaccard overlap of the two entity sets.
+
+    Both empty ("nothing recognisable" against an empty answer) scores 1.
+    """
+    rules = rules or SynonymRules()
+
+    def names(j: Judgment) -> set[str]:
+        return {n for n in (rules.entity(normalise_label(e), cls) for e, _ in j.entities) if n}
+
+    a, g = names(answer), names(given)
+    if not a and not g:
+        return 1.0
+    return len(a & g) / len(a | g)

@@ -150,3 +150,23 @@ def outline_region(image: Image.Image, region: Region, *, map_size: tuple[int, i
     width = max(2, scale // 2)
     draw.rectangle([x0 * scale, y0 * scale, x1 * scale - 1, y1 * scale - 1], outline=OUTLINE_COLOUR, width=width)
     return big
+
+
+def saliency_overlay(image: Image.Image, saliency: npt.NDArray[np.floating], region: Region | None = None, *, min_side: int = 256) -> Image.Image:
+    """The image with its saliency map laid over it as heat (red to yellow, stronger where higher),
+    enlarged to at least ``min_side``, and the region's box drawn when one is given."""
+    if saliency.ndim != 2:
+        raise InvalidInputError(f"saliency must be one H x W map; got shape {saliency.shape}.")
+    rgb = image.convert("RGB")
+    peak = float(np.max(saliency))
+    norm = np.clip(np.asarray(saliency, dtype=np.float32) / peak, 0, 1) if peak > 0 else np.zeros(saliency.shape, np.float32)
+    heat = np.asarray(Image.fromarray((norm * 255).astype(np.uint8), "L").resize(rgb.size, Image.BILINEAR), dtype=np.float32) / 255.0
+    colour = np.stack([np.full_like(heat, 255.0), 255.0 * heat, np.zeros_like(heat)], axis=-1)
+    alpha = (0.65 * heat)[..., None]
+    blended = Image.fromarray((np.asarray(rgb, dtype=np.float32) * (1 - alpha) + colour * alpha).astype(np.uint8), "RGB")
+    scale = max(1, int(np.ceil(min_side / max(1, min(blended.size)))))
+    big = blended.resize((blended.width * scale, blended.height * scale), Image.NEAREST)
+    if region is not None:
+        x0, y0, x1, y1 = scaled_box(region, map_size=saliency.shape, image_size=rgb.size, margin=0.0)  # type: ignore[arg-type]
+        ImageDraw.Draw(big).rectangle([x0 * scale, y0 * scale, x1 * scale - 1, y1 * scale - 1], outline=OUTLINE_COLOUR, width=max(2, scale // 2))
+    return big

@@ -100,11 +100,21 @@ def spreadsheet_safe(value: object) -> object:
     return value
 
 
+def _cell(v: object) -> object:
+    if isinstance(v, str):
+        return spreadsheet_safe(v)
+    if v is None or (isinstance(v, float) and np.isnan(v)):
+        return ""
+    if isinstance(v, (float, np.floating)):
+        return f"{v:.6g}"
+    return v
+
+
 def to_csv(frame: pd.DataFrame) -> str:
     """CSV text of a table with formula-like text cells escaped."""
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow([spreadsheet_safe(str(c)) for c in frame.columns])
     for row in frame.itertuples(index=False):
-        writer.writerow([spreadsheet_safe(v) if isinstance(v, str) else (f"{v:.6g}" if isinstance(v, float) else v) for v in row])
+        writer.writerow([_cell(v) for v in row])
     return buf.getvalue()

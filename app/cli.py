@@ -15,6 +15,7 @@ from analysis.reliability import METHODS
 from analysis.rules import mine_rules, to_csv
 
 from .errors import AppError
+from .models import ROLES
 from .settings import SettingsError, get_settings
 
 
@@ -36,9 +37,33 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("--sidecar", type=Path, required=True)
     s.add_argument("--images", type=Path, required=True, help="folder with a subfolder per class, or a CSV with path,label")
     s.add_argument("--batch-size", type=int, default=32)
-    v = sub.add_parser("serve", help="serve the annotation app over a project folder")
+    v = sub.add_parser("serve", help="serve the app over a project folder; prints an admin sign-in link")
     v.add_argument("project", type=Path)
     v.add_argument("--port", type=int, default=None)
+    c = sub.add_parser("campaign", help="create a labelling campaign over a saliency run")
+    c.add_argument("project", type=Path)
+    c.add_argument("--name", required=True)
+    c.add_argument("--run", type=int, default=None, help="saliency run id (default: the latest)")
+    c.add_argument("--classes", default="", help="comma-separated predicted classes to include (default: all)")
+    c.add_argument("--per-region", type=int, default=3, help="annotators per region")
+    c.add_argument("--instructions", type=Path, help="a text file shown to annotators")
+    c.add_argument("--check-every", type=int, default=10, help="mix in a check item about once in this many tasks")
+    c.add_argument("--lease-minutes", type=float, default=10.0, help="how long a handed-out region is held for its annotator")
+    c.add_argument("--method", choices=list(METHODS), default="majority", help="label aggregation for the results")
+    i = sub.add_parser("invite", help="make, list or revoke invite links")
+    i.add_argument("project", type=Path)
+    i.add_argument("--name", help="the person's name")
+    i.add_argument("--role", choices=list(ROLES), default="annotator")
+    i.add_argument("--campaign", type=int, default=None, help="tie an annotator to one campaign")
+    i.add_argument("--days", type=float, default=14.0)
+    i.add_argument("--note", default="")
+    i.add_argument("--base-url", default=None, help="where the app is served (default http://127.0.0.1:PORT)")
+    i.add_argument("--list", action="store_true", help="list invites instead")
+    i.add_argument("--revoke", type=int, metavar="INVITE_ID", help="revoke an invite instead")
+    k = sub.add_parser("checks", help="mark regions of a campaign as check items from a CSV region,answer")
+    k.add_argument("project", type=Path)
+    k.add_argument("--campaign", type=int, required=True)
+    k.add_argument("file", type=Path, help="CSV with columns region,answer (answer like 'cap: red; label band'; empty = nothing recognisable)")
     r = sub.add_parser("rules", help="concept rules from a 0/1 table (rows images, one column per concept)")
     r.add_argument("table", type=Path)
     r.add_argument("--target", required=True, help="column holding each image's class")
@@ -59,14 +84,113 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
-def _serve(project: Path, port: int | None, labels_per_region: int | None = None) -> None:
+def _factory(project: Path):  # type: ignore[no-untyped-def]
+    from .db import make_engine, session_factory
+
+    return session_factory(make_engine(project))
+
+
+def _serve(project: Path, port: int | None) -> None:
     import uvicorn
 
+    from .db import write_session
     from .main import create_app
+    from .people import create_invite
 
-    settings = get_settings(project_dir=project, port=port, labels_per_region=labels_per_region)
-    print(f"heedmap is serving {project} at http://{settings.host}:{settings.port}/", flush=True)
+    from .db import make_engine, session_factory
+
+    settings = get_settings(project_dir=project, port=port)
+    engine = make_engine(project)
+    with write_session(session_factory(engine)) as s:
+        _, token = create_invite(s, name="admin", role="admin", days=1, note="start-up link of heedmap serve")
+    engine.dispose()
+    base = f"http://{settings.host}:{settings.port}"
+    print(f"heedmap is serving {project} at {base}/", flush=True)
+    print(f"sign in as admin (link valid for a day): {base}/join/{token}", flush=True)
     uvicorn.run(create_app(settings), host=settings.host, port=settings.port, log_level="warning")
+
+
+def _campaign(args: argparse.Namespace) -> int:
+    from . import store
+    from .campaigns import create_campaign
+    from .db import write_session
+
+    factory = _factory(args.project)
+    with write_session(factory) as s:
+        run_id = args.run or store.latest_run_id(s)
+        if run_id is None:
+            raise AppError(f"{args.project} has no saliency run yet; run 'heedmap saliency' first.")
+        instructions = ""
+        if args.instructions:
+            try:
+                instructions = args.instructions.read_text(encoding="utf-8")
+            except OSError as exc:
+                raise AppError(f"cannot read {args.instructions}: {exc}") from None
+        classes = [c.strip() for c in args.classes.split(",") if c.strip()]
+        cid = create_campaign(s, name=args.name, run_id=run_id, classes=classes, labels_per_region=args.per_region, instructions=instructions,
+                              lease_seconds=int(args.lease_minutes * 60), check_every=args.check_every, method=args.method)
+    print(f"campaign {cid} ({args.name}) over run {run_id}")
+    return 0
+
+
+def _invite(args: argparse.Namespace) -> int:
+    from .db import write_session
+    from .models import utcnow
+    from .people import create_invite, list_invites, revoke_invite
+
+    factory = _factory(args.project)
+    with write_session(factory) as s:
+        if args.list:
+            now = utcnow()
+            print("id,person,role,campaign,state,expires,last_used,note")
+            for inv in list_invites(s):
+                used = inv.last_used_at.isoformat(timespec="minutes") if inv.last_used_at else ""
+                print(f"{inv.id},{inv.person},{inv.role},{inv.campaign_id or ''},{inv.state(now)},{inv.expires_at.isoformat(timespec='minutes')},{used},{inv.note}")
+            return 0
+        if args.revoke is not None:
+            revoke_invite(s, args.revoke)
+            print(f"invite {args.revoke} revoked")
+            return 0
+        if not args.name:
+            raise AppError("give --name for the person to invite (or --list, or --revoke ID).")
+        if args.campaign is not None:
+            from .campaigns import get_campaign
+
+            get_campaign(s, args.campaign)
+        invite_id, token = create_invite(s, name=args.name, role=args.role, campaign_id=args.campaign, days=args.days, note=args.note)
+    base = (args.base_url or f"http://127.0.0.1:{get_settings().port}").rstrip("/")
+    print(f"invite {invite_id} for {args.name} ({args.role}), valid {args.days:g} days:")
+    print(f"{base}/join/{token}")
+    return 0
+
+
+def _checks(args: argparse.Namespace) -> int:
+    from analysis.concepts import parse_label_text
+    from analysis.errors import InvalidInputError
+
+    from .campaigns import set_check_answer
+    from .db import write_session
+
+    try:
+        frame = pd.read_csv(args.file, dtype=str, keep_default_na=False)
+    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
+        raise AppError(f"cannot read {args.file}: {exc}") from None
+    if not {"region", "answer"} <= set(frame.columns):
+        raise AppError(f"{args.file} needs the columns region,answer; it has {list(frame.columns)}.")
+    parsed = []
+    for line, (region, answer) in enumerate(zip(frame["region"], frame["answer"]), start=2):
+        if not str(region).strip().isdigit():
+            raise AppError(f"{args.file} line {line}: region must be a region id (a number); got {region!r}.")
+        try:
+            parsed.append((int(region), parse_label_text(answer)))
+        except InvalidInputError as exc:
+            raise AppError(f"{args.file} line {line}: {exc}") from None
+    # All or nothing: one transaction, so a bad line stores none of them.
+    with write_session(_factory(args.project)) as s:
+        for region, entities in parsed:
+            set_check_answer(s, campaign_id=args.campaign, region_id=region, entities=entities)
+    print(f"{len(parsed)} check items set in campaign {args.campaign}")
+    return 0
 
 
 def _rules(args: argparse.Namespace) -> int:
@@ -149,8 +273,7 @@ def main(argv: list[str] | None = None) -> int:
             print(json.dumps(summary, indent=2))
             print(f"wrote {args.out / 'demo.json'}" + (f" and {args.out / 'rules.csv'}" if args.simulate_annotators else ""))
             if not args.no_serve:
-                # Simulated people already gave each region their labels; leave room for real ones.
-                _serve(args.out / "project", args.port, labels_per_region=args.simulate_annotators + 2)
+                _serve(args.out / "project", args.port)
         elif args.command == "saliency":
             from analysis.images import find_images
             from analysis.model_io import load_model
@@ -161,12 +284,18 @@ def main(argv: list[str] | None = None) -> int:
             model = load_model(args.model, args.sidecar)
             factory = session_factory(make_engine(args.project))
             problems = register_images(factory, find_images(args.images))
-            rep = run_saliency(factory, args.project, model, batch_size=args.batch_size)
+            rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=(args.model, args.sidecar))
             for path, why in problems + rep.skipped:
                 print(f"skipped: {why}", file=sys.stderr)
             print(f"run {rep.run_id}: {rep.processed} images processed, {rep.already_done} already done, {rep.regions} regions, {rep.empty_maps} empty maps, {len(problems) + len(rep.skipped)} skipped")
         elif args.command == "serve":
             _serve(args.project, args.port)
+        elif args.command == "campaign":
+            return _campaign(args)
+        elif args.command == "invite":
+            return _invite(args)
+        elif args.command == "checks":
+            return _checks(args)
         elif args.command == "rules":
             return _rules(args)
         elif args.command == "agreement":

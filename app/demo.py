@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import time
-import uuid
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -19,11 +18,12 @@ from demo_data.annotators import demo_crowd, simulate_label, visible_parts
 from demo_data.scenes import CUE_CONCEPTS, CueName, SceneConfig, generate_dataset, load_scenes
 from demo_data.train import train_demo_model
 
-from . import store
+from . import campaigns, store
 from .db import make_engine, session_factory, write_session
 from .errors import ConflictError
 from .jobs import register_images, run_saliency
-from .models import ImageRow, Prediction, RegionRow
+from .models import Campaign, CampaignRegion, ImageRow, Prediction, RegionRow
+from .people import ensure_person
 
 
 @dataclass(frozen=True)
@@ -37,33 +37,41 @@ class DemoSize:
 SIZES = {"default": DemoSize(1200, 300, 300, 6), "small": DemoSize(600, 150, 150, 6)}
 
 
-def simulate_annotations(factory, project_dir: Path, data_root: Path, run_id: int, n_annotators: int, seed: int = 0) -> int:  # type: ignore[no-untyped-def]
-    """Label every region of the run by ``n_annotators`` simulated people reading the part masks."""
+def simulate_annotations(factory, project_dir: Path, data_root: Path, campaign_id: int, n_annotators: int, seed: int = 0) -> int:  # type: ignore[no-untyped-def]
+    """Label every region of the campaign by ``n_annotators`` simulated people reading the part masks."""
     scenes = load_scenes(data_root)["scenes"]
     crowd = demo_crowd(n_annotators, seed)
     rng = np.random.default_rng(seed)
     stored = 0
     with write_session(factory) as s:
-        ids = {a.name: store.annotator_id(s, a.name) for a in crowd}
+        campaign = campaigns.get_campaign(s, campaign_id)
+        ids = {a.name: ensure_person(s, a.name, "annotator") for a in crowd}
         rows = s.execute(
             select(RegionRow.id, RegionRow.rank, Prediction.image_id, ImageRow.path)
+            .join(CampaignRegion, CampaignRegion.region_id == RegionRow.id)
             .join(Prediction, RegionRow.prediction_id == Prediction.id).join(ImageRow, Prediction.image_id == ImageRow.id)
-            .where(Prediction.run_id == run_id).order_by(RegionRow.id)
+            .where(CampaignRegion.campaign_id == campaign_id).order_by(RegionRow.id)
         ).all()
         for region_id, rank, image_id, path in rows:
             rel = Path(path).relative_to(data_root.resolve()).as_posix()
             scene = scenes[rel]  # type: ignore[index]
             part_mask = np.asarray(Image.open(data_root / scene["mask"]))
-            labels = np.load(project_dir / f"runs/{run_id}/maps/{image_id}_regions.npy")
+            labels = np.load(project_dir / f"runs/{campaign.run_id}/maps/{image_id}_regions.npy")
             truth = visible_parts(labels == rank + 1, part_mask)
             for a in crowd:
                 entities = simulate_label(a, truth, scene["parts"], rng)
                 try:
-                    store.save_annotation(s, region_id=region_id, annotator=ids[a.name], entities=entities, client_id=f"sim-{uuid.uuid4().hex}", seconds_spent=None)
-                    stored += 1
-                except ConflictError:  # this simulated person labelled the region in an earlier demo run
+                    # The same client id on a re-run makes storing idempotent.
+                    stored += campaigns.save_label(s, campaign=campaign, region_id=region_id, person_id=ids[a.name], entities=entities, unsure=False,
+                                                   client_id=f"sim-{campaign_id}-{region_id}-{a.name}", seconds_spent=None)
+                except ConflictError:  # the region's places are taken (a re-run over an edited campaign)
                     pass
     return stored
+
+
+DEMO_INSTRUCTIONS = """Name what you see inside the highlighted region of a sorter-belt photo: the object's parts
+(cap, neck, label band, body, rim, pull tab, dent, gable top, spout, print) and anything else (tag, paper scrap, belt).
+Add attributes after a colon, e.g. "cap: red; label band: torn, white"."""
 
 
 def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: int = 0, annotators: int = 3, min_support: float = 0.02) -> dict[str, object]:
@@ -85,10 +93,14 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
     audit = [r for r in find_images(data_root / "manifest.csv") if r.split != "train"]
     register_images(factory, audit)
     model = load_model(trained.model_path, trained.sidecar_path)
-    report = run_saliency(factory, project, model)
+    report = run_saliency(factory, project, model, model_files=(trained.model_path, trained.sidecar_path))
     timings["saliency_s"] = time.perf_counter() - t
     t = time.perf_counter()
-    n_labels = simulate_annotations(factory, project, data_root, report.run_id, annotators, seed) if annotators else 0
+    with write_session(factory) as s:
+        found = s.scalar(select(Campaign.id).where(Campaign.name == "demo"))
+        # Simulated people give each region their labels; two more places are left for real ones.
+        campaign_id = found or campaigns.create_campaign(s, name="demo", run_id=report.run_id, labels_per_region=annotators + 2, instructions=DEMO_INSTRUCTIONS)
+    n_labels = simulate_annotations(factory, project, data_root, campaign_id, annotators, seed) if annotators else 0
     timings["annotate_s"] = time.perf_counter() - t
     t = time.perf_counter()
     cue_info = {"class": config.cue_class, "concept": CUE_CONCEPTS[cue]} if cue != "none" else None
@@ -97,11 +109,12 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
         "accuracy": {"test": trained.accuracy["test"], "counterfactual": trained.accuracy["counterfactual"], "train": trained.accuracy["train"]},
         "images_audited": report.processed + report.already_done,
         "regions": report.regions,
+        "campaign": campaign_id,
         "labels": n_labels,
     }
     if annotators:
         with factory() as s:
-            res = store.compute_results(s, report.run_id, min_support=min_support)
+            res = store.compute_results(s, campaigns.get_campaign(s, campaign_id), min_support=min_support)
         rules = res.rules.rules
         (out / "rules.csv").write_text(to_csv(rules), encoding="utf-8")
         if cue_info:

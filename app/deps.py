@@ -1,15 +1,22 @@
-"""Dependency aliases: one session per request, the settings, the current annotator."""
+"""Dependency aliases: one session per request, the settings, who is asking, and the forgery check."""
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+import hmac
+from collections.abc import Callable, Iterator
 from typing import Annotated
 
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
 from .db import write_session
+from .errors import ForbiddenError, UnauthorizedError
+from .people import Viewer, csrf_token, viewer_from_cookie
 from .settings import Settings
+
+COOKIE = "heedmap_session"
+CSRF_HEADER = "x-csrf-token"
+CSRF_FIELD = "csrf"
 
 
 def _session(request: Request) -> Iterator[Session]:
@@ -26,6 +33,52 @@ def _settings(request: Request) -> Settings:
     return request.app.state.settings  # type: ignore[no-any-return]
 
 
+def optional_viewer(request: Request) -> Viewer | None:
+    """The signed-in person, or None; a revoked or expired invite is an error that says so."""
+    with request.app.state.sessions() as s:
+        return viewer_from_cookie(s, request.app.state.key, request.cookies.get(COOKIE))
+
+
+def _viewer(viewer: Annotated[Viewer | None, Depends(optional_viewer)]) -> Viewer:
+    if viewer is None:
+        raise UnauthorizedError("sign in first: open the invite link the project's admin gave you.")
+    return viewer
+
+
+def require(role: str) -> Callable[[Viewer], Viewer]:
+    """A dependency that lets through people with ``role`` or a higher one."""
+
+    def check(viewer: Annotated[Viewer, Depends(_viewer)]) -> Viewer:
+        if not viewer.can(role):
+            raise ForbiddenError(f"this needs the {role} role; {viewer.name} is signed in as {viewer.role}.")
+        return viewer
+
+    return check
+
+
+def request_csrf(request: Request) -> str:
+    """The anti-forgery token of this browser's session ('' when not signed in); pages put it in their forms."""
+    cookie = request.cookies.get(COOKIE)
+    return csrf_token(request.app.state.key, cookie) if cookie else ""
+
+
+async def check_csrf(request: Request) -> None:
+    """Refuse a state-changing request that lacks this session's token (header or form field)."""
+    sent = request.headers.get(CSRF_HEADER)
+    if sent is None and request.headers.get("content-type", "").startswith(("application/x-www-form-urlencoded", "multipart/form-data")):
+        sent = str((await request.form()).get(CSRF_FIELD, ""))
+    expected = request_csrf(request)
+    if not expected or not sent or not hmac.compare_digest(sent, expected):
+        raise ForbiddenError("the anti-forgery check failed: this form is out of date or was sent from another site. Reload the page and try again.")
+
+
 SessionDep = Annotated[Session, Depends(_session)]
 WriteSessionDep = Annotated[Session, Depends(_write_session)]
 SettingsDep = Annotated[Settings, Depends(_settings)]
+ViewerDep = Annotated[Viewer, Depends(_viewer)]
+OptionalViewerDep = Annotated[Viewer | None, Depends(optional_viewer)]
+AnnotatorDep = Annotated[Viewer, Depends(require("annotator"))]
+ReviewerDep = Annotated[Viewer, Depends(require("reviewer"))]
+AnalystDep = Annotated[Viewer, Depends(require("analyst"))]
+AdminDep = Annotated[Viewer, Depends(require("admin"))]
+CsrfDep = Depends(check_csrf)

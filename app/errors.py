@@ -29,3 +29,13 @@ class InvalidRequestError(AppError):
 
 class SchemaVersionError(AppError):
     code = "schema_version"
+
+
+class UnauthorizedError(AppError):
+    status_code = 401
+    code = "sign_in_required"
+
+
+class ForbiddenError(AppError):
+    status_code = 403
+    code = "forbidden"

@@ -81,11 +81,13 @@ def run_saliency(
     batch_size: int = 32,
     progress: Callable[[int, int], None] | None = _progress,
     after_batch: Callable[[int], None] | None = None,
+    model_files: tuple[Path, Path] | None = None,
 ) -> JobReport:
     """Process every registered image that this run has not done yet; each batch commits once.
 
     The run is keyed by its provenance (model hash, method, layer, parameters): running the
-    same again continues it, so an interrupted job resumes without duplicates.
+    same again continues it, so an interrupted job resumes without duplicates. ``model_files``
+    (model, sidecar) are recorded so later steps can load the same model again.
     """
     provenance = {**saliency_provenance(model), "regions": params.to_json()}
     key = hashlib.sha256(json.dumps(provenance, sort_keys=True).encode()).hexdigest()[:16]
@@ -95,6 +97,8 @@ def run_saliency(
             run = SaliencyRun(config_key=key, provenance=provenance)
             s.add(run)
             s.flush()
+        if model_files is not None:
+            run.model_path, run.sidecar_path = (str(Path(p).resolve()) for p in model_files)
         run_id = run.id
     with factory() as s:
         done = set(s.scalars(select(Prediction.image_id).where(Prediction.run_id == run_id)))

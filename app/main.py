@@ -13,8 +13,9 @@ from fastapi.responses import JSONResponse, Response
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 
-from .db import make_engine, session_factory
+from .db import make_engine, session_factory, write_session
 from .errors import AppError
+from .people import project_key
 from .settings import Settings
 
 UI_DIR = Path(__file__).resolve().parent.parent / "annotator_ui"
@@ -28,6 +29,8 @@ def create_app(settings: Settings) -> FastAPI:
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         engine = make_engine(settings.project_dir)
         app.state.sessions = session_factory(engine)
+        with write_session(app.state.sessions) as s:
+            app.state.key = project_key(s)
         yield
         engine.dispose()
 
@@ -36,10 +39,10 @@ def create_app(settings: Settings) -> FastAPI:
     app.state.templates = Jinja2Templates(directory=str(UI_DIR / "templates"))
     app.mount("/static", StaticFiles(directory=str(UI_DIR / "static")), name="static")
 
-    from .routes import api, pages
+    from .routes import admin, auth, labelling, pages, regions, results
 
-    app.include_router(pages.router)
-    app.include_router(api.router)
+    for module in (pages, auth, labelling, regions, admin, results):
+        app.include_router(module.router)
 
     def _wants_json(request: Request) -> bool:
         return request.url.path.startswith("/api/") or "application/json" in request.headers.get("accept", "")
@@ -48,7 +51,10 @@ def create_app(settings: Settings) -> FastAPI:
     async def _app_error(request: Request, exc: AppError) -> Response:
         if _wants_json(request):
             return JSONResponse({"message": exc.message, "code": exc.code, "status": exc.status_code}, status_code=exc.status_code)
-        return app.state.templates.TemplateResponse(request, "error.html", {"message": exc.message, "status": exc.status_code}, status_code=exc.status_code)
+        from .routes.common import CAUTION
+
+        context = {"message": exc.message, "status": exc.status_code, "caution": CAUTION, "viewer": None}
+        return app.state.templates.TemplateResponse(request, "error.html", context, status_code=exc.status_code)
 
     @app.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError) -> Response:

@@ -4,14 +4,16 @@ from __future__ import annotations
 
 from datetime import datetime, timezone
 
-from sqlalchemy import JSON, Boolean, DateTime, Float, ForeignKey, Integer, String, Text, UniqueConstraint
+from sqlalchemy import JSON, Boolean, DateTime, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+ROLES = ("annotator", "reviewer", "analyst", "admin")
 
 
-def _now() -> datetime:
-    return datetime.now(timezone.utc)
+def utcnow() -> datetime:
+    """Now in UTC, without tzinfo: SQLite stores datetimes naive, and comparisons must match."""
+    return datetime.now(timezone.utc).replace(tzinfo=None)
 
 
 class Base(DeclarativeBase):
@@ -22,6 +24,14 @@ class SchemaInfo(Base):
     __tablename__ = "schema_info"
     id: Mapped[int] = mapped_column(primary_key=True)
     version: Mapped[int] = mapped_column(Integer)
+
+
+class Secret(Base):
+    """Project-wide random keys (the cookie-signing key); made once, never shown."""
+
+    __tablename__ = "secrets"
+    name: Mapped[str] = mapped_column(String, primary_key=True)
+    value: Mapped[str] = mapped_column(String)
 
 
 class ImageRow(Base):
@@ -40,7 +50,10 @@ class SaliencyRun(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     config_key: Mapped[str] = mapped_column(String, unique=True)
     provenance: Mapped[dict[str, object]] = mapped_column(JSON)
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=_now)
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+    # Where the model was when the run was made, so later steps (interventions) can reload it.
+    model_path: Mapped[str | None] = mapped_column(String, nullable=True)
+    sidecar_path: Mapped[str | None] = mapped_column(String, nullable=True)
 
 
 class Prediction(Base):
@@ -71,20 +84,111 @@ class RegionRow(Base):
     outline_path: Mapped[str] = mapped_column(String)
 
 
-class Annotator(Base):
-    __tablename__ = "annotators"
+class Person(Base):
+    """Someone on the project; ``role`` says what they may do (ROLES, least to most)."""
+
+    __tablename__ = "people"
     id: Mapped[int] = mapped_column(primary_key=True)
     name: Mapped[str] = mapped_column(String, unique=True)
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=_now)
+    role: Mapped[str] = mapped_column(String, default="annotator")
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
 
 
-class Annotation(Base):
-    __tablename__ = "annotations"
-    __table_args__ = (UniqueConstraint("region_id", "annotator_id"),)
+class Invite(Base):
+    """A link that signs its holder in as ``person``; only a hash of its token is kept."""
+
+    __tablename__ = "invites"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    token_hash: Mapped[str] = mapped_column(String, unique=True)
+    person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
+    campaign_id: Mapped[int | None] = mapped_column(ForeignKey("campaigns.id"), nullable=True)
+    note: Mapped[str] = mapped_column(String, default="")
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+    expires_at: Mapped[datetime] = mapped_column(DateTime())
+    revoked_at: Mapped[datetime | None] = mapped_column(DateTime(), nullable=True)
+    last_used_at: Mapped[datetime | None] = mapped_column(DateTime(), nullable=True)
+
+
+class Campaign(Base):
+    """Which regions of a run get labelled, by how many people each, with what instructions."""
+
+    __tablename__ = "campaigns"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String, unique=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("saliency_runs.id"))
+    classes: Mapped[list[str]] = mapped_column(JSON, default=list)  # predicted classes included; [] = all
+    labels_per_region: Mapped[int] = mapped_column(Integer, default=3)
+    instructions: Mapped[str] = mapped_column(Text, default="")
+    lease_seconds: Mapped[int] = mapped_column(Integer, default=600)
+    check_every: Mapped[int] = mapped_column(Integer, default=10)  # one check item in about this many tasks
+    method: Mapped[str] = mapped_column(String, default="majority")  # label aggregation for results
+    expectations: Mapped[str] = mapped_column(Text, default="")  # TOML text, see analysis.expectations
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+    closed_at: Mapped[datetime | None] = mapped_column(DateTime(), nullable=True)
+
+
+class CampaignRegion(Base):
+    """A region in a campaign; ``check_answer`` set makes it a check item with that known label."""
+
+    __tablename__ = "campaign_regions"
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id"), Index("ix_campaign_regions_load", "campaign_id", "n_labels"))
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
+    check_answer: Mapped[list[list[object]] | None] = mapped_column(JSON(none_as_null=True), nullable=True)
+    n_labels: Mapped[int] = mapped_column(Integer, default=0)  # kept with every label stored or undone
+
+
+class Lease(Base):
+    """A region handed to a person; it counts toward the region's quota until it expires."""
+
+    __tablename__ = "leases"
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"), index=True)
+    region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
+    person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+    expires_at: Mapped[datetime] = mapped_column(DateTime())
+
+
+class Label(Base):
+    """One person's judgment of one region in a campaign; ``client_id`` makes a retried submit harmless."""
+
+    __tablename__ = "labels"
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"),)
     id: Mapped[int] = mapped_column(primary_key=True)
     client_id: Mapped[str] = mapped_column(String, unique=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"), index=True)
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
-    annotator_id: Mapped[int] = mapped_column(ForeignKey("annotators.id"))
+    person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
     entities: Mapped[list[list[object]]] = mapped_column(JSON)  # [[entity, [attributes...]], ...]; [] = nothing recognisable
-    submitted_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=_now)
+    unsure: Mapped[bool] = mapped_column(Boolean, default=False)
+    submitted_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
     seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)
+
+
+class Skip(Base):
+    """A region a person passed over; it is not offered to them again."""
+
+    __tablename__ = "skips"
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
+    person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+
+
+class SynonymRule(Base):
+    """An analyst's merge, split or rejected suggestion; deleting the row undoes it."""
+
+    __tablename__ = "synonym_rules"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"), index=True)
+    kind: Mapped[str] = mapped_column(String)  # "merge" | "merge-attribute" | "split" | "reject"
+    source: Mapped[str] = mapped_column(String)
+    target: Mapped[str] = mapped_column(String, default="")
+    targets: Mapped[dict[str, str]] = mapped_column(JSON, default=dict)  # split: class -> concept
+    created_by: Mapped[str] = mapped_column(String, default="")
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)

@@ -18,6 +18,8 @@ class Settings:
     port: int = 8000
     labels_per_region: int = 3
     min_support: float = 0.02
+    session_days: int = 30
+    careless_seconds: float = 2.0  # median seconds per label below which an annotator is flagged
     debug: bool = False
 
     def __post_init__(self) -> None:
@@ -25,6 +27,10 @@ class Settings:
             raise SettingsError(f"port must be 1..65535; got {self.port}.")
         if not 1 <= self.labels_per_region <= 50:
             raise SettingsError(f"labels_per_region must be 1..50; got {self.labels_per_region}.")
+        if not 1 <= self.session_days <= 365:
+            raise SettingsError(f"session_days must be 1..365; got {self.session_days}.")
+        if not 0 <= self.careless_seconds <= 600:
+            raise SettingsError(f"careless_seconds must be 0..600; got {self.careless_seconds}.")
         if not 0 < self.min_support <= 1:
             raise SettingsError(f"min_support must be in (0, 1]; got {self.min_support}.")
 

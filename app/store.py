@@ -1,4 +1,4 @@
-"""Every query the app makes, as functions taking a Session; rows leave as plain data."""
+"""Queries about saliency runs, images and regions; rows leave as plain data."""
 
 from __future__ import annotations
 
@@ -6,101 +6,45 @@ from dataclasses import dataclass
 
 import pandas as pd
 from sqlalchemy import func, select
-from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from analysis.concept_votes import estimate_concepts, presence_votes
-from analysis.concepts import Judgment, concept_table
+from analysis.concepts import concept_table, judgment_concepts
 from analysis.reliability import Method
 from analysis.rules import RuleTable, mine_rules
 
-from .errors import ConflictError, NotFoundError
-from .models import Annotation, Annotator, ImageRow, Prediction, RegionRow, SaliencyRun
-
-
-@dataclass(frozen=True)
-class RegionTask:
-    region_id: int
-    image_id: int
-    predicted: str
-    confidence: float
-    labels_so_far: int
+from . import campaigns
+from .campaigns import CampaignInfo
+from .errors import NotFoundError
+from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 
 
 def latest_run_id(s: Session) -> int | None:
     return s.scalar(select(func.max(SaliencyRun.id)))
 
 
-def annotator_id(s: Session, name: str) -> int:
-    """Id of the annotator called ``name``, created on first use."""
-    found = s.scalar(select(Annotator.id).where(Annotator.name == name))
-    if found is not None:
-        return found
-    row = Annotator(name=name)
-    s.add(row)
-    s.flush()
-    return row.id
+@dataclass(frozen=True)
+class RegionFiles:
+    crop: str
+    outline: str
+    saliency_map: str  # the image's map (.npy), model-input pixels
+    box: tuple[int, int, int, int]  # x0, y0, x1, y1 in map pixels
+    image_path: str
 
 
-def next_region(s: Session, *, annotator: int, run_id: int, per_region: int) -> RegionTask | None:
-    """The least-labelled region of the run that this annotator has not labelled and that has fewer than ``per_region`` labels."""
-    counts = select(Annotation.region_id, func.count().label("n")).group_by(Annotation.region_id).subquery()
-    mine = select(Annotation.region_id).where(Annotation.annotator_id == annotator)
-    n = func.coalesce(counts.c.n, 0)
+def region_files(s: Session, region_id: int) -> RegionFiles:
     row = s.execute(
-        select(RegionRow.id, Prediction.image_id, Prediction.predicted, Prediction.confidence, n)
-        .join(Prediction, RegionRow.prediction_id == Prediction.id)
-        .outerjoin(counts, counts.c.region_id == RegionRow.id)
-        .where(Prediction.run_id == run_id, RegionRow.id.not_in(mine), n < per_region)
-        .order_by(n, RegionRow.id)
-        .limit(1)
+        select(RegionRow, Prediction.map_path, ImageRow.path).join(Prediction, Prediction.id == RegionRow.prediction_id)
+        .join(ImageRow, ImageRow.id == Prediction.image_id).where(RegionRow.id == region_id)
     ).first()
-    return None if row is None else RegionTask(row[0], row[1], row[2], float(row[3]), int(row[4]))
-
-
-def region_progress(s: Session, *, annotator: int, run_id: int) -> tuple[int, int]:
-    """(regions this annotator has labelled, regions in the run)."""
-    total = s.scalar(select(func.count(RegionRow.id)).join(Prediction).where(Prediction.run_id == run_id)) or 0
-    mine = s.scalar(select(func.count(Annotation.id)).where(Annotation.annotator_id == annotator)) or 0
-    return int(mine), int(total)
-
-
-def region_files(s: Session, region_id: int) -> tuple[str, str]:
-    row = s.get(RegionRow, region_id)
     if row is None:
         raise NotFoundError(f"region {region_id} does not exist.")
-    return row.crop_path, row.outline_path
-
-
-def save_annotation(s: Session, *, region_id: int, annotator: int, entities: list[tuple[str, list[str]]], client_id: str, seconds_spent: float | None) -> bool:
-    """Store one label; returns False when this client_id was stored before (a retry), storing nothing."""
-    if s.scalar(select(Annotation.id).where(Annotation.client_id == client_id)) is not None:
-        return False
-    if s.get(RegionRow, region_id) is None:
-        raise NotFoundError(f"region {region_id} does not exist.")
-    if s.scalar(select(Annotation.id).where(Annotation.region_id == region_id, Annotation.annotator_id == annotator)) is not None:
-        raise ConflictError(f"you have already labelled region {region_id}.")
-    s.add(Annotation(client_id=client_id, region_id=region_id, annotator_id=annotator, entities=[[e, a] for e, a in entities], seconds_spent=seconds_spent))
-    try:
-        s.flush()
-    except IntegrityError:
-        raise ConflictError(f"region {region_id} was labelled twice at once; reload the page.") from None
-    return True
-
-
-def judgments(s: Session, run_id: int) -> list[Judgment]:
-    rows = s.execute(
-        select(Annotation.region_id, Annotator.name, Annotation.entities)
-        .join(Annotator, Annotation.annotator_id == Annotator.id)
-        .join(RegionRow, Annotation.region_id == RegionRow.id)
-        .join(Prediction, RegionRow.prediction_id == Prediction.id)
-        .where(Prediction.run_id == run_id)
-    )
-    return [Judgment(r, a, tuple((str(e[0]), tuple(str(x) for x in e[1])) for e in ents)) for r, a, ents in rows]
+    r, map_path, image_path = row
+    return RegionFiles(r.crop_path, r.outline_path, map_path, (r.x0, r.y0, r.x1, r.y1), image_path)
 
 
 def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
-    """One row per predicted image: image_id, path, label, split, predicted, confidence, regions (list of ids)."""
+    """One row per predicted image: image_id, path, label, split, predicted, confidence, regions (ids) and their mass shares."""
     rows = s.execute(
         select(ImageRow.id, ImageRow.path, ImageRow.label, ImageRow.split, Prediction.predicted, Prediction.confidence, Prediction.id)
         .join(Prediction, Prediction.image_id == ImageRow.id)
@@ -108,11 +52,14 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
         .order_by(ImageRow.id)
     ).all()
     regions: dict[int, list[int]] = {}
-    for rid, pid in s.execute(select(RegionRow.id, RegionRow.prediction_id).join(Prediction).where(Prediction.run_id == run_id)):
+    shares: dict[int, list[float]] = {}
+    for rid, pid, share in s.execute(select(RegionRow.id, RegionRow.prediction_id, RegionRow.mass_share).join(Prediction).where(Prediction.run_id == run_id).order_by(RegionRow.id)):
         regions.setdefault(pid, []).append(rid)
+        shares.setdefault(pid, []).append(float(share))
     frame = pd.DataFrame(
-        [{"image_id": r[0], "path": r[1], "label": r[2], "split": r[3], "predicted": r[4], "confidence": r[5], "regions": regions.get(r[6], [])} for r in rows],
-        columns=["image_id", "path", "label", "split", "predicted", "confidence", "regions"],
+        [{"image_id": r[0], "path": r[1], "label": r[2], "split": r[3], "predicted": r[4], "confidence": r[5],
+          "regions": regions.get(r[6], []), "mass_shares": shares.get(r[6], [])} for r in rows],
+        columns=["image_id", "path", "label", "split", "predicted", "confidence", "regions", "mass_shares"],
     )
     return frame.set_index("image_id")
 
@@ -122,22 +69,31 @@ class Results:
     concepts: pd.DataFrame  # per image: true_class, predicted_class, confidence, split, then 'concept: <name>' booleans
     rules: RuleTable
     n_labelled_regions: int
+    method: str
 
 
-def compute_results(s: Session, run_id: int, *, min_support: float = 0.02, max_len: int = 2, method: Method = "majority") -> Results:
-    """Concepts per region (majority or Dawid-Skene), the image-by-concept table and per-predicted-class rules."""
-    preds = prediction_frame(s, run_id)
-    found = judgments(s, run_id)
+def compute_results(s: Session, campaign: CampaignInfo, *, min_support: float = 0.02, max_len: int = 2, method: Method | None = None) -> Results:
+    """Concepts per region (the campaign's aggregation method), the image-by-concept table and per-predicted-class rules."""
+    found = campaigns.judgments(s, campaign.id)
     if not found:
-        raise NotFoundError("no labels yet; label some regions first.")
-    region_class = {r: cls for cls, rs in zip(preds["predicted"], preds["regions"]) for r in rs}
-    region_concepts = estimate_concepts(presence_votes(found, region_class=region_class), method=method).region_concepts()
+        raise NotFoundError(f"campaign {campaign.name!r} has no labels yet; label some regions first.")
+    method = method or campaign.method  # type: ignore[assignment]
+    preds = prediction_frame(s, campaign.run_id)
+    rules, _ = campaigns.synonym_rules(s, campaign.id)
+    region_class = campaigns.region_classes(s, campaign.id)
+    known = {r: judgment_concepts(j, rules=rules, cls=region_class.get(r)) for r, j in campaigns.check_answers(s, campaign.id).items()}
+    votes = presence_votes(found, rules=rules, region_class=region_class, known=known)
+    region_concepts = estimate_concepts(votes, method=method).region_concepts()  # type: ignore[arg-type]
     labelled = set(region_concepts)
-    # Only images whose regions all have labels count; an image with no region has no concept.
+    in_campaign = set(region_class)
+    # Images of the campaign's classes whose regions all have labels count; one with no region has no concept.
+    if campaign.classes:
+        preds = preds[preds["predicted"].isin(campaign.classes)].copy()
+    preds["regions"] = preds["regions"].map(lambda rs: [r for r in rs if r in in_campaign])
     complete = preds[preds["regions"].map(lambda rs: all(r in labelled for r in rs))]
     if complete.empty:
-        raise NotFoundError("no image has all its regions labelled yet; label some regions first.")
+        raise NotFoundError("no image has all its regions labelled yet; label some more regions first.")
     table = concept_table({int(i): list(r) for i, r in complete["regions"].items()}, region_concepts)
-    rules = mine_rules(table, complete["predicted"], min_support=min_support, max_len=max_len)
+    mined = mine_rules(table, complete["predicted"], min_support=min_support, max_len=max_len)
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
-    return Results(concepts=meta.join(table.add_prefix("concept: ")), rules=rules, n_labelled_regions=len(labelled))
+    return Results(concepts=meta.join(table.add_prefix("concept: ")), rules=mined, n_labelled_regions=len(labelled), method=str(method))

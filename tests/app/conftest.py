@@ -1,16 +1,46 @@
 from __future__ import annotations
 
 from collections.abc import Iterator
+from datetime import datetime
 from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
 
+from app.campaigns import create_campaign
+from app.db import make_engine, session_factory, write_session
+from app.deps import COOKIE
 from app.main import create_app
+from app.people import create_invite, csrf_token
 from app.settings import Settings
+from app.store import latest_run_id
 
 
 @pytest.fixture()
-def client(project: Path) -> Iterator[TestClient]:
-    with TestClient(create_app(Settings(project_dir=project, labels_per_region=2))) as c:
+def campaign_id(project: Path) -> int:
+    """A campaign over every region of the project's run, two annotators per region."""
+    engine = make_engine(project)
+    with write_session(session_factory(engine)) as s:
+        cid = create_campaign(s, name="belt audit", run_id=latest_run_id(s) or 0, labels_per_region=2, instructions="Name the <b>parts</b>.")
+    engine.dispose()
+    return cid
+
+
+@pytest.fixture()
+def client(project: Path, campaign_id: int) -> Iterator[TestClient]:
+    with TestClient(create_app(Settings(project_dir=project))) as c:
         yield c
+
+
+def invite(client: TestClient, name: str, role: str = "annotator", campaign: int | None = None, now: datetime | None = None) -> str:
+    """A fresh invite token for ``name`` (made straight in the database, as the CLI does)."""
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        return create_invite(s, name=name, role=role, campaign_id=campaign, now=now)[1]
+
+
+def join(client: TestClient, name: str, role: str = "annotator", campaign: int | None = None) -> str:
+    """Sign the client in as ``name`` through an invite link; returns the session's anti-forgery token."""
+    client.cookies.clear()
+    r = client.get(f"/join/{invite(client, name, role, campaign)}", follow_redirects=False)
+    assert r.status_code == 303, r.text
+    return csrf_token(client.app.state.key, client.cookies[COOKIE])  # type: ignore[attr-defined]

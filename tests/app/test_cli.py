@@ -76,3 +76,32 @@ def test_aggregate_rejects_duplicates_and_unknown_answers(tmp_path: Path, capsys
     (tmp_path / "gold.csv").write_text("item,label\nr0,glass\n")
     assert main(["aggregate", str(tmp_path / "labels.csv"), "--known", str(tmp_path / "gold.csv")]) == 1
     assert "not a label anyone used" in capsys.readouterr().err
+
+
+def test_campaign_invite_and_checks_commands(project: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["campaign", str(project), "--name", "first pass", "--per-region", "2"]) == 0
+    assert "campaign 1 (first pass) over run 1" in capsys.readouterr().out
+    assert main(["campaign", str(project), "--name", "first pass"]) == 1
+    assert "exists already" in capsys.readouterr().err
+    assert main(["campaign", str(project), "--name", "x", "--classes", "glass"]) == 1
+    assert "the classes there are" in capsys.readouterr().err
+    assert main(["invite", str(project), "--name", "kim", "--campaign", "1", "--base-url", "http://sorter.local:9000"]) == 0
+    out = capsys.readouterr().out
+    assert "invite 1 for kim (annotator)" in out and "http://sorter.local:9000/join/" in out
+    assert main(["invite", str(project), "--revoke", "1"]) == 0
+    capsys.readouterr()
+    assert main(["invite", str(project), "--list"]) == 0
+    assert "1,kim,annotator,1,revoked" in capsys.readouterr().out
+    (tmp_path / "checks.csv").write_text("region,answer\n1,cap: red\n2,\n")
+    assert main(["checks", str(project), "--campaign", "1", str(tmp_path / "checks.csv")]) == 0
+    assert "2 check items" in capsys.readouterr().out
+    (tmp_path / "bad.csv").write_text("region,answer\n3,cap\n4,: red\n")
+    assert main(["checks", str(project), "--campaign", "1", str(tmp_path / "bad.csv")]) == 1
+    assert "line 3" in capsys.readouterr().err
+    from app.campaigns import check_answers
+    from app.db import make_engine, session_factory
+
+    engine = make_engine(project)
+    with session_factory(engine)() as s:
+        assert sorted(check_answers(s, 1)) == [1, 2]  # the bad file stored nothing
+    engine.dispose()

@@ -1,94 +1,213 @@
 from __future__ import annotations
 
 import re
-import threading
 import uuid
+from datetime import timedelta
+from typing import Any
 
 from fastapi.testclient import TestClient
+from sqlalchemy import func, select
+
+from app.db import write_session
+from app.deps import COOKIE
+from app.models import Invite, Label, utcnow
+from app.people import revoke_invite
+
+from .conftest import invite, join
 
 
-def _label(client: TestClient, region_id: int, who: str, entities: list[dict[str, object]], client_id: str | None = None) -> dict[str, object]:
-    r = client.post(f"/api/regions/{region_id}/labels", json={"annotator": who, "client_id": client_id or uuid.uuid4().hex, "entities": entities})
-    return {"status": r.status_code, **r.json()}
+def _label_count(client: TestClient) -> int:
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        return int(s.scalar(select(func.count(Label.id))) or 0)
 
 
-def test_annotate_page_flow_saves_and_moves_on(client: TestClient) -> None:
-    r = client.get("/annotate")
-    assert r.template.name == "name.html"  # type: ignore[attr-defined]
-    r = client.post("/annotator", data={"name": "ana"})
-    assert r.template.name == "annotate.html"  # type: ignore[attr-defined]
-    first = r.context["region"].region_id  # type: ignore[attr-defined]
-    assert r.context["done"] == 0  # type: ignore[attr-defined]
-    client_id = r.context["client_id"]  # type: ignore[attr-defined]
-    r = client.post("/annotate", data={"region_id": first, "client_id": client_id, "labels": "cap: red; tag"})
-    assert r.status_code == 200 and r.context["done"] == 1  # type: ignore[attr-defined]
-    assert r.context["region"].region_id != first  # type: ignore[attr-defined]
-    # A retry of the same submit stores nothing twice.
-    client.post("/annotate", data={"region_id": first, "client_id": client_id, "labels": "cap: red; tag"})
-    assert client.get("/annotate").context["done"] == 1  # type: ignore[attr-defined]
+def _post_label(client: TestClient, cid: int, csrf: str, text: str, **extra: str) -> Any:
+    page = client.get(f"/campaigns/{cid}/label")
+    data = {"csrf": csrf, "region_id": page.context["task"].region_id, "client_id": page.context["client_id"], "labels": text, **extra}  # type: ignore[attr-defined]
+    return page, client.post(f"/campaigns/{cid}/label", data=data)
 
 
-def test_bad_label_reshows_form_with_text_and_message(client: TestClient) -> None:
-    r = client.post("/annotator", data={"name": "bo"})
-    region = r.context["region"].region_id  # type: ignore[attr-defined]
-    r = client.post("/annotate", data={"region_id": region, "client_id": uuid.uuid4().hex, "labels": ": red"})
-    assert r.status_code == 422
-    assert "no entity" in r.text and 'value=": red"' in r.text
-    assert r.context["done"] == 0  # type: ignore[attr-defined]
+def test_invite_link_signs_in_and_label_page_saves_and_moves_on(client: TestClient, campaign_id: int) -> None:
+    token = invite(client, "ana", campaign=campaign_id)
+    r = client.get(f"/join/{token}", follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"] == f"/campaigns/{campaign_id}/label"
+    csrf = join(client, "ana", campaign=campaign_id)
+    page = client.get(f"/campaigns/{campaign_id}/label")
+    assert page.template.name == "annotate.html" and page.context["done"] == 0  # type: ignore[attr-defined]
+    assert "Name the &lt;b&gt;parts&lt;/b&gt;." in page.text  # instructions are text, escaped
+    first, client_id = page.context["task"].region_id, page.context["client_id"]  # type: ignore[attr-defined]
+    upcoming = page.context["upcoming"].region_id  # type: ignore[attr-defined]
+    assert f'rel="prefetch" href="/api/regions/{upcoming}/crop.png"' in page.text  # the next crop is preloaded
+    data = {"csrf": csrf, "region_id": first, "client_id": client_id, "labels": "cap: red; tag", "seconds_spent": "3.5"}
+    nxt = client.post(f"/campaigns/{campaign_id}/label", data=data)
+    assert nxt.context["done"] == 1 and nxt.context["task"].region_id == upcoming  # type: ignore[attr-defined]
+    # A retry of the same submit (a dropped connection) stores nothing twice.
+    client.post(f"/campaigns/{campaign_id}/label", data=data)
+    assert _label_count(client) == 1
 
 
-def test_label_text_is_escaped(client: TestClient) -> None:
-    client.post("/annotator", data={"name": "cy"})
-    r = client.post("/annotate", data={"region_id": 1, "client_id": uuid.uuid4().hex, "labels": "<img src=x onerror=alert(1)>: <b>"})
-    assert r.status_code == 303 or r.status_code == 200
-    client.post("/annotator", data={"name": "dd"})
-    r = client.post("/annotate", data={"region_id": 1, "client_id": uuid.uuid4().hex, "labels": "<script>x</script>;;:"})
-    assert "<script>x</script>" not in r.text
+def test_bad_label_reshows_the_same_region_with_text_and_message(client: TestClient, campaign_id: int) -> None:
+    csrf = join(client, "bo")
+    page, r = _post_label(client, campaign_id, csrf, ": red")
+    assert r.status_code == 422 and "no entity" in r.text and 'value=": red"' in r.text
+    assert r.context["task"].region_id == page.context["task"].region_id and r.context["done"] == 0  # type: ignore[attr-defined]
+    _, r = _post_label(client, campaign_id, csrf, "x" * 61)
+    assert r.status_code == 422 and "longer than 60" in r.text
+    _, r = _post_label(client, campaign_id, csrf, "cap", nothing="1")
+    assert r.status_code == 422 and "cannot also be nothing recognisable" in r.text
+    assert _label_count(client) == 0
 
 
-def test_api_next_label_and_errors(client: TestClient) -> None:
-    nxt = client.get("/api/regions/next", params={"annotator": "eve"}).json()
-    rid = nxt["region_id"]
-    assert client.get(nxt["crop_url"]).headers["content-type"] == "image/png"
-    assert client.get(nxt["outline_url"]).status_code == 200
-    cid = uuid.uuid4().hex
-    assert _label(client, rid, "eve", [{"entity": "Cap", "attributes": ["red"]}], cid) == {"status": 201, "stored": True, "region_id": rid}
-    assert _label(client, rid, "eve", [{"entity": "Cap", "attributes": ["red"]}], cid)["stored"] is False
-    dup = _label(client, rid, "eve", [{"entity": "cap"}])
-    assert dup["status"] == 409 and dup["code"] == "conflict"
-    missing = client.get("/api/regions/99999/crop.png")
-    assert missing.status_code == 404 and set(missing.json()) == {"message", "code", "status"}
-    bad = client.post(f"/api/regions/{rid}/labels", json={"annotator": "eve"})
-    assert bad.status_code == 422 and bad.json()["code"] == "invalid_request"
-    empty = _label(client, rid, "fay", [])
-    assert empty["status"] == 422 and "nothing recognisable" in str(empty["message"])
+def test_labels_stay_text_everywhere(client: TestClient, campaign_id: int) -> None:
+    payload = "<img src=x onerror=alert(1)>"
+    csrf = join(client, "cy")
+    _post_label(client, campaign_id, csrf, f"{payload}: <b>bold</b>")
+    back = client.post(f"/campaigns/{campaign_id}/undo", data={"csrf": csrf})  # the page shows the text again to edit
+    assert payload not in back.text and "&lt;img src=x onerror=alert(1)&gt;" in back.text
+    _post_label(client, campaign_id, csrf, payload)
+    join(client, "ed", role="analyst")
+    for url in (f"/campaigns/{campaign_id}/synonyms", f"/campaigns/{campaign_id}/agreement"):
+        r = client.get(url)
+        assert r.status_code == 200 and "<img src=x" not in r.text, url
 
 
-def test_concurrent_labels_never_lock_or_duplicate(client: TestClient) -> None:
-    rid = client.get("/api/regions/next", params={"annotator": "x0"}).json()["region_id"]
-    results: list[int] = []
+def test_forged_requests_are_refused_and_store_nothing(client: TestClient, campaign_id: int) -> None:
+    csrf = join(client, "dd")
+    page = client.get(f"/campaigns/{campaign_id}/label")
+    data = {"region_id": page.context["task"].region_id, "client_id": uuid.uuid4().hex, "labels": "cap"}  # type: ignore[attr-defined]
+    for bad in ({}, {"csrf": "0" * 40}):
+        r = client.post(f"/campaigns/{campaign_id}/label", data={**data, **bad})
+        assert r.status_code == 403 and "anti-forgery" in r.text
+    body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap"}]}
+    rid = page.context["task"].region_id  # type: ignore[attr-defined]
+    assert client.post(f"/api/campaigns/{campaign_id}/regions/{rid}/labels", json=body).status_code == 403
+    # Another session's token is no good here either.
+    other = csrf
+    join(client, "ee")
+    assert client.post(f"/api/campaigns/{campaign_id}/regions/{rid}/labels", json=body, headers={"X-CSRF-Token": other}).status_code == 403
+    assert _label_count(client) == 0
 
-    def go(i: int) -> None:
-        r = client.post(f"/api/regions/{rid}/labels", json={"annotator": f"w{i}", "client_id": f"client-{i:04d}", "entities": [{"entity": "tag"}]})
-        results.append(r.status_code)
 
-    threads = [threading.Thread(target=go, args=(i,)) for i in range(8)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    assert results == [201] * 8
+def test_expired_and_revoked_invites_are_refused(client: TestClient, campaign_id: int) -> None:
+    stale = invite(client, "fay", now=utcnow() - timedelta(days=15))  # made 15 days ago for 14 days
+    r = client.get(f"/join/{stale}")
+    assert r.status_code == 403 and "expired" in r.text
+    assert client.get("/join/not-a-real-token").status_code == 403
+    join(client, "gus")
+    assert client.get(f"/campaigns/{campaign_id}/label").status_code == 200
+    invite_id = int(client.cookies[COOKIE].split(".")[0])
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        s.get(Invite, invite_id).expires_at = utcnow() - timedelta(seconds=1)  # type: ignore[union-attr]
+    r = client.get(f"/campaigns/{campaign_id}/label")
+    assert r.status_code == 403 and "expired" in r.text
+    join(client, "gus")
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        revoke_invite(s, int(client.cookies[COOKIE].split(".")[0]))
+    r = client.get(f"/campaigns/{campaign_id}/label")
+    assert r.status_code == 403 and "revoked" in r.text
 
 
-def test_results_and_exports_after_labels(client: TestClient) -> None:
-    assert client.get("/exports/rules.csv").status_code == 404
+def test_roles_gate_the_pages(client: TestClient, campaign_id: int) -> None:
+    assert client.get(f"/campaigns/{campaign_id}/label").status_code == 401
+    assert client.get("/api/campaigns/1/tasks/next").json()["code"] == "sign_in_required"
+    join(client, "hal", campaign=campaign_id)
+    for url in ("/admin", f"/campaigns/{campaign_id}/results", f"/campaigns/{campaign_id}/agreement", f"/admin/campaigns/{campaign_id}/labels.csv"):
+        assert client.get(url).status_code == 403, url
+    join(client, "ivy", role="reviewer")
+    assert client.get("/admin").status_code == 403
+    csrf = join(client, "ivy", role="reviewer")
+    r = client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "lid", "target": "cap"})
+    assert r.status_code == 403 and "analyst" in r.text
+
+
+def test_json_api_next_label_retry_skip_undo(client: TestClient, campaign_id: int) -> None:
+    csrf = join(client, "eve")
+    h = {"X-CSRF-Token": csrf}
+    nxt = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()
+    rid = nxt["task"]["region_id"]
+    for key in ("crop_url", "outline_url", "overlay_url"):
+        r = client.get(nxt["task"][key])
+        assert r.status_code == 200 and r.headers["content-type"] == "image/png" and r.content[:4] == b"\x89PNG"
+    body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": "Cap", "attributes": ["red"]}], "seconds_spent": 2.0}
+    url = f"/api/campaigns/{campaign_id}/regions/{rid}/labels"
+    assert client.post(url, json=body, headers=h).json() == {"stored": True, "region_id": rid}
+    assert client.post(url, json=body, headers=h).json() == {"stored": False, "region_id": rid}
+    dup = client.post(url, json={**body, "client_id": uuid.uuid4().hex}, headers=h)
+    assert dup.status_code == 409 and dup.json()["code"] == "conflict" and "undo" in dup.json()["message"]
+    skipped = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"]
+    assert client.post(f"/api/campaigns/{campaign_id}/regions/{skipped}/skip", headers=h).status_code == 204
+    assert client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"] not in (rid, skipped)
+    undone = client.post(f"/api/campaigns/{campaign_id}/undo", headers=h).json()
+    assert undone == {"region_id": rid, "text": "Cap: red"}
+    assert client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"] == rid
+    vocab = client.get(f"/api/campaigns/{campaign_id}/vocabulary").json()
+    assert "red" in vocab["attributes"] and "torn" in vocab["attributes"]
+
+
+def test_errors_share_one_json_shape(client: TestClient, campaign_id: int) -> None:
+    csrf = join(client, "joe")
+    h = {"X-CSRF-Token": csrf}
+    responses = [
+        client.get("/api/regions/99999/crop.png"),
+        client.get("/api/campaigns/999/tasks/next"),
+        client.post(f"/api/campaigns/{campaign_id}/regions/1/labels", json={"entities": []}, headers=h),
+        client.post(f"/api/campaigns/{campaign_id}/regions/1/labels", json={"client_id": uuid.uuid4().hex, "entities": []}, headers=h),
+        client.post(f"/api/campaigns/{campaign_id}/regions/99999/labels", json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap"}]}, headers=h),
+    ]
+    assert [r.status_code for r in responses] == [404, 404, 422, 422, 404]
+    for r in responses:
+        assert set(r.json()) == {"message", "code", "status"} and r.json()["status"] == r.status_code
+    assert "nothing recognisable" in responses[3].json()["message"]
+
+
+def test_admin_makes_campaigns_invites_and_check_items(client: TestClient, campaign_id: int) -> None:
+    csrf = join(client, "root", role="admin")
+    r = client.post("/admin/campaigns", data={"csrf": csrf, "name": "bottles only", "run_id": "1", "classes": ["bottle"], "labels_per_region": "3"})
+    assert r.status_code == 200 and r.template.name == "campaign_admin.html", r.text[:3000]  # type: ignore[attr-defined]
+    bad = client.post("/admin/campaigns", data={"csrf": csrf, "name": "bottles only", "run_id": "1"})
+    assert bad.status_code == 409 and "exists already" in bad.text and 'value="bottles only"' in bad.text
+    made = client.post("/admin/invites", data={"csrf": csrf, "name": "kim", "role": "annotator", "campaign_id": str(campaign_id), "days": "7"})
+    link = re.search(r"http://testserver/join/[\w-]+", made.text)
+    assert link is not None
+    client.post(f"/admin/campaigns/{campaign_id}/checks", data={"csrf": csrf, "region_id": "2", "answer": "cap: red"})
+    page = client.get(f"/admin/campaigns/{campaign_id}")
+    assert page.context["answers"] == {2: "cap: red"}  # type: ignore[attr-defined]
+    bad = client.post(f"/admin/campaigns/{campaign_id}/checks", data={"csrf": csrf, "region_id": "3", "answer": ""})
+    assert bad.status_code == 422 and "known answer" in bad.text
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        kim = s.scalar(select(Invite.id).order_by(Invite.id.desc()).limit(1))
+    client.post(f"/admin/invites/{kim}/revoke", data={"csrf": csrf})
+    client.cookies.clear()
+    assert client.get(link.group(0).replace("http://testserver", "")).status_code == 403
+
+
+def test_results_agreement_synonyms_and_exports(client: TestClient, campaign_id: int) -> None:
     for who in ("p", "q"):
-        while (nxt := client.get("/api/regions/next", params={"annotator": who}).json()) is not None:
-            _label(client, nxt["region_id"], who, [{"entity": "tag" if nxt["predicted"] == "can" else "=SUM(A1)"}])
-    r = client.get("/results")
+        csrf = join(client, who)
+        h = {"X-CSRF-Token": csrf}
+        while (nxt := client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]) is not None:
+            # p says "lid" where q says "cap"; both name the tag on cans; a formula-looking label for the rest.
+            entity = ("tag" if nxt["predicted"] == "can" else "=SUM(A1)") if who == "q" or nxt["region_id"] % 2 else ("lid" if who == "p" else "cap")
+            body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": entity}]}
+            assert client.post(f"/api/campaigns/{campaign_id}/regions/{nxt['region_id']}/labels", json=body, headers=h).status_code == 201
+    csrf = join(client, "ana", role="analyst")
+    r = client.get(f"/campaigns/{campaign_id}/results")
     assert r.template.name == "results.html" and "evidence for a human review" in r.text  # type: ignore[attr-defined]
-    csv_text = client.get("/exports/rules.csv").text
-    assert csv_text.startswith("class,concepts,support,confidence,lift,n_images")
-    assert not re.search(r"(^|,)=SUM", csv_text, re.M)
-    concepts = client.get("/exports/concepts.csv").text
-    assert "true_class" in concepts.splitlines()[0]
+    rules = client.get(f"/campaigns/{campaign_id}/exports/rules.csv").text
+    assert rules.startswith("class,concepts,support,confidence,lift,n_images") and not re.search(r"(^|,)=SUM", rules, re.M)
+    concepts = client.get(f"/campaigns/{campaign_id}/exports/concepts.csv").text.splitlines()
+    assert concepts[0].startswith("image_id,aggregation,true_class") and concepts[1].split(",")[1] == "majority"
+    main = client.get(f"/campaigns/{campaign_id}/exports/main-labels.csv").text
+    assert main.startswith("item,annotator,label")
+    agreement = client.get(f"/campaigns/{campaign_id}/agreement")
+    assert agreement.context["report"].alpha is not None and "Krippendorff" in agreement.text  # type: ignore[attr-defined]
+    r = client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "Lids", "target": "cap"})
+    page = client.get(f"/campaigns/{campaign_id}/synonyms")
+    assert [(x.source, x.target) for x in page.context["rules"]] == [("lid", "cap")]  # type: ignore[attr-defined]
+    assert "lid" not in dict(page.context["counts"])  # type: ignore[attr-defined]
+    loop = client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "cap", "target": "lid"})
+    assert loop.status_code == 200 and "form a loop" in loop.text  # shown on the editor; the rule is not kept
+    assert len(loop.context["rules"]) == 1  # type: ignore[attr-defined]
+    rule_id = page.context["rules"][0].id  # type: ignore[attr-defined]
+    client.post(f"/campaigns/{campaign_id}/synonyms/{rule_id}/delete", data={"csrf": csrf})
+    assert "lid" in dict(client.get(f"/campaigns/{campaign_id}/synonyms").context["counts"])  # type: ignore[attr-defined]

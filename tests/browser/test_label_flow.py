@@ -14,6 +14,10 @@ from pathlib import Path
 import pytest
 from sqlalchemy import create_engine, text
 
+from app.campaigns import create_campaign
+from app.db import make_engine, session_factory, write_session
+from app.people import create_invite
+
 CHROMIUM = "/usr/bin/chromium"
 pytestmark = [
     pytest.mark.browser,
@@ -28,7 +32,13 @@ def _free_port() -> int:
 
 
 @pytest.fixture()
-def server(project: Path) -> Iterator[str]:
+def served(project: Path) -> Iterator[tuple[str, str]]:
+    """The app served by uvicorn in a subprocess over a project with a campaign; yields (url, invite token)."""
+    engine = make_engine(project)
+    with write_session(session_factory(engine)) as s:
+        cid = create_campaign(s, name="browser", run_id=1, labels_per_region=2)
+        _, token = create_invite(s, name="kim", role="annotator", campaign_id=cid)
+    engine.dispose()
     port = _free_port()
     proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, env={**os.environ, "PYTHONUNBUFFERED": "1"})
     url = f"http://127.0.0.1:{port}"
@@ -45,37 +55,58 @@ def server(project: Path) -> Iterator[str]:
                     proc.stdout.close()
                 raise RuntimeError("server did not start:\n" + output) from None
             time.sleep(0.2)
-    yield url
+    yield url, token
     proc.terminate()
     proc.wait(timeout=10)
     if proc.stdout:
         proc.stdout.close()
 
 
-def test_keyboard_labelling_end_to_end(server: str, project: Path) -> None:
+def test_invite_link_then_keyboard_labelling_suggestions_and_undo(served: tuple[str, str], project: Path) -> None:
     from playwright.sync_api import sync_playwright
 
+    url, token = served
+    dialogs: list[str] = []
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--disable-sync", "--no-first-run"])
         page = browser.new_page()
-        page.goto(server + "/annotate")
-        page.fill("[data-name]", "kim")
-        page.keyboard.press("Enter")
-        page.wait_for_selector("[data-label-form][data-ready]")
+        page.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
+        page.goto(f"{url}/join/{token}")
+        page.wait_for_selector("body[data-ready]")
         assert page.locator("[data-crop]").evaluate("img => img.naturalWidth") > 0
+
+        def saved(n: int) -> None:
+            page.wait_for_selector(f"[data-progress]:has-text('{n} of')")
+            page.wait_for_selector("body[data-ready]")
+
         page.keyboard.type("cap: red; label band: torn, white")
         page.keyboard.press("Enter")
-        page.wait_for_selector("[data-progress]:has-text('1 of')")
-        page.wait_for_selector("[data-label-form][data-ready]")
+        saved(1)
         page.keyboard.type("<img src=x onerror=alert(1)>")
         page.keyboard.press("Enter")
-        page.wait_for_selector("[data-progress]:has-text('2 of')")
-        page.wait_for_selector("[data-label-form][data-ready]")
+        saved(2)
         page.keyboard.press("Alt+n")
-        page.wait_for_selector("[data-progress]:has-text('3 of')")
+        saved(3)
+        # Suggestions come from the campaign's own words: Tab takes the first.
+        page.wait_for_selector("[data-label-form][data-vocabulary]")
+        page.keyboard.type("lab")
+        page.wait_for_selector("[data-suggestion='label band']")
+        page.keyboard.press("Tab")
+        page.keyboard.type(": wh")
+        page.wait_for_selector("[data-suggestion='white']")
+        page.keyboard.press("Tab")
+        assert page.input_value("[data-labels]") == "label band: white"
+        page.keyboard.press("Enter")
+        saved(4)
+        page.keyboard.press("Alt+z")
+        saved(3)
+        assert page.input_value("[data-labels]") == "label band: white"  # the undone label comes back to edit
+        page.keyboard.press("Alt+o")
+        assert page.get_attribute("[data-outline]", "data-showing") == "overlay"
         browser.close()
+    assert dialogs == []  # the label text never ran as script
     engine = create_engine(f"sqlite:///{project / 'heedmap.db'}")
     with engine.connect() as c:
-        rows = c.execute(text("select a.entities from annotations a join annotators p on p.id = a.annotator_id where p.name = 'kim' order by a.id")).all()
+        rows = c.execute(text("select l.entities from labels l join people p on p.id = l.person_id where p.name = 'kim' order by l.id")).all()
     engine.dispose()
     assert [r[0] for r in rows] == ['[["cap", ["red"]], ["label band", ["torn", "white"]]]', '[["<img src=x onerror=alert(1)>", []]]', "[]"]

@@ -1,0 +1,138 @@
+"""The admin's pages: campaigns, invite links, check items, progress and the raw labels."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, Form, Request
+from fastapi.responses import PlainTextResponse, RedirectResponse, Response
+from sqlalchemy import select
+
+from analysis.concepts import format_label_text, parse_label_text
+from analysis.errors import InvalidInputError
+from analysis.reliability import METHODS
+from analysis.rules import to_csv
+
+from .. import campaigns, people
+from ..deps import AdminDep, CsrfDep, SessionDep, SettingsDep, WriteSessionDep
+from ..errors import AppError, InvalidRequestError
+from ..models import ROLES, CampaignRegion, Prediction, RegionRow, SaliencyRun, utcnow
+from .common import render
+
+router = APIRouter()
+
+
+def _admin_page(request: Request, s: SessionDep, viewer: AdminDep, *, new_link: str = "", error: str = "", form: dict[str, str] | None = None,
+                status_code: int = 200) -> Response:
+    runs = list(s.scalars(select(SaliencyRun.id).order_by(SaliencyRun.id.desc())))
+    context = {
+        "campaigns": campaigns.list_campaigns(s), "invites": people.list_invites(s), "now": utcnow(), "roles": ROLES,
+        "runs": runs, "classes": {r: campaigns.run_classes(s, r) for r in runs}, "methods": METHODS, "new_link": new_link,
+        "error": error, "form": form or {},
+    }
+    return render(request, "admin.html", context, viewer=viewer, status_code=status_code)
+
+
+@router.get("/admin")
+def admin(request: Request, s: SessionDep, viewer: AdminDep) -> Response:
+    """Campaigns and invite links."""
+    return _admin_page(request, s, viewer)
+
+
+@router.post("/admin/campaigns", dependencies=[CsrfDep])
+def create_campaign(
+    request: Request, s: WriteSessionDep, viewer: AdminDep,
+    name: Annotated[str, Form()], run_id: Annotated[int, Form()], labels_per_region: Annotated[int, Form()] = 3,
+    classes: Annotated[list[str] | None, Form()] = None, instructions: Annotated[str, Form()] = "",
+    lease_minutes: Annotated[float, Form()] = 10, check_every: Annotated[int, Form()] = 10, method: Annotated[str, Form()] = "majority",
+) -> Response:
+    """Create a campaign over a run's regions."""
+    try:
+        cid = campaigns.create_campaign(s, name=name, run_id=run_id, classes=classes or [], labels_per_region=labels_per_region,
+                                        instructions=instructions, lease_seconds=int(lease_minutes * 60), check_every=check_every, method=method)
+    except AppError as exc:
+        s.rollback()
+        form = {"name": name, "instructions": instructions, "labels_per_region": str(labels_per_region)}
+        return _admin_page(request, s, viewer, error=exc.message, form=form, status_code=exc.status_code)
+    return RedirectResponse(f"/admin/campaigns/{cid}", status_code=303)
+
+
+@router.post("/admin/invites", dependencies=[CsrfDep])
+def create_invite(
+    request: Request, s: WriteSessionDep, viewer: AdminDep, settings: SettingsDep,
+    name: Annotated[str, Form()], role: Annotated[str, Form()], campaign_id: Annotated[str, Form()] = "",
+    days: Annotated[float, Form()] = 14, note: Annotated[str, Form()] = "",
+) -> Response:
+    """Make an invite link; it is shown once, on the page that answers this form."""
+    try:
+        cid = int(campaign_id) if campaign_id.strip() else None
+        if cid is not None:
+            campaigns.get_campaign(s, cid)
+        _, token = people.create_invite(s, name=name, role=role, campaign_id=cid, days=days, note=note)
+    except (AppError, ValueError) as exc:
+        s.rollback()
+        message = exc.message if isinstance(exc, AppError) else f"campaign must be a number; got {campaign_id!r}."
+        return _admin_page(request, s, viewer, error=message, form={"invite_name": name, "note": note}, status_code=422)
+    link = f"{str(request.base_url).rstrip('/')}/join/{token}"
+    return _admin_page(request, s, viewer, new_link=link)
+
+
+@router.post("/admin/invites/{invite_id}/revoke", dependencies=[CsrfDep])
+def revoke_invite(invite_id: int, s: WriteSessionDep, viewer: AdminDep) -> Response:
+    """Revoke an invite link; browsers signed in through it are signed out."""
+    people.revoke_invite(s, invite_id)
+    return RedirectResponse("/admin", status_code=303)
+
+
+@router.get("/admin/campaigns/{campaign_id}")
+def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: AdminDep, settings: SettingsDep) -> Response:
+    """Progress per annotator and class, check-item scores, settings and check items."""
+    c = campaigns.get_campaign(s, campaign_id)
+    annotators, classes = campaigns.campaign_progress(s, c)
+    answers = {r: format_label_text([(e, list(a)) for e, a in j.entities]) for r, j in campaigns.check_answers(s, campaign_id).items()}
+    # A sample of regions to pick check items from: a spread over the campaign, not only its start.
+    ids = list(s.scalars(select(CampaignRegion.region_id).where(CampaignRegion.campaign_id == campaign_id, CampaignRegion.check_answer.is_(None)).order_by(CampaignRegion.region_id)))
+    step = max(1, len(ids) // 24)
+    sample = ids[::step][:24]
+    preds = dict(s.execute(select(RegionRow.id, Prediction.predicted).join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(sample + list(answers)))).all())
+    context = {"campaign": c, "annotators": annotators, "classes": classes, "answers": answers, "sample": sample, "predicted": preds,
+               "methods": METHODS, "careless_seconds": settings.careless_seconds}
+    return render(request, "campaign_admin.html", context, viewer=viewer)
+
+
+@router.post("/admin/campaigns/{campaign_id}/settings", dependencies=[CsrfDep])
+def campaign_settings(
+    campaign_id: int, s: WriteSessionDep, viewer: AdminDep,
+    instructions: Annotated[str, Form()] = "", labels_per_region: Annotated[int, Form()] = 3, method: Annotated[str, Form()] = "majority",
+    closed: Annotated[str, Form()] = "",
+) -> Response:
+    """Change the instructions, labels per region, aggregation method, or close the campaign."""
+    campaigns.update_campaign(s, campaign_id, instructions=instructions, labels_per_region=labels_per_region, method=method, closed=bool(closed))
+    return RedirectResponse(f"/admin/campaigns/{campaign_id}", status_code=303)
+
+
+@router.post("/admin/campaigns/{campaign_id}/checks", dependencies=[CsrfDep])
+def set_check(
+    campaign_id: int, s: WriteSessionDep, viewer: AdminDep, region_id: Annotated[int, Form()], answer: Annotated[str, Form()] = "",
+    nothing: Annotated[str, Form()] = "", clear: Annotated[str, Form()] = "",
+) -> Response:
+    """Make a region a check item with a known answer, or a normal region again."""
+    if clear:
+        campaigns.set_check_answer(s, campaign_id=campaign_id, region_id=region_id, entities=None)
+    else:
+        try:
+            entities = parse_label_text(answer)
+        except InvalidInputError as exc:
+            raise InvalidRequestError(str(exc)) from None
+        if not entities and not nothing:
+            raise InvalidRequestError("give the known answer (e.g. 'cap: red'), or tick nothing recognisable.")
+        campaigns.set_check_answer(s, campaign_id=campaign_id, region_id=region_id, entities=entities)
+    return RedirectResponse(f"/admin/campaigns/{campaign_id}", status_code=303)
+
+
+@router.get("/admin/campaigns/{campaign_id}/labels.csv", response_class=PlainTextResponse)
+def raw_labels(campaign_id: int, s: SessionDep, viewer: AdminDep) -> PlainTextResponse:
+    """Every raw label of the campaign, one row per named entity."""
+    c = campaigns.get_campaign(s, campaign_id)
+    frame = campaigns.raw_labels(s, c.id)
+    return PlainTextResponse(to_csv(frame), media_type="text/csv", headers={"Content-Disposition": f"attachment; filename=labels-campaign-{c.id}.csv"})

@@ -1,0 +1,206 @@
+"""The labelling page and its JSON twin: the next region, submit, skip, undo, vocabulary."""
+
+from __future__ import annotations
+
+import uuid
+from typing import Annotated
+from urllib.parse import urlencode
+
+from fastapi import APIRouter, Form, Request
+from fastapi.responses import JSONResponse, RedirectResponse, Response
+from pydantic import BaseModel, Field
+from sqlalchemy.orm import Session
+
+from analysis.concepts import parse_label_text
+from analysis.errors import InvalidInputError
+
+from .. import campaigns
+from ..campaigns import CampaignInfo, Task
+from ..deps import AnnotatorDep, CsrfDep, SessionDep, WriteSessionDep
+from ..errors import ConflictError, ForbiddenError, InvalidRequestError
+from ..people import Viewer
+from .common import render
+
+router = APIRouter()
+
+# Attribute words offered before a campaign has its own; grouped by what they describe.
+ATTRIBUTE_KINDS: dict[str, list[str]] = {
+    "colour": ["red", "orange", "yellow", "green", "blue", "white", "black", "grey", "brown", "silver", "clear"],
+    "shape": ["round", "square", "rectangular", "triangular", "long", "flat", "bent"],
+    "material": ["plastic", "metal", "paper", "paperboard", "glass", "fabric"],
+    "texture": ["shiny", "matte", "smooth", "rough", "striped", "dotted"],
+    "text": ["printed", "handwritten", "logo", "barcode", "digits"],
+    "state": ["torn", "dented", "crushed", "dirty", "wet", "open", "closed", "partly hidden"],
+}
+
+
+class RegionPublic(BaseModel):
+    region_id: int
+    predicted: str
+    confidence: float
+    crop_url: str
+    outline_url: str
+    overlay_url: str
+
+
+class NextTask(BaseModel):
+    task: RegionPublic | None
+    upcoming: RegionPublic | None
+    done: int
+    total: int
+
+
+class EntityIn(BaseModel):
+    entity: str = Field(min_length=1, max_length=60)
+    attributes: list[str] = Field(default_factory=list, max_length=10)
+
+
+class LabelCreate(BaseModel):
+    client_id: str = Field(min_length=8, max_length=64)
+    entities: list[EntityIn] = Field(default_factory=list, max_length=10)
+    nothing_recognisable: bool = False
+    unsure: bool = False
+    seconds_spent: float | None = Field(default=None, ge=0, le=86_400)
+
+
+class LabelResult(BaseModel):
+    stored: bool
+    region_id: int
+
+
+class UndoResult(BaseModel):
+    region_id: int
+    text: str
+
+
+def public(task: Task) -> RegionPublic:
+    base = f"/api/regions/{task.region_id}"
+    return RegionPublic(region_id=task.region_id, predicted=task.predicted, confidence=task.confidence,
+                        crop_url=f"{base}/crop.png", outline_url=f"{base}/outline.png", overlay_url=f"{base}/overlay.png")
+
+
+def campaign_for(s: Session, viewer: Viewer, campaign_id: int) -> CampaignInfo:
+    """The campaign, if this person may label in it (an annotator's invite may tie them to one)."""
+    c = campaigns.get_campaign(s, campaign_id)
+    if viewer.role == "annotator" and viewer.campaign_id not in (None, campaign_id):
+        raise ForbiddenError(f"your invite is for campaign {viewer.campaign_id}, not {campaign_id}.")
+    return c
+
+
+def _entities(text: str, nothing: bool) -> list[tuple[str, list[str]]]:
+    try:
+        entities = parse_label_text(text)
+    except InvalidInputError as exc:
+        raise InvalidRequestError(str(exc)) from None
+    if not entities and not nothing:
+        raise InvalidRequestError("name at least one thing, e.g. 'cap: red', or mark the region as nothing recognisable.")
+    if entities and nothing:
+        raise InvalidRequestError("a region with named things cannot also be nothing recognisable; choose one.")
+    return entities
+
+
+def _page(request: Request, s: Session, viewer: Viewer, c: CampaignInfo, *, typed: str = "", unsure: bool = False, error: str = "",
+          notice: str = "", status_code: int = 200) -> Response:
+    tasks = campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)
+    done, total = campaigns.person_progress(s, c, viewer.person_id)
+    context = {
+        "campaign": c, "task": public(tasks[0]) if tasks else None, "upcoming": public(tasks[1]) if len(tasks) > 1 else None,
+        "done": done, "total": total, "client_id": uuid.uuid4().hex, "typed": typed, "unsure": unsure, "error": error,
+        "notice": notice, "attribute_kinds": ATTRIBUTE_KINDS,
+    }
+    return render(request, "annotate.html", context, viewer=viewer, status_code=status_code)
+
+
+@router.get("/campaigns/{campaign_id}/label")
+def label_page(request: Request, campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, text: str = "", notice: str = "") -> Response:
+    """One region at a time, keyboard first."""
+    return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), typed=text[:1000], notice=notice[:200])
+
+
+@router.post("/campaigns/{campaign_id}/label", dependencies=[CsrfDep])
+def submit_label(
+    request: Request,
+    campaign_id: int,
+    s: WriteSessionDep,
+    viewer: AnnotatorDep,
+    region_id: Annotated[int, Form()],
+    client_id: Annotated[str, Form(min_length=8, max_length=64)],
+    labels: Annotated[str, Form(max_length=2000)] = "",
+    nothing: Annotated[str, Form()] = "",
+    unsure: Annotated[str, Form()] = "",
+    seconds_spent: Annotated[float | None, Form(ge=0, le=86_400)] = None,
+) -> Response:
+    """Save the label and show the next region; bad input re-shows the form with the text and the message."""
+    c = campaign_for(s, viewer, campaign_id)
+    try:
+        entities = _entities(labels, bool(nothing))
+        campaigns.save_label(s, campaign=c, region_id=region_id, person_id=viewer.person_id, entities=entities, unsure=bool(unsure),
+                             client_id=client_id, seconds_spent=seconds_spent)
+    except InvalidRequestError as exc:
+        return _page(request, s, viewer, c, typed=labels, unsure=bool(unsure), error=exc.message, status_code=422)
+    except ConflictError as exc:
+        return RedirectResponse(f"/campaigns/{campaign_id}/label?{urlencode({'notice': exc.message})}", status_code=303)
+    return RedirectResponse(f"/campaigns/{campaign_id}/label", status_code=303)
+
+
+@router.post("/campaigns/{campaign_id}/skip", dependencies=[CsrfDep])
+def skip_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, region_id: Annotated[int, Form()]) -> Response:
+    """Pass over a region and show the next."""
+    campaigns.skip_region(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id)
+    return RedirectResponse(f"/campaigns/{campaign_id}/label", status_code=303)
+
+
+@router.post("/campaigns/{campaign_id}/undo", dependencies=[CsrfDep])
+def undo_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Response:
+    """Withdraw your last label and show its region again with the text to edit."""
+    got = campaigns.undo_last(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
+    query = urlencode({"text": got[1]} if got else {"notice": "nothing to undo: you have no label in this campaign."})
+    return RedirectResponse(f"/campaigns/{campaign_id}/label?{query}", status_code=303)
+
+
+# --- JSON ------------------------------------------------------------------------------------------
+
+
+@router.get("/api/campaigns/{campaign_id}/tasks/next")
+def next_task(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> NextTask:
+    """Your current region (leased to you) and the one after; null task when none is left."""
+    c = campaign_for(s, viewer, campaign_id)
+    tasks = campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)
+    done, total = campaigns.person_progress(s, c, viewer.person_id)
+    return NextTask(task=public(tasks[0]) if tasks else None, upcoming=public(tasks[1]) if len(tasks) > 1 else None, done=done, total=total)
+
+
+@router.post("/api/campaigns/{campaign_id}/regions/{region_id}/labels", status_code=201, dependencies=[CsrfDep])
+def create_label(campaign_id: int, region_id: int, body: LabelCreate, s: WriteSessionDep, viewer: AnnotatorDep) -> LabelResult:
+    """Store your label of a region; a retried client_id stores nothing twice."""
+    text = "; ".join(f"{e.entity}: {', '.join(e.attributes)}" for e in body.entities)
+    entities = _entities(text, body.nothing_recognisable)
+    stored = campaigns.save_label(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id,
+                                  entities=entities, unsure=body.unsure, client_id=body.client_id, seconds_spent=body.seconds_spent)
+    return LabelResult(stored=stored, region_id=region_id)
+
+
+@router.post("/api/campaigns/{campaign_id}/regions/{region_id}/skip", status_code=204, dependencies=[CsrfDep])
+def skip_api(campaign_id: int, region_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Response:
+    """Pass over a region; it is not offered to you again."""
+    campaigns.skip_region(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id)
+    return Response(status_code=204)
+
+
+@router.post("/api/campaigns/{campaign_id}/undo", dependencies=[CsrfDep])
+def undo_api(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> UndoResult | None:
+    """Withdraw your last label in the campaign; its region becomes your current task again."""
+    got = campaigns.undo_last(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
+    return UndoResult(region_id=got[0], text=got[1]) if got else None
+
+
+@router.get("/api/campaigns/{campaign_id}/vocabulary")
+def vocabulary(campaign_id: int, s: SessionDep, viewer: AnnotatorDep) -> JSONResponse:
+    """Entity and attribute words for suggestions: the campaign's own, most used first, then common attributes."""
+    campaign_for(s, viewer, campaign_id)
+    rules, _ = campaigns.synonym_rules(s, campaign_id)
+    entities, attributes = campaigns.label_counts(s, campaign_id, rules)
+    words = [w for w, _ in attributes.most_common(200)]
+    words += [w for kind in ATTRIBUTE_KINDS.values() for w in kind if w not in attributes]
+    body = {"entities": [w for w, _ in entities.most_common(300)], "attributes": words}
+    return JSONResponse(body, headers={"Cache-Control": "no-store"})  # it grows with every label

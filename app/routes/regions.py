@@ -1,0 +1,56 @@
+"""Region images, served by region id only: the crop, the outlined image and the saliency overlay."""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import numpy as np
+from fastapi import APIRouter
+from fastapi.responses import FileResponse, Response
+
+from analysis.errors import ImageInputError
+from analysis.images import read_rgb
+from analysis.regions import Region, saliency_overlay
+
+from .. import store
+from ..deps import SessionDep, SettingsDep, ViewerDep
+from ..errors import NotFoundError
+
+router = APIRouter()
+_CACHE = {"Cache-Control": "private, max-age=3600"}
+
+
+def _project_file(settings: SettingsDep, rel: str, region_id: int) -> Path:
+    path = Path(settings.project_dir) / rel
+    if not path.is_file():
+        raise NotFoundError(f"an image file of region {region_id} is missing from the project folder ({rel}).")
+    return path
+
+
+@router.get("/api/regions/{region_id}/crop.png")
+def region_crop(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse:
+    """The region's crop."""
+    return FileResponse(_project_file(settings, store.region_files(s, region_id).crop, region_id), media_type="image/png", headers=_CACHE)
+
+
+@router.get("/api/regions/{region_id}/outline.png")
+def region_outline(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse:
+    """The full image with the region outlined."""
+    return FileResponse(_project_file(settings, store.region_files(s, region_id).outline, region_id), media_type="image/png", headers=_CACHE)
+
+
+@router.get("/api/regions/{region_id}/overlay.png")
+def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> Response:
+    """The full image with its saliency map as heat and the region outlined."""
+    files = store.region_files(s, region_id)
+    saliency = np.load(_project_file(settings, files.saliency_map, region_id)).astype(np.float32)
+    try:
+        image = read_rgb(Path(files.image_path))
+    except ImageInputError as exc:
+        raise NotFoundError(f"the image of region {region_id} cannot be read: {exc}") from None
+    x0, y0, x1, y1 = files.box
+    box = Region(rank=0, x0=x0, y0=y0, x1=x1, y1=y1, area=0, mass_share=0.0, peak_x=x0, peak_y=y0)
+    buf = io.BytesIO()
+    saliency_overlay(image, saliency, box).save(buf, format="PNG")
+    return Response(buf.getvalue(), media_type="image/png", headers=_CACHE)

@@ -1,0 +1,130 @@
+"""Assignment invariants: k distinct people per region, no repeats, leases that expire, check items, undo."""
+
+from __future__ import annotations
+
+import threading
+from collections import Counter
+from datetime import timedelta
+from pathlib import Path
+
+import pytest
+from sqlalchemy import func, select
+
+from app import campaigns
+from app.db import make_engine, session_factory, write_session
+from app.errors import ConflictError
+from app.models import Label, utcnow
+from app.people import ensure_person
+
+
+@pytest.fixture()
+def factory(project: Path):  # type: ignore[no-untyped-def]
+    engine = make_engine(project)
+    yield session_factory(engine)
+    engine.dispose()
+
+
+def _campaign(factory, k: int = 2, **kw: object) -> campaigns.CampaignInfo:  # type: ignore[no-untyped-def]
+    with write_session(factory) as s:
+        cid = campaigns.create_campaign(s, name=f"c{k}{sorted(kw)}", run_id=1, labels_per_region=k, **kw)  # type: ignore[arg-type]
+        return campaigns.get_campaign(s, cid)
+
+
+def _person(factory, name: str) -> int:  # type: ignore[no-untyped-def]
+    with write_session(factory) as s:
+        return ensure_person(s, name, "annotator")
+
+
+def _work(factory, c: campaigns.CampaignInfo, pid: int, *, now=None, limit: int = 10_000) -> list[int]:  # type: ignore[no-untyped-def]
+    """Label until nothing is left for this person; returns the regions labelled, in order."""
+    done = []
+    while len(done) < limit:
+        with write_session(factory) as s:
+            tasks = campaigns.lease_tasks(s, campaign=c, person_id=pid, now=now)
+            if not tasks:
+                return done
+            rid = tasks[0].region_id
+            campaigns.save_label(s, campaign=c, region_id=rid, person_id=pid, entities=[("cap", [])], unsure=False, client_id=f"{pid}-{rid}-x", seconds_spent=1.0, now=now)
+            done.append(rid)
+    return done
+
+
+def test_each_region_gets_k_distinct_people_least_covered_first(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, k=2)
+    a, b, d = (_person(factory, n) for n in ("ann", "bob", "dee"))
+    first = _work(factory, c, a, limit=3)
+    # Bob is handed the regions nobody has first, not Ann's.
+    with write_session(factory) as s:
+        offered = [t.region_id for t in campaigns.lease_tasks(s, campaign=c, person_id=b)]
+    assert not set(offered) & set(first)
+    for pid in (a, b, d):
+        regions = _work(factory, c, pid)
+        assert len(regions) == len(set(regions))  # nobody gets a region twice
+    with factory() as s:
+        per_region = Counter(s.scalars(select(Label.region_id).where(Label.campaign_id == c.id)))
+    assert set(per_region.values()) == {2} and len(per_region) == c.n_regions
+
+
+def test_concurrent_annotators_never_exceed_k_or_repeat(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, k=3)
+    people = [_person(factory, f"p{i}") for i in range(10)]
+    errors: list[BaseException] = []
+
+    def go(pid: int) -> None:
+        try:
+            _work(factory, c, pid)
+        except BaseException as exc:  # pragma: no cover - reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=go, args=(p,)) for p in people]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors
+    with factory() as s:
+        rows = s.execute(select(Label.region_id, Label.person_id).where(Label.campaign_id == c.id)).all()
+        kept = dict(s.execute(select(campaigns.CampaignRegion.region_id, campaigns.CampaignRegion.n_labels).where(campaigns.CampaignRegion.campaign_id == c.id)).all())
+    per_region = Counter(r for r, _ in rows)
+    assert max(per_region.values()) == 3 and len(per_region) == c.n_regions  # all done, never more than k
+    assert len(rows) == len(set(rows))  # no person twice on a region
+    assert all(kept[r] == n for r, n in per_region.items())  # the kept counter agrees with the labels
+
+
+def test_a_lease_holds_the_last_place_until_it_expires(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, k=1, lease_seconds=60)
+    a, b = _person(factory, "ann"), _person(factory, "bob")
+    now = utcnow()
+    with write_session(factory) as s:
+        held = [t.region_id for t in campaigns.lease_tasks(s, campaign=c, person_id=a, now=now)]
+    with write_session(factory) as s:
+        others = [t.region_id for t in campaigns.lease_tasks(s, campaign=c, person_id=b, now=now)]
+    assert held and not set(held) & set(others)
+    with write_session(factory) as s, pytest.raises(ConflictError, match="last places"):
+        campaigns.save_label(s, campaign=c, region_id=held[0], person_id=b, entities=[("tag", [])], unsure=False, client_id="bob-steals-1", seconds_spent=None, now=now)
+    # Ann walks away; after the lease runs out her regions go back to the pool.
+    later = now + timedelta(seconds=61)
+    with write_session(factory) as s:
+        campaigns.skip_region(s, campaign=c, region_id=others[0], person_id=b)
+        campaigns.skip_region(s, campaign=c, region_id=others[1], person_id=b)
+        regained = [t.region_id for t in campaigns.lease_tasks(s, campaign=c, person_id=b, now=later)]
+    assert set(held) == set(regained)
+    with write_session(factory) as s, pytest.raises(ConflictError, match="ran out"):
+        campaigns.save_label(s, campaign=c, region_id=held[0], person_id=a, entities=[("tag", [])], unsure=False, client_id="ann-late-1", seconds_spent=None, now=later)
+
+
+def test_check_items_come_unannounced_once_per_person(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, k=1, check_every=3)
+    with write_session(factory) as s:
+        for r in (1, 2):
+            campaigns.set_check_answer(s, campaign_id=c.id, region_id=r, entities=[("cap", ["red"])])
+        c = campaigns.get_campaign(s, c.id)
+    a, b = _person(factory, "ann"), _person(factory, "bob")
+    seq_a, seq_b = _work(factory, c, a, limit=9), _work(factory, c, b, limit=9)
+    for seq in (seq_a, seq_b):
+        assert sorted(r for r in seq if r in (1, 2)) == [1, 2]  # both people see both check items, once
+        assert min(seq.index(1), seq.index(2)) == 2  # the first one in the third task
+    with factory() as s:
+        annotators, _ = campaigns.campaign_progress(s, c)
+    assert {x.name: x.check_items for x in annotators} == {"ann": 2, "bob": 2}
+    assert all(x.check_score == 1.0 for x in annotators)  # "cap" names the known entity (attributes are not scored)
