@@ -58,12 +58,9 @@ class Task:
 
 
 def _info(s: Session, c: Campaign) -> CampaignInfo:
-    n, checks = s.execute(
-        select(func.count(), func.count(CampaignRegion.check_answer)).where(CampaignRegion.campaign_id == c.id)
-    ).one()
     return CampaignInfo(
         c.id, c.name, c.run_id, tuple(c.classes or ()), c.labels_per_region, c.instructions, c.lease_seconds, c.check_every,
-        c.method, c.expectations, c.created_at, c.closed_at, int(n), int(checks),
+        c.method, c.expectations, c.created_at, c.closed_at, c.n_regions, c.n_checks,
     )
 
 
@@ -133,6 +130,7 @@ def create_campaign(
     if not ids:
         raise InvalidRequestError(f"run {run_id} has no region in the chosen classes; nothing to label.")
     s.execute(CampaignRegion.__table__.insert(), [{"campaign_id": c.id, "region_id": r, "n_labels": 0} for r in ids])
+    c.n_regions = len(ids)
     return c.id
 
 
@@ -167,31 +165,34 @@ def _seen(campaign_id: int, person_id: int, now: datetime):  # type: ignore[no-u
 
 
 def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n: int) -> list[int]:
-    others = (
-        select(Lease.region_id, func.count().label("n"))
-        .where(Lease.campaign_id == c.id, Lease.expires_at > now, Lease.person_id != person_id)
-        .group_by(Lease.region_id).subquery()
+    """The least-labelled regions this person has not seen, whose places are not all held by others' leases.
+
+    Walks the (campaign, n_labels, region) index in order and stops at ``n``: no sort of the campaign.
+    """
+    conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
+    held_by_others = (
+        select(func.count()).where(Lease.campaign_id == c.id, Lease.region_id == CampaignRegion.region_id, Lease.expires_at > now, Lease.person_id != person_id)
+        .scalar_subquery()
     )
-    load = CampaignRegion.n_labels + func.coalesce(others.c.n, 0)
     q = (
         select(CampaignRegion.region_id)
-        .outerjoin(others, others.c.region_id == CampaignRegion.region_id)
-        .where(CampaignRegion.campaign_id == c.id, CampaignRegion.check_answer.is_(None), CampaignRegion.n_labels < c.labels_per_region,
-               load < c.labels_per_region, CampaignRegion.region_id.not_in(_seen(c.id, person_id, now)))
-        .order_by(load, CampaignRegion.region_id)
+        .where(CampaignRegion.campaign_id == c.id, CampaignRegion.n_labels < c.labels_per_region, CampaignRegion.check_answer.is_(None),
+               CampaignRegion.region_id.not_in(_seen(c.id, person_id, now)), CampaignRegion.n_labels + held_by_others < c.labels_per_region)
+        .order_by(CampaignRegion.n_labels, CampaignRegion.region_id)
         .limit(n)
     )
-    return list(s.scalars(q))
+    return list(conn.scalars(q))
 
 
 def _pick_check(s: Session, c: CampaignInfo, person_id: int, now: datetime, done: int) -> int | None:
     """One unseen check item, unannounced, in about one task of every ``check_every``."""
+    conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
     if c.n_checks == 0 or (done + 1) % c.check_every:
         return None
     q = select(CampaignRegion.region_id).where(
         CampaignRegion.campaign_id == c.id, CampaignRegion.check_answer.is_not(None), CampaignRegion.region_id.not_in(_seen(c.id, person_id, now))
     )
-    options = sorted(s.scalars(q))
+    options = sorted(conn.scalars(q))
     return random.Random(person_id * 1_000_003 + done).choice(options) if options else None
 
 
@@ -201,31 +202,34 @@ def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
     Leases already held come back first (a reload shows the same crop) and are renewed; new ones
     go to the least-covered regions this person has not seen. An empty list means no work is left.
     """
+    conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
     now = now or utcnow()
     if campaign.closed_at is not None:
         return []
     expires = now + timedelta(seconds=campaign.lease_seconds)
-    s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.person_id == person_id, Lease.expires_at <= now))
-    held = list(s.scalars(select(Lease).where(Lease.campaign_id == campaign.id, Lease.person_id == person_id).order_by(Lease.id)))
-    for lease in held:
-        lease.expires_at = expires
+    mine = (Lease.campaign_id == campaign.id, Lease.person_id == person_id)
+    conn.execute(delete(Lease).where(*mine, Lease.expires_at <= now))
+    held = list(conn.scalars(select(Lease.region_id).where(*mine).order_by(Lease.id)))
+    if held:
+        conn.execute(update(Lease).where(*mine).values(expires_at=expires))
     picks: list[int] = []
     need = want - len(held)
     if need > 0:
-        done = s.scalar(select(func.count()).where(Label.campaign_id == campaign.id, Label.person_id == person_id)) or 0
+        done = conn.scalar(select(func.count()).select_from(Label).where(Label.campaign_id == campaign.id, Label.person_id == person_id)) or 0
         check = _pick_check(s, campaign, person_id, now, done + len(held))
         if check is not None:
             picks.append(check)
         picks += _pick_regular(s, campaign, person_id, now, need - len(picks))
-        for region_id in picks:
-            s.add(Lease(campaign_id=campaign.id, region_id=region_id, person_id=person_id, created_at=now, expires_at=expires))
-        s.flush()
-    order = [lease.region_id for lease in held] + picks
+        if picks:
+            conn.execute(Lease.__table__.insert(), [
+                {"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires} for r in picks
+            ])
+    order = held + picks
     if not order:
         return []
     rows = {
         r[0]: r
-        for r in s.execute(
+        for r in conn.execute(
             select(RegionRow.id, Prediction.image_id, Prediction.predicted, Prediction.confidence)
             .join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(order))
         )
@@ -249,35 +253,42 @@ def save_label(
     Raises ConflictError when the person labelled the region already, or when its k places are
     taken (by labels, or by other people's live leases while this person holds none).
     """
+    conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
     now = now or utcnow()
-    found = s.scalar(select(Label).where(Label.client_id == client_id))
+    found = conn.execute(select(Label.person_id, Label.region_id).where(Label.client_id == client_id)).first()
     if found is not None:
-        if found.person_id != person_id or found.region_id != region_id:
+        if tuple(found) != (person_id, region_id):
             raise ConflictError("this submission id was used for another label; reload the page to get a fresh form.")
         return False
     if campaign.closed_at is not None:
         raise ConflictError(f"campaign {campaign.name!r} is closed; labels are no longer taken.")
-    cr = _campaign_region(s, campaign.id, region_id)
-    if s.scalar(select(Label.id).where(Label.campaign_id == campaign.id, Label.region_id == region_id, Label.person_id == person_id)) is not None:
+    here = (CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
+    cr = conn.execute(select(CampaignRegion.id, CampaignRegion.n_labels, CampaignRegion.check_answer.is_not(None)).where(*here)).first()
+    if cr is None:
+        raise NotFoundError(f"region {region_id} is not part of campaign {campaign.id}.")
+    cr_id, n_labels, is_check = cr
+    if conn.scalar(select(Label.id).where(Label.campaign_id == campaign.id, Label.region_id == region_id, Label.person_id == person_id)) is not None:
         raise ConflictError(f"you have labelled region {region_id} already; undo your last label to change it.")
-    mine = s.scalar(select(Lease).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id == person_id))
-    if cr.check_answer is None:
+    lease_here = (Lease.campaign_id == campaign.id, Lease.region_id == region_id)
+    mine = conn.scalar(select(Lease.expires_at).where(*lease_here, Lease.person_id == person_id))
+    if not is_check:
         k = campaign.labels_per_region
-        if cr.n_labels >= k:
+        if n_labels >= k:
             raise ConflictError(f"region {region_id} has its {k} labels already; your next region is ready.")
-        if mine is None or mine.expires_at <= now:
-            held = s.scalar(select(func.count()).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id != person_id, Lease.expires_at > now)) or 0
-            if cr.n_labels + held >= k:
+        if mine is None or mine <= now:
+            held = conn.scalar(select(func.count()).select_from(Lease).where(*lease_here, Lease.person_id != person_id, Lease.expires_at > now)) or 0
+            if n_labels + held >= k:
                 raise ConflictError(f"your hold on region {region_id} ran out and other annotators have its last places; your next region is ready.")
-    s.add(Label(client_id=client_id, campaign_id=campaign.id, region_id=region_id, person_id=person_id, entities=[[e, a] for e, a in entities],
-                unsure=unsure, submitted_at=now, seconds_spent=seconds_spent))
-    s.execute(update(CampaignRegion).where(CampaignRegion.id == cr.id).values(n_labels=CampaignRegion.n_labels + 1))
-    if mine is not None:
-        s.delete(mine)
     try:
-        s.flush()
+        conn.execute(Label.__table__.insert().values(
+            client_id=client_id, campaign_id=campaign.id, region_id=region_id, person_id=person_id, entities=[[e, a] for e, a in entities],
+            unsure=unsure, submitted_at=now, seconds_spent=seconds_spent,
+        ))
     except IntegrityError:
         raise ConflictError(f"region {region_id} was labelled twice at once; reload the page.") from None
+    conn.execute(update(CampaignRegion).where(CampaignRegion.id == cr_id).values(n_labels=CampaignRegion.n_labels + 1))
+    if mine is not None:
+        conn.execute(delete(Lease).where(*lease_here, Lease.person_id == person_id))
     return True
 
 
@@ -357,6 +368,10 @@ def set_check_answer(s: Session, *, campaign_id: int, region_id: int, entities: 
     """Make a region a check item with this known answer ([] = nothing recognisable), or a normal one again (None)."""
     cr = _campaign_region(s, campaign_id, region_id)
     cr.check_answer = None if entities is None else [[e, a] for e, a in entities]
+    s.flush()
+    c = s.get(Campaign, campaign_id)
+    if c is not None:
+        c.n_checks = s.scalar(select(func.count(CampaignRegion.check_answer)).where(CampaignRegion.campaign_id == campaign_id)) or 0
 
 
 def synonym_rules(s: Session, campaign_id: int) -> tuple[SynonymRules, list[tuple[str, str]]]:

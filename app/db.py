@@ -75,8 +75,8 @@ def _migrate_v1(engine: Engine) -> None:
                 "JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ? GROUP BY a.region_id)", (run_id,)
             ).scalar()
             cid = c.exec_driver_sql(
-                "INSERT INTO campaigns (name, run_id, classes, labels_per_region, instructions, lease_seconds, check_every, method, expectations, created_at) "
-                "VALUES (?, ?, '[]', ?, '', 600, 10, 'majority', '', CURRENT_TIMESTAMP)",
+                "INSERT INTO campaigns (name, run_id, classes, labels_per_region, instructions, lease_seconds, check_every, method, expectations, "
+                "n_regions, n_checks, created_at) VALUES (?, ?, '[]', ?, '', 600, 10, 'majority', '', 0, 0, CURRENT_TIMESTAMP)",
                 (f"labels of run {run_id} (from version 1)", run_id, max(3, int(most or 0))),
             ).lastrowid
             c.exec_driver_sql(
@@ -89,6 +89,7 @@ def _migrate_v1(engine: Engine) -> None:
                 "JOIN regions r ON r.id = a.region_id JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ?",
                 (cid, run_id),
             )
+            c.exec_driver_sql("UPDATE campaigns SET n_regions = (SELECT COUNT(*) FROM campaign_regions WHERE campaign_id = ?) WHERE id = ?", (cid, cid))
             c.exec_driver_sql(
                 "UPDATE campaign_regions SET n_labels = (SELECT COUNT(*) FROM labels l WHERE l.campaign_id = campaign_regions.campaign_id "
                 "AND l.region_id = campaign_regions.region_id) WHERE campaign_id = ?", (cid,)
@@ -100,6 +101,15 @@ def _migrate_v1(engine: Engine) -> None:
 
 def session_factory(engine: Engine) -> sessionmaker[Session]:
     return sessionmaker(engine, expire_on_commit=False)
+
+
+def lazy_write_factory(engine: Engine) -> sessionmaker[Session]:
+    """Sessions whose transaction opens with BEGIN IMMEDIATE at their first statement, not when made.
+
+    A request's session is made in one thread and used in the route's worker thread: taking the
+    write lock only there means a worker never waits for a lock while holding nothing useful.
+    """
+    return sessionmaker(engine.execution_options(immediate=True), expire_on_commit=False)
 
 
 @contextmanager

@@ -3,13 +3,12 @@
 from __future__ import annotations
 
 import hmac
-from collections.abc import Callable, Iterator
+from collections.abc import AsyncIterator, Callable, Iterator
 from typing import Annotated
 
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
 
-from .db import write_session
 from .errors import ForbiddenError, UnauthorizedError
 from .people import Viewer, csrf_token, viewer_from_cookie
 from .settings import Settings
@@ -24,9 +23,25 @@ def _session(request: Request) -> Iterator[Session]:
         yield s
 
 
-def _write_session(request: Request) -> Iterator[Session]:
-    with write_session(request.app.state.sessions) as s:
-        yield s
+async def _write_session(request: Request) -> AsyncIterator[Session]:
+    """A write session for one request, committed before the response is sent.
+
+    Write requests take the app's write lock on the event loop before their session starts.
+    SQLite has one writer anyway; waiting here, rather than in SQLite's busy handler inside a
+    worker thread, keeps the worker threads free for the request that holds the lock (when all
+    of them wait for the lock, the holder cannot get a thread to finish on, and everything
+    stalls until the busy timeout).
+    """
+    async with request.app.state.write_lock:
+        s = request.app.state.writers()
+        try:
+            yield s
+            s.commit()
+        except BaseException:
+            s.rollback()
+            raise
+        finally:
+            s.close()
 
 
 def _settings(request: Request) -> Settings:
@@ -73,7 +88,9 @@ async def check_csrf(request: Request) -> None:
 
 
 SessionDep = Annotated[Session, Depends(_session)]
-WriteSessionDep = Annotated[Session, Depends(_write_session)]
+# scope="function": the commit happens before the response goes out, so a client never sees
+# "stored" for a label that is not.
+WriteSessionDep = Annotated[Session, Depends(_write_session, scope="function")]
 SettingsDep = Annotated[Settings, Depends(_settings)]
 ViewerDep = Annotated[Viewer, Depends(_viewer)]
 OptionalViewerDep = Annotated[Viewer | None, Depends(optional_viewer)]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
@@ -13,7 +14,7 @@ from fastapi.responses import JSONResponse, Response
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 
-from .db import make_engine, session_factory, write_session
+from .db import lazy_write_factory, make_engine, session_factory, write_session
 from .errors import AppError
 from .people import project_key
 from .settings import Settings
@@ -29,6 +30,8 @@ def create_app(settings: Settings) -> FastAPI:
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         engine = make_engine(settings.project_dir)
         app.state.sessions = session_factory(engine)
+        app.state.writers = lazy_write_factory(engine)
+        app.state.write_lock = asyncio.Lock()
         with write_session(app.state.sessions) as s:
             app.state.key = project_key(s)
         yield

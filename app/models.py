@@ -122,6 +122,8 @@ class Campaign(Base):
     lease_seconds: Mapped[int] = mapped_column(Integer, default=600)
     check_every: Mapped[int] = mapped_column(Integer, default=10)  # one check item in about this many tasks
     method: Mapped[str] = mapped_column(String, default="majority")  # label aggregation for results
+    n_regions: Mapped[int] = mapped_column(Integer, default=0)  # kept with campaign_regions, read on every request
+    n_checks: Mapped[int] = mapped_column(Integer, default=0)
     expectations: Mapped[str] = mapped_column(Text, default="")  # TOML text, see analysis.expectations
     created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
     closed_at: Mapped[datetime | None] = mapped_column(DateTime(), nullable=True)
@@ -131,7 +133,8 @@ class CampaignRegion(Base):
     """A region in a campaign; ``check_answer`` set makes it a check item with that known label."""
 
     __tablename__ = "campaign_regions"
-    __table_args__ = (UniqueConstraint("campaign_id", "region_id"), Index("ix_campaign_regions_load", "campaign_id", "n_labels"))
+    # The index walks regions least-labelled first, so picking the next task never sorts the campaign.
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id"), Index("ix_campaign_regions_load", "campaign_id", "n_labels", "region_id"))
     id: Mapped[int] = mapped_column(primary_key=True)
     campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
@@ -143,9 +146,9 @@ class Lease(Base):
     """A region handed to a person; it counts toward the region's quota until it expires."""
 
     __tablename__ = "leases"
-    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"),)
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"), Index("ix_leases_person", "campaign_id", "person_id"))
     id: Mapped[int] = mapped_column(primary_key=True)
-    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"), index=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
     person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
     created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
@@ -156,10 +159,10 @@ class Label(Base):
     """One person's judgment of one region in a campaign; ``client_id`` makes a retried submit harmless."""
 
     __tablename__ = "labels"
-    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"),)
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"), Index("ix_labels_person", "campaign_id", "person_id"))
     id: Mapped[int] = mapped_column(primary_key=True)
     client_id: Mapped[str] = mapped_column(String, unique=True)
-    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"), index=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
     person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
     entities: Mapped[list[list[object]]] = mapped_column(JSON)  # [[entity, [attributes...]], ...]; [] = nothing recognisable
@@ -172,7 +175,7 @@ class Skip(Base):
     """A region a person passed over; it is not offered to them again."""
 
     __tablename__ = "skips"
-    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"),)
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id", "person_id"), Index("ix_skips_person", "campaign_id", "person_id"))
     id: Mapped[int] = mapped_column(primary_key=True)
     campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))

@@ -106,11 +106,15 @@ def create_invite(s: Session, *, name: str, role: str, campaign_id: int | None =
     return row.id, token
 
 
-def _invite_viewer(s: Session, invite: Invite, now: datetime) -> Viewer:
-    if invite.revoked_at is not None:
+def _check_live(expires_at: datetime, revoked_at: datetime | None, now: datetime) -> None:
+    if revoked_at is not None:
         raise ForbiddenError("this invite link was revoked; ask the project's admin for a new one.")
-    if invite.expires_at <= now:
-        raise ForbiddenError(f"this invite link expired on {invite.expires_at:%Y-%m-%d %H:%M} UTC; ask the project's admin for a new one.")
+    if expires_at <= now:
+        raise ForbiddenError(f"this invite link expired on {expires_at:%Y-%m-%d %H:%M} UTC; ask the project's admin for a new one.")
+
+
+def _invite_viewer(s: Session, invite: Invite, now: datetime) -> Viewer:
+    _check_live(invite.expires_at, invite.revoked_at, now)
     person = s.get(Person, invite.person_id)
     if person is None:
         raise ForbiddenError("the person this invite was made for no longer exists.")
@@ -140,10 +144,16 @@ def viewer_from_cookie(s: Session, key: bytes, cookie: str | None, *, now: datet
     raw_id, _, _ = cookie.partition(".")
     if not raw_id.isdigit() or not hmac.compare_digest(cookie, session_cookie(key, int(raw_id))):
         return None
-    invite = s.get(Invite, int(raw_id))
-    if invite is None:
+    # One query per request: the invite and its person together.
+    row = s.execute(
+        select(Invite.id, Invite.campaign_id, Invite.expires_at, Invite.revoked_at, Person.id, Person.name, Person.role)
+        .join(Person, Person.id == Invite.person_id).where(Invite.id == int(raw_id))
+    ).first()
+    if row is None:
         return None
-    return _invite_viewer(s, invite, now or utcnow())
+    invite_id, campaign_id, expires_at, revoked_at, person_id, name, role = row
+    _check_live(expires_at, revoked_at, now or utcnow())
+    return Viewer(person_id, name, role, invite_id, campaign_id)
 
 
 def csrf_token(key: bytes, cookie: str) -> str:

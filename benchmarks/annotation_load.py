@@ -1,0 +1,168 @@
+"""50 simulated annotators at once against a served app on loopback: latency of next-task and submit,
+requests per second, and labels lost or stored twice (must be 0).
+
+    .venv/bin/python -m benchmarks.annotation_load             # 50 annotators, 30 s
+    .venv/bin/python -m benchmarks.annotation_load --quick     # 50 annotators, 8 s
+
+Each annotator signs in through its own invite link, then loops: fetch the next task, submit a
+label (JSON API, with the anti-forgery header); one submit in twenty is sent twice, as a browser
+retrying after a dropped connection would. The project is synthetic (rows only, no images):
+the benchmark measures the server, not image decoding.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import os
+import random
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+import uuid
+from collections import Counter
+from pathlib import Path
+
+import httpx
+import numpy as np
+from sqlalchemy import func, select
+
+from app.campaigns import create_campaign
+from app.db import make_engine, session_factory, write_session
+from app.deps import COOKIE
+from app.models import ImageRow, Label, Prediction, RegionRow, SaliencyRun
+from app.people import create_invite
+
+from .measure import print_table
+
+CLASSES = ("bottle", "can", "carton")
+
+
+def make_project(root: Path, n_images: int, n_people: int, k: int) -> tuple[int, list[str]]:
+    """A project with one run of ``n_images`` images x 2 regions, a campaign, and invite tokens."""
+    engine = make_engine(root)
+    with write_session(session_factory(engine)) as s:
+        run = SaliencyRun(config_key="bench", provenance={"method": "synthetic"})
+        s.add(run)
+        s.flush()
+        s.execute(ImageRow.__table__.insert(), [{"id": i + 1, "path": f"/synthetic/{i}.png", "label": CLASSES[i % 3], "split": "test"} for i in range(n_images)])
+        s.execute(Prediction.__table__.insert(), [{"id": i + 1, "run_id": run.id, "image_id": i + 1, "predicted": CLASSES[i % 3], "confidence": 0.9,
+                                                   "empty_map": False, "map_path": "none"} for i in range(n_images)])
+        s.execute(RegionRow.__table__.insert(), [{"prediction_id": i // 2 + 1, "rank": i % 2, "x0": 0, "y0": 0, "x1": 8, "y1": 8, "area": 64,
+                                                  "mass_share": 0.5, "crop_path": "none", "outline_path": "none"} for i in range(2 * n_images)])
+        cid = create_campaign(s, name="load", run_id=run.id, labels_per_region=k)
+        tokens = [create_invite(s, name=f"annotator {i:02d}", role="annotator", campaign_id=cid)[1] for i in range(n_people)]
+    engine.dispose()
+    return cid, tokens
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+async def annotator(base: str, token: str, cid: int, start: asyncio.Event, seconds: float, think: float, timings: dict[str, list[float]],
+                    outcome: Counter[str], seed: int) -> None:
+    rng = random.Random(seed)
+    async with httpx.AsyncClient(base_url=base, timeout=60, follow_redirects=True) as client:
+        r = await client.get(f"/join/{token}")
+        cookie = client.cookies.get(COOKIE)
+        if r.status_code != 200 or cookie is None:
+            outcome["sign-in failed"] += 1
+            return
+        # The label page carries the anti-forgery token; read it from the form like a browser would.
+        csrf = r.text.split('name="csrf" value="', 1)[1].split('"', 1)[0]
+        headers = {"X-CSRF-Token": csrf}
+        outcome["signed in"] += 1
+        await start.wait()  # measure the steady state, not 50 sign-ins at once
+        await asyncio.sleep(rng.uniform(0, think))  # people do not start in step
+        deadline = time.perf_counter() + seconds
+        while time.perf_counter() < deadline:
+            t = time.perf_counter()
+            r = await client.get(f"/api/campaigns/{cid}/tasks/next")
+            timings["next task"].append(time.perf_counter() - t)
+            task = r.json().get("task") if r.status_code == 200 else None
+            if task is None:
+                outcome["no task"] += 1
+                break
+            if think:  # looking at the crop and typing, 0.5x to 1.5x the mean
+                await asyncio.sleep(think * rng.uniform(0.5, 1.5))
+            body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": rng.choice(["cap", "tag", "rim", "label band"]), "attributes": ["red"]}],
+                    "seconds_spent": 1.0}
+            for attempt in range(2 if rng.random() < 0.05 else 1):
+                t = time.perf_counter()
+                r = await client.post(f"/api/campaigns/{cid}/regions/{task['region_id']}/labels", json=body, headers=headers)
+                timings["submit"].append(time.perf_counter() - t)
+                if r.status_code == 201:
+                    outcome["stored" if r.json()["stored"] else "retry recognised"] += 1
+                else:
+                    outcome[f"submit {r.status_code}"] += 1
+
+
+async def run_load(base: str, tokens: list[str], cid: int, seconds: float, think: float) -> tuple[dict[str, list[float]], Counter[str], float]:
+    timings: dict[str, list[float]] = {"next task": [], "submit": []}
+    outcome: Counter[str] = Counter()
+    start = asyncio.Event()
+    people = [asyncio.create_task(annotator(base, t, cid, start, seconds, think, timings, outcome, i)) for i, t in enumerate(tokens)]
+    while outcome["signed in"] + outcome["sign-in failed"] < len(tokens):
+        await asyncio.sleep(0.05)
+    t0 = time.perf_counter()
+    start.set()
+    await asyncio.gather(*people)
+    return timings, outcome, time.perf_counter() - t0
+
+
+def main(argv: list[str] | None = None) -> str:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--quick", action="store_true", help="8 seconds instead of 30")
+    p.add_argument("--annotators", type=int, default=50)
+    p.add_argument("--per-region", type=int, default=3)
+    p.add_argument("--think", type=float, default=2.0, help="mean seconds an annotator spends on a region (0 = hammer the server)")
+    args = p.parse_args(argv)
+    seconds = 8.0 if args.quick else 30.0
+    with tempfile.TemporaryDirectory() as tmp:
+        project = Path(tmp) / "project"
+        cid, tokens = make_project(project, 5000, args.annotators, args.per_region)
+        port = free_port()
+        server = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=open(os.environ.get("HEEDMAP_BENCH_LOG", os.devnull), "w"),
+                                  stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1"})
+        base = f"http://127.0.0.1:{port}"
+        try:
+            for _ in range(200):
+                try:
+                    httpx.get(base + "/", timeout=1)
+                    break
+                except httpx.HTTPError:
+                    time.sleep(0.1)
+            timings, outcome, wall = asyncio.run(run_load(base, tokens, cid, seconds, args.think))
+        finally:
+            server.terminate()
+            server.wait(timeout=10)
+        engine = make_engine(project)
+        with session_factory(engine)() as s:
+            in_db = s.scalar(select(func.count(Label.id))) or 0
+            per_region = select(func.count().label("n")).select_from(Label).group_by(Label.region_id).subquery()
+            worst = s.scalar(select(func.max(per_region.c.n))) or 0
+            repeats = s.scalar(select(func.count()).select_from(select(Label.region_id, Label.person_id).group_by(Label.region_id, Label.person_id).having(func.count() > 1).subquery())) or 0
+        engine.dispose()
+    requests = sum(len(v) for v in timings.values())
+    print(f"{args.annotators} annotators, {args.think:g} s per region on average, for {wall:.1f} s on loopback, one uvicorn process; "
+          f"{requests} requests, {requests / wall:.0f} per second")
+    print(f"outcomes: {dict(outcome)}")
+    rows = [[name, len(v), *(1000 * np.percentile(v, q) for q in (50, 95, 99))] for name, v in timings.items()]
+    table = print_table(["request", "count", "p50 ms", "p95 ms", "p99 ms"], rows)
+    lost = outcome["stored"] - in_db
+    checks = print_table(
+        ["check", "value"],
+        [["labels acknowledged as stored", outcome["stored"]], ["labels in the database", in_db], ["lost (acknowledged, not stored)", lost],
+         ["stored twice (same person and region)", repeats], ["retries recognised (stored once)", outcome["retry recognised"]],
+         ["most labels on one region (limit)", f"{worst} ({args.per_region})"]],
+    )
+    return table + "\n\n" + checks
+
+
+if __name__ == "__main__":
+    main()
