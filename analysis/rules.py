@@ -1,4 +1,4 @@
-"""Per-class concept rules "concept set => class" from the image-by-concept table, through mlxtend."""
+"""Per-class concept rules "concept set => class" from the image-by-concept table, with significance."""
 
 from __future__ import annotations
 
@@ -6,33 +6,145 @@ import csv
 import io
 from dataclasses import dataclass
 
+from itertools import combinations
+from typing import Literal
+
 import numpy as np
+import numpy.typing as npt
 import pandas as pd
-from mlxtend.frequent_patterns import association_rules, fpgrowth
+from scipy import sparse
+from scipy.special import betaln
 
 from .errors import InvalidInputError
+from .itemsets import ItemsetCounts, count_itemsets, count_with_mlxtend
 
-RULE_COLUMNS = ["class", "concepts", "support", "confidence", "lift", "n_images", "class_images", "concept_images", "rank"]
-_CLASS_PREFIX = "class = "
+RULE_COLUMNS = [
+    "class", "concepts", "size", "n_images", "support", "confidence", "lift", "leverage", "conviction",
+    "class_images", "concept_images", "p_value", "q_value", "saliency_share", "rank",
+]
 
 
 @dataclass(frozen=True)
 class RuleTable:
-    """Rules as a DataFrame (RULE_COLUMNS), best first within each class, and how they were mined."""
+    """Rules as a DataFrame (RULE_COLUMNS), best first within each class, and how they were mined.
+
+    ``n_tested`` is the number of rules whose p-values were adjusted together (every concept set
+    and class that reached the minimum support, before the lift filter and pruning).
+    """
 
     rules: pd.DataFrame
     n_images: int
     min_support: float
     max_len: int
+    min_count: int = 1
+    n_tested: int = 0
+    pruned: int = 0
 
 
-def mine_rules(table: pd.DataFrame, classes: pd.Series, *, min_support: float = 0.02, max_len: int = 2, min_lift: float = 1.0) -> RuleTable:
-    """Mine rules ``concept set => class`` with support, confidence, lift and image counts.
+@dataclass(frozen=True)
+class RegionMass:
+    """Where each image's saliency sits: regions, their image (row position), mass share and concepts.
+
+    Lets a rule report how much of its images' saliency lies on regions carrying its concepts.
+    """
+
+    region_image: npt.NDArray[np.int64]  # (regions,) row position of the region's image in the table
+    mass: npt.NDArray[np.float64]  # (regions,) share of the image's saliency inside the region
+    carries: sparse.csc_matrix  # (regions, concepts) bool, concepts in table column order
+
+
+def support_count(min_support: float, n: int) -> int:
+    """The fewest images whose share reaches ``min_support`` (compared as count / n >= min_support)."""
+    c = int(np.ceil(min_support * n))
+    while c > 1 and (c - 1) / n >= min_support:
+        c -= 1
+    while c / n < min_support:
+        c += 1
+    return max(c, 1)
+
+
+def benjamini_hochberg(p: npt.ArrayLike) -> npt.NDArray[np.float64]:
+    """Benjamini & Hochberg (1995) adjusted p-values (q-values): p * m / rank, made monotone, capped at 1."""
+    p = np.asarray(p, dtype=np.float64)
+    m = len(p)
+    if m == 0:
+        return p.copy()
+    order = np.argsort(p, kind="stable")
+    scaled = p[order] * m / np.arange(1, m + 1)
+    q = np.minimum.accumulate(scaled[::-1])[::-1].clip(max=1.0)
+    out = np.empty(m)
+    out[order] = q
+    return out
+
+
+def _log_comb(n: npt.NDArray[np.float64], k: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+    return -np.log(n + 1) - betaln(n - k + 1, k + 1)
+
+
+def fisher_greater(n_xy: npt.ArrayLike, n_x: npt.ArrayLike, n_y: npt.ArrayLike, n: int) -> npt.NDArray[np.float64]:
+    """One-sided Fisher's exact p-value that images with the concept set hold the class more often than chance.
+
+    It is the hypergeometric tail P(X >= n_xy) for X images of the class among the n_x with the set,
+    drawn from n images of which n_y have the class. Vectorised over rules: from the exact
+    probability of one count, the tail is summed away from the distribution's mode with the
+    ratio of neighbouring probabilities, until the terms no longer change the sum (scipy's own
+    survival function sums each rule in a Python loop, which is slow for thousands of rules).
+    """
+    k0, nx, ny = (np.asarray(v, dtype=np.float64) for v in (n_xy, n_x, n_y))
+    lo = np.maximum(0.0, nx + ny - n)
+    hi = np.minimum(nx, ny)
+    mode = np.floor((nx + 1) * (ny + 1) / (n + 2))
+    upper = k0 > mode  # sum P(X >= k0) directly; otherwise 1 - P(X <= k0 - 1)
+    start = np.where(upper, k0, k0 - 1)
+    total = np.zeros_like(k0)
+    valid = (start >= lo) & (start <= hi)
+    term = np.where(valid, np.exp(_log_comb(ny, start) + _log_comb(n - ny, nx - start) - _log_comb(float(n), nx)), 0.0)
+    k = start.copy()
+    active = valid & (term > 0)
+    total += term
+    while active.any():
+        i = np.nonzero(active)[0]
+        ki, up = k[i], upper[i]
+        # P(k+1)/P(k) going up, P(k-1)/P(k) going down.
+        ratio = np.where(
+            up,
+            (ny[i] - ki) * (nx[i] - ki) / ((ki + 1) * (n - ny[i] - nx[i] + ki + 1)),
+            ki * (n - ny[i] - nx[i] + ki) / ((ny[i] - ki + 1) * (nx[i] - ki + 1)),
+        )
+        k[i] = np.where(up, ki + 1, ki - 1)
+        term[i] = term[i] * ratio
+        inside = np.where(up, k[i] <= hi[i], k[i] >= lo[i])
+        term[i] = np.where(inside, term[i], 0.0)
+        total[i] += term[i]
+        active[i] = inside & (term[i] > total[i] * 1e-17)
+    p = np.where(upper, total, 1.0 - total)
+    return p.clip(0.0, 1.0)
+
+
+def _as_sparse(table: pd.DataFrame) -> sparse.csr_matrix:
+    if len(table.columns) and all(isinstance(t, pd.SparseDtype) for t in table.dtypes):
+        return sparse.csr_matrix(table.sparse.to_coo()).astype(bool)
+    return sparse.csr_matrix(table.to_numpy(dtype=bool))
+
+
+def mine_rules(
+    table: pd.DataFrame,
+    classes: pd.Series,
+    *,
+    min_support: float = 0.02,
+    max_len: int = 2,
+    min_lift: float = 1.0,
+    min_count: int = 1,
+    prune: bool = False,
+    saliency: RegionMass | None = None,
+    engine: Literal["bitset", "mlxtend"] = "bitset",
+) -> RuleTable:
+    """Mine rules ``concept set => class`` with support, confidence, lift, leverage, conviction and significance.
 
     Parameters
     ----------
     table
-        Boolean image-by-concept table (rows images, columns concepts).
+        Boolean image-by-concept table (rows images, columns concepts); pandas sparse columns are fine.
     classes
         Class of each image (same index as ``table``), e.g. the predicted class.
     min_support
@@ -40,54 +152,113 @@ def mine_rules(table: pd.DataFrame, classes: pd.Series, *, min_support: float = 
     max_len
         Most concepts in one rule's set.
     min_lift
-        Rules at or below this lift are dropped (1 = no association).
+        Rules at or below this lift are dropped (1 = no association); they still count as tested.
+    min_count
+        Fewest images holding both the set and the class, whatever the support.
+    prune
+        Drop a rule whose set adds no confidence over one of its subsets for the same class.
+    saliency
+        Region masses, for the ``saliency_share`` column (NaN without).
+    engine
+        ``bitset`` counts concept sets per class on bit-packed columns; ``mlxtend`` runs mlxtend's
+        FP-growth instead (same rules, slower; the reference).
 
-    Rules within a class are ranked by number of images, then confidence, then lift.
+    Each rule gets a one-sided Fisher's exact p-value and a Benjamini-Hochberg q-value over every
+    rule tested. Rules within a class are ranked by number of images, then confidence, then lift.
     """
     if not 0 < min_support <= 1:
         raise InvalidInputError(f"min_support must be in (0, 1]; got {min_support}. Give a fraction of images, e.g. 0.05.")
     if max_len < 1:
         raise InvalidInputError(f"max_len must be at least 1; got {max_len}.")
+    if min_count < 1:
+        raise InvalidInputError(f"min_count must be at least 1; got {min_count}.")
     if len(table) == 0:
         raise InvalidInputError("the concept table has no rows; label some regions first.")
     if not table.index.equals(classes.index):
         raise InvalidInputError("classes must have the same index as the concept table (one class per image).")
-    bad = [c for c in table.columns if str(c).startswith(_CLASS_PREFIX)]
-    if bad:
-        raise InvalidInputError(f"concept names may not start with {_CLASS_PREFIX!r}: {bad[:3]}.")
-    onehot = pd.get_dummies(classes.astype(str), prefix="", prefix_sep="").add_prefix(_CLASS_PREFIX)
-    data = pd.concat([table.astype(bool), onehot.astype(bool)], axis=1)
-    itemsets = fpgrowth(data, min_support=min_support, use_colnames=True, max_len=max_len + 1)
-    empty = pd.DataFrame(columns=RULE_COLUMNS)
-    if itemsets.empty:
-        return RuleTable(empty, len(table), min_support, max_len)
-    # mlxtend also computes metrics we do not report (conviction, certainty) and divides by
-    # zero in them when a class or concept holds for every image; those values are dropped.
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rules = association_rules(itemsets, num_itemsets=len(data), metric="confidence", min_threshold=0.0)
-    n = len(data)
-    keep = rules[
-        rules["consequents"].map(lambda s: len(s) == 1 and next(iter(s)).startswith(_CLASS_PREFIX))
-        & rules["antecedents"].map(lambda s: not any(str(i).startswith(_CLASS_PREFIX) for i in s))
-    ]
-    if keep.empty:
-        return RuleTable(empty, n, min_support, max_len)
+    n = len(table)
+    names = [str(c) for c in table.columns]
+    class_names, codes = np.unique(classes.astype(str).to_numpy(), return_inverse=True)
+    threshold = max(min_count, support_count(min_support, n))
+    x = _as_sparse(table)
+    counter = count_with_mlxtend if engine == "mlxtend" else count_itemsets
+    counts = counter(x, codes, n_classes=len(class_names), min_count=threshold, max_len=max_len)
+    set_idx, cls_idx = np.nonzero(counts.class_counts >= threshold)
+    empty = RuleTable(pd.DataFrame(columns=RULE_COLUMNS), n, min_support, max_len, threshold, 0, 0)
+    if len(set_idx) == 0:
+        return empty
+    n_xy = counts.class_counts[set_idx, cls_idx]
+    n_x = counts.totals[set_idx]
+    n_y = counts.class_sizes[cls_idx]
+    confidence = n_xy / n_x
+    p_class = n_y / n
+    with np.errstate(divide="ignore"):
+        conviction = np.where(confidence < 1, (1 - p_class) / np.maximum(1 - confidence, 1e-300), np.inf)
+    p_value = fisher_greater(n_xy, n_x, n_y, n)
     out = pd.DataFrame(
         {
-            "class": keep["consequents"].map(lambda s: next(iter(s))[len(_CLASS_PREFIX):]),
-            "concepts": keep["antecedents"].map(lambda s: " & ".join(sorted(map(str, s)))),
-            "support": keep["support"].astype(float),
-            "confidence": keep["confidence"].astype(float),
-            "lift": keep["lift"].astype(float),
-            "n_images": (keep["support"] * n).round().astype(int),
-            "class_images": (keep["consequent support"] * n).round().astype(int),
-            "concept_images": (keep["antecedent support"] * n).round().astype(int),
+            "class": class_names[cls_idx],
+            "concepts": [" & ".join(sorted(names[i] for i in counts.itemsets[s])) for s in set_idx],
+            "size": [len(counts.itemsets[s]) for s in set_idx],
+            "n_images": n_xy,
+            "support": n_xy / n,
+            "confidence": confidence,
+            "lift": confidence / p_class,
+            "leverage": n_xy / n - (n_x / n) * p_class,
+            "conviction": conviction,
+            "class_images": n_y,
+            "concept_images": n_x,
+            "p_value": p_value,
+            "q_value": benjamini_hochberg(p_value),
         }
     )
-    out = out[out["lift"] > min_lift]
+    n_tested = len(out)
+    keep = out["lift"].to_numpy() > min_lift
+    pruned = 0
+    if prune:
+        redundant = _redundant(counts, set_idx, cls_idx, confidence)
+        pruned = int((keep & redundant).sum())
+        keep &= ~redundant
+    out = out[keep].copy()
+    out["saliency_share"] = _saliency_shares(saliency, x, counts, set_idx[keep], cls_idx[keep], codes) if saliency is not None else np.nan
     out = out.sort_values(["class", "n_images", "confidence", "lift", "concepts"], ascending=[True, False, False, False, True])
     out["rank"] = out.groupby("class").cumcount() + 1
-    return RuleTable(out.reset_index(drop=True)[RULE_COLUMNS], n, min_support, max_len)
+    return RuleTable(out.reset_index(drop=True)[RULE_COLUMNS], n, min_support, max_len, threshold, n_tested, pruned)
+
+
+def _redundant(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64], confidence: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:
+    """True where some proper subset of the rule's set reaches at least its confidence for the same class."""
+    index = {s: i for i, s in enumerate(counts.itemsets)}
+    totals = counts.totals
+    out = np.zeros(len(set_idx), dtype=bool)
+    for r, (s, k) in enumerate(zip(set_idx.tolist(), cls_idx.tolist())):
+        items = counts.itemsets[s]
+        if len(items) < 2:
+            continue
+        best = 0.0
+        for size in range(1, len(items)):
+            for sub in combinations(items, size):
+                j = index[sub]  # every subset of a counted set was counted (Apriori)
+                best = max(best, counts.class_counts[j, k] / totals[j])
+        out[r] = best >= confidence[r] - 1e-12
+    return out
+
+
+def _saliency_shares(saliency: RegionMass, x: sparse.csr_matrix, counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64],
+                     codes: npt.NDArray[np.int64]) -> npt.NDArray[np.float64]:
+    """Mean, over the images holding the set and the class, of the saliency share on regions carrying any of its concepts."""
+    carries = sparse.csc_matrix(saliency.carries)
+    xc = sparse.csc_matrix(x)
+    n_images = len(codes)
+    out = np.full(len(set_idx), np.nan)
+    for r, (s, k) in enumerate(zip(set_idx.tolist(), cls_idx.tolist())):
+        cols = list(counts.itemsets[s])
+        on_region = np.asarray(carries[:, cols].sum(axis=1)).ravel() > 0
+        mass = np.bincount(saliency.region_image[on_region], weights=saliency.mass[on_region], minlength=n_images)
+        holds = (np.asarray(xc[:, cols].sum(axis=1)).ravel() == len(cols)) & (codes == k)
+        if holds.any():
+            out[r] = float(mass[holds].mean())
+    return out
 
 
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")

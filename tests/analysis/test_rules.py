@@ -3,7 +3,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from mlxtend.frequent_patterns import apriori, association_rules
+from mlxtend.frequent_patterns import apriori, association_rules, fpgrowth
 
 from analysis.errors import InvalidInputError
 from analysis.rules import mine_rules, to_csv
@@ -59,3 +59,96 @@ def test_rules_bad_input_and_csv_escaping() -> None:
     rules = mine_rules(table, pd.Series(["a", "b", "a"]), min_support=0.1).rules
     text = to_csv(rules)
     assert "'=cmd()" in text and "\n=cmd" not in text and ",=cmd" not in text
+
+
+def test_han_kamber_pei_frequent_itemsets() -> None:
+    # Han, Kamber & Pei (2012), Table 6.1 with minimum support count 2: the book's L1, L2 and L3
+    # (counts recalled from memory; mlxtend's apriori on the same table is the second witness).
+    from analysis.itemsets import count_itemsets
+
+    items = ["I1", "I2", "I3", "I4", "I5"]
+    x = np.array([[i in t for i in items] for t in HAN.values()])
+    got = count_itemsets(x, np.zeros(len(x), dtype=int), n_classes=1, min_count=2, max_len=3)
+    found = {tuple(items[i] for i in s): int(c) for s, c in zip(got.itemsets, got.totals)}
+    book = {
+        ("I1",): 6, ("I2",): 7, ("I3",): 6, ("I4",): 2, ("I5",): 2,
+        ("I1", "I2"): 4, ("I1", "I3"): 4, ("I1", "I5"): 2, ("I2", "I3"): 4, ("I2", "I4"): 2, ("I2", "I5"): 2,
+        ("I1", "I2", "I3"): 2, ("I1", "I2", "I5"): 2,
+    }
+    assert found == book
+    ref = apriori(pd.DataFrame(x, columns=items), min_support=2 / 9 - 1e-9, use_colnames=True)
+    assert {tuple(sorted(s)): round(v * 9) for s, v in zip(ref["itemsets"], ref["support"])} == book
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_bitset_engine_equals_mlxtend_fpgrowth_with_all_metrics(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    n = 600
+    table = pd.DataFrame(rng.random((n, 12)) < rng.uniform(0.05, 0.5, 12), columns=[f"c{i}" for i in range(12)])
+    classes = pd.Series(np.where(table["c1"] & table["c2"] & (rng.random(n) < 0.7), "x", rng.choice(["y", "z", "w"], n)))
+    ours = mine_rules(table, classes, min_support=0.01, max_len=3, min_lift=0.0)
+    ref = mine_rules(table, classes, min_support=0.01, max_len=3, min_lift=0.0, engine="mlxtend")
+    key = ["class", "concepts"]
+    a, b = ours.rules.set_index(key).sort_index(), ref.rules.set_index(key).sort_index()
+    assert a.index.equals(b.index) and (a["size"] == 3).sum() > 5
+    pd.testing.assert_frame_equal(a.drop(columns=["rank"]), b.drop(columns=["rank"]))
+    # Every metric against mlxtend's own association_rules on the one-hot table.
+    onehot = pd.concat([table, pd.get_dummies(classes).add_prefix("k=")], axis=1).astype(bool)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        assoc = association_rules(fpgrowth(onehot, min_support=0.01, use_colnames=True, max_len=4), num_itemsets=n, metric="confidence", min_threshold=0.0)
+    assoc = assoc[assoc["consequents"].map(lambda s: len(s) == 1 and next(iter(s)).startswith("k=")) & assoc["antecedents"].map(lambda s: not any(i.startswith("k=") for i in s))]
+    for r in assoc.itertuples():
+        mine = a.loc[(next(iter(r.consequents))[2:], " & ".join(sorted(r.antecedents)))]
+        assert (mine["support"], mine["confidence"], mine["lift"], mine["leverage"]) == pytest.approx((r.support, r.confidence, r.lift, r.leverage))
+        assert mine["conviction"] == pytest.approx(r.conviction) if np.isfinite(r.conviction) else np.isinf(mine["conviction"])
+
+
+def test_fisher_and_benjamini_hochberg_match_scipy_and_statsmodels() -> None:
+    from scipy.stats import fisher_exact
+    from statsmodels.stats.multitest import multipletests
+
+    from analysis.rules import benjamini_hochberg, fisher_greater
+
+    rng = np.random.default_rng(4)
+    for trial in range(80):
+        n = int(rng.integers(20, 400)) if trial < 50 else int(rng.integers(10_000, 1_000_000))
+        n_y, n_x = int(rng.integers(1, n)), int(rng.integers(1, n))
+        lo, hi = max(0, n_x + n_y - n), min(n_x, n_y)
+        n_xy = int(rng.integers(lo, hi + 1))
+        table = [[n_xy, n_x - n_xy], [n_y - n_xy, n - n_x - n_y + n_xy]]
+        assert fisher_greater([n_xy], [n_x], [n_y], n)[0] == pytest.approx(fisher_exact(table, alternative="greater")[1], rel=1e-9, abs=1e-300)
+    p = rng.random(200) ** 3
+    np.testing.assert_allclose(benjamini_hochberg(p), multipletests(p, method="fdr_bh")[1])
+    # Benjamini & Hochberg (1995), the worked example of 15 p-values (recalled from memory): at
+    # q = 0.05 the step-up procedure rejects the four smallest, where Bonferroni rejects three.
+    bh95 = [0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459, 0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1.000]
+    assert int((benjamini_hochberg(bh95) <= 0.05).sum()) == 4
+    assert int((np.array(bh95) * 15 <= 0.05).sum()) == 3
+
+
+def test_pruning_drops_sets_that_add_no_confidence() -> None:
+    # "tag" alone already means "can"; "tag & belt" adds nothing and goes; "rim & tab" beats both parts and stays.
+    rows = [("can", {"tag", "belt"})] * 10 + [("can", {"tag"})] * 10 + [("bottle", {"belt"})] * 20 + [("can", {"rim", "tab"})] * 8
+    rows += [("bottle", {"rim"})] * 8 + [("carton", {"tab"})] * 8
+    concepts = ["tag", "belt", "rim", "tab"]
+    table = pd.DataFrame([[c in s for c in concepts] for _, s in rows], columns=concepts)
+    classes = pd.Series([k for k, _ in rows])
+    full = mine_rules(table, classes, min_support=0.05, max_len=2, min_lift=0.0)
+    pruned = mine_rules(table, classes, min_support=0.05, max_len=2, min_lift=0.0, prune=True)
+    gone = set(zip(full.rules["class"], full.rules["concepts"])) - set(zip(pruned.rules["class"], pruned.rules["concepts"]))
+    assert ("can", "belt & tag") in gone and ("can", "rim & tab") not in gone
+    assert pruned.pruned == len(gone) and pruned.n_tested == full.n_tested
+
+
+def test_saliency_share_is_the_mass_on_regions_carrying_the_set() -> None:
+    from scipy import sparse
+
+    from analysis.rules import RegionMass
+
+    table = pd.DataFrame({"tag": [True, True, False], "cap": [True, False, True]})
+    classes = pd.Series(["can", "can", "bottle"])
+    # Image 0: tag region 0.6 and cap region 0.3; image 1: tag region 0.8; image 2: cap region 0.5.
+    mass = RegionMass(np.array([0, 0, 1, 2]), np.array([0.6, 0.3, 0.8, 0.5]), sparse.csc_matrix(np.array([[1, 0], [0, 1], [1, 0], [0, 1]], dtype=bool)))
+    rules = mine_rules(table, classes, min_support=0.1, max_len=2, min_lift=0.0, saliency=mass).rules.set_index(["class", "concepts"])
+    assert rules.loc[("can", "tag"), "saliency_share"] == pytest.approx((0.6 + 0.8) / 2)
+    assert rules.loc[("can", "cap & tag"), "saliency_share"] == pytest.approx(0.9)
