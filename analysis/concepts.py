@@ -7,8 +7,6 @@ import unicodedata
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-import pandas as pd
-
 from .errors import InvalidInputError
 from .synonyms import SynonymRules
 
@@ -88,23 +86,6 @@ def main_entity(j: Judgment, *, rules: SynonymRules | None = None, cls: str | No
         if e:
             return e
     return NOTHING
-
-
-def concept_table(image_regions: dict[int, Sequence[int]], region_concepts: dict[int, dict[str, float]]) -> pd.DataFrame:
-    """Image-by-concept boolean table: an image has a concept if any of its regions carries it.
-
-    ``image_regions`` maps every image to its regions (an image with none gets an all-False row).
-    """
-    if not image_regions:
-        raise InvalidInputError("no images given; run saliency and collect labels first.")
-    concepts = sorted({c for cs in region_concepts.values() for c in cs})
-    rows = {
-        image: {c: any(c in region_concepts.get(r, {}) for r in regions) for c in concepts}
-        for image, regions in image_regions.items()
-    }
-    table = pd.DataFrame.from_dict(rows, orient="index", columns=concepts).astype(bool)
-    table.index.name = "image_id"
-    return table.sort_index()
 
 
 MAX_ENTITIES = 10

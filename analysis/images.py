@@ -118,3 +118,16 @@ def to_model_input(
     m = torch.tensor(mean, dtype=torch.float32).view(1, 3, 1, 1)
     s = torch.tensor(std, dtype=torch.float32).view(1, 3, 1, 1)
     return (batch - m) / s
+
+
+def thumbnail_png(path: Path, *, side: int = 160) -> bytes:
+    """PNG bytes of the image scaled so its longer side is ``side`` (nearest neighbour when enlarging small images)."""
+    import io
+
+    image = read_rgb(path)
+    scale = side / max(image.size)
+    resample = Image.NEAREST if scale >= 1 else Image.BILINEAR
+    small = image.resize((max(1, round(image.width * scale)), max(1, round(image.height * scale))), resample)
+    buf = io.BytesIO()
+    small.save(buf, format="PNG")
+    return buf.getvalue()

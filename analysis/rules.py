@@ -51,6 +51,7 @@ class RegionMass:
     region_image: npt.NDArray[np.int64]  # (regions,) row position of the region's image in the table
     mass: npt.NDArray[np.float64]  # (regions,) share of the image's saliency inside the region
     carries: sparse.csc_matrix  # (regions, concepts) bool, concepts in table column order
+    ids: npt.NDArray[np.int64] | None = None  # (regions,) the regions' own ids, where known
 
 
 def support_count(min_support: float, n: int) -> int:

@@ -12,6 +12,7 @@ import pandas as pd
 
 from analysis.errors import AnalysisError
 from analysis.reliability import METHODS
+from analysis.exports import rules_document
 from analysis.rules import mine_rules, to_csv
 
 from .errors import AppError
@@ -67,9 +68,15 @@ def _parser() -> argparse.ArgumentParser:
     r = sub.add_parser("rules", help="concept rules from a 0/1 table (rows images, one column per concept)")
     r.add_argument("table", type=Path)
     r.add_argument("--target", required=True, help="column holding each image's class")
-    r.add_argument("--min-support", type=float, default=0.02)
-    r.add_argument("--max-len", type=int, default=2)
+    r.add_argument("--min-support", type=float, default=0.02, help="fraction of all images holding the set and the class")
+    r.add_argument("--min-count", type=int, default=1, help="fewest images holding the set and the class")
+    r.add_argument("--max-len", type=int, default=2, help="most concepts in a rule")
+    r.add_argument("--min-lift", type=float, default=1.0)
+    r.add_argument("--prune", action="store_true", help="drop rules whose set adds no confidence over a subset")
     r.add_argument("--json", action="store_true")
+    from .cli_analysis import add_parsers
+
+    add_parsers(sub)
     g = sub.add_parser("agreement", help="agreement among annotators from a LABELS.csv (item,annotator,label)")
     g.add_argument("labels", type=Path)
     g.add_argument("--bootstrap", type=int, default=1000, metavar="N", help="resamples for alpha's 95%% interval (0 = none)")
@@ -204,9 +211,10 @@ def _rules(args: argparse.Namespace) -> int:
     bad = [c for c in concepts.columns if not concepts[c].isin([0, 1, True, False]).all()]
     if bad:
         raise AppError(f"concept columns must hold only 0/1; {bad[:5]} do not. Drop or recode them.")
-    table = mine_rules(concepts.astype(bool), frame[args.target].astype(str), min_support=args.min_support, max_len=args.max_len)
+    table = mine_rules(concepts.astype(bool), frame[args.target].astype(str), min_support=args.min_support, max_len=args.max_len,
+                       min_count=args.min_count, min_lift=args.min_lift, prune=args.prune)
     if args.json:
-        print(json.dumps({"n_images": table.n_images, "min_support": table.min_support, "rules": table.rules.to_dict("records")}, indent=2))
+        print(json.dumps(rules_document(table, source=str(args.table), target=args.target), indent=2))
     else:
         sys.stdout.write(to_csv(table.rules))
     return 0
@@ -296,6 +304,10 @@ def main(argv: list[str] | None = None) -> int:
             return _invite(args)
         elif args.command == "checks":
             return _checks(args)
+        elif args.command in ("ask", "check", "export", "report"):
+            from . import cli_analysis
+
+            return int(getattr(cli_analysis, args.command)(args))
         elif args.command == "rules":
             return _rules(args)
         elif args.command == "agreement":

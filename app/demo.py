@@ -114,8 +114,8 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
     }
     if annotators:
         with factory() as s:
-            res = store.compute_results(s, campaigns.get_campaign(s, campaign_id), min_support=min_support)
-        rules = res.rules.rules
+            res = store.compute_results(s, campaigns.get_campaign(s, campaign_id))
+        rules = res.table.rules(min_support=min_support).rules
         (out / "rules.csv").write_text(to_csv(rules), encoding="utf-8")
         if cue_info:
             mine = rules[(rules["class"] == cue_info["class"]) & (rules["concepts"] == cue_info["concept"])]

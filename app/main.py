@@ -32,6 +32,7 @@ def create_app(settings: Settings) -> FastAPI:
         app.state.sessions = session_factory(engine)
         app.state.writers = lazy_write_factory(engine)
         app.state.write_lock = asyncio.Lock()
+        app.state.results_cache = {}
         with write_session(app.state.sessions) as s:
             app.state.key = project_key(s)
         yield

@@ -6,7 +6,7 @@ import pytest
 import torch
 
 from analysis.architectures import SorterCNN
-from analysis.images import find_images
+from analysis.images import find_images, read_rgb, to_model_input
 from analysis.model_io import LoadedModel, Sidecar, prepare_model
 from app.db import make_engine, session_factory
 from app.jobs import register_images, run_saliency
@@ -28,11 +28,27 @@ def tiny_model() -> LoadedModel:
 
 
 @pytest.fixture()
-def project(tmp_path: Path, small_scenes: Path, tiny_model: LoadedModel) -> Path:
+def varied_model(tiny_model: LoadedModel, small_scenes: Path) -> LoadedModel:
+    """The tiny model with its output layer centred and sharpened on the test scenes, so that it
+    predicts every class, with confidences spread out (an untrained model says "bottle" to all)."""
+    records = find_images(small_scenes / "manifest.csv")
+    x = to_model_input([read_rgb(r.path) for r in records], size=(64, 64), mean=(0.4, 0.4, 0.4), std=(0.2, 0.2, 0.2))
+    last = [m for m in tiny_model.module.modules() if isinstance(m, torch.nn.Linear)][-1]
+    with torch.no_grad():
+        logits = tiny_model.module(x)
+        last.bias -= logits.mean(0)
+        spread = float((logits - logits.mean(0)).std())
+        last.weight *= 2.0 / spread
+        last.bias *= 2.0 / spread
+    return tiny_model
+
+
+@pytest.fixture()
+def project(tmp_path: Path, small_scenes: Path, varied_model: LoadedModel) -> Path:
     proj = tmp_path / "project"
     engine = make_engine(proj)
     factory = session_factory(engine)
     register_images(factory, find_images(small_scenes / "manifest.csv"))
-    run_saliency(factory, proj, tiny_model, progress=None)
+    run_saliency(factory, proj, varied_model, progress=None)
     engine.dispose()
     return proj

@@ -33,7 +33,25 @@ def test_headless_demo_finds_the_injected_cue(demo_out: Path) -> None:
     assert summary["accuracy"]["counterfactual"] < summary["accuracy"]["test"] - 0.2  # the model learned the cue
     assert summary["cue_rule"]["rank"] <= 3 and summary["cue_rule"]["lift"] > 1.5
     header = (demo_out / "rules.csv").read_text().splitlines()[0].split(",")
-    assert header[:6] == ["class", "concepts", "support", "confidence", "lift", "n_images"]
+    assert header[:7] == ["class", "concepts", "size", "n_images", "support", "confidence", "lift"]
+
+
+@pytest.mark.slow
+def test_questions_expectations_exports_and_report_on_the_demo(demo_out: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    project = str(demo_out / "project")
+    assert main(["ask", project, "tag and not cap", "--json"]) == 0
+    answer = json.loads(capsys.readouterr().out)
+    assert answer["by_class"][0]["cls"] == "can" and answer["by_class"][0]["q_value"] < 0.001  # tagged images are called cans
+    (tmp_path / "exp.toml").write_text('[classes.can]\nrelies_on = ["rim"]\nmust_not_rely_on = ["tag"]\n[classes.carton]\nmust_not_rely_on = ["tag"]\n')
+    assert main(["check", project, str(tmp_path / "exp.toml"), "--fail-on-violation"]) == 3
+    out = capsys.readouterr().out
+    assert "[violated] can must not rely on tag" in out and "[met] carton must not rely on tag" in out
+    assert main(["export", project, "--what", "concepts", "--format", "json", "--out", str(tmp_path / "c.json")]) == 0
+    rows = json.loads((tmp_path / "c.json").read_text())["rows"]
+    assert {"concept: tag", "saliency share: tag", "correct"} <= set(rows[0])
+    assert main(["report", project, "--out", str(tmp_path / "r.html")]) == 0
+    html = (tmp_path / "r.html").read_text()
+    assert "evidence for a human review" in html and html.count("data:image/png;base64,") > 5
 
 
 @pytest.mark.slow

@@ -10,12 +10,13 @@ from fastapi import APIRouter
 from fastapi.responses import FileResponse, Response
 
 from analysis.errors import ImageInputError
-from analysis.images import read_rgb
+from analysis.images import read_rgb, thumbnail_png
 from analysis.regions import Region, saliency_overlay
 
 from .. import store
-from ..deps import SessionDep, SettingsDep, ViewerDep
+from ..deps import ReviewerDep, SessionDep, SettingsDep, ViewerDep
 from ..errors import NotFoundError
+from ..models import ImageRow
 
 router = APIRouter()
 _CACHE = {"Cache-Control": "private, max-age=3600"}
@@ -54,3 +55,15 @@ def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep, viewer:
     buf = io.BytesIO()
     saliency_overlay(image, saliency, box).save(buf, format="PNG")
     return Response(buf.getvalue(), media_type="image/png", headers=_CACHE)
+
+
+@router.get("/api/images/{image_id}/thumb.png")
+def image_thumb(image_id: int, s: SessionDep, viewer: ReviewerDep) -> Response:
+    """A small view of a whole image (reviewers and up)."""
+    row = s.get(ImageRow, image_id)
+    if row is None:
+        raise NotFoundError(f"image {image_id} does not exist.")
+    try:
+        return Response(thumbnail_png(Path(row.path)), media_type="image/png", headers=_CACHE)
+    except ImageInputError as exc:
+        raise NotFoundError(f"image {image_id} cannot be read: {exc}") from None

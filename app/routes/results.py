@@ -1,61 +1,123 @@
-"""What the labels say: rules per class, agreement, the synonym editor and the exports."""
+"""What the labels say: rules per class, questions, expectations, confident errors, class comparison,
+agreement, the synonym editor, exports and the report."""
 
 from __future__ import annotations
 
+from dataclasses import replace
 from typing import Annotated
 from urllib.parse import urlencode
 
 import pandas as pd
-
-from fastapi import APIRouter, Form, Request
+from fastapi import APIRouter, Form, Query, Request
 from fastapi.responses import PlainTextResponse, RedirectResponse, Response
 
 from analysis.agreement_report import agreement_report
+from analysis.compare import compare_classes
+from analysis.concept_table import TARGETS
 from analysis.concept_votes import estimate_concepts, presence_agreement, presence_votes
+from analysis.confident_errors import confident_errors
+from analysis.errors import InvalidInputError
+from analysis.expectations import check_expectations, read_expectations
+from analysis.exports import FORMATS, export_frame, rules_document
+from analysis.plots import frequency_plot, lift_plot
+from analysis.questions import QuestionError, answer_question, rule_question
 from analysis.rules import to_csv
 from analysis.synonyms import suggest_merges
 
 from .. import campaigns, store
 from ..deps import AnalystDep, CsrfDep, ReviewerDep, SessionDep, SettingsDep, WriteSessionDep
 from ..errors import InvalidRequestError, NotFoundError
+from ..report import build_report
 from .common import render
 
 router = APIRouter()
+MEDIA = {"csv": "text/csv", "json": "application/json", "parquet": "application/vnd.apache.parquet"}
 
 
-def _csv(text: str, name: str) -> PlainTextResponse:
-    return PlainTextResponse(text, media_type="text/csv", headers={"Content-Disposition": f"attachment; filename={name}"})
+def results_for(request: Request, s: SessionDep, campaign_id: int) -> store.Results:
+    """The campaign's concept table, computed once per state of its labels and rules."""
+    c = campaigns.get_campaign(s, campaign_id)
+    key = store.labels_version(s, campaign_id)
+    cache: dict[tuple[object, ...], store.Results] = request.app.state.results_cache
+    if key not in cache:
+        if len(cache) >= 16:
+            cache.pop(next(iter(cache)))
+        cache[key] = store.compute_results(s, c)
+    return replace(cache[key], campaign=c)  # the table is cached; the campaign's text fields are read fresh
+
+
+def _target(target: str) -> str:
+    if target not in TARGETS:
+        raise InvalidRequestError(f"target must be one of {', '.join(TARGETS)}; got {target!r}.")
+    return target
+
+
+def _rules(res: store.Results, settings: SettingsDep, target: str, max_len: int, min_support: float | None, prune: bool):  # type: ignore[no-untyped-def]
+    if not 1 <= max_len <= 4:
+        raise InvalidRequestError(f"max_len must be 1-4 concepts; got {max_len}.")
+    try:
+        return res.table.rules(target=_target(target), min_support=min_support or settings.min_support, max_len=max_len, prune=prune)  # type: ignore[arg-type]
+    except InvalidInputError as exc:
+        raise InvalidRequestError(str(exc)) from None
 
 
 @router.get("/campaigns/{campaign_id}/results")
-def results(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep) -> Response:
-    """Per-class concept rules from the campaign's labels so far."""
-    c = campaigns.get_campaign(s, campaign_id)
-    res = store.compute_results(s, c, min_support=settings.min_support)
-    rules = res.rules.rules
-    by_class = {k: g.head(15).to_dict("records") for k, g in rules.groupby("class")} if not rules.empty else {}
-    context = {"campaign": c, "by_class": by_class, "n_images": res.rules.n_images, "n_regions": res.n_labelled_regions,
-               "min_support": settings.min_support, "method": res.method}
+def results(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep, target: str = "predicted",
+            max_len: int = 2, min_support: float | None = None, prune: bool = True) -> Response:
+    """Per-class concept rules with significance, for the predicted class, the true class or the errors."""
+    res = results_for(request, s, campaign_id)
+    rules = _rules(res, settings, target, max_len, min_support, prune)
+    frame = rules.rules.assign(question=rules.rules["concepts"].map(rule_question))
+    by_class = {k: g.head(15).to_dict("records") for k, g in frame.groupby("class")} if not frame.empty else {}
+    context = {"campaign": res.campaign, "by_class": by_class, "table": res.table, "rules": rules, "n_regions": res.n_labelled_regions,
+               "target": target, "targets": TARGETS, "max_len": max_len, "prune": prune, "query": urlencode({"target": target, "max_len": max_len})}
     return render(request, "results.html", context, viewer=viewer)
 
 
-@router.get("/campaigns/{campaign_id}/exports/rules.csv", response_class=PlainTextResponse)
-def export_rules(campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep) -> PlainTextResponse:
-    """Per-class concept rules as CSV."""
-    res = store.compute_results(s, campaigns.get_campaign(s, campaign_id), min_support=settings.min_support)
-    return _csv(to_csv(res.rules.rules), f"rules-campaign-{campaign_id}.csv")
+@router.get("/campaigns/{campaign_id}/plots/{kind}.png")
+def plot(request: Request, campaign_id: int, kind: str, s: SessionDep, viewer: ReviewerDep, target: str = "predicted") -> Response:
+    """Concept frequency or lift per class, as a PNG heat map."""
+    if kind not in ("frequency", "lift"):
+        raise NotFoundError(f"no plot called {kind!r}; there are frequency and lift.")
+    table = results_for(request, s, campaign_id).table
+    png = (frequency_plot if kind == "frequency" else lift_plot)(table, _target(target))  # type: ignore[arg-type]
+    return Response(png, media_type="image/png")
 
 
-@router.get("/campaigns/{campaign_id}/exports/concepts.csv", response_class=PlainTextResponse)
-def export_concepts(campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep) -> PlainTextResponse:
-    """The image-by-concept table as CSV (0/1 per concept); the aggregation method is a column."""
-    res = store.compute_results(s, campaigns.get_campaign(s, campaign_id), min_support=settings.min_support)
-    frame = res.concepts.reset_index()
-    for col in frame.columns:
-        if frame[col].dtype == bool:
-            frame[col] = frame[col].astype(int)
-    frame.insert(1, "aggregation", res.method)
-    return _csv(to_csv(frame), f"concepts-campaign-{campaign_id}.csv")
+@router.get("/campaigns/{campaign_id}/exports/rules.{fmt}")
+def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep, target: str = "predicted",
+                 max_len: int = 2, min_support: float | None = None, prune: bool = True) -> Response:
+    """The rule table as CSV, JSON or Parquet."""
+    res = results_for(request, s, campaign_id)
+    rules = _rules(res, settings, target, max_len, min_support, prune)
+    about = {"campaign": res.campaign.name, "target": target, "aggregation": res.method}
+    if fmt == "json":
+        import json
+
+        body = json.dumps(rules_document(rules, **about), indent=1).encode()
+    else:
+        body = _export(rules.rules, fmt, about)
+    return Response(body, media_type=MEDIA.get(fmt, "application/octet-stream"),
+                    headers={"Content-Disposition": f"attachment; filename=rules-campaign-{campaign_id}-{target}.{fmt}"})
+
+
+def _export(frame: pd.DataFrame, fmt: str, about: dict[str, object]) -> bytes:
+    if fmt not in FORMATS:
+        raise NotFoundError(f"no export as {fmt!r}; choose {', '.join(FORMATS)}.")
+    try:
+        return export_frame(frame, fmt, about=about)
+    except InvalidInputError as exc:
+        raise InvalidRequestError(str(exc)) from None
+
+
+@router.get("/campaigns/{campaign_id}/exports/concepts.{fmt}")
+def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep, viewer: ReviewerDep) -> Response:
+    """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet."""
+    res = results_for(request, s, campaign_id)
+    frame = res.table.frame().reset_index()
+    body = _export(frame, fmt, {"campaign": res.campaign.name, "aggregation": res.method})
+    return Response(body, media_type=MEDIA.get(fmt, "application/octet-stream"),
+                    headers={"Content-Disposition": f"attachment; filename=concepts-campaign-{campaign_id}.{fmt}"})
 
 
 @router.get("/campaigns/{campaign_id}/exports/main-labels.csv", response_class=PlainTextResponse)
@@ -66,10 +128,97 @@ def export_main_labels(campaign_id: int, s: SessionDep, viewer: ReviewerDep) -> 
     found = campaigns.judgments(s, c.id)
     if not found:
         raise NotFoundError(f"campaign {c.name!r} has no labels yet.")
-    votes = presence_votes(found, rules=rules, region_class=campaigns.region_classes(s, c.id))
-    m = votes.main_entities
-    frame = pd.DataFrame({"item": [m.items[i] for i in m.item_codes], "annotator": [m.annotators[a] for a in m.annotator_codes], "label": [m.classes[y] for y in m.label_codes]})
-    return _csv(to_csv(frame), f"main-labels-campaign-{campaign_id}.csv")
+    m = presence_votes(found, rules=rules, region_class=campaigns.region_classes(s, c.id)).main_entities
+    frame = pd.DataFrame({"item": [m.items[i] for i in m.item_codes], "annotator": [m.annotators[a] for a in m.annotator_codes],
+                          "label": [m.classes[y] for y in m.label_codes]})
+    return PlainTextResponse(to_csv(frame), media_type="text/csv", headers={"Content-Disposition": f"attachment; filename=main-labels-campaign-{campaign_id}.csv"})
+
+
+@router.get("/campaigns/{campaign_id}/ask")
+def ask(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep, q: Annotated[str, Query(max_length=2000)] = "") -> Response:
+    """Ask which images match a combination of concepts, and how they fall per class."""
+    res = results_for(request, s, campaign_id)
+    answer, error, column = None, "", 0
+    if q.strip():
+        try:
+            answer = answer_question(q, res.table)
+        except QuestionError as exc:
+            error, column = exc.reason, exc.column
+    context = {"campaign": res.campaign, "q": q, "answer": answer, "error": error, "column": column, "concepts": res.table.concepts[:80],
+               "table": res.table}
+    return render(request, "ask.html", context, viewer=viewer, status_code=422 if error else 200)
+
+
+@router.get("/campaigns/{campaign_id}/expectations")
+def expectations(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep) -> Response:
+    """The team's expectations per class and whether the labels bear them out."""
+    res = results_for(request, s, campaign_id)
+    return _expectations_page(request, res, viewer, res.campaign.expectations)
+
+
+def _expectations_page(request: Request, res: store.Results, viewer: ReviewerDep, text: str, error: str = "", status_code: int = 200) -> Response:
+    verdicts = []
+    if text.strip() and not error:
+        try:
+            verdicts = check_expectations(read_expectations(text), res.table)
+        except InvalidInputError as exc:
+            error = str(exc)
+    context = {"campaign": res.campaign, "text": text, "verdicts": verdicts, "error": error, "table": res.table,
+               "classes": sorted(res.table.meta["predicted_class"].astype(str).unique())}
+    return render(request, "expectations.html", context, viewer=viewer, status_code=status_code)
+
+
+@router.post("/campaigns/{campaign_id}/expectations", dependencies=[CsrfDep])
+def save_expectations(request: Request, campaign_id: int, s: WriteSessionDep, viewer: AnalystDep, text: Annotated[str, Form(max_length=50_000)] = "") -> Response:
+    """Save the expectations after checking they read; a file with errors is shown back, not saved."""
+    res = results_for(request, s, campaign_id)
+    if text.strip():
+        try:
+            check_expectations(read_expectations(text), res.table)
+        except InvalidInputError as exc:
+            return _expectations_page(request, res, viewer, text, error=str(exc), status_code=422)
+    campaigns.update_campaign(s, campaign_id, expectations=text)
+    return RedirectResponse(f"/campaigns/{campaign_id}/expectations", status_code=303)
+
+
+@router.get("/campaigns/{campaign_id}/errors")
+def errors(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep, threshold: float = 0.8) -> Response:
+    """Wrong predictions made with high confidence, grouped, with the concepts that set them apart."""
+    res = results_for(request, s, campaign_id)
+    try:
+        found = confident_errors(res.table, threshold=threshold)
+    except InvalidInputError as exc:
+        raise InvalidRequestError(str(exc)) from None
+    return render(request, "errors.html", {"campaign": res.campaign, "found": found, "table": res.table}, viewer=viewer)
+
+
+@router.get("/campaigns/{campaign_id}/compare")
+def compare(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep, a: str = "", b: str = "",
+            target: str = "predicted") -> Response:
+    """Two classes side by side: what sets each apart, what they share, their top rules."""
+    res = results_for(request, s, campaign_id)
+    classes = sorted(res.table.targets(_target(target)).unique())  # type: ignore[arg-type]
+    a = a or (classes[0] if classes else "")
+    b = b or (classes[1] if len(classes) > 1 else "")
+    comparison, top = None, {}
+    if a and b:
+        try:
+            comparison = compare_classes(res.table, a, b, target=target)  # type: ignore[arg-type]
+        except InvalidInputError as exc:
+            raise InvalidRequestError(str(exc)) from None
+        frame = _rules(res, settings, target, 2, None, True).rules
+        top = {k: frame[frame["class"] == k].head(8).to_dict("records") for k in (a, b)}
+    context = {"campaign": res.campaign, "comparison": comparison, "classes": classes, "a": a, "b": b, "target": target, "targets": TARGETS,
+               "top": top, "table": res.table}
+    return render(request, "compare.html", context, viewer=viewer)
+
+
+@router.get("/campaigns/{campaign_id}/report.html")
+def report(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep) -> Response:
+    """A self-contained HTML report (images and plots inline) that opens offline."""
+    res = results_for(request, s, campaign_id)
+    html = build_report(request.app.state.templates, s, settings, res)
+    return Response(html, media_type="text/html", headers={"Content-Disposition": f"attachment; filename=heedmap-report-campaign-{campaign_id}.html"})
 
 
 @router.get("/campaigns/{campaign_id}/agreement")
@@ -81,12 +230,12 @@ def agreement(request: Request, campaign_id: int, s: SessionDep, viewer: Reviewe
     if not found:
         raise NotFoundError(f"campaign {c.name!r} has no labels yet; agreement needs regions labelled by two or more people.")
     votes = presence_votes(found, rules=rules, region_class=campaigns.region_classes(s, c.id))
-    report = agreement_report(votes.main_entities, n_boot=500, top_disputed=12)
+    report_ = agreement_report(votes.main_entities, n_boot=500, top_disputed=12)
     concepts = presence_agreement(votes, n_boot=200)[:40]
     ds = estimate_concepts(votes, method="dawid-skene")
     progress = {p.name: p for p in campaigns.campaign_progress(s, c)[0]}
     reliability = {name: (float(ds.sensitivity[k]), float(ds.specificity[k])) for k, name in enumerate(votes.annotators)}
-    context = {"campaign": c, "report": report, "concepts": concepts, "reliability": reliability, "progress": progress}
+    context = {"campaign": c, "report": report_, "concepts": concepts, "reliability": reliability, "progress": progress}
     return render(request, "agreement.html", context, viewer=viewer)
 
 
@@ -106,7 +255,7 @@ def synonyms(request: Request, campaign_id: int, s: SessionDep, viewer: Reviewer
 
 @router.post("/campaigns/{campaign_id}/synonyms", dependencies=[CsrfDep])
 def add_synonym(
-    request: Request, campaign_id: int, s: WriteSessionDep, viewer: AnalystDep,
+    campaign_id: int, s: WriteSessionDep, viewer: AnalystDep,
     kind: Annotated[str, Form()], source: Annotated[str, Form(max_length=60)], target: Annotated[str, Form(max_length=60)] = "",
     targets: Annotated[str, Form(max_length=600)] = "",
 ) -> Response:

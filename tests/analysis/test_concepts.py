@@ -3,7 +3,9 @@ from __future__ import annotations
 import pytest
 
 from analysis.concept_votes import estimate_concepts, presence_votes
-from analysis.concepts import Judgment, concept_table, normalise_label, parse_label_text
+from analysis.concept_table import build_concept_table
+from analysis.concepts import Judgment, normalise_label, parse_label_text
+import pandas as pd
 from analysis.errors import InvalidInputError
 
 
@@ -27,5 +29,8 @@ def test_majority_needs_more_than_half() -> None:
     got = estimate_concepts(presence_votes(js), method="majority").region_concepts()
     assert got[1] == {"cap": pytest.approx(2 / 3)}
     assert got[2] == {}
-    table = concept_table({10: [1], 11: [2], 12: []}, got)
-    assert table.loc[10, "cap"] and not table.loc[11, "cap"] and not table.loc[12].any()
+    meta = pd.DataFrame({"true_class": ["can"] * 3, "predicted_class": ["can", "can", "bottle"], "confidence": 0.9, "split": "test"}, index=[10, 11, 12])
+    table = build_concept_table(meta, {10: [1], 11: [2], 12: []}, {1: 0.7, 2: 0.4}, got, method="majority")
+    presence = table.presence
+    assert presence.loc[10, "cap"] and not presence.loc[11, "cap"] and not presence.loc[12].any()
+    assert table.share.loc[10, "cap"] == 0.7 and table.meta["correct"].tolist() == [True, True, False]

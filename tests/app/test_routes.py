@@ -181,30 +181,90 @@ def test_admin_makes_campaigns_invites_and_check_items(client: TestClient, campa
     assert client.get(link.group(0).replace("http://testserver", "")).status_code == 403
 
 
-def test_results_agreement_synonyms_and_exports(client: TestClient, campaign_id: int) -> None:
+def _label_everything(client: TestClient, campaign_id: int) -> None:
+    """Two annotators label every region: p says "lid" where q says "cap" on half of them; both name the tag on cans."""
     for who in ("p", "q"):
         csrf = join(client, who)
         h = {"X-CSRF-Token": csrf}
         while (nxt := client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]) is not None:
-            # p says "lid" where q says "cap"; both name the tag on cans; a formula-looking label for the rest.
-            entity = ("tag" if nxt["predicted"] == "can" else "=SUM(A1)") if who == "q" or nxt["region_id"] % 2 else ("lid" if who == "p" else "cap")
-            body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": entity}]}
+            if nxt["region_id"] % 2:
+                entities = [{"entity": "tag"}] if nxt["predicted"] == "can" else [{"entity": "=SUM(A1)"}, {"entity": "rim"}]
+            else:
+                entities = [{"entity": "lid" if who == "p" else "cap", "attributes": ["red"]}]
+            body = {"client_id": uuid.uuid4().hex, "entities": entities}
             assert client.post(f"/api/campaigns/{campaign_id}/regions/{nxt['region_id']}/labels", json=body, headers=h).status_code == 201
-    csrf = join(client, "ana", role="analyst")
-    r = client.get(f"/campaigns/{campaign_id}/results")
+
+
+def test_results_exports_and_report(client: TestClient, campaign_id: int) -> None:
+    _label_everything(client, campaign_id)
+    join(client, "rev", role="reviewer")
+    base = f"/campaigns/{campaign_id}"
+    r = client.get(f"{base}/results")
     assert r.template.name == "results.html" and "evidence for a human review" in r.text  # type: ignore[attr-defined]
-    rules = client.get(f"/campaigns/{campaign_id}/exports/rules.csv").text
-    assert rules.startswith("class,concepts,support,confidence,lift,n_images") and not re.search(r"(^|,)=SUM", rules, re.M)
-    concepts = client.get(f"/campaigns/{campaign_id}/exports/concepts.csv").text.splitlines()
-    assert concepts[0].startswith("image_id,aggregation,true_class") and concepts[1].split(",")[1] == "majority"
-    main = client.get(f"/campaigns/{campaign_id}/exports/main-labels.csv").text
-    assert main.startswith("item,annotator,label")
+    assert set(r.context["by_class"]) <= {"bottle", "can", "carton"} and r.context["rules"].n_tested > 0  # type: ignore[attr-defined]
+    errors_view = client.get(f"{base}/results", params={"target": "errors"})
+    assert errors_view.status_code == 200 and all(" -> " in k for k in errors_view.context["by_class"])  # type: ignore[attr-defined]
+    assert client.get(f"{base}/results", params={"target": "nope"}).status_code == 422
+    rules = client.get(f"{base}/exports/rules.csv").text
+    assert rules.startswith("class,concepts,size,n_images,support,confidence,lift,leverage,conviction") and not re.search(r"(^|,)[=+@-]", rules, re.M)
+    doc = client.get(f"{base}/exports/rules.json").json()
+    assert doc["aggregation"] == "majority" and doc["n_tested"] >= len(doc["rules"]) > 0 and {"p_value", "q_value"} <= set(doc["rules"][0])
+    concepts = client.get(f"{base}/exports/concepts.csv").text.splitlines()
+    assert concepts[0].startswith("image_id,aggregation,true_class,predicted_class,confidence,correct,split,concept: ")
+    assert "saliency share: " in concepts[0] and concepts[1].split(",")[1] == "majority"
+    assert client.get(f"{base}/exports/concepts.json").json()["rows"]
+    parquet = client.get(f"{base}/exports/concepts.parquet")
+    try:
+        import pyarrow  # noqa: F401
+
+        assert parquet.status_code == 200 and parquet.content[:4] == b"PAR1"
+    except ImportError:
+        assert parquet.status_code == 422 and "pyarrow" in parquet.text
+    assert client.get(f"{base}/exports/concepts.xlsx").status_code == 404
+    assert client.get(f"{base}/exports/main-labels.csv").text.startswith("item,annotator,label")
+    assert client.get(f"{base}/plots/frequency.png").content[:4] == b"\x89PNG"
+    report = client.get(f"{base}/report.html")
+    assert report.status_code == 200 and "attachment" in report.headers["content-disposition"]
+    assert "evidence for a human review" in report.text and "data:image/png;base64," in report.text
+    assert not re.search(r'(src|href)="(?!data:)', report.text)  # self-contained: nothing to fetch
+
+
+def test_ask_expectations_errors_and_compare(client: TestClient, campaign_id: int) -> None:
+    _label_everything(client, campaign_id)
+    csrf = join(client, "ana", role="analyst")
+    base = f"/campaigns/{campaign_id}"
+    good = client.get(f"{base}/ask", params={"q": 'rim or (rim and not "sum(a1")'})
+    assert good.status_code == 200 and good.context["answer"].n_matching > 0  # type: ignore[attr-defined]
+    bad = client.get(f"{base}/ask", params={"q": "rim or (tag"})
+    assert bad.status_code == 422 and bad.context["column"] == 12 and "close the" in bad.text  # type: ignore[attr-defined]
+    toml = '[classes.can]\nmust_not_rely_on = ["tag"]\nrelies_on = ["rim"]\n'
+    assert client.post(f"{base}/expectations", data={"csrf": csrf, "text": toml}).status_code == 200
+    page = client.get(f"{base}/expectations")
+    assert page.context["text"] == toml and len(page.context["verdicts"]) == 2  # type: ignore[attr-defined]
+    broken = client.post(f"{base}/expectations", data={"csrf": csrf, "text": "[classes.can]\nrelies_on = ['rim and']"})
+    assert broken.status_code == 422 and "classes.can.relies_on" in broken.text and "rim and" in broken.text
+    assert client.get(f"{base}/expectations").context["text"] == toml  # the bad file was not saved  # type: ignore[attr-defined]
+    errors = client.get(f"{base}/errors", params={"threshold": 0.0})
+    assert errors.status_code == 200 and errors.context["found"].n_confident == errors.context["found"].n_errors  # type: ignore[attr-defined]
+    assert client.get(f"{base}/errors", params={"threshold": 3}).status_code == 422
+    cmp = client.get(f"{base}/compare", params={"a": "bottle", "b": "carton"})
+    assert cmp.status_code == 200 and cmp.context["comparison"].n_a > 0  # type: ignore[attr-defined]
+    assert client.get(f"{base}/compare", params={"a": "bottle", "b": "bottle"}).status_code == 422
+    join(client, "viewer", role="reviewer")
+    assert client.post(f"{base}/expectations", data={"csrf": csrf, "text": ""}).status_code == 403
+
+
+def test_agreement_and_synonym_editor(client: TestClient, campaign_id: int) -> None:
+    _label_everything(client, campaign_id)
+    csrf = join(client, "ana", role="analyst")
     agreement = client.get(f"/campaigns/{campaign_id}/agreement")
     assert agreement.context["report"].alpha is not None and "Krippendorff" in agreement.text  # type: ignore[attr-defined]
     r = client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "Lids", "target": "cap"})
     page = client.get(f"/campaigns/{campaign_id}/synonyms")
     assert [(x.source, x.target) for x in page.context["rules"]] == [("lid", "cap")]  # type: ignore[attr-defined]
     assert "lid" not in dict(page.context["counts"])  # type: ignore[attr-defined]
+    # The merge reaches the results: "red cap" now has both annotators behind it.
+    assert "red cap" in client.get(f"/campaigns/{campaign_id}/exports/concepts.csv").text.splitlines()[0]
     loop = client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "cap", "target": "lid"})
     assert loop.status_code == 200 and "form a loop" in loop.text  # shown on the editor; the rule is not kept
     assert len(loop.context["rules"]) == 1  # type: ignore[attr-defined]

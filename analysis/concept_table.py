@@ -1,0 +1,137 @@
+"""The image-by-concept table: each image's classes and confidence, which concepts its regions carry,
+and how much of its saliency lies on them."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+import pandas as pd
+from scipy import sparse
+
+from .errors import InvalidInputError
+from .rules import RegionMass, RuleTable, mine_rules
+
+Target = Literal["predicted", "true", "errors"]
+TARGETS: tuple[Target, ...] = ("predicted", "true", "errors")
+META_COLUMNS = ["true_class", "predicted_class", "confidence", "correct", "split"]
+CORRECT = "correct"
+
+
+@dataclass(frozen=True)
+class ConceptTable:
+    """One row per image (index: image id).
+
+    ``meta`` holds META_COLUMNS; ``presence`` says whether any of the image's regions carries each
+    concept; ``share`` is the share of the image's saliency mass on regions carrying it (0..1).
+    ``method`` and ``threshold`` record how region labels became concepts.
+    """
+
+    meta: pd.DataFrame
+    presence: pd.DataFrame
+    share: pd.DataFrame
+    regions: RegionMass
+    method: str
+    threshold: float
+
+    @property
+    def concepts(self) -> list[str]:
+        return list(self.presence.columns)
+
+    def __len__(self) -> int:
+        return len(self.meta)
+
+    def targets(self, target: Target) -> pd.Series:
+        """The class each image counts under: predicted, true, or for errors "true -> predicted" (others "correct")."""
+        if target == "predicted":
+            return self.meta["predicted_class"].astype(str)
+        if target == "true":
+            return self.meta["true_class"].astype(str)
+        if target == "errors":
+            label = self.meta["true_class"].astype(str) + " -> " + self.meta["predicted_class"].astype(str)
+            return label.where(~self.meta["correct"], CORRECT)
+        raise InvalidInputError(f"target must be one of {', '.join(TARGETS)}; got {target!r}.")
+
+    def rules(self, *, target: Target = "predicted", min_support: float = 0.02, max_len: int = 2, min_lift: float = 1.0,
+              min_count: int = 1, prune: bool = True) -> RuleTable:
+        """Concept rules for the chosen target, with each rule's saliency share; "correct" is not a target class."""
+        rules = mine_rules(self.presence, self.targets(target), min_support=min_support, max_len=max_len, min_lift=min_lift,
+                           min_count=min_count, prune=prune, saliency=self.regions)
+        if target == "errors":
+            kept = rules.rules[rules.rules["class"] != CORRECT].reset_index(drop=True)
+            return RuleTable(kept, rules.n_images, rules.min_support, rules.max_len, rules.min_count, rules.n_tested, rules.pruned)
+        return rules
+
+    def example_regions(self, concepts: Sequence[str], rows: pd.Series, *, limit: int = 6) -> list[int]:
+        """Ids of regions carrying any of ``concepts`` in the images where ``rows`` is true, most salient first."""
+        if self.regions.ids is None or not concepts:
+            return []
+        cols = [self.presence.columns.get_loc(c) for c in concepts if c in self.presence.columns]
+        on = np.asarray(self.regions.carries[:, cols].sum(axis=1)).ravel() > 0
+        on &= rows.to_numpy(dtype=bool)[self.regions.region_image]
+        picked = np.nonzero(on)[0]
+        picked = picked[np.argsort(-self.regions.mass[picked], kind="stable")][:limit]
+        return [int(self.regions.ids[i]) for i in picked]
+
+    def frame(self) -> pd.DataFrame:
+        """A flat export: meta, then "concept: X" (0/1) and "saliency share: X" per concept, and the method."""
+        out = self.meta.copy()
+        out.insert(0, "aggregation", self.method)
+        presence = self.presence.astype(int).add_prefix("concept: ")
+        share = self.share.round(4).add_prefix("saliency share: ")
+        return pd.concat([out, presence, share], axis=1)
+
+
+def build_concept_table(
+    meta: pd.DataFrame,
+    image_regions: Mapping[int, Sequence[int]],
+    region_mass: Mapping[int, float],
+    region_concepts: Mapping[int, Mapping[str, float]],
+    *,
+    method: str,
+    threshold: float = 0.5,
+) -> ConceptTable:
+    """Assemble the table from per-image regions, each region's saliency share and its concepts.
+
+    Parameters
+    ----------
+    meta
+        Indexed by image id, with true_class, predicted_class, confidence and split.
+    image_regions
+        Every image's regions (an image with none gets no concept).
+    region_mass
+        Share of its image's saliency inside each region.
+    region_concepts
+        Concepts present per region (from aggregation).
+    """
+    missing = [c for c in ("true_class", "predicted_class", "confidence", "split") if c not in meta.columns]
+    if missing:
+        raise InvalidInputError(f"image metadata lacks {missing}.")
+    if len(meta) == 0:
+        raise InvalidInputError("no images given; run saliency and collect labels first.")
+    meta = meta[["true_class", "predicted_class", "confidence", "split"]].copy()
+    meta["correct"] = meta["true_class"].astype(str) == meta["predicted_class"].astype(str)
+    meta = meta[META_COLUMNS]
+    concepts = sorted({c for image in meta.index for r in image_regions.get(image, ()) for c in region_concepts.get(r, {})})
+    col = {c: j for j, c in enumerate(concepts)}
+    row = {image: i for i, image in enumerate(meta.index)}
+    r_image, r_mass, r_rows, r_cols, r_ids = [], [], [], [], []
+    for image in meta.index:
+        for r in image_regions.get(image, ()):
+            k = len(r_image)
+            r_ids.append(int(r))
+            r_image.append(row[image])
+            r_mass.append(float(region_mass.get(r, 0.0)))
+            for c in region_concepts.get(r, {}):
+                r_rows.append(k)
+                r_cols.append(col[c])
+    carries = sparse.csc_matrix((np.ones(len(r_rows), dtype=bool), (r_rows, r_cols)), shape=(len(r_image), len(concepts)))
+    regions = RegionMass(np.array(r_image, dtype=np.int64), np.array(r_mass, dtype=np.float64), carries, np.array(r_ids, dtype=np.int64))
+    to_image = sparse.csr_matrix((np.ones(len(r_image)), (r_image, np.arange(len(r_image)))), shape=(len(meta), len(r_image)))
+    share = to_image @ sparse.csr_matrix(carries.multiply(np.array(r_mass)[:, None]))
+    count = to_image @ carries.astype(np.float64)
+    presence = pd.DataFrame(count.toarray() > 0, index=meta.index, columns=concepts)
+    share_frame = pd.DataFrame(np.asarray(share.todense()).clip(0, 1), index=meta.index, columns=concepts)
+    return ConceptTable(meta, presence, share_frame, regions, method, threshold)

@@ -1,0 +1,121 @@
+"""Command-line answers over a project folder: ask, check, export and report (the campaign's results)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from analysis.exports import FORMATS, export_frame, rules_document
+from analysis.expectations import check_expectations, read_expectations, verdict_counts
+from analysis.questions import answer_question
+
+from . import campaigns, store
+from .db import make_engine, session_factory
+from .errors import AppError
+from .settings import get_settings
+
+
+def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    def project(p: argparse.ArgumentParser) -> None:
+        p.add_argument("project", type=Path)
+        p.add_argument("--campaign", type=int, default=None, help="campaign id (default: the latest)")
+
+    a = sub.add_parser("ask", help='which images show a combination of concepts, e.g. \'tag and not "label band"\'')
+    project(a)
+    a.add_argument("question")
+    a.add_argument("--json", action="store_true")
+    c = sub.add_parser("check", help="check a TOML file of expectations (per class: relies_on, must_not_rely_on)")
+    project(c)
+    c.add_argument("expectations", type=Path)
+    c.add_argument("--json", action="store_true")
+    c.add_argument("--fail-on-violation", action="store_true", help="exit 3 when an expectation is violated (for release gates)")
+    e = sub.add_parser("export", help="write the rule table or the concept table as CSV, JSON or Parquet")
+    project(e)
+    e.add_argument("--what", choices=["rules", "concepts"], default="rules")
+    e.add_argument("--format", choices=list(FORMATS), default="csv")
+    e.add_argument("--target", choices=["predicted", "true", "errors"], default="predicted")
+    e.add_argument("--max-len", type=int, default=2)
+    e.add_argument("--out", type=Path, required=True)
+    r = sub.add_parser("report", help="write the self-contained HTML report")
+    project(r)
+    r.add_argument("--out", type=Path, required=True)
+
+
+def _results(args: argparse.Namespace) -> tuple[store.Results, object]:
+    if not (Path(args.project) / "heedmap.db").is_file():
+        raise AppError(f"{args.project} is not a heedmap project (no heedmap.db); run 'heedmap saliency' or 'heedmap demo' first.")
+    engine = make_engine(args.project)
+    factory = session_factory(engine)
+    with factory() as s:
+        found = campaigns.list_campaigns(s)
+        if not found:
+            raise AppError(f"{args.project} has no campaign yet; create one with 'heedmap campaign'.")
+        if args.campaign is None:
+            c = found[-1]
+        else:
+            c = campaigns.get_campaign(s, args.campaign)
+        res = store.compute_results(s, c)
+    return res, factory
+
+
+def ask(args: argparse.Namespace) -> int:
+    res, _ = _results(args)
+    ans = answer_question(args.question, res.table)
+    if args.json:
+        doc = {**{k: v for k, v in ans.__dict__.items() if k != "by_class"}, "by_class": [a.__dict__ for a in ans.by_class]}
+        print(json.dumps(doc, indent=1))
+        return 0
+    print(f"{ans.question}: {ans.n_matching} of {ans.n_images} images")
+    print("predicted class, class images, matching, coverage, confidence, lift, q")
+    for a in ans.by_class:
+        print(f"{a.cls}, {a.class_images}, {a.matching}, {a.coverage:.2f}, {a.confidence:.2f}, {a.lift:.2f}, {a.q_value:.3g}")
+    return 0
+
+
+def check(args: argparse.Namespace) -> int:
+    try:
+        text = args.expectations.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise AppError(f"cannot read {args.expectations}: {exc}") from None
+    expectations = read_expectations(text, source=str(args.expectations))
+    res, _ = _results(args)
+    verdicts = check_expectations(expectations, res.table)
+    if args.json:
+        print(json.dumps([{**v.__dict__, "expectation": v.expectation.__dict__} for v in verdicts], indent=1))
+    else:
+        for v in verdicts:
+            print(f"[{v.verdict}] {v.expectation.cls} {v.expectation.kind.replace('_', ' ')} {v.expectation.question}: {v.reason}")
+        print(", ".join(f"{n} {k}" for k, n in verdict_counts(verdicts).items()))
+        print("A concept audit is evidence for a human review, not a certification.", file=sys.stderr)
+    violated = any(v.verdict == "violated" for v in verdicts)
+    return 3 if violated and args.fail_on_violation else 0
+
+
+def export(args: argparse.Namespace) -> int:
+    res, _ = _results(args)
+    about = {"campaign": res.campaign.name, "aggregation": res.method}
+    if args.what == "rules":
+        rules = res.table.rules(target=args.target, min_support=get_settings().min_support, max_len=args.max_len)
+        body = json.dumps(rules_document(rules, target=args.target, **about), indent=1).encode() if args.format == "json" else export_frame(rules.rules, args.format, about=about)
+    else:
+        body = export_frame(res.table.frame().reset_index(), args.format, about=about)
+    args.out.write_bytes(body)
+    print(f"wrote {args.out}")
+    return 0
+
+
+def report(args: argparse.Namespace) -> int:
+    from fastapi.templating import Jinja2Templates
+
+    from .main import UI_DIR
+    from .report import build_report
+
+    res, factory = _results(args)
+    settings = get_settings(project_dir=args.project)
+    with factory() as s:  # type: ignore[operator]
+        html = build_report(Jinja2Templates(directory=str(UI_DIR / "templates")), s, settings, res)
+    args.out.write_text(html, encoding="utf-8")
+    print(f"wrote {args.out}")
+    return 0
