@@ -14,6 +14,7 @@ from .errors import InvalidInputError
 
 PolicyName = Literal["fraction_of_max", "mass"]
 OUTLINE_COLOUR = (255, 0, 170)
+_EIGHT = np.ones((3, 3), dtype=int)  # 8-connectivity
 
 
 @dataclass(frozen=True)
@@ -90,18 +91,18 @@ def extract_regions(
     total = float(saliency.sum(dtype=np.float64))
     if total <= 0 or not mask.any():
         return [], labels
-    components, n = ndimage.label(mask, structure=np.ones((3, 3), dtype=int))
-    index = np.arange(1, n + 1)
-    masses = np.asarray(ndimage.sum(saliency, components, index), dtype=np.float64)
-    areas = np.asarray(ndimage.sum(np.ones_like(saliency), components, index), dtype=np.int64)
+    components, n = ndimage.label(mask, structure=_EIGHT)
+    flat = components.ravel()
+    masses = np.bincount(flat, weights=saliency.ravel(), minlength=n + 1)[1:]
+    areas = np.bincount(flat, minlength=n + 1)[1:]
     order = [i for i in np.argsort(-masses, kind="stable") if areas[i] >= min_area][:max_regions]
     slices = ndimage.find_objects(components)
     regions = []
     for rank, i in enumerate(order):
         sl = slices[i]
-        comp = components == i + 1
-        peak = np.unravel_index(int(np.argmax(np.where(comp, saliency, -1.0))), saliency.shape)
-        labels[comp] = rank + 1
+        comp = components[sl] == i + 1  # only within the component's box
+        local = np.unravel_index(int(np.argmax(np.where(comp, saliency[sl], -1.0))), comp.shape)
+        labels[sl][comp] = rank + 1
         regions.append(
             Region(
                 rank=rank,
@@ -111,8 +112,8 @@ def extract_regions(
                 y1=int(sl[0].stop),
                 area=int(areas[i]),
                 mass_share=float(masses[i] / total),
-                peak_x=int(peak[1]),
-                peak_y=int(peak[0]),
+                peak_x=int(sl[1].start + local[1]),
+                peak_y=int(sl[0].start + local[0]),
             )
         )
     return regions, labels

@@ -32,6 +32,7 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--cue", choices=["tag", "belt", "object", "none"], default="tag")
     d.add_argument("--seed", type=int, default=0)
     d.add_argument("--port", type=int, default=None)
+    d.add_argument("--aggregation", choices=list(METHODS), default="majority", help="how the simulated labels become concepts")
     s = sub.add_parser("saliency", help="predict, Grad-CAM and regions for an image set (resumable)")
     s.add_argument("project", type=Path)
     s.add_argument("--model", type=Path, required=True)
@@ -277,7 +278,7 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "demo":
             from .demo import run_demo
 
-            summary = run_demo(args.out, size=args.size, cue=args.cue, seed=args.seed, annotators=args.simulate_annotators)
+            summary = run_demo(args.out, size=args.size, cue=args.cue, seed=args.seed, annotators=args.simulate_annotators, method=args.aggregation)
             print(json.dumps(summary, indent=2))
             print(f"wrote {args.out / 'demo.json'}" + (f" and {args.out / 'rules.csv'}" if args.simulate_annotators else ""))
             if not args.no_serve:

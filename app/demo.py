@@ -11,11 +11,12 @@ import numpy as np
 from PIL import Image
 from sqlalchemy import select
 
+from analysis.evaluation import PointingGame, pointing_game
 from analysis.images import find_images
 from analysis.model_io import load_model
 from analysis.rules import to_csv
 from demo_data.annotators import demo_crowd, simulate_label, visible_parts
-from demo_data.scenes import CUE_CONCEPTS, CueName, SceneConfig, generate_dataset, load_scenes
+from demo_data.scenes import CUE_CONCEPTS, PARTS, CueName, SceneConfig, generate_dataset, load_scenes
 from demo_data.train import train_demo_model
 
 from . import campaigns, store
@@ -74,8 +75,9 @@ DEMO_INSTRUCTIONS = """Name what you see inside the highlighted region of a sort
 Add attributes after a colon, e.g. "cap: red; label band: torn, white"."""
 
 
-def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: int = 0, annotators: int = 3, min_support: float = 0.02) -> dict[str, object]:
-    """Run the demo headless into ``out``; returns what demo.json holds."""
+def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: int = 0, annotators: int = 3, min_support: float = 0.02,
+             method: str = "majority") -> dict[str, object]:
+    """Run the demo headless into ``out``; returns what demo.json holds. ``method`` aggregates the labels."""
     timings: dict[str, float] = {}
     t = time.perf_counter()
     sz = SIZES[size]
@@ -99,13 +101,15 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
     with write_session(factory) as s:
         found = s.scalar(select(Campaign.id).where(Campaign.name == "demo"))
         # Simulated people give each region their labels; two more places are left for real ones.
-        campaign_id = found or campaigns.create_campaign(s, name="demo", run_id=report.run_id, labels_per_region=annotators + 2, instructions=DEMO_INSTRUCTIONS)
+        campaign_id = found or campaigns.create_campaign(s, name="demo", run_id=report.run_id, labels_per_region=annotators + 2,
+                                                          instructions=DEMO_INSTRUCTIONS, method=method)
     n_labels = simulate_annotations(factory, project, data_root, campaign_id, annotators, seed) if annotators else 0
     timings["annotate_s"] = time.perf_counter() - t
     t = time.perf_counter()
     cue_info = {"class": config.cue_class, "concept": CUE_CONCEPTS[cue]} if cue != "none" else None
     summary: dict[str, object] = {
         "injected_cue": cue_info,
+        "aggregation": method,
         "accuracy": {"test": trained.accuracy["test"], "counterfactual": trained.accuracy["counterfactual"], "train": trained.accuracy["train"]},
         "images_audited": report.processed + report.already_done,
         "regions": report.regions,
@@ -125,3 +129,19 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
     (out / "demo.json").write_text(json.dumps(summary, indent=2), encoding="utf-8")
     engine.dispose()
     return summary
+
+
+def demo_pointing_game(out: Path, *, tolerance: int = 2) -> PointingGame:
+    """Pointing game of the demo run's stored maps on the generated part masks (any part but the belt)."""
+    data_root = out / "data"
+    scenes = load_scenes(data_root)["scenes"]
+    engine = make_engine(out / "project")
+    with session_factory(engine)() as s:
+        rows = s.execute(select(Prediction.map_path, ImageRow.path).join(ImageRow, ImageRow.id == Prediction.image_id).order_by(ImageRow.id)).all()
+    engine.dispose()
+    maps, masks = [], []
+    for map_path, path in rows:
+        scene = scenes[Path(path).relative_to(data_root.resolve()).as_posix()]  # type: ignore[index]
+        maps.append(np.load(out / "project" / map_path).astype(np.float32))
+        masks.append(np.asarray(Image.open(data_root / scene["mask"])) != PARTS.index("belt"))
+    return pointing_game(np.stack(maps), np.stack(masks), tolerance=tolerance)

@@ -152,3 +152,12 @@ def test_saliency_share_is_the_mass_on_regions_carrying_the_set() -> None:
     rules = mine_rules(table, classes, min_support=0.1, max_len=2, min_lift=0.0, saliency=mass).rules.set_index(["class", "concepts"])
     assert rules.loc[("can", "tag"), "saliency_share"] == pytest.approx((0.6 + 0.8) / 2)
     assert rules.loc[("can", "cap & tag"), "saliency_share"] == pytest.approx(0.9)
+
+
+def test_wilson_lower_bound_matches_statsmodels() -> None:
+    from statsmodels.stats.proportion import proportion_confint
+
+    from analysis.rules import wilson_lower
+
+    for k, n in [(50, 50), (6, 6), (68, 74), (0, 10), (3, 1000)]:
+        assert wilson_lower([k], [n])[0] == pytest.approx(proportion_confint(k, n, alpha=0.05, method="wilson")[0])

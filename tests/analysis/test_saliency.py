@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 import torch
 import torch.nn.functional as F
@@ -108,3 +109,39 @@ def test_empty_map_is_flagged() -> None:
             p.zero_()
     out = compute_saliency(prepare_model(model, SIDECAR), torch.randn(2, 3, 32, 32))
     assert out.empty.all() and (out.maps == 0).all()
+
+
+@pytest.mark.parametrize("arch", ["sorter_cnn", "resnet18"])
+def test_single_pass_equals_captum_layergradcam(arch: str) -> None:
+    # The reference is captum's LayerGradCam (ReLU on, bilinear upsampling), run after a separate prediction.
+    from analysis.architectures import build_architecture
+
+    torch.manual_seed(5)
+    model = build_architecture(arch, 3).eval()
+    layer = "features" if arch == "sorter_cnn" else "layer4"
+    sidecar = Sidecar(**{**SIDECAR.__dict__, "target_layer": layer, "input_size": (64, 64)})
+    loaded = prepare_model(model, sidecar)
+    x = torch.randn(4, 3, 64, 64, generator=torch.Generator().manual_seed(6))
+    ours = compute_saliency(loaded, x)
+    ref = compute_saliency(loaded, x, implementation="captum")
+    assert ours.predicted.tolist() == ref.predicted.tolist()
+    np.testing.assert_allclose(ours.probabilities, ref.probabilities, rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(ours.maps, ref.maps, rtol=1e-4, atol=1e-6 * max(1.0, float(ref.maps.max())))
+
+
+class _InplaceAfter(nn.Module):
+    def __init__(self) -> None:
+        super().__init__()
+        self.features = nn.Conv2d(3, 4, 3, padding=1)
+        self.fc = nn.Linear(4, 3)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        f = self.features(x)
+        f.relu_()  # overwrites the target layer's output
+        return self.fc(f.mean((2, 3)))
+
+
+def test_inplace_after_target_layer_is_a_clear_error() -> None:
+    loaded = prepare_model(_InplaceAfter(), SIDECAR)
+    with pytest.raises(GradientUnavailableError, match="in-place"):
+        compute_saliency(loaded, torch.randn(2, 3, 32, 32))

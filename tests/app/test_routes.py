@@ -206,7 +206,7 @@ def test_results_exports_and_report(client: TestClient, campaign_id: int) -> Non
     assert errors_view.status_code == 200 and all(" -> " in k for k in errors_view.context["by_class"])  # type: ignore[attr-defined]
     assert client.get(f"{base}/results", params={"target": "nope"}).status_code == 422
     rules = client.get(f"{base}/exports/rules.csv").text
-    assert rules.startswith("class,concepts,size,n_images,support,confidence,lift,leverage,conviction") and not re.search(r"(^|,)[=+@-]", rules, re.M)
+    assert rules.startswith("class,concepts,size,n_images,support,confidence,confidence_low,lift,leverage,conviction") and not re.search(r"(^|,)[=+@-]", rules, re.M)
     doc = client.get(f"{base}/exports/rules.json").json()
     assert doc["aggregation"] == "majority" and doc["n_tested"] >= len(doc["rules"]) > 0 and {"p_value", "q_value"} <= set(doc["rules"][0])
     concepts = client.get(f"{base}/exports/concepts.csv").text.splitlines()
