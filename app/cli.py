@@ -305,7 +305,7 @@ def main(argv: list[str] | None = None) -> int:
             return _invite(args)
         elif args.command == "checks":
             return _checks(args)
-        elif args.command in ("ask", "check", "export", "report"):
+        elif args.command in ("ask", "check", "export", "report", "interventions"):
             from . import cli_analysis
 
             return int(getattr(cli_analysis, args.command)(args))

@@ -9,11 +9,13 @@ from pathlib import Path
 
 from analysis.exports import FORMATS, export_frame, rules_document
 from analysis.expectations import check_expectations, read_expectations, verdict_counts
+from analysis.interventions import FILLS
 from analysis.questions import answer_question
 
 from . import campaigns, store
 from .db import make_engine, session_factory
 from .errors import AppError
+from .reliance import Reliance, confirm_verdicts, model_for_run, rule_reliance
 from .settings import get_settings
 
 
@@ -41,6 +43,20 @@ def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
     r = sub.add_parser("report", help="write the self-contained HTML report")
     project(r)
     r.add_argument("--out", type=Path, required=True)
+    i = sub.add_parser("interventions", help="test rules by ablating and pasting their concepts (results kept per model version)")
+    project(i)
+    i.add_argument("--class", dest="cls", help="one class (with --concepts); default: the top rules of every class")
+    i.add_argument("--concepts", help="the rule's concepts, joined by ' & ' as in the rule table, e.g. 'tag'")
+    i.add_argument("--top", type=int, default=3, help="rules per class to test when no class is given")
+    i.add_argument("--fill", choices=list(FILLS), default="blur", help="what covers an ablated region")
+    i.add_argument("--draws", type=int, default=5, help="matched random masks per image")
+    i.add_argument("--max-images", type=int, default=200)
+    i.add_argument("--seed", type=int, default=0)
+    i.add_argument("--model", type=Path, help="the model, if it moved since the saliency run")
+    i.add_argument("--sidecar", type=Path)
+    i.add_argument("--json", action="store_true")
+    c.add_argument("--model", type=Path, help="the model, if it moved since the saliency run (to confirm violations)")
+    c.add_argument("--sidecar", type=Path)
 
 
 def _results(args: argparse.Namespace) -> tuple[store.Results, object]:
@@ -80,8 +96,17 @@ def check(args: argparse.Namespace) -> int:
     except OSError as exc:
         raise AppError(f"cannot read {args.expectations}: {exc}") from None
     expectations = read_expectations(text, source=str(args.expectations))
-    res, _ = _results(args)
+    res, factory = _results(args)
     verdicts = check_expectations(expectations, res.table)
+    if any(v.expectation.kind == "must_not_rely_on" and v.verdict == "violated" for v in verdicts):
+        # A violation of "must not rely on" stands only when an intervention confirms the reliance.
+        with factory() as s:  # type: ignore[operator]
+            model = model_for_run(s, res.campaign.run_id, args.model, args.sidecar)
+
+            def lookup(cls: str, concepts: list[str]) -> Reliance | None:
+                return rule_reliance(s, Path(args.project), res, model, cls, concepts, progress=True)
+
+            verdicts = confirm_verdicts(verdicts, lookup)
     if args.json:
         print(json.dumps([{**v.__dict__, "expectation": v.expectation.__dict__} for v in verdicts], indent=1))
     else:
@@ -118,4 +143,33 @@ def report(args: argparse.Namespace) -> int:
         html = build_report(Jinja2Templates(directory=str(UI_DIR / "templates")), s, settings, res)
     args.out.write_text(html, encoding="utf-8")
     print(f"wrote {args.out}")
+    return 0
+
+
+def interventions(args: argparse.Namespace) -> int:
+    res, factory = _results(args)
+    if (args.cls is None) != (args.concepts is None):
+        raise AppError("give --class and --concepts together, or neither (then the top rules of every class are tested).")
+    if args.cls:
+        todo = [(args.cls, [c.strip() for c in args.concepts.split("&") if c.strip()])]
+    else:
+        rules = res.table.rules(min_support=get_settings().min_support, max_len=2).rules
+        todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, g in rules.groupby("class") for _, r in g.head(args.top).iterrows()]
+    found = []
+    with factory() as s:  # type: ignore[operator]
+        model = model_for_run(s, res.campaign.run_id, args.model, args.sidecar)
+        for cls, concepts in todo:
+            r = rule_reliance(s, Path(args.project), res, model, cls, concepts, fill=args.fill, draws=args.draws, max_images=args.max_images,
+                              seed=args.seed, progress=not args.json)
+            found.append((cls, " & ".join(sorted(concepts)), r))
+    if args.json:
+        print(json.dumps([{"class": c, "concepts": k, "confirmed": r.confirmed if r else None, "ablation": r.ablation.to_json() if r else None,
+                           "insertion": r.insertion.to_json() if r and r.insertion else None} for c, k, r in found], indent=1))
+        return 0
+    for cls, name, r in found:
+        if r is None:
+            print(f"{cls} / {name}: fewer than two images to test")
+            continue
+        print(f"{cls} / {name}: {'relies on it (confirmed)' if r.confirmed else 'not confirmed'}")
+        print(f"  {r.evidence()}")
     return 0

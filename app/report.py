@@ -17,6 +17,7 @@ from analysis.images import thumbnail_png
 from analysis.plots import frequency_plot, lift_plot
 
 from .models import ImageRow, RegionRow, SaliencyRun
+from .reliance import cached_reliance, confirm_verdicts, with_reliance
 from .routes.common import CAUTION
 from .settings import Settings
 from .store import Results
@@ -36,7 +37,7 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
     """Render the report for a campaign's results; every image is embedded, nothing is fetched."""
     table = res.table
     rules = table.rules(min_support=settings.min_support, max_len=2)
-    frame = rules.rules
+    frame = with_reliance(Path(settings.project_dir), res, rules.rules)
     by_class = []
     for cls, group in frame.groupby("class"):
         top = group.head(10).to_dict("records")
@@ -47,7 +48,8 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
     verdicts, expectation_error = [], ""
     if res.campaign.expectations.strip():
         try:
-            verdicts = check_expectations(read_expectations(res.campaign.expectations), table)
+            project = Path(settings.project_dir)
+            verdicts = confirm_verdicts(check_expectations(read_expectations(res.campaign.expectations), table), lambda c, k: cached_reliance(project, res, c, k))
         except InvalidInputError as exc:
             expectation_error = str(exc)
     errors = confident_errors(table, threshold=threshold)

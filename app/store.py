@@ -71,6 +71,7 @@ class Results:
     campaign: CampaignInfo
     table: ConceptTable
     n_labelled_regions: int
+    model_sha256: str = ""  # of the run's model: interventions are kept per model version
 
     @property
     def method(self) -> str:
@@ -112,4 +113,5 @@ def compute_results(s: Session, campaign: CampaignInfo, *, method: Method | None
         raise NotFoundError("no image has all its regions labelled yet; label some more regions first.")
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
     table = build_concept_table(meta, {int(i): list(r) for i, r in complete["regions"].items()}, mass, region_concepts, method=str(method), threshold=threshold)
-    return Results(campaign, table, len(labelled))
+    run = s.get(SaliencyRun, campaign.run_id)
+    return Results(campaign, table, len(labelled), str((run.provenance or {}).get("model_sha256", "")) if run else "")

@@ -4,6 +4,7 @@ agreement, the synonym editor, exports and the report."""
 from __future__ import annotations
 
 from dataclasses import replace
+from pathlib import Path
 from typing import Annotated
 from urllib.parse import urlencode
 
@@ -25,6 +26,7 @@ from analysis.rules import to_csv
 from analysis.synonyms import suggest_merges
 
 from .. import campaigns, store
+from ..reliance import cached_reliance, confirm_verdicts, with_reliance
 from ..deps import AnalystDep, CsrfDep, ReviewerDep, SessionDep, SettingsDep, WriteSessionDep
 from ..errors import InvalidRequestError, NotFoundError
 from ..report import build_report
@@ -67,7 +69,7 @@ def results(request: Request, campaign_id: int, s: SessionDep, settings: Setting
     """Per-class concept rules with significance, for the predicted class, the true class or the errors."""
     res = results_for(request, s, campaign_id)
     rules = _rules(res, settings, target, max_len, min_support, prune)
-    frame = rules.rules.assign(question=rules.rules["concepts"].map(rule_question))
+    frame = with_reliance(Path(settings.project_dir), res, rules.rules).assign(question=rules.rules["concepts"].map(rule_question))
     by_class = {k: g.head(15).to_dict("records") for k, g in frame.groupby("class")} if not frame.empty else {}
     context = {"campaign": res.campaign, "by_class": by_class, "table": res.table, "rules": rules, "n_regions": res.n_labelled_regions,
                "target": target, "targets": TARGETS, "max_len": max_len, "prune": prune, "query": urlencode({"target": target, "max_len": max_len})}
@@ -90,6 +92,7 @@ def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, se
     """The rule table as CSV, JSON or Parquet."""
     res = results_for(request, s, campaign_id)
     rules = _rules(res, settings, target, max_len, min_support, prune)
+    rules = replace(rules, rules=with_reliance(Path(settings.project_dir), res, rules.rules))
     about = {"campaign": res.campaign.name, "target": target, "aggregation": res.method}
     if fmt == "json":
         import json
@@ -160,7 +163,8 @@ def _expectations_page(request: Request, res: store.Results, viewer: ReviewerDep
     verdicts = []
     if text.strip() and not error:
         try:
-            verdicts = check_expectations(read_expectations(text), res.table)
+            project = Path(request.app.state.settings.project_dir)
+            verdicts = confirm_verdicts(check_expectations(read_expectations(text), res.table), lambda c, k: cached_reliance(project, res, c, k))
         except InvalidInputError as exc:
             error = str(exc)
     context = {"campaign": res.campaign, "text": text, "verdicts": verdicts, "error": error, "table": res.table,
@@ -207,7 +211,9 @@ def compare(request: Request, campaign_id: int, s: SessionDep, settings: Setting
         except InvalidInputError as exc:
             raise InvalidRequestError(str(exc)) from None
         frame = _rules(res, settings, target, 2, None, True).rules
-        top = {k: frame[frame["class"] == k].head(8).to_dict("records") for k in (a, b)}
+        frame = frame[frame["class"].isin([a, b])].groupby("class").head(8)
+        frame = with_reliance(Path(settings.project_dir), res, frame)
+        top = {k: frame[frame["class"] == k].to_dict("records") for k in (a, b)}
     context = {"campaign": res.campaign, "comparison": comparison, "classes": classes, "a": a, "b": b, "target": target, "targets": TARGETS,
                "top": top, "table": res.table}
     return render(request, "compare.html", context, viewer=viewer)
