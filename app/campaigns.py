@@ -177,6 +177,7 @@ def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n:
     q = (
         select(CampaignRegion.region_id)
         .where(CampaignRegion.campaign_id == c.id, CampaignRegion.n_labels < c.labels_per_region, CampaignRegion.check_answer.is_(None),
+               CampaignRegion.example_answer.is_(None),
                CampaignRegion.region_id.not_in(_seen(c.id, person_id, now)), CampaignRegion.n_labels + held_by_others < c.labels_per_region)
         .order_by(CampaignRegion.n_labels, CampaignRegion.region_id)
         .limit(n)
@@ -367,11 +368,33 @@ def check_answers(s: Session, campaign_id: int) -> dict[int, Judgment]:
 def set_check_answer(s: Session, *, campaign_id: int, region_id: int, entities: Entities | None) -> None:
     """Make a region a check item with this known answer ([] = nothing recognisable), or a normal one again (None)."""
     cr = _campaign_region(s, campaign_id, region_id)
+    if entities is not None and cr.example_answer is not None:
+        raise ConflictError(f"region {region_id} is an example shown with the instructions; it cannot be a check item too.")
     cr.check_answer = None if entities is None else [[e, a] for e, a in entities]
     s.flush()
     c = s.get(Campaign, campaign_id)
     if c is not None:
         c.n_checks = s.scalar(select(func.count(CampaignRegion.check_answer)).where(CampaignRegion.campaign_id == campaign_id)) or 0
+
+
+def set_example(s: Session, *, campaign_id: int, region_id: int, entities: Entities | None) -> None:
+    """Show a region with the instructions as an example with this answer, or stop showing it (None).
+
+    An example is never handed out as a task; a region cannot be an example and a check item at once.
+    """
+    cr = _campaign_region(s, campaign_id, region_id)
+    if entities is not None and cr.check_answer is not None:
+        raise ConflictError(f"region {region_id} is a check item; an example is shown to everyone, so make it a normal region first.")
+    if entities is not None and cr.n_labels:
+        raise ConflictError(f"region {region_id} has labels already; choose an unlabelled region as an example.")
+    cr.example_answer = None if entities is None else [[e, a] for e, a in entities]
+
+
+def examples(s: Session, campaign_id: int) -> list[tuple[int, str]]:
+    """(region id, answer text) of the campaign's examples."""
+    rows = s.execute(select(CampaignRegion.region_id, CampaignRegion.example_answer).where(
+        CampaignRegion.campaign_id == campaign_id, CampaignRegion.example_answer.is_not(None)).order_by(CampaignRegion.region_id))
+    return [(r, format_label_text([(e, list(a)) for e, a in _to_entities(ans)]) or "nothing recognisable") for r, ans in rows]
 
 
 def synonym_rules(s: Session, campaign_id: int) -> tuple[SynonymRules, list[tuple[str, str]]]:

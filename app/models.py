@@ -139,6 +139,8 @@ class CampaignRegion(Base):
     campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
     check_answer: Mapped[list[list[object]] | None] = mapped_column(JSON(none_as_null=True), nullable=True)
+    # An example shown with the instructions, with its answer; examples are never handed out as tasks.
+    example_answer: Mapped[list[list[object]] | None] = mapped_column(JSON(none_as_null=True), nullable=True)
     n_labels: Mapped[int] = mapped_column(Integer, default=0)  # kept with every label stored or undone
 
 

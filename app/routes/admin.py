@@ -91,11 +91,13 @@ def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: Ad
     annotators, classes = campaigns.campaign_progress(s, c)
     answers = {r: format_label_text([(e, list(a)) for e, a in j.entities]) for r, j in campaigns.check_answers(s, campaign_id).items()}
     # A sample of regions to pick check items from: a spread over the campaign, not only its start.
-    ids = list(s.scalars(select(CampaignRegion.region_id).where(CampaignRegion.campaign_id == campaign_id, CampaignRegion.check_answer.is_(None)).order_by(CampaignRegion.region_id)))
+    ids = list(s.scalars(select(CampaignRegion.region_id).where(CampaignRegion.campaign_id == campaign_id, CampaignRegion.check_answer.is_(None),
+                                                                 CampaignRegion.example_answer.is_(None)).order_by(CampaignRegion.region_id)))
     step = max(1, len(ids) // 24)
     sample = ids[::step][:24]
     preds = dict(s.execute(select(RegionRow.id, Prediction.predicted).join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(sample + list(answers)))).all())
     context = {"campaign": c, "annotators": annotators, "classes": classes, "answers": answers, "sample": sample, "predicted": preds,
+               "examples": campaigns.examples(s, campaign_id),
                "methods": METHODS, "careless_seconds": settings.careless_seconds}
     return render(request, "campaign_admin.html", context, viewer=viewer)
 
@@ -114,11 +116,14 @@ def campaign_settings(
 @router.post("/admin/campaigns/{campaign_id}/checks", dependencies=[CsrfDep])
 def set_check(
     campaign_id: int, s: WriteSessionDep, viewer: AdminDep, region_id: Annotated[int, Form()], answer: Annotated[str, Form()] = "",
-    nothing: Annotated[str, Form()] = "", clear: Annotated[str, Form()] = "",
+    nothing: Annotated[str, Form()] = "", clear: Annotated[str, Form()] = "", role: Annotated[str, Form()] = "check",
 ) -> Response:
-    """Make a region a check item with a known answer, or a normal region again."""
+    """Make a region a check item (or an example shown with the instructions) with a known answer, or a normal region again."""
+    if role not in ("check", "example"):
+        raise InvalidRequestError("a region can be made a check item or an example.")
+    setter = campaigns.set_check_answer if role == "check" else campaigns.set_example
     if clear:
-        campaigns.set_check_answer(s, campaign_id=campaign_id, region_id=region_id, entities=None)
+        setter(s, campaign_id=campaign_id, region_id=region_id, entities=None)
     else:
         try:
             entities = parse_label_text(answer)
@@ -126,7 +131,7 @@ def set_check(
             raise InvalidRequestError(str(exc)) from None
         if not entities and not nothing:
             raise InvalidRequestError("give the known answer (e.g. 'cap: red'), or tick nothing recognisable.")
-        campaigns.set_check_answer(s, campaign_id=campaign_id, region_id=region_id, entities=entities)
+        setter(s, campaign_id=campaign_id, region_id=region_id, entities=entities)
     return RedirectResponse(f"/admin/campaigns/{campaign_id}", status_code=303)
 
 

@@ -128,3 +128,14 @@ def test_check_items_come_unannounced_once_per_person(factory) -> None:  # type:
         annotators, _ = campaigns.campaign_progress(s, c)
     assert {x.name: x.check_items for x in annotators} == {"ann": 2, "bob": 2}
     assert all(x.check_score == 1.0 for x in annotators)  # "cap" names the known entity (attributes are not scored)
+
+
+def test_examples_are_shown_not_handed_out(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, k=1)
+    with write_session(factory) as s:
+        campaigns.set_example(s, campaign_id=c.id, region_id=3, entities=[("tag", ["yellow"])])
+        assert campaigns.examples(s, c.id) == [(3, "tag: yellow")]
+        with pytest.raises(ConflictError, match="example"):
+            campaigns.set_check_answer(s, campaign_id=c.id, region_id=3, entities=[("tag", [])])
+    done = _work(factory, c, _person(factory, "ann"))
+    assert 3 not in done and len(done) == c.n_regions - 1

@@ -174,6 +174,10 @@ def test_admin_makes_campaigns_invites_and_check_items(client: TestClient, campa
     assert page.context["answers"] == {2: "cap: red"}  # type: ignore[attr-defined]
     bad = client.post(f"/admin/campaigns/{campaign_id}/checks", data={"csrf": csrf, "region_id": "3", "answer": ""})
     assert bad.status_code == 422 and "known answer" in bad.text
+    client.post(f"/admin/campaigns/{campaign_id}/checks", data={"csrf": csrf, "region_id": "4", "answer": "tag: yellow", "role": "example"})
+    assert client.get(f"/admin/campaigns/{campaign_id}").context["examples"] == [(4, "tag: yellow")]  # type: ignore[attr-defined]
+    label_page = client.get(f"/campaigns/{campaign_id}/label")
+    assert "data-examples" in label_page.text and "/api/regions/4/crop.png" in label_page.text
     with client.app.state.sessions() as s:  # type: ignore[attr-defined]
         kim = s.scalar(select(Invite.id).order_by(Invite.id.desc()).limit(1))
     client.post(f"/admin/invites/{kim}/revoke", data={"csrf": csrf})
