@@ -99,6 +99,15 @@ def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float =
     return float(lo), float(hi)
 
 
+def alpha_with_interval(counts: npt.ArrayLike, *, n_boot: int = 1000, seed: int = 0) -> tuple[float | None, tuple[float, float] | None, str]:
+    """Alpha, its bootstrap interval (None when ``n_boot`` is 0) and, where alpha is undefined, why (else "")."""
+    try:
+        alpha = alpha_from_counts(counts)
+        return alpha, (alpha_bootstrap(counts, n_boot=n_boot, seed=seed) if n_boot else None), ""
+    except InvalidInputError as exc:
+        return None, None, str(exc)
+
+
 def fleiss_kappa(table: npt.ArrayLike) -> float:
     """Fleiss' kappa from an items x categories table of rating counts (same raters per item).
 

@@ -9,7 +9,7 @@ from typing import Any
 
 import numpy as np
 
-from .agreement import alpha_bootstrap, alpha_from_counts, cohen_kappa, fleiss_kappa
+from .agreement import alpha_with_interval, cohen_kappa, fleiss_kappa
 from .errors import InvalidInputError
 from .long_labels import LongLabels
 
@@ -95,14 +95,7 @@ def agreement_report(labels: LongLabels, *, n_boot: int = 1000, seed: int = 0, t
     counts = labels.counts().astype(float)
     m = counts.sum(axis=1)
     pairable = int((m >= 2).sum())
-    alpha: float | None = None
-    interval: tuple[float, float] | None = None
-    note = ""
-    try:
-        alpha = alpha_from_counts(counts)
-        interval = alpha_bootstrap(counts, n_boot=n_boot, seed=seed) if n_boot else None
-    except InvalidInputError as exc:
-        note = str(exc)
+    alpha, interval, note = alpha_with_interval(counts, n_boot=n_boot, seed=seed)
     fleiss, fleiss_note = _fleiss(counts)
     pairs = _pairs(labels, min_common) if pairwise else []
 

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 
-from .agreement import alpha_bootstrap, alpha_from_counts
+from .agreement import alpha_with_interval
 from .concepts import Judgment, judgment_concepts, main_entity, normalise_label
 from .errors import InvalidInputError
 from .long_labels import LongLabels
@@ -206,12 +206,6 @@ def presence_agreement(votes: PresenceVotes, *, concepts: Sequence[str] | None =
         np.add.at(yes, votes.pair_region[sel], yes_pair[sel])
         counts = np.column_stack([m - yes, yes])
         named = int((yes > 0).sum())
-        alpha = interval = None
-        note = ""
-        try:
-            alpha = alpha_from_counts(counts)
-            interval = alpha_bootstrap(counts, n_boot=n_boot, seed=seed) if n_boot else None
-        except InvalidInputError as exc:
-            note = str(exc)
+        alpha, interval, note = alpha_with_interval(counts, n_boot=n_boot, seed=seed)
         out.append(ConceptAgreement(votes.concepts[c], named, alpha, interval, note))
     return sorted(out, key=lambda a: (-a.regions_named, a.concept))

@@ -92,6 +92,17 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+def _read_text_csv(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
+    """A CSV read as text, with the columns it must have; errors name the file and what is missing."""
+    try:
+        frame = pd.read_csv(path, dtype=str, keep_default_na=False)
+    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
+        raise AppError(f"cannot read {path}: {exc}") from None
+    if not set(columns) <= set(frame.columns):
+        raise AppError(f"{path} needs the columns {','.join(columns)}; it has {list(frame.columns)}.")
+    return frame
+
+
 def _factory(project: Path):  # type: ignore[no-untyped-def]
     from .db import make_engine, session_factory
 
@@ -179,12 +190,7 @@ def _checks(args: argparse.Namespace) -> int:
     from .campaigns import set_check_answer
     from .db import write_session
 
-    try:
-        frame = pd.read_csv(args.file, dtype=str, keep_default_na=False)
-    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise AppError(f"cannot read {args.file}: {exc}") from None
-    if not {"region", "answer"} <= set(frame.columns):
-        raise AppError(f"{args.file} needs the columns region,answer; it has {list(frame.columns)}.")
+    frame = _read_text_csv(args.file, ("region", "answer"))
     parsed = []
     for line, (region, answer) in enumerate(zip(frame["region"], frame["answer"]), start=2):
         if not str(region).strip().isdigit():
@@ -250,12 +256,7 @@ def _aggregate(args: argparse.Namespace) -> int:
     labels = read_long_labels(args.labels)
     known: dict[str, str] = {}
     if args.known:
-        try:
-            gold = pd.read_csv(args.known, dtype=str, keep_default_na=False)
-        except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-            raise AppError(f"cannot read {args.known}: {exc}") from None
-        if not {"item", "label"} <= set(gold.columns):
-            raise AppError(f"{args.known} needs the columns item,label; it has {list(gold.columns)}.")
+        gold = _read_text_csv(args.known, ("item", "label"))
         known = {str(i).strip(): str(v).strip() for i, v in zip(gold["item"], gold["label"])}
     _, summary = aggregate_labels(labels, method=args.method, known=known, threshold=args.threshold)
     if args.json:

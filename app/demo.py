@@ -75,6 +75,12 @@ DEMO_INSTRUCTIONS = """Name what you see inside the highlighted region of a sort
 Add attributes after a colon, e.g. "cap: red; label band: torn, white"."""
 
 
+def names_cue(concepts: str, cue: str) -> bool:
+    """Whether a rule's concept set is the injected cue on its own, or the cue with an attribute:
+    "yellow tag" names the tag as well as "tag" does (but "belt" does not name the green belt)."""
+    return concepts == cue or (concepts.endswith(" " + cue) and " & " not in concepts)
+
+
 def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: int = 0, annotators: int = 3, min_support: float = 0.02,
              method: str = "majority") -> dict[str, object]:
     """Run the demo headless into ``out``; returns what demo.json holds. ``method`` aggregates the labels."""
@@ -122,8 +128,11 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
         rules = res.table.rules(min_support=min_support).rules
         (out / "rules.csv").write_text(to_csv(rules), encoding="utf-8")
         if cue_info:
-            mine = rules[(rules["class"] == cue_info["class"]) & (rules["concepts"] == cue_info["concept"])]
-            summary["cue_rule"] = None if mine.empty else {"rank": int(mine["rank"].iloc[0]), "lift": float(mine["lift"].iloc[0]), "confidence": float(mine["confidence"].iloc[0]), "n_images": int(mine["n_images"].iloc[0])}
+            mine = rules[(rules["class"] == cue_info["class"]) & rules["concepts"].map(lambda c: names_cue(str(c), str(cue_info["concept"])))]
+            summary["cue_rule"] = None if mine.empty else {
+                "rank": int(mine["rank"].iloc[0]), "concepts": str(mine["concepts"].iloc[0]), "lift": float(mine["lift"].iloc[0]),
+                "confidence": float(mine["confidence"].iloc[0]), "n_images": int(mine["n_images"].iloc[0]),
+            }
     timings["rules_s"] = time.perf_counter() - t
     summary["timings"] = {k: round(v, 2) for k, v in timings.items()}
     (out / "demo.json").write_text(json.dumps(summary, indent=2), encoding="utf-8")

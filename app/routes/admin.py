@@ -8,8 +8,7 @@ from fastapi import APIRouter, Form, Request
 from fastapi.responses import PlainTextResponse, RedirectResponse, Response
 from sqlalchemy import select
 
-from analysis.concepts import format_label_text, parse_label_text
-from analysis.errors import InvalidInputError
+from analysis.concepts import format_label_text
 from analysis.reliability import METHODS
 from analysis.rules import to_csv
 
@@ -18,6 +17,7 @@ from ..deps import AdminDep, CsrfDep, SessionDep, SettingsDep, WriteSessionDep
 from ..errors import AppError, InvalidRequestError
 from ..models import ROLES, CampaignRegion, Prediction, RegionRow, SaliencyRun, utcnow
 from .common import render
+from .labelling import parse_entities
 
 router = APIRouter()
 
@@ -125,13 +125,7 @@ def set_check(
     if clear:
         setter(s, campaign_id=campaign_id, region_id=region_id, entities=None)
     else:
-        try:
-            entities = parse_label_text(answer)
-        except InvalidInputError as exc:
-            raise InvalidRequestError(str(exc)) from None
-        if not entities and not nothing:
-            raise InvalidRequestError("give the known answer (e.g. 'cap: red'), or tick nothing recognisable.")
-        setter(s, campaign_id=campaign_id, region_id=region_id, entities=entities)
+        setter(s, campaign_id=campaign_id, region_id=region_id, entities=parse_entities(answer, bool(nothing)))
     return RedirectResponse(f"/admin/campaigns/{campaign_id}", status_code=303)
 
 

@@ -87,7 +87,8 @@ def campaign_for(s: Session, viewer: Viewer, campaign_id: int) -> CampaignInfo:
     return c
 
 
-def _entities(text: str, nothing: bool) -> list[tuple[str, list[str]]]:
+def parse_entities(text: str, nothing: bool) -> list[tuple[str, list[str]]]:
+    """The entities of a label typed as text, or [] for nothing recognisable; exactly one of the two."""
     try:
         entities = parse_label_text(text)
     except InvalidInputError as exc:
@@ -133,7 +134,7 @@ def submit_label(
     """Save the label and show the next region; bad input re-shows the form with the text and the message."""
     c = campaign_for(s, viewer, campaign_id)
     try:
-        entities = _entities(labels, bool(nothing))
+        entities = parse_entities(labels, bool(nothing))
         campaigns.save_label(s, campaign=c, region_id=region_id, person_id=viewer.person_id, entities=entities, unsure=bool(unsure),
                              client_id=client_id, seconds_spent=seconds_spent)
     except InvalidRequestError as exc:
@@ -174,7 +175,7 @@ def next_task(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Nex
 def create_label(campaign_id: int, region_id: int, body: LabelCreate, s: WriteSessionDep, viewer: AnnotatorDep) -> LabelResult:
     """Store your label of a region; a retried client_id stores nothing twice."""
     text = "; ".join(f"{e.entity}: {', '.join(e.attributes)}" for e in body.entities)
-    entities = _entities(text, body.nothing_recognisable)
+    entities = parse_entities(text, body.nothing_recognisable)
     stored = campaigns.save_label(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id,
                                   entities=entities, unsure=body.unsure, client_id=body.client_id, seconds_spent=body.seconds_spent)
     return LabelResult(stored=stored, region_id=region_id)

@@ -204,7 +204,7 @@ def compare(request: Request, campaign_id: int, s: SessionDep, settings: Setting
     classes = sorted(res.table.targets(_target(target)).unique())  # type: ignore[arg-type]
     a = a or (classes[0] if classes else "")
     b = b or (classes[1] if len(classes) > 1 else "")
-    comparison, top = None, {}
+    comparison, top, crops = None, {}, {}
     if a and b:
         try:
             comparison = compare_classes(res.table, a, b, target=target)  # type: ignore[arg-type]
@@ -214,8 +214,13 @@ def compare(request: Request, campaign_id: int, s: SessionDep, settings: Setting
         frame = frame[frame["class"].isin([a, b])].groupby("class").head(8)
         frame = with_reliance(Path(settings.project_dir), res, frame)
         top = {k: frame[frame["class"] == k].to_dict("records") for k in (a, b)}
+        classes_of = res.table.targets(target)  # type: ignore[arg-type]
+        crops = {
+            k: [(c.concept, res.table.example_regions([c.concept], classes_of == k, limit=4)) for c in distinct[:3]]
+            for k, distinct in ((a, comparison.distinct_a), (b, comparison.distinct_b))
+        }
     context = {"campaign": res.campaign, "comparison": comparison, "classes": classes, "a": a, "b": b, "target": target, "targets": TARGETS,
-               "top": top, "table": res.table}
+               "top": top, "crops": crops, "table": res.table}
     return render(request, "compare.html", context, viewer=viewer)
 
 

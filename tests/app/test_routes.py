@@ -173,7 +173,7 @@ def test_admin_makes_campaigns_invites_and_check_items(client: TestClient, campa
     page = client.get(f"/admin/campaigns/{campaign_id}")
     assert page.context["answers"] == {2: "cap: red"}  # type: ignore[attr-defined]
     bad = client.post(f"/admin/campaigns/{campaign_id}/checks", data={"csrf": csrf, "region_id": "3", "answer": ""})
-    assert bad.status_code == 422 and "known answer" in bad.text
+    assert bad.status_code == 422 and "nothing recognisable" in bad.text
     client.post(f"/admin/campaigns/{campaign_id}/checks", data={"csrf": csrf, "region_id": "4", "answer": "tag: yellow", "role": "example"})
     assert client.get(f"/admin/campaigns/{campaign_id}").context["examples"] == [(4, "tag: yellow")]  # type: ignore[attr-defined]
     label_page = client.get(f"/campaigns/{campaign_id}/label")
@@ -253,6 +253,7 @@ def test_ask_expectations_errors_and_compare(client: TestClient, campaign_id: in
     assert client.get(f"{base}/errors", params={"threshold": 3}).status_code == 422
     cmp = client.get(f"{base}/compare", params={"a": "bottle", "b": "carton"})
     assert cmp.status_code == 200 and cmp.context["comparison"].n_a > 0  # type: ignore[attr-defined]
+    assert set(cmp.context["crops"]) == {"bottle", "carton"}  # type: ignore[attr-defined]
     assert client.get(f"{base}/compare", params={"a": "bottle", "b": "bottle"}).status_code == 422
     join(client, "viewer", role="reviewer")
     assert client.post(f"{base}/expectations", data={"csrf": csrf, "text": ""}).status_code == 403
