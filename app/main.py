@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import logging
+import threading
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from pathlib import Path
@@ -33,6 +34,7 @@ def create_app(settings: Settings) -> FastAPI:
         app.state.writers = lazy_write_factory(engine)
         app.state.write_lock = asyncio.Lock()
         app.state.results_cache = {}
+        app.state.results_lock = threading.Lock()
         with write_session(app.state.sessions) as s:
             app.state.key = project_key(s)
         yield

@@ -40,7 +40,8 @@ def main(argv: list[str] | None = None) -> str:
     args = p.parse_args(argv)
     n_items = 10_000 if args.quick else 100_000
     truth, items, anns, labels = simulated_crowd(n_items, 20, 50, 10)
-    print(f"{len(items):,} judgments: {n_items:,} items, 20 annotators, 50 labels, 10 judgments per item")
+    head = f"{len(items):,} judgments: {n_items:,} items, 20 annotators, 50 labels, 10 judgments per item."
+    print(head)
     rows = []
     base = None
     for name, fn in [
@@ -69,7 +70,7 @@ def main(argv: list[str] | None = None) -> str:
         rows.append([f"heedmap, same {len(si):,} judgments", our_s, 1.0, float("nan"), ours.iterations, (ours.labels == st).mean()])
     except ImportError:
         print("crowd-kit is not installed; its row is left out.")
-    return print_table(["method", "seconds", "x first row", "peak MB", "iterations", "accuracy vs truth"], rows)
+    return head + "\n\n" + print_table(["method", "seconds", "x first row", "peak MB", "iterations", "accuracy vs truth"], rows)
 
 
 if __name__ == "__main__":

@@ -149,8 +149,9 @@ def main(argv: list[str] | None = None) -> str:
             repeats = s.scalar(select(func.count()).select_from(select(Label.region_id, Label.person_id).group_by(Label.region_id, Label.person_id).having(func.count() > 1).subquery())) or 0
         engine.dispose()
     requests = sum(len(v) for v in timings.values())
-    print(f"{args.annotators} annotators, {args.think:g} s per region on average, for {wall:.1f} s on loopback, one uvicorn process; "
-          f"{requests} requests, {requests / wall:.0f} per second")
+    head = (f"{args.annotators} annotators, {args.think:g} s per region on average, for {wall:.1f} s on loopback, one uvicorn process; "
+            f"{requests} requests, {requests / wall:.0f} per second.")
+    print(head)
     print(f"outcomes: {dict(outcome)}")
     rows = [[name, len(v), *(1000 * np.percentile(v, q) for q in (50, 95, 99))] for name, v in timings.items()]
     table = print_table(["request", "count", "p50 ms", "p95 ms", "p99 ms"], rows)
@@ -161,7 +162,7 @@ def main(argv: list[str] | None = None) -> str:
          ["stored twice (same person and region)", repeats], ["retries recognised (stored once)", outcome["retry recognised"]],
          ["most labels on one region (limit)", f"{worst} ({args.per_region})"]],
     )
-    return table + "\n\n" + checks
+    return head + "\n\n" + table + "\n\n" + checks
 
 
 if __name__ == "__main__":

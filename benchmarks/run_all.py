@@ -17,7 +17,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 BENCHMARKS = [
-    ("bias_recovery", "Does it find the injected cue? (issue: bias recovery)"),
+    ("bias_recovery", "Does it find the injected cue?"),
     ("saliency_throughput", "Saliency stage against plain inference"),
     ("interventions", "Ablation and insertion against plain inference"),
     ("rules_scale", "Per-class rules at scale against scripted mlxtend"),

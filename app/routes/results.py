@@ -41,11 +41,14 @@ def results_for(request: Request, s: SessionDep, campaign_id: int) -> store.Resu
     c = campaigns.get_campaign(s, campaign_id)
     key = store.labels_version(s, campaign_id)
     cache: dict[tuple[object, ...], store.Results] = request.app.state.results_cache
-    if key not in cache:
-        if len(cache) >= 16:
-            cache.pop(next(iter(cache)))
-        cache[key] = store.compute_results(s, c)
-    return replace(cache[key], campaign=c)  # the table is cached; the campaign's text fields are read fresh
+    found = cache.get(key)
+    if found is None:
+        found = store.compute_results(s, c)
+        with request.app.state.results_lock:  # requests run in several threads
+            while len(cache) >= 16:
+                cache.pop(next(iter(cache)))
+            cache[key] = found
+    return replace(found, campaign=c)  # the table is cached; the campaign's text fields are read fresh
 
 
 def _target(target: str) -> str:
