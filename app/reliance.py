@@ -74,29 +74,19 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
     wanted = {row_of[i] for i in image_ids}
     region_ids = [int(table.regions.ids[r]) for r in np.nonzero(carries)[0] if table.regions.region_image[r] in wanted]  # type: ignore[index]
     found = s.execute(
-        select(RegionRow.id, RegionRow.rank, Prediction.image_id, ImageRow.path).join(Prediction, Prediction.id == RegionRow.prediction_id)
-        .join(ImageRow, ImageRow.id == Prediction.image_id).where(RegionRow.id.in_(region_ids))
+        select(RegionRow.id, RegionRow.rank, Prediction.image_id).join(Prediction, Prediction.id == RegionRow.prediction_id)
+        .where(RegionRow.id.in_(region_ids))
     ).all()
     ranks: dict[int, list[int]] = {}
-    paths: dict[int, str] = {}
-    for _, rank, image_id, path in found:
+    for _, rank, image_id in found:
         ranks.setdefault(image_id, []).append(rank + 1)
-        paths[image_id] = path
-    sc = model.sidecar
-    images, masks = [], []
+    masks: dict[int, np.ndarray] = {}
     for image_id in image_ids:
-        labels = np.load(project / f"runs/{res.campaign.run_id}/maps/{image_id}_regions.npy")
-        mask = np.isin(labels, ranks.get(image_id, []))
-        if not mask.any():
-            continue
-        try:
-            images.append(read_rgb(Path(paths[image_id])))
-        except (ImageInputError, KeyError):
-            continue
-        masks.append(mask)
-    if not images:
-        return torch.zeros((0, 3, *sc.input_size)), np.zeros((0, *sc.input_size), dtype=bool)
-    return to_model_input(images, size=sc.input_size, mean=sc.mean, std=sc.std), np.stack(masks)
+        mask = np.isin(np.load(project / f"runs/{res.campaign.run_id}/maps/{image_id}_regions.npy"), ranks.get(image_id, []))
+        if mask.any():
+            masks[image_id] = mask
+    x, kept = _read_inputs(s, model, list(masks))
+    return x, np.stack([masks[i] for i in kept]) if kept else np.zeros((0, *model.sidecar.input_size), dtype=bool)
 
 
 def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], fill: str, draws: int, max_images: int, seed: int) -> tuple[str, list[int], list[int]]:
@@ -143,7 +133,7 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
         ablation = ablation_test(model, x, masks, model.classes.index(cls), concept=name, fill=fill, draws=draws, seed=seed, progress=bar)
         insertion = None
         if len(targets_ids) >= 2:
-            tx = _read_inputs(s, model, targets_ids)
+            tx, _ = _read_inputs(s, model, targets_ids)
             if len(tx) >= 2:
                 insertion = insertion_test(model, tx, x, masks, model.classes.index(cls), concept=name, draws=draws, seed=seed, progress=bar)
         out = Reliance(cls, name, ablation, insertion)
@@ -153,16 +143,18 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     return out
 
 
-def _read_inputs(s: Session, model: LoadedModel, image_ids: list[int]) -> torch.Tensor:
+def _read_inputs(s: Session, model: LoadedModel, image_ids: list[int]) -> tuple[torch.Tensor, list[int]]:
+    """Model inputs of the images that can be read, and their ids (unreadable ones are left out)."""
     paths = dict(s.execute(select(ImageRow.id, ImageRow.path).where(ImageRow.id.in_(image_ids))).all())
-    images = []
+    images, kept = [], []
     for i in image_ids:
         try:
             images.append(read_rgb(Path(paths[i])))
         except (ImageInputError, KeyError):
             continue
+        kept.append(i)
     sc = model.sidecar
-    return to_model_input(images, size=sc.input_size, mean=sc.mean, std=sc.std) if images else torch.zeros((0, 3, *sc.input_size))
+    return (to_model_input(images, size=sc.input_size, mean=sc.mean, std=sc.std) if images else torch.zeros((0, 3, *sc.input_size))), kept
 
 
 def _result(raw: dict[str, object]) -> InterventionResult:

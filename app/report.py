@@ -37,10 +37,10 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
     """Render the report for a campaign's results; every image is embedded, nothing is fetched."""
     table = res.table
     rules = table.rules(min_support=settings.min_support, max_len=2)
-    frame = with_reliance(Path(settings.project_dir), res, rules.rules)
+    frame = with_reliance(Path(settings.project_dir), res, rules.rules.groupby("class").head(10))
     by_class = []
     for cls, group in frame.groupby("class"):
-        top = group.head(10).to_dict("records")
+        top = group.to_dict("records")
         for r in top[:3]:
             rows = (table.meta["predicted_class"].astype(str) == cls) & table.presence[r["concepts"].split(" & ")].all(axis=1)
             r["crops"] = [u for u in (_crop(s, settings, rid) for rid in table.example_regions(r["concepts"].split(" & "), rows, limit=4)) if u]

@@ -72,8 +72,9 @@ def results(request: Request, campaign_id: int, s: SessionDep, settings: Setting
     """Per-class concept rules with significance, for the predicted class, the true class or the errors."""
     res = results_for(request, s, campaign_id)
     rules = _rules(res, settings, target, max_len, min_support, prune)
-    frame = with_reliance(Path(settings.project_dir), res, rules.rules).assign(question=rules.rules["concepts"].map(rule_question))
-    by_class = {k: g.head(15).to_dict("records") for k, g in frame.groupby("class")} if not frame.empty else {}
+    shown = rules.rules.groupby("class").head(15)  # look up stored interventions only for the rules on the page
+    frame = with_reliance(Path(settings.project_dir), res, shown).assign(question=shown["concepts"].map(rule_question))
+    by_class = {k: g.to_dict("records") for k, g in frame.groupby("class")} if not frame.empty else {}
     context = {"campaign": res.campaign, "by_class": by_class, "table": res.table, "rules": rules, "n_regions": res.n_labelled_regions,
                "target": target, "targets": TARGETS, "max_len": max_len, "prune": prune, "query": urlencode({"target": target, "max_len": max_len})}
     return render(request, "results.html", context, viewer=viewer)

@@ -8,7 +8,7 @@ from datetime import timedelta
 from pathlib import Path
 
 import pytest
-from sqlalchemy import func, select
+from sqlalchemy import select
 
 from app import campaigns
 from app.db import make_engine, session_factory, write_session
