@@ -21,3 +21,7 @@ class ImageInputError(InvalidInputError):
 
 class GradientUnavailableError(AnalysisError, RuntimeError):
     """The model's forward pass gives no gradients, so Grad-CAM cannot run."""
+
+
+class NotEnoughLabelsError(AnalysisError):
+    """There are no usable labels yet for the result asked for (none, or all marked not sure, or no image complete)."""

@@ -139,7 +139,11 @@ def update_campaign(s: Session, campaign_id: int, *, instructions: str | None = 
     c = s.get(Campaign, campaign_id)
     if c is None:
         raise NotFoundError(f"campaign {campaign_id} does not exist.")
-    _check_settings(labels_per_region or c.labels_per_region, c.lease_seconds, c.check_every, method or c.method)
+    # Compare with None, not truth: 0 and "" are values to refuse, not "unchanged".
+    _check_settings(c.labels_per_region if labels_per_region is None else labels_per_region, c.lease_seconds, c.check_every,
+                    c.method if method is None else method)
+    if instructions is not None and len(instructions) > 20_000:
+        raise InvalidRequestError("instructions are limited to 20,000 characters.")
     if instructions is not None:
         c.instructions = instructions
     if labels_per_region is not None:

@@ -12,10 +12,12 @@ from analysis.expectations import check_expectations, read_expectations, verdict
 from analysis.interventions import FILLS
 from analysis.questions import answer_question
 
-from . import campaigns, store
+from . import campaigns
 from .db import make_engine, session_factory
 from .errors import AppError
+from .layout import ProjectLayout
 from .reliance import Reliance, confirm_verdicts, model_for_run, rule_reliance
+from .services.campaign_analysis import Results, campaign_results
 from .settings import get_settings
 
 
@@ -59,8 +61,8 @@ def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
     c.add_argument("--sidecar", type=Path)
 
 
-def _results(args: argparse.Namespace) -> tuple[store.Results, object]:
-    if not (Path(args.project) / "heedmap.db").is_file():
+def _results(args: argparse.Namespace) -> tuple[Results, object]:
+    if not ProjectLayout(Path(args.project)).database.is_file():
         raise AppError(f"{args.project} is not a heedmap project (no heedmap.db); run 'heedmap saliency' or 'heedmap demo' first.")
     engine = make_engine(args.project)
     factory = session_factory(engine)
@@ -72,7 +74,7 @@ def _results(args: argparse.Namespace) -> tuple[store.Results, object]:
             c = found[-1]
         else:
             c = campaigns.get_campaign(s, args.campaign)
-        res = store.compute_results(s, c)
+        res = campaign_results(s, c)
     return res, factory
 
 

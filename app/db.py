@@ -12,15 +12,14 @@ from sqlalchemy.engine import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
 from .errors import SchemaVersionError
+from .layout import ProjectLayout
 from .models import SCHEMA_VERSION, Base, SchemaInfo
-
-DB_NAME = "heedmap.db"
 
 
 def make_engine(project_dir: Path) -> Engine:
     """One engine per app or CLI run, over ``project_dir/heedmap.db``; creates the schema when new."""
     project_dir.mkdir(parents=True, exist_ok=True)
-    engine = create_engine(f"sqlite:///{project_dir / DB_NAME}", connect_args={"check_same_thread": False, "timeout": 30})
+    engine = create_engine(f"sqlite:///{ProjectLayout(project_dir).database}", connect_args={"check_same_thread": False, "timeout": 30})
 
     @event.listens_for(engine, "connect")
     def _pragmas(dbapi_conn: Any, _record: Any) -> None:

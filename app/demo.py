@@ -19,12 +19,14 @@ from demo_data.annotators import demo_crowd, simulate_label, visible_parts
 from demo_data.scenes import CUE_CONCEPTS, PARTS, CueName, SceneConfig, generate_dataset, load_scenes
 from demo_data.train import train_demo_model
 
-from . import campaigns, store
+from . import campaigns
 from .db import make_engine, session_factory, write_session
 from .errors import ConflictError
 from .jobs import register_images, run_saliency
+from .layout import ProjectLayout
 from .models import Campaign, CampaignRegion, ImageRow, Prediction, RegionRow
 from .people import ensure_person
+from .services.campaign_analysis import campaign_results
 
 
 @dataclass(frozen=True)
@@ -57,7 +59,7 @@ def simulate_annotations(factory, project_dir: Path, data_root: Path, campaign_i
             rel = Path(path).relative_to(data_root.resolve()).as_posix()
             scene = scenes[rel]  # type: ignore[index]
             part_mask = np.asarray(Image.open(data_root / scene["mask"]))
-            labels = np.load(project_dir / f"runs/{campaign.run_id}/maps/{image_id}_regions.npy")
+            labels = np.load(ProjectLayout(project_dir).path(ProjectLayout.region_labels(campaign.run_id, image_id)))
             truth = visible_parts(labels == rank + 1, part_mask)
             for a in crowd:
                 entities = simulate_label(a, truth, scene["parts"], rng)
@@ -124,7 +126,7 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
     }
     if annotators:
         with factory() as s:
-            res = store.compute_results(s, campaigns.get_campaign(s, campaign_id))
+            res = campaign_results(s, campaign_id)
         rules = res.table.rules(min_support=min_support).rules
         (out / "rules.csv").write_text(to_csv(rules), encoding="utf-8")
         if cue_info:
@@ -151,6 +153,6 @@ def demo_pointing_game(out: Path, *, tolerance: int = 2) -> PointingGame:
     maps, masks = [], []
     for map_path, path in rows:
         scene = scenes[Path(path).relative_to(data_root.resolve()).as_posix()]  # type: ignore[index]
-        maps.append(np.load(out / "project" / map_path).astype(np.float32))
+        maps.append(np.load(ProjectLayout(out / "project").path(map_path)).astype(np.float32))
         masks.append(np.asarray(Image.open(data_root / scene["mask"])) != PARTS.index("belt"))
     return pointing_game(np.stack(maps), np.stack(masks), tolerance=tolerance)

@@ -6,10 +6,10 @@ import hmac
 from collections.abc import AsyncIterator, Callable, Iterator
 from typing import Annotated
 
-from fastapi import Depends, Request
+from fastapi import APIRouter, Depends, Request
 from sqlalchemy.orm import Session
 
-from .errors import ForbiddenError, UnauthorizedError
+from .errors import ForbiddenError, InvalidRequestError, UnauthorizedError
 from .people import Viewer, csrf_token, viewer_from_cookie
 from .settings import Settings
 
@@ -77,8 +77,16 @@ def request_csrf(request: Request) -> str:
     return csrf_token(request.app.state.key, cookie) if cookie else ""
 
 
+SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
+
+
 async def check_csrf(request: Request) -> None:
-    """Refuse a state-changing request that lacks this session's token (header or form field)."""
+    """Refuse a state-changing request that lacks this session's token (header or form field); reads pass.
+
+    Every router carries this as a router-level dependency, so a new POST route cannot forget it.
+    """
+    if request.method in SAFE_METHODS:
+        return
     sent = request.headers.get(CSRF_HEADER)
     if sent is None and request.headers.get("content-type", "").startswith(("application/x-www-form-urlencoded", "multipart/form-data")):
         sent = str((await request.form()).get(CSRF_FIELD, ""))
@@ -94,8 +102,31 @@ WriteSessionDep = Annotated[Session, Depends(_write_session, scope="function")]
 SettingsDep = Annotated[Settings, Depends(_settings)]
 ViewerDep = Annotated[Viewer, Depends(_viewer)]
 OptionalViewerDep = Annotated[Viewer | None, Depends(optional_viewer)]
-AnnotatorDep = Annotated[Viewer, Depends(require("annotator"))]
-ReviewerDep = Annotated[Viewer, Depends(require("reviewer"))]
-AnalystDep = Annotated[Viewer, Depends(require("analyst"))]
-AdminDep = Annotated[Viewer, Depends(require("admin"))]
+# One checker per role, made once: a router-level Depends(require_x) and a route's XDep parameter
+# are then the same dependency, which FastAPI runs once per request.
+require_viewer = _viewer
+require_annotator = require("annotator")
+require_reviewer = require("reviewer")
+require_analyst = require("analyst")
+require_admin = require("admin")
+AnnotatorDep = Annotated[Viewer, Depends(require_annotator)]
+ReviewerDep = Annotated[Viewer, Depends(require_reviewer)]
+AnalystDep = Annotated[Viewer, Depends(require_analyst)]
+AdminDep = Annotated[Viewer, Depends(require_admin)]
 CsrfDep = Depends(check_csrf)
+
+
+MAX_ID = 2**63 - 1  # SQLite's largest integer
+
+
+def check_path_ids(request: Request) -> None:
+    """Refuse an id in the path that is not a whole number SQLite can hold, before any query sees it."""
+    for name, value in request.path_params.items():
+        if name.endswith("_id") and not (str(value).isdigit() and int(value) <= MAX_ID):
+            raise InvalidRequestError(f"{name} must be a whole number from 0 to {MAX_ID}; got {str(value)[:40]!r}.")
+
+
+def guarded_router(role: Callable[..., Viewer] | None = None, *, prefix: str = "", tags: list[str] | None = None) -> APIRouter:
+    """A router whose every route checks the anti-forgery token on writes and, given ``role``, who may call it."""
+    dependencies = [Depends(check_path_ids), CsrfDep] + ([Depends(role)] if role is not None else [])
+    return APIRouter(prefix=prefix, dependencies=dependencies, tags=list(tags or []))

@@ -20,6 +20,7 @@ from analysis.regions import ThresholdPolicy, crop_region, extract_regions, outl
 from analysis.saliency import compute_saliency, saliency_provenance
 
 from .db import write_session
+from .layout import ProjectLayout
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 
 
@@ -105,9 +106,8 @@ def run_saliency(
         todo = [(i.id, i.path) for i in s.scalars(select(ImageRow).where(ImageRow.problem.is_(None)).order_by(ImageRow.id))]
     report = JobReport(run_id=run_id, already_done=sum(1 for i, _ in todo if i in done))
     todo = [t for t in todo if t[0] not in done]
-    run_dir = Path(project_dir) / "runs" / str(run_id)
-    for sub in ("crops", "outlines", "maps"):
-        (run_dir / sub).mkdir(parents=True, exist_ok=True)
+    layout = ProjectLayout(Path(project_dir))
+    layout.make_run_dirs(run_id)
     sc = model.sidecar
     total = len(todo)
     for b, start in enumerate(range(0, total, batch_size)):
@@ -128,19 +128,19 @@ def run_saliency(
             with write_session(factory) as s:
                 for k, image_id in enumerate(ids):
                     sal = res.maps[k]
-                    map_rel = f"runs/{run_id}/maps/{image_id}.npy"
+                    map_rel = layout.saliency_map(run_id, image_id)
                     regions, labels = extract_regions(sal, policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
-                    np.save(Path(project_dir) / map_rel, sal.astype(np.float16))
-                    np.save(Path(project_dir) / f"runs/{run_id}/maps/{image_id}_regions.npy", labels.astype(np.uint8))
+                    np.save(layout.path(map_rel), sal.astype(np.float16))
+                    np.save(layout.path(layout.region_labels(run_id, image_id)), labels.astype(np.uint8))
                     pred = Prediction(run_id=run_id, image_id=image_id, predicted=sc.classes[int(res.predicted[k])], confidence=float(res.confidence[k]), empty_map=bool(res.empty[k]), map_path=map_rel)
                     s.add(pred)
                     s.flush()
                     report.empty_maps += int(res.empty[k])
                     for r in regions:
-                        crop_rel = f"runs/{run_id}/crops/{image_id}_{r.rank}.png"
-                        outline_rel = f"runs/{run_id}/outlines/{image_id}_{r.rank}.png"
-                        crop_region(images[k], r, map_size=sc.input_size, margin=params.margin).save(Path(project_dir) / crop_rel)
-                        outline_region(images[k], r, map_size=sc.input_size).save(Path(project_dir) / outline_rel)
+                        crop_rel = layout.crop(run_id, image_id, r.rank)
+                        outline_rel = layout.outline(run_id, image_id, r.rank)
+                        crop_region(images[k], r, map_size=sc.input_size, margin=params.margin).save(layout.path(crop_rel))
+                        outline_region(images[k], r, map_size=sc.input_size).save(layout.path(outline_rel))
                         s.add(RegionRow(prediction_id=pred.id, rank=r.rank, x0=r.x0, y0=r.y0, x1=r.x1, y1=r.y1, area=r.area, mass_share=r.mass_share, crop_path=crop_rel, outline_path=outline_rel))
                         report.regions += 1
             report.processed += len(ids)

@@ -24,9 +24,9 @@ from analysis.questions import And, Concept, parse_question
 
 from .errors import AppError
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
-from .store import Results
+from .layout import ProjectLayout
+from .services.campaign_analysis import Results
 
-CACHE_DIR = "interventions"
 ALPHA = 0.05
 
 
@@ -82,7 +82,7 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
         ranks.setdefault(image_id, []).append(rank + 1)
     masks: dict[int, np.ndarray] = {}
     for image_id in image_ids:
-        mask = np.isin(np.load(project / f"runs/{res.campaign.run_id}/maps/{image_id}_regions.npy"), ranks.get(image_id, []))
+        mask = np.isin(np.load(ProjectLayout(project).path(ProjectLayout.region_labels(res.campaign.run_id, image_id))), ranks.get(image_id, []))
         if mask.any():
             masks[image_id] = mask
     x, kept = _read_inputs(s, model, list(masks))
@@ -122,7 +122,7 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     if cls not in model.classes:
         raise AppError(f"the model has no class {cls!r}; its classes are {list(model.classes)}.")
     key, image_ids, targets_ids = _plan(res, model.sha256, cls, concepts, fill, draws, max_images, seed)
-    cache = project / CACHE_DIR / f"{key}.json"
+    cache = ProjectLayout(project).intervention_file(key)
     name = " & ".join(sorted(concepts))
     if cache.is_file():
         return _load(cache, cls, name)
@@ -180,13 +180,13 @@ def cached_reliance(project: Path, res: Results, cls: str, concepts: list[str], 
     if any(c not in res.table.concepts for c in concepts):
         return None
     key, _, _ = _plan(res, res.model_sha256, cls, concepts, fill, draws, max_images, seed)
-    path = project / CACHE_DIR / f"{key}.json"
+    path = ProjectLayout(project).intervention_file(key)
     return _load(path, cls, " & ".join(sorted(concepts))) if path.is_file() else None
 
 
 def stored_for_rules(project: Path, res: Results, frame: pd.DataFrame) -> dict[tuple[str, str], Reliance]:
     """Stored intervention results for the rules of a table, keyed by (class, concepts)."""
-    if not (project / CACHE_DIR).is_dir() or frame.empty:
+    if not ProjectLayout(project).interventions.is_dir() or frame.empty:
         return {}
     out = {}
     for cls, concepts in zip(frame["class"], frame["concepts"]):

@@ -16,11 +16,12 @@ from analysis.expectations import check_expectations, read_expectations
 from analysis.images import thumbnail_png
 from analysis.plots import frequency_plot, lift_plot
 
+from .layout import ProjectLayout
 from .models import ImageRow, RegionRow, SaliencyRun
 from .reliance import cached_reliance, confirm_verdicts, with_reliance
 from .routes.common import CAUTION
+from .services.campaign_analysis import Results
 from .settings import Settings
-from .store import Results
 
 
 def _data_uri(png: bytes) -> str:
@@ -29,7 +30,7 @@ def _data_uri(png: bytes) -> str:
 
 def _crop(s: Session, settings: Settings, region_id: int) -> str | None:
     rel = s.scalar(select(RegionRow.crop_path).where(RegionRow.id == region_id))
-    path = Path(settings.project_dir) / rel if rel else None
+    path = ProjectLayout(Path(settings.project_dir)).path(rel) if rel else None
     return _data_uri(path.read_bytes()) if path and path.is_file() else None
 
 

@@ -8,13 +8,6 @@ import pandas as pd
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from analysis.concept_votes import estimate_concepts, presence_votes
-from analysis.concept_table import ConceptTable, build_concept_table
-from analysis.concepts import judgment_concepts
-from analysis.reliability import Method
-
-from . import campaigns
-from .campaigns import CampaignInfo
 from .errors import NotFoundError
 from .models import Campaign, CampaignRegion, ImageRow, Label, Prediction, RegionRow, SaliencyRun, SynonymRule
 
@@ -64,20 +57,6 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
     return frame.set_index("image_id")
 
 
-@dataclass(frozen=True)
-class Results:
-    """What a campaign's labels add up to: the concept table (with how it was made)."""
-
-    campaign: CampaignInfo
-    table: ConceptTable
-    n_labelled_regions: int
-    model_sha256: str = ""  # of the run's model: interventions are kept per model version
-
-    @property
-    def method(self) -> str:
-        return self.table.method
-
-
 def labels_version(s: Session, campaign_id: int) -> tuple[object, ...]:
     """Changes whenever anything the results depend on changes (labels, synonym rules, check items, method)."""
     n, last = s.execute(select(func.count(Label.id), func.max(Label.id)).where(Label.campaign_id == campaign_id)).one()
@@ -85,33 +64,3 @@ def labels_version(s: Session, campaign_id: int) -> tuple[object, ...]:
     c = s.get(Campaign, campaign_id)
     checks = s.scalar(select(func.count(CampaignRegion.check_answer)).where(CampaignRegion.campaign_id == campaign_id))
     return (campaign_id, n, last, rn, rlast, checks, c.method if c else None, c.labels_per_region if c else None)
-
-
-def compute_results(s: Session, campaign: CampaignInfo, *, method: Method | None = None, threshold: float = 0.5) -> Results:
-    """Concepts per region (the campaign's aggregation method) and the image-by-concept table.
-
-    Images of the campaign's classes count once all their campaign regions have labels (an image
-    with no region counts with no concept).
-    """
-    found = campaigns.judgments(s, campaign.id)
-    if not found:
-        raise NotFoundError(f"campaign {campaign.name!r} has no labels yet; label some regions first.")
-    method = method or campaign.method  # type: ignore[assignment]
-    preds = prediction_frame(s, campaign.run_id)
-    rules, _ = campaigns.synonym_rules(s, campaign.id)
-    region_class = campaigns.region_classes(s, campaign.id)
-    known = {r: judgment_concepts(j, rules=rules, cls=region_class.get(r)) for r, j in campaigns.check_answers(s, campaign.id).items()}
-    votes = presence_votes(found, rules=rules, region_class=region_class, known=known)
-    region_concepts = estimate_concepts(votes, method=method, threshold=threshold).region_concepts()  # type: ignore[arg-type]
-    labelled = set(region_concepts)
-    if campaign.classes:
-        preds = preds[preds["predicted"].isin(campaign.classes)].copy()
-    mass = {r: m for rs, ms in zip(preds["regions"], preds["mass_shares"]) for r, m in zip(rs, ms)}
-    preds["regions"] = preds["regions"].map(lambda rs: [r for r in rs if r in region_class])
-    complete = preds[preds["regions"].map(lambda rs: all(r in labelled for r in rs))]
-    if complete.empty:
-        raise NotFoundError("no image has all its regions labelled yet; label some more regions first.")
-    meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
-    table = build_concept_table(meta, {int(i): list(r) for i, r in complete["regions"].items()}, mass, region_concepts, method=str(method), threshold=threshold)
-    run = s.get(SaliencyRun, campaign.run_id)
-    return Results(campaign, table, len(labelled), str((run.provenance or {}).get("model_sha256", "")) if run else "")

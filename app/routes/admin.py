@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import APIRouter, Form, Request
+from fastapi import Form, Request
 from fastapi.responses import PlainTextResponse, RedirectResponse, Response
 from sqlalchemy import select
 
@@ -13,13 +13,14 @@ from analysis.reliability import METHODS
 from analysis.rules import to_csv
 
 from .. import campaigns, people
-from ..deps import AdminDep, CsrfDep, SessionDep, SettingsDep, WriteSessionDep
+from ..deps import MAX_ID, AdminDep, SessionDep, SettingsDep, WriteSessionDep, guarded_router, require_admin
 from ..errors import AppError, InvalidRequestError
 from ..models import ROLES, CampaignRegion, Prediction, RegionRow, SaliencyRun, utcnow
 from .common import render
 from .labelling import parse_entities
 
-router = APIRouter()
+router = guarded_router(require_admin, prefix="/admin")
+routers = (router,)
 
 
 def _admin_page(request: Request, s: SessionDep, viewer: AdminDep, *, new_link: str = "", error: str = "", form: dict[str, str] | None = None,
@@ -33,18 +34,18 @@ def _admin_page(request: Request, s: SessionDep, viewer: AdminDep, *, new_link: 
     return render(request, "admin.html", context, viewer=viewer, status_code=status_code)
 
 
-@router.get("/admin")
+@router.get("")
 def admin(request: Request, s: SessionDep, viewer: AdminDep) -> Response:
     """Campaigns and invite links."""
     return _admin_page(request, s, viewer)
 
 
-@router.post("/admin/campaigns", dependencies=[CsrfDep])
+@router.post("/campaigns")
 def create_campaign(
     request: Request, s: WriteSessionDep, viewer: AdminDep,
-    name: Annotated[str, Form()], run_id: Annotated[int, Form()], labels_per_region: Annotated[int, Form()] = 3,
+    name: Annotated[str, Form()], run_id: Annotated[int, Form(ge=0, le=MAX_ID)], labels_per_region: Annotated[int, Form(ge=0, le=MAX_ID)] = 3,
     classes: Annotated[list[str] | None, Form()] = None, instructions: Annotated[str, Form()] = "",
-    lease_minutes: Annotated[float, Form()] = 10, check_every: Annotated[int, Form()] = 10, method: Annotated[str, Form()] = "majority",
+    lease_minutes: Annotated[float, Form(allow_inf_nan=False)] = 10, check_every: Annotated[int, Form(ge=0, le=MAX_ID)] = 10, method: Annotated[str, Form()] = "majority",
 ) -> Response:
     """Create a campaign over a run's regions."""
     try:
@@ -57,11 +58,11 @@ def create_campaign(
     return RedirectResponse(f"/admin/campaigns/{cid}", status_code=303)
 
 
-@router.post("/admin/invites", dependencies=[CsrfDep])
+@router.post("/invites")
 def create_invite(
     request: Request, s: WriteSessionDep, viewer: AdminDep, settings: SettingsDep,
     name: Annotated[str, Form()], role: Annotated[str, Form()], campaign_id: Annotated[str, Form()] = "",
-    days: Annotated[float, Form()] = 14, note: Annotated[str, Form()] = "",
+    days: Annotated[float, Form(allow_inf_nan=False)] = 14, note: Annotated[str, Form()] = "",
 ) -> Response:
     """Make an invite link; it is shown once, on the page that answers this form."""
     try:
@@ -77,14 +78,14 @@ def create_invite(
     return _admin_page(request, s, viewer, new_link=link)
 
 
-@router.post("/admin/invites/{invite_id}/revoke", dependencies=[CsrfDep])
+@router.post("/invites/{invite_id}/revoke")
 def revoke_invite(invite_id: int, s: WriteSessionDep, viewer: AdminDep) -> Response:
     """Revoke an invite link; browsers signed in through it are signed out."""
     people.revoke_invite(s, invite_id)
     return RedirectResponse("/admin", status_code=303)
 
 
-@router.get("/admin/campaigns/{campaign_id}")
+@router.get("/campaigns/{campaign_id}")
 def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: AdminDep, settings: SettingsDep) -> Response:
     """Progress per annotator and class, check-item scores, settings and check items."""
     c = campaigns.get_campaign(s, campaign_id)
@@ -102,10 +103,10 @@ def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: Ad
     return render(request, "campaign_admin.html", context, viewer=viewer)
 
 
-@router.post("/admin/campaigns/{campaign_id}/settings", dependencies=[CsrfDep])
+@router.post("/campaigns/{campaign_id}/settings")
 def campaign_settings(
     campaign_id: int, s: WriteSessionDep, viewer: AdminDep,
-    instructions: Annotated[str, Form()] = "", labels_per_region: Annotated[int, Form()] = 3, method: Annotated[str, Form()] = "majority",
+    instructions: Annotated[str, Form()] = "", labels_per_region: Annotated[int, Form(ge=0, le=MAX_ID)] = 3, method: Annotated[str, Form()] = "majority",
     closed: Annotated[str, Form()] = "",
 ) -> Response:
     """Change the instructions, labels per region, aggregation method, or close the campaign."""
@@ -113,9 +114,9 @@ def campaign_settings(
     return RedirectResponse(f"/admin/campaigns/{campaign_id}", status_code=303)
 
 
-@router.post("/admin/campaigns/{campaign_id}/checks", dependencies=[CsrfDep])
+@router.post("/campaigns/{campaign_id}/checks")
 def set_check(
-    campaign_id: int, s: WriteSessionDep, viewer: AdminDep, region_id: Annotated[int, Form()], answer: Annotated[str, Form()] = "",
+    campaign_id: int, s: WriteSessionDep, viewer: AdminDep, region_id: Annotated[int, Form(ge=0, le=MAX_ID)], answer: Annotated[str, Form()] = "",
     nothing: Annotated[str, Form()] = "", clear: Annotated[str, Form()] = "", role: Annotated[str, Form()] = "check",
 ) -> Response:
     """Make a region a check item (or an example shown with the instructions) with a known answer, or a normal region again."""
@@ -129,7 +130,7 @@ def set_check(
     return RedirectResponse(f"/admin/campaigns/{campaign_id}", status_code=303)
 
 
-@router.get("/admin/campaigns/{campaign_id}/labels.csv", response_class=PlainTextResponse)
+@router.get("/campaigns/{campaign_id}/labels.csv", response_class=PlainTextResponse)
 def raw_labels(campaign_id: int, s: SessionDep, viewer: AdminDep) -> PlainTextResponse:
     """Every raw label of the campaign, one row per named entity."""
     c = campaigns.get_campaign(s, campaign_id)

@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter
 from fastapi.responses import RedirectResponse, Response
 
 from .. import people
-from ..deps import COOKIE, CsrfDep, SettingsDep, WriteSessionDep
+from ..deps import COOKIE, SettingsDep, WriteSessionDep, guarded_router
 
-router = APIRouter()
+router = guarded_router()
+routers = (router,)
 
 
 @router.get("/join/{token}")
@@ -22,7 +22,7 @@ def join(token: str, s: WriteSessionDep, settings: SettingsDep) -> Response:
     return response
 
 
-@router.post("/signout", dependencies=[CsrfDep])
+@router.post("/signout")
 def signout() -> Response:
     """Forget this browser's sign-in."""
     response = RedirectResponse("/", status_code=303)

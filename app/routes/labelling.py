@@ -6,7 +6,7 @@ import uuid
 from typing import Annotated
 from urllib.parse import urlencode
 
-from fastapi import APIRouter, Form, Request
+from fastapi import Form, Request
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 from pydantic import BaseModel, Field
 from sqlalchemy.orm import Session
@@ -16,12 +16,15 @@ from analysis.errors import InvalidInputError
 
 from .. import campaigns
 from ..campaigns import CampaignInfo, Task
-from ..deps import AnnotatorDep, CsrfDep, SessionDep, WriteSessionDep
+from ..deps import MAX_ID, AnnotatorDep, SessionDep, WriteSessionDep, guarded_router, require_annotator
 from ..errors import ConflictError, ForbiddenError, InvalidRequestError
 from ..people import Viewer
 from .common import render
 
-router = APIRouter()
+# Pages and their JSON twin, both for annotators and up.
+router = guarded_router(require_annotator, prefix="/campaigns/{campaign_id}")
+api = guarded_router(require_annotator, prefix="/api/campaigns/{campaign_id}")
+routers = (router, api)
 
 # Attribute words offered before a campaign has its own; grouped by what they describe.
 ATTRIBUTE_KINDS: dict[str, list[str]] = {
@@ -112,19 +115,19 @@ def _page(request: Request, s: Session, viewer: Viewer, c: CampaignInfo, *, type
     return render(request, "annotate.html", context, viewer=viewer, status_code=status_code)
 
 
-@router.get("/campaigns/{campaign_id}/label")
+@router.get("/label")
 def label_page(request: Request, campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, text: str = "", notice: str = "") -> Response:
     """One region at a time, keyboard first."""
     return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), typed=text[:1000], notice=notice[:200])
 
 
-@router.post("/campaigns/{campaign_id}/label", dependencies=[CsrfDep])
+@router.post("/label")
 def submit_label(
     request: Request,
     campaign_id: int,
     s: WriteSessionDep,
     viewer: AnnotatorDep,
-    region_id: Annotated[int, Form()],
+    region_id: Annotated[int, Form(ge=0, le=MAX_ID)],
     client_id: Annotated[str, Form(min_length=8, max_length=64)],
     labels: Annotated[str, Form(max_length=2000)] = "",
     nothing: Annotated[str, Form()] = "",
@@ -144,14 +147,14 @@ def submit_label(
     return RedirectResponse(f"/campaigns/{campaign_id}/label", status_code=303)
 
 
-@router.post("/campaigns/{campaign_id}/skip", dependencies=[CsrfDep])
-def skip_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, region_id: Annotated[int, Form()]) -> Response:
+@router.post("/skip")
+def skip_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, region_id: Annotated[int, Form(ge=0, le=MAX_ID)]) -> Response:
     """Pass over a region and show the next."""
     campaigns.skip_region(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id)
     return RedirectResponse(f"/campaigns/{campaign_id}/label", status_code=303)
 
 
-@router.post("/campaigns/{campaign_id}/undo", dependencies=[CsrfDep])
+@router.post("/undo")
 def undo_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Response:
     """Withdraw your last label and show its region again with the text to edit."""
     got = campaigns.undo_last(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
@@ -162,7 +165,7 @@ def undo_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Res
 # --- JSON ------------------------------------------------------------------------------------------
 
 
-@router.get("/api/campaigns/{campaign_id}/tasks/next")
+@api.get("/tasks/next")
 def next_task(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> NextTask:
     """Your current region (leased to you) and the one after; null task when none is left."""
     c = campaign_for(s, viewer, campaign_id)
@@ -171,7 +174,7 @@ def next_task(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Nex
     return NextTask(task=public(tasks[0]) if tasks else None, upcoming=public(tasks[1]) if len(tasks) > 1 else None, done=done, total=total)
 
 
-@router.post("/api/campaigns/{campaign_id}/regions/{region_id}/labels", status_code=201, dependencies=[CsrfDep])
+@api.post("/regions/{region_id}/labels", status_code=201)
 def create_label(campaign_id: int, region_id: int, body: LabelCreate, s: WriteSessionDep, viewer: AnnotatorDep) -> LabelResult:
     """Store your label of a region; a retried client_id stores nothing twice."""
     text = "; ".join(f"{e.entity}: {', '.join(e.attributes)}" for e in body.entities)
@@ -181,21 +184,21 @@ def create_label(campaign_id: int, region_id: int, body: LabelCreate, s: WriteSe
     return LabelResult(stored=stored, region_id=region_id)
 
 
-@router.post("/api/campaigns/{campaign_id}/regions/{region_id}/skip", status_code=204, dependencies=[CsrfDep])
+@api.post("/regions/{region_id}/skip", status_code=204)
 def skip_api(campaign_id: int, region_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Response:
     """Pass over a region; it is not offered to you again."""
     campaigns.skip_region(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id)
     return Response(status_code=204)
 
 
-@router.post("/api/campaigns/{campaign_id}/undo", dependencies=[CsrfDep])
+@api.post("/undo")
 def undo_api(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> UndoResult | None:
     """Withdraw your last label in the campaign; its region becomes your current task again."""
     got = campaigns.undo_last(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
     return UndoResult(region_id=got[0], text=got[1]) if got else None
 
 
-@router.get("/api/campaigns/{campaign_id}/vocabulary")
+@api.get("/vocabulary")
 def vocabulary(campaign_id: int, s: SessionDep, viewer: AnnotatorDep) -> JSONResponse:
     """Entity and attribute words for suggestions: the campaign's own, most used first, then common attributes."""
     campaign_for(s, viewer, campaign_id)

@@ -2,14 +2,15 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
+from fastapi import Request
 from fastapi.responses import Response
 
 from .. import campaigns, store
-from ..deps import OptionalViewerDep, SessionDep
+from ..deps import OptionalViewerDep, SessionDep, guarded_router
 from .common import render
 
-router = APIRouter()
+router = guarded_router()
+routers = (router,)
 
 
 @router.get("/")

@@ -6,7 +6,6 @@ import io
 from pathlib import Path
 
 import numpy as np
-from fastapi import APIRouter
 from fastapi.responses import FileResponse, Response
 
 from analysis.errors import ImageInputError
@@ -14,35 +13,34 @@ from analysis.images import read_rgb, thumbnail_png
 from analysis.regions import Region, saliency_overlay
 
 from .. import store
-from ..deps import ReviewerDep, SessionDep, SettingsDep, ViewerDep
+from ..deps import ReviewerDep, SessionDep, SettingsDep, guarded_router, require_viewer
 from ..errors import NotFoundError
+from ..layout import ProjectLayout
 from ..models import ImageRow
 
-router = APIRouter()
+router = guarded_router(require_viewer, prefix="/api")
+routers = (router,)
 _CACHE = {"Cache-Control": "private, max-age=3600"}
 
 
 def _project_file(settings: SettingsDep, rel: str, region_id: int) -> Path:
-    path = Path(settings.project_dir) / rel
-    if not path.is_file():
-        raise NotFoundError(f"an image file of region {region_id} is missing from the project folder ({rel}).")
-    return path
+    return ProjectLayout(Path(settings.project_dir)).existing(rel, what=f"an image file of region {region_id}")
 
 
-@router.get("/api/regions/{region_id}/crop.png")
-def region_crop(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse:
+@router.get("/regions/{region_id}/crop.png")
+def region_crop(region_id: int, s: SessionDep, settings: SettingsDep) -> FileResponse:
     """The region's crop."""
     return FileResponse(_project_file(settings, store.region_files(s, region_id).crop, region_id), media_type="image/png", headers=_CACHE)
 
 
-@router.get("/api/regions/{region_id}/outline.png")
-def region_outline(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse:
+@router.get("/regions/{region_id}/outline.png")
+def region_outline(region_id: int, s: SessionDep, settings: SettingsDep) -> FileResponse:
     """The full image with the region outlined."""
     return FileResponse(_project_file(settings, store.region_files(s, region_id).outline, region_id), media_type="image/png", headers=_CACHE)
 
 
-@router.get("/api/regions/{region_id}/overlay.png")
-def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> Response:
+@router.get("/regions/{region_id}/overlay.png")
+def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep) -> Response:
     """The full image with its saliency map as heat and the region outlined."""
     files = store.region_files(s, region_id)
     saliency = np.load(_project_file(settings, files.saliency_map, region_id)).astype(np.float32)
@@ -57,7 +55,7 @@ def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep, viewer:
     return Response(buf.getvalue(), media_type="image/png", headers=_CACHE)
 
 
-@router.get("/api/images/{image_id}/thumb.png")
+@router.get("/images/{image_id}/thumb.png")
 def image_thumb(image_id: int, s: SessionDep, viewer: ReviewerDep) -> Response:
     """A small view of a whole image (reviewers and up)."""
     row = s.get(ImageRow, image_id)

@@ -9,64 +9,56 @@ from typing import Annotated
 from urllib.parse import urlencode
 
 import pandas as pd
-from fastapi import APIRouter, Form, Query, Request
+from fastapi import Form, Query, Request
 from fastapi.responses import PlainTextResponse, RedirectResponse, Response
 
 from analysis.agreement_report import agreement_report
 from analysis.compare import compare_classes
-from analysis.concept_table import TARGETS
-from analysis.concept_votes import estimate_concepts, presence_agreement, presence_votes
+from analysis.concept_table import TARGETS, Target
+from analysis.concept_votes import estimate_concepts, presence_agreement
 from analysis.confident_errors import confident_errors
 from analysis.errors import InvalidInputError
 from analysis.expectations import check_expectations, read_expectations
 from analysis.exports import FORMATS, export_frame, rules_document
 from analysis.plots import frequency_plot, lift_plot
 from analysis.questions import QuestionError, answer_question, rule_question
-from analysis.rules import to_csv
+from analysis.rules import RuleTable, to_csv
 from analysis.synonyms import suggest_merges
 
-from .. import campaigns, store
+from .. import campaigns
 from ..reliance import cached_reliance, confirm_verdicts, with_reliance
-from ..deps import AnalystDep, CsrfDep, ReviewerDep, SessionDep, SettingsDep, WriteSessionDep
+from ..deps import AnalystDep, ReviewerDep, SessionDep, SettingsDep, WriteSessionDep, guarded_router, require_reviewer
 from ..errors import InvalidRequestError, NotFoundError
 from ..report import build_report
+from ..settings import Settings
+from ..services.campaign_analysis import Results, campaign_results, main_labels
+from ..services.campaign_analysis import votes as campaign_votes
 from .common import render
 
-router = APIRouter()
+router = guarded_router(require_reviewer, prefix="/campaigns/{campaign_id}")
+routers = (router,)
 MEDIA = {"csv": "text/csv", "json": "application/json", "parquet": "application/vnd.apache.parquet"}
 
 
-def results_for(request: Request, s: SessionDep, campaign_id: int) -> store.Results:
-    """The campaign's concept table, computed once per state of its labels and rules."""
-    c = campaigns.get_campaign(s, campaign_id)
-    key = store.labels_version(s, campaign_id)
-    cache: dict[tuple[object, ...], store.Results] = request.app.state.results_cache
-    found = cache.get(key)
-    if found is None:
-        found = store.compute_results(s, c)
-        with request.app.state.results_lock:  # requests run in several threads
-            while len(cache) >= 16:
-                cache.pop(next(iter(cache)))
-            cache[key] = found
-    return replace(found, campaign=c)  # the table is cached; the campaign's text fields are read fresh
+def results_for(request: Request, s: SessionDep, campaign_id: int) -> Results:
+    """The campaign's results, from the campaign-analysis service (cached per state of its labels)."""
+    return campaign_results(s, campaign_id, cache=request.app.state.results_cache)
 
 
-def _target(target: str) -> str:
-    if target not in TARGETS:
-        raise InvalidRequestError(f"target must be one of {', '.join(TARGETS)}; got {target!r}.")
-    return target
+def _target(target: str) -> Target:
+    for t in TARGETS:
+        if t == target:
+            return t
+    raise InvalidRequestError(f"target must be one of {', '.join(TARGETS)}; got {target!r}.")
 
 
-def _rules(res: store.Results, settings: SettingsDep, target: str, max_len: int, min_support: float | None, prune: bool):  # type: ignore[no-untyped-def]
+def _rules(res: Results, settings: Settings, target: str, max_len: int, min_support: float | None, prune: bool) -> RuleTable:
     if not 1 <= max_len <= 4:
         raise InvalidRequestError(f"max_len must be 1-4 concepts; got {max_len}.")
-    try:
-        return res.table.rules(target=_target(target), min_support=min_support or settings.min_support, max_len=max_len, prune=prune)  # type: ignore[arg-type]
-    except InvalidInputError as exc:
-        raise InvalidRequestError(str(exc)) from None
+    return res.table.rules(target=_target(target), min_support=min_support or settings.min_support, max_len=max_len, prune=prune)
 
 
-@router.get("/campaigns/{campaign_id}/results")
+@router.get("/results")
 def results(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep, target: str = "predicted",
             max_len: int = 2, min_support: float | None = None, prune: bool = True) -> Response:
     """Per-class concept rules with significance, for the predicted class, the true class or the errors."""
@@ -80,17 +72,17 @@ def results(request: Request, campaign_id: int, s: SessionDep, settings: Setting
     return render(request, "results.html", context, viewer=viewer)
 
 
-@router.get("/campaigns/{campaign_id}/plots/{kind}.png")
+@router.get("/plots/{kind}.png")
 def plot(request: Request, campaign_id: int, kind: str, s: SessionDep, viewer: ReviewerDep, target: str = "predicted") -> Response:
     """Concept frequency or lift per class, as a PNG heat map."""
     if kind not in ("frequency", "lift"):
         raise NotFoundError(f"no plot called {kind!r}; there are frequency and lift.")
     table = results_for(request, s, campaign_id).table
-    png = (frequency_plot if kind == "frequency" else lift_plot)(table, _target(target))  # type: ignore[arg-type]
+    png = (frequency_plot if kind == "frequency" else lift_plot)(table, _target(target))
     return Response(png, media_type="image/png")
 
 
-@router.get("/campaigns/{campaign_id}/exports/rules.{fmt}")
+@router.get("/exports/rules.{fmt}")
 def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep, target: str = "predicted",
                  max_len: int = 2, min_support: float | None = None, prune: bool = True) -> Response:
     """The rule table as CSV, JSON or Parquet."""
@@ -111,13 +103,10 @@ def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, se
 def _export(frame: pd.DataFrame, fmt: str, about: dict[str, object]) -> bytes:
     if fmt not in FORMATS:
         raise NotFoundError(f"no export as {fmt!r}; choose {', '.join(FORMATS)}.")
-    try:
-        return export_frame(frame, fmt, about=about)
-    except InvalidInputError as exc:
-        raise InvalidRequestError(str(exc)) from None
+    return export_frame(frame, fmt, about=about)
 
 
-@router.get("/campaigns/{campaign_id}/exports/concepts.{fmt}")
+@router.get("/exports/concepts.{fmt}")
 def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep, viewer: ReviewerDep) -> Response:
     """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet."""
     res = results_for(request, s, campaign_id)
@@ -127,21 +116,14 @@ def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep,
                     headers={"Content-Disposition": f"attachment; filename=concepts-campaign-{campaign_id}.{fmt}"})
 
 
-@router.get("/campaigns/{campaign_id}/exports/main-labels.csv", response_class=PlainTextResponse)
+@router.get("/exports/main-labels.csv", response_class=PlainTextResponse)
 def export_main_labels(campaign_id: int, s: SessionDep, viewer: ReviewerDep) -> PlainTextResponse:
     """Each judgment's main entity as item,annotator,label: the input of `heedmap agreement` and `heedmap aggregate`."""
-    c = campaigns.get_campaign(s, campaign_id)
-    rules, _ = campaigns.synonym_rules(s, c.id)
-    found = campaigns.judgments(s, c.id)
-    if not found:
-        raise NotFoundError(f"campaign {c.name!r} has no labels yet.")
-    m = presence_votes(found, rules=rules, region_class=campaigns.region_classes(s, c.id)).main_entities
-    frame = pd.DataFrame({"item": [m.items[i] for i in m.item_codes], "annotator": [m.annotators[a] for a in m.annotator_codes],
-                          "label": [m.classes[y] for y in m.label_codes]})
+    frame = main_labels(s, campaign_id)
     return PlainTextResponse(to_csv(frame), media_type="text/csv", headers={"Content-Disposition": f"attachment; filename=main-labels-campaign-{campaign_id}.csv"})
 
 
-@router.get("/campaigns/{campaign_id}/ask")
+@router.get("/ask")
 def ask(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep, q: Annotated[str, Query(max_length=2000)] = "") -> Response:
     """Ask which images match a combination of concepts, and how they fall per class."""
     res = results_for(request, s, campaign_id)
@@ -156,14 +138,14 @@ def ask(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep, 
     return render(request, "ask.html", context, viewer=viewer, status_code=422 if error else 200)
 
 
-@router.get("/campaigns/{campaign_id}/expectations")
+@router.get("/expectations")
 def expectations(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep) -> Response:
     """The team's expectations per class and whether the labels bear them out."""
     res = results_for(request, s, campaign_id)
     return _expectations_page(request, res, viewer, res.campaign.expectations)
 
 
-def _expectations_page(request: Request, res: store.Results, viewer: ReviewerDep, text: str, error: str = "", status_code: int = 200) -> Response:
+def _expectations_page(request: Request, res: Results, viewer: ReviewerDep, text: str, error: str = "", status_code: int = 200) -> Response:
     verdicts = []
     if text.strip() and not error:
         try:
@@ -176,7 +158,7 @@ def _expectations_page(request: Request, res: store.Results, viewer: ReviewerDep
     return render(request, "expectations.html", context, viewer=viewer, status_code=status_code)
 
 
-@router.post("/campaigns/{campaign_id}/expectations", dependencies=[CsrfDep])
+@router.post("/expectations")
 def save_expectations(request: Request, campaign_id: int, s: WriteSessionDep, viewer: AnalystDep, text: Annotated[str, Form(max_length=50_000)] = "") -> Response:
     """Save the expectations after checking they read; a file with errors is shown back, not saved."""
     res = results_for(request, s, campaign_id)
@@ -189,36 +171,30 @@ def save_expectations(request: Request, campaign_id: int, s: WriteSessionDep, vi
     return RedirectResponse(f"/campaigns/{campaign_id}/expectations", status_code=303)
 
 
-@router.get("/campaigns/{campaign_id}/errors")
+@router.get("/errors")
 def errors(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep, threshold: float = 0.8) -> Response:
     """Wrong predictions made with high confidence, grouped, with the concepts that set them apart."""
     res = results_for(request, s, campaign_id)
-    try:
-        found = confident_errors(res.table, threshold=threshold)
-    except InvalidInputError as exc:
-        raise InvalidRequestError(str(exc)) from None
+    found = confident_errors(res.table, threshold=threshold)
     return render(request, "errors.html", {"campaign": res.campaign, "found": found, "table": res.table}, viewer=viewer)
 
 
-@router.get("/campaigns/{campaign_id}/compare")
+@router.get("/compare")
 def compare(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep, a: str = "", b: str = "",
             target: str = "predicted") -> Response:
     """Two classes side by side: what sets each apart, what they share, their top rules."""
     res = results_for(request, s, campaign_id)
-    classes = sorted(res.table.targets(_target(target)).unique())  # type: ignore[arg-type]
+    classes = sorted(res.table.targets(_target(target)).unique())
     a = a or (classes[0] if classes else "")
     b = b or (classes[1] if len(classes) > 1 else "")
     comparison, top, crops = None, {}, {}
     if a and b:
-        try:
-            comparison = compare_classes(res.table, a, b, target=target)  # type: ignore[arg-type]
-        except InvalidInputError as exc:
-            raise InvalidRequestError(str(exc)) from None
+        comparison = compare_classes(res.table, a, b, target=_target(target))
         frame = _rules(res, settings, target, 2, None, True).rules
         frame = frame[frame["class"].isin([a, b])].groupby("class").head(8)
         frame = with_reliance(Path(settings.project_dir), res, frame)
         top = {k: frame[frame["class"] == k].to_dict("records") for k in (a, b)}
-        classes_of = res.table.targets(target)  # type: ignore[arg-type]
+        classes_of = res.table.targets(_target(target))
         crops = {
             k: [(c.concept, res.table.example_regions([c.concept], classes_of == k, limit=4)) for c in distinct[:3]]
             for k, distinct in ((a, comparison.distinct_a), (b, comparison.distinct_b))
@@ -228,7 +204,7 @@ def compare(request: Request, campaign_id: int, s: SessionDep, settings: Setting
     return render(request, "compare.html", context, viewer=viewer)
 
 
-@router.get("/campaigns/{campaign_id}/report.html")
+@router.get("/report.html")
 def report(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep) -> Response:
     """A self-contained HTML report (images and plots inline) that opens offline."""
     res = results_for(request, s, campaign_id)
@@ -236,15 +212,11 @@ def report(request: Request, campaign_id: int, s: SessionDep, settings: Settings
     return Response(html, media_type="text/html", headers={"Content-Disposition": f"attachment; filename=heedmap-report-campaign-{campaign_id}.html"})
 
 
-@router.get("/campaigns/{campaign_id}/agreement")
+@router.get("/agreement")
 def agreement(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep) -> Response:
     """Agreement on the main entity and on each concept, per annotator, and the most disputed regions."""
     c = campaigns.get_campaign(s, campaign_id)
-    rules, _ = campaigns.synonym_rules(s, c.id)
-    found = campaigns.judgments(s, c.id)
-    if not found:
-        raise NotFoundError(f"campaign {c.name!r} has no labels yet; agreement needs regions labelled by two or more people.")
-    votes = presence_votes(found, rules=rules, region_class=campaigns.region_classes(s, c.id))
+    votes = campaign_votes(s, c)
     report_ = agreement_report(votes.main_entities, n_boot=500, top_disputed=12)
     concepts = presence_agreement(votes, n_boot=200)[:40]
     ds = estimate_concepts(votes, method="dawid-skene")
@@ -254,7 +226,7 @@ def agreement(request: Request, campaign_id: int, s: SessionDep, viewer: Reviewe
     return render(request, "agreement.html", context, viewer=viewer)
 
 
-@router.get("/campaigns/{campaign_id}/synonyms")
+@router.get("/synonyms")
 def synonyms(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep, error: str = "") -> Response:
     """The campaign's merges and splits, with suggested duplicates to accept or reject."""
     c = campaigns.get_campaign(s, campaign_id)
@@ -268,7 +240,7 @@ def synonyms(request: Request, campaign_id: int, s: SessionDep, viewer: Reviewer
     return render(request, "synonyms.html", context, viewer=viewer)
 
 
-@router.post("/campaigns/{campaign_id}/synonyms", dependencies=[CsrfDep])
+@router.post("/synonyms")
 def add_synonym(
     campaign_id: int, s: WriteSessionDep, viewer: AnalystDep,
     kind: Annotated[str, Form()], source: Annotated[str, Form(max_length=60)], target: Annotated[str, Form(max_length=60)] = "",
@@ -290,7 +262,7 @@ def add_synonym(
     return RedirectResponse(f"/campaigns/{campaign_id}/synonyms", status_code=303)
 
 
-@router.post("/campaigns/{campaign_id}/synonyms/{rule_id}/delete", dependencies=[CsrfDep])
+@router.post("/synonyms/{rule_id}/delete")
 def delete_synonym(campaign_id: int, rule_id: int, s: WriteSessionDep, viewer: AnalystDep) -> Response:
     """Undo a merge, split or rejection."""
     campaigns.delete_synonym_rule(s, campaign_id=campaign_id, rule_id=rule_id)
