@@ -4,7 +4,7 @@ and how much of its saliency lies on them."""
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from typing import Literal
 
 import numpy as np
@@ -26,7 +26,9 @@ class ConceptTable:
 
     ``meta`` holds META_COLUMNS; ``presence`` says whether any of the image's regions carries each
     concept; ``share`` is the share of the image's saliency mass on regions carrying it (0..1).
-    ``method`` and ``threshold`` record how region labels became concepts.
+    ``method`` and ``threshold`` record how region labels became concepts. ``families`` maps each
+    refinement among the columns to its entity ("yellow tag" -> "tag"); an image that shows a
+    refinement shows its entity.
     """
 
     meta: pd.DataFrame
@@ -35,6 +37,7 @@ class ConceptTable:
     regions: RegionMass
     method: str
     threshold: float
+    families: Mapping[str, str] = field(default_factory=dict)
 
     @property
     def concepts(self) -> list[str]:
@@ -58,10 +61,10 @@ class ConceptTable:
               min_count: int = 1, prune: bool = True) -> RuleTable:
         """Concept rules for the chosen target, with each rule's saliency share; "correct" is not a target class."""
         rules = mine_rules(self.presence, self.targets(target), min_support=min_support, max_len=max_len, min_lift=min_lift,
-                           min_count=min_count, prune=prune, saliency=self.regions)
+                           min_count=min_count, prune=prune, saliency=self.regions, families=self.families)
         if target == "errors":
             kept = rules.rules[rules.rules["class"] != CORRECT].reset_index(drop=True)
-            return RuleTable(kept, rules.n_images, rules.min_support, rules.max_len, rules.min_count, rules.n_tested, rules.pruned)
+            return replace(rules, rules=kept)
         return rules
 
     def example_regions(self, concepts: Sequence[str], rows: pd.Series, *, limit: int = 6) -> list[int]:
@@ -92,6 +95,7 @@ def build_concept_table(
     *,
     method: str,
     threshold: float = 0.5,
+    families: Mapping[str, str] | None = None,
 ) -> ConceptTable:
     """Assemble the table from per-image regions, each region's saliency share and its concepts.
 
@@ -105,6 +109,9 @@ def build_concept_table(
         Share of its image's saliency inside each region.
     region_concepts
         Concepts present per region (from aggregation).
+    families
+        Refinement -> entity (``PresenceVotes.families``); a region carrying a refinement carries
+        its entity too, so the entity's column counts every image that shows any of its refinements.
     """
     missing = [c for c in ("true_class", "predicted_class", "confidence", "split") if c not in meta.columns]
     if missing:
@@ -114,7 +121,20 @@ def build_concept_table(
     meta = meta[["true_class", "predicted_class", "confidence", "split"]].copy()
     meta["correct"] = meta["true_class"].astype(str) == meta["predicted_class"].astype(str)
     meta = meta[META_COLUMNS]
-    concepts = sorted({c for image in meta.index for r in image_regions.get(image, ()) for c in region_concepts.get(r, {})})
+    parent = dict(families or {})
+
+    def with_entities(found: Mapping[str, float]) -> set[str]:
+        out = set(found)
+        for c in found:
+            seen = {c}
+            while c in parent and parent[c] not in seen:  # refinements of refinements reach the top entity
+                c = parent[c]
+                seen.add(c)
+                out.add(c)
+        return out
+
+    carried = {r: with_entities(region_concepts.get(r, {})) for image in meta.index for r in image_regions.get(image, ())}
+    concepts = sorted({c for cs in carried.values() for c in cs})
     col = {c: j for j, c in enumerate(concepts)}
     row = {image: i for i, image in enumerate(meta.index)}
     r_image, r_mass, r_rows, r_cols, r_ids = [], [], [], [], []
@@ -124,7 +144,7 @@ def build_concept_table(
             r_ids.append(int(r))
             r_image.append(row[image])
             r_mass.append(float(region_mass.get(r, 0.0)))
-            for c in region_concepts.get(r, {}):
+            for c in carried[r]:
                 r_rows.append(k)
                 r_cols.append(col[c])
     carries = sparse.csc_matrix((np.ones(len(r_rows), dtype=bool), (r_rows, r_cols)), shape=(len(r_image), len(concepts)))
@@ -134,4 +154,6 @@ def build_concept_table(
     count = to_image @ carries.astype(np.float64)
     presence = pd.DataFrame(count.toarray() > 0, index=meta.index, columns=concepts)
     share_frame = pd.DataFrame(np.asarray(share.todense()).clip(0, 1), index=meta.index, columns=concepts)
-    return ConceptTable(meta, presence, share_frame, regions, method, threshold)
+    shown = set(concepts)
+    kept = {c: e for c, e in parent.items() if c in shown and e in shown}
+    return ConceptTable(meta, presence, share_frame, regions, method, threshold, kept)

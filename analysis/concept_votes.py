@@ -10,13 +10,13 @@ sparse team produces; per concept it would be starved.
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import numpy.typing as npt
 
 from .agreement import alpha_with_interval
-from .concepts import Judgment, judgment_concepts, main_entity, normalise_label
+from .concepts import Judgment, attribute_words, entity_with_attributes, judgment_families, main_entity, normalise_label
 from .errors import InvalidInputError
 from .long_labels import LongLabels
 from .reliability import Method, aggregate
@@ -45,6 +45,7 @@ class PresenceVotes:
     vote_annotator: IntArray  # (V,)
     vote_yes: BoolArray  # (V,)
     main_entities: LongLabels  # items = regions (as str), label = first entity named
+    families: Mapping[str, str] = field(default_factory=dict)  # refinement -> its entity ("yellow tag" -> "tag")
 
     @property
     def raters(self) -> IntArray:
@@ -63,21 +64,44 @@ def presence_votes(
 
     ``region_class`` gives each region's predicted class (for class-dependent splits);
     ``known`` gives the concepts a check region is known to show (normalised on the way in),
-    which become known-yes pairs, and every other concept named there a known no.
+    which become known-yes pairs, and every other concept named there a known no. A known
+    refinement ("yellow tag") makes its entity ("tag") known too.
+
+    Concepts form families (see :func:`analysis.concepts.judgment_families`): naming "yellow tag"
+    or "tag: yellow" is a yes vote for "tag" as well, and the words any annotator used as an
+    attribute are split off the front of multi-word entities throughout. ``families`` of the
+    result maps each refinement to its entity.
     """
     region_class = region_class or {}
-    known_sets = {int(r): {normalise_label(c) for c in cs} - {""} for r, cs in (known or {}).items()}
+    judgments = [j for j in judgments if not j.unsure]
+    words = attribute_words(judgments, rules=rules)
+    families: dict[str, str] = {}
+    known_sets: dict[int, set[str]] = {}
+    for r, cs in (known or {}).items():
+        found: set[str] = set()
+        for c in cs:
+            label = normalise_label(c)
+            if not label:
+                continue
+            head, lead = entity_with_attributes(label, rules or SynonymRules(), region_class.get(int(r)), words)
+            found.add(head)
+            for a in lead:
+                found.add(f"{a} {head}")
+                families.setdefault(f"{a} {head}", head)
+        known_sets[int(r)] = found
     named: dict[tuple[int, str], set[str]] = {}
     entity: dict[tuple[int, str], str] = {}
     for j in judgments:
-        if j.unsure:
-            continue
         key = (int(j.region_id), j.annotator)
         if key in named:
             raise InvalidInputError(f"annotator {j.annotator!r} judged region {j.region_id} twice; keep one judgment per region and annotator.")
         cls = region_class.get(j.region_id)
-        named[key] = judgment_concepts(j, rules=rules, cls=cls)
-        entity[key] = main_entity(j, rules=rules, cls=cls)
+        fam = judgment_families(j, rules=rules, cls=cls, attributes=words)
+        for concept, e in fam.items():
+            if concept != e:
+                families.setdefault(concept, e)
+        named[key] = set(fam)
+        entity[key] = main_entity(j, rules=rules, cls=cls, attributes=words)
     if not named:
         raise InvalidInputError("no judgments to aggregate (none given, or all marked not sure); collect labels first.")
     regions = tuple(sorted({r for r, _ in named}))
@@ -116,7 +140,8 @@ def presence_votes(
         np.array([e_index[entity[k]] for k in keys], dtype=np.int64),
     )
     as_int = lambda v: np.array(v, dtype=np.int64)  # noqa: E731
-    return PresenceVotes(regions, annotators, concepts, as_int(pr), as_int(pc), as_int(kn), as_int(vp), as_int(va), np.array(vy, dtype=bool), main)
+    fams = {c: e for c, e in sorted(families.items()) if c in concept_set and e in concept_set}
+    return PresenceVotes(regions, annotators, concepts, as_int(pr), as_int(pc), as_int(kn), as_int(vp), as_int(va), np.array(vy, dtype=bool), main, fams)
 
 
 @dataclass(frozen=True)
@@ -137,11 +162,20 @@ class ConceptEstimate:
         return self.probability > self.threshold
 
     def region_concepts(self) -> dict[int, dict[str, float]]:
-        """``{region_id: {concept: probability}}`` for the present pairs; every judged region has an entry."""
+        """``{region_id: {concept: probability}}`` for the present pairs; every judged region has an entry.
+
+        An entity is present wherever one of its refinements is, with at least the refinement's probability.
+        """
         v = self.votes
         out: dict[int, dict[str, float]] = {r: {} for r in v.regions}
         for p in np.nonzero(self.present)[0]:
             out[v.regions[v.pair_region[p]]][v.concepts[v.pair_concept[p]]] = float(self.probability[p])
+        # A region showing a refinement shows its entity ("yellow tag" counts for "tag").
+        for found in out.values():
+            for c, prob in list(found.items()):
+                e = v.families.get(c)
+                if e is not None and found.get(e, -1.0) < prob:
+                    found[e] = prob
         return out
 
 

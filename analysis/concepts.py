@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
 from .errors import InvalidInputError
@@ -58,31 +58,82 @@ class Judgment:
 NOTHING = "nothing recognisable"
 
 
-def judgment_concepts(j: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None) -> set[str]:
-    """Concepts one judgment names: each entity, and ``"<attribute> <entity>"`` for each attribute.
+def attribute_words(judgments: Iterable[Judgment], *, rules: SynonymRules | None = None) -> frozenset[str]:
+    """Every word the annotators used as an attribute (after a colon), normalised and read through the rules.
 
-    Labels are normalised, then read through the synonym ``rules`` (splits by ``cls``, the region's
-    predicted class).
+    A multi-word entity whose leading words are all among these ("yellow tag" where somebody wrote
+    "tag: yellow") is read as its last words' entity with those words as an attribute.
     """
     rules = rules or SynonymRules()
     out: set[str] = set()
-    for entity, attributes in j.entities:
-        e = rules.entity(normalise_label(entity), cls)
+    for j in judgments:
+        for _, attributes in j.entities:
+            for a in attributes:
+                out.update(rules.attribute(normalise_label(a)).split())
+    out.discard("")
+    return frozenset(out)
+
+
+def entity_with_attributes(label: str, rules: SynonymRules, cls: str | None, words: frozenset[str]) -> tuple[str, list[str]]:
+    """An entity label read through the rules, with leading attribute words split off: ("yellow tag") -> ("tag", ["yellow"])."""
+    entity = rules.entity(label, cls)
+    parts = entity.split(" ")
+    lead = 0
+    while lead < len(parts) - 1 and parts[lead] in words:
+        lead += 1
+    if lead == 0:
+        return entity, []
+    head = rules.entity(" ".join(parts[lead:]), cls)
+    return head, [" ".join(parts[:lead])]
+
+
+def judgment_families(
+    j: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None, attributes: frozenset[str] = frozenset()
+) -> dict[str, str]:
+    """Concepts one judgment names, each mapped to its entity (an entity maps to itself).
+
+    Each entity is a concept, and ``"<attribute> <entity>"`` for each attribute is a refinement of
+    it, nested under it (``{"tag": "tag", "yellow tag": "tag"}``). Labels are normalised, then
+    read through the synonym ``rules`` (splits by ``cls``, the region's predicted class). An
+    entity's leading words that are among ``attributes`` (see :func:`attribute_words`) become an
+    attribute of the rest, and an attribute already among the entity's words is not added again:
+    ``yellow square: yellow`` and the slip ``yellow square: square`` give "yellow square", never
+    "yellow yellow square" or "square yellow square".
+    """
+    rules = rules or SynonymRules()
+    out: dict[str, str] = {}
+    for entity, typed in j.entities:
+        label = normalise_label(entity)
+        if not label:
+            continue
+        e, lead = entity_with_attributes(label, rules, cls, attributes)
         if not e:
             continue
-        out.add(e)
-        for a in attributes:
-            na = rules.attribute(normalise_label(a))
-            if na:
-                out.add(f"{na} {e}")
+        out[e] = e
+        own = set(e.split(" "))
+        for a in [*lead, *(rules.attribute(normalise_label(t)) for t in typed)]:
+            words = [w for w in a.split(" ") if w and w not in own]
+            if words:
+                out.setdefault(f"{' '.join(words)} {e}", e)
     return out
 
 
-def main_entity(j: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None) -> str:
-    """The first entity a judgment names (normalised, through the rules), or :data:`NOTHING`."""
+def judgment_concepts(
+    j: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None, attributes: frozenset[str] = frozenset()
+) -> set[str]:
+    """Concepts one judgment names: each entity, and ``"<attribute> <entity>"`` for each attribute
+    (see :func:`judgment_families`, which also says which entity each belongs to)."""
+    return set(judgment_families(j, rules=rules, cls=cls, attributes=attributes))
+
+
+def main_entity(
+    j: Judgment, *, rules: SynonymRules | None = None, cls: str | None = None, attributes: frozenset[str] = frozenset()
+) -> str:
+    """The first entity a judgment names (normalised, through the rules, attribute words split off), or :data:`NOTHING`."""
     rules = rules or SynonymRules()
     for entity, _ in j.entities:
-        e = rules.entity(normalise_label(entity), cls)
+        label = normalise_label(entity)
+        e = entity_with_attributes(label, rules, cls, attributes)[0] if label else ""
         if e:
             return e
     return NOTHING

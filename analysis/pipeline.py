@@ -115,5 +115,5 @@ def campaign_table(
         raise NotEnoughLabelsError("no image has all its regions labelled yet; label some more regions first.")
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
     image_regions = {int(i): list(r) for i, r in complete["regions"].items()}
-    table = build_concept_table(meta, image_regions, mass, region_concepts, method=str(method), threshold=threshold)
+    table = build_concept_table(meta, image_regions, mass, region_concepts, method=str(method), threshold=threshold, families=votes.families)
     return CampaignTable(table, len(labelled))

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import csv
 import io
+from collections.abc import Mapping
 from dataclasses import dataclass
-
 from itertools import combinations
 from typing import Literal
 
@@ -20,7 +20,7 @@ from .itemsets import ItemsetCounts, count_itemsets, count_with_mlxtend
 
 RULE_COLUMNS = [
     "class", "concepts", "size", "n_images", "support", "confidence", "confidence_low", "lift", "leverage", "conviction",
-    "class_images", "concept_images", "p_value", "q_value", "saliency_share", "rank",
+    "class_images", "concept_images", "p_value", "q_value", "saliency_share", "rank", "family", "parent", "typicality",
 ]
 
 
@@ -30,6 +30,12 @@ class RuleTable:
 
     ``n_tested`` is the number of rules whose p-values were adjusted together (every concept set
     and class that reached the minimum support, before the lift filter and pruning).
+
+    Rules of one family share a ``rank``: ``family`` is the rule's set with every refinement read
+    as its entity ("yellow tag & cap" -> "cap & tag"); ``parent`` is that family's own rule when
+    it is in the table (the row the refinement is nested under), else empty; ``typicality`` is
+    the share of the family's images of the class that show the refinement (empty for the
+    family's own rule).
     """
 
     rules: pd.DataFrame
@@ -151,6 +157,7 @@ def mine_rules(
     prune: bool = False,
     saliency: RegionMass | None = None,
     engine: Literal["bitset", "mlxtend"] = "bitset",
+    families: Mapping[str, str] | None = None,
 ) -> RuleTable:
     """Mine rules ``concept set => class`` with support, confidence, lift, leverage, conviction and significance.
 
@@ -175,6 +182,12 @@ def mine_rules(
     engine
         ``bitset`` counts concept sets per class on bit-packed columns; ``mlxtend`` runs mlxtend's
         FP-growth instead (same rules, slower; the reference).
+    families
+        Refinement -> entity, for columns that refine another column ("yellow tag" -> "tag"); the
+        table must show the entity wherever it shows the refinement. A set holding a concept and
+        its own entity is not a rule (it says no more than the refinement alone). Rules are ranked
+        by family: a family takes the place of its strongest rule, the entity's own rule comes
+        first and its refinements follow it, each with its typicality.
 
     Each rule gets a one-sided Fisher's exact p-value and a Benjamini-Hochberg q-value over every
     rule tested. Rules within a class are ranked by ``confidence_low``, the lower end of the 95%
@@ -198,11 +211,14 @@ def mine_rules(
     x = _as_sparse(table)
     counter = count_with_mlxtend if engine == "mlxtend" else count_itemsets
     counts = counter(x, codes, n_classes=len(class_names), min_count=threshold, max_len=max_len)
-    set_idx, cls_idx = np.nonzero(counts.class_counts >= threshold)
+    root = _roots(names, families or {})
+    allowed = ~_holds_own_entity(counts.itemsets, root)
+    set_idx, cls_idx = np.nonzero((counts.class_counts >= threshold) & allowed[:, None])
     empty = RuleTable(pd.DataFrame(columns=RULE_COLUMNS), n, min_support, max_len, threshold, 0, 0)
     if len(set_idx) == 0:
         return empty
     n_xy = counts.class_counts[set_idx, cls_idx]
+    family_sets = [tuple(sorted({root[i] for i in counts.itemsets[s]})) for s in set_idx.tolist()]
     n_x = counts.totals[set_idx]
     n_y = counts.class_sizes[cls_idx]
     confidence = n_xy / n_x
@@ -226,6 +242,8 @@ def mine_rules(
             "concept_images": n_x,
             "p_value": p_value,
             "q_value": benjamini_hochberg(p_value),
+            "family": [" & ".join(sorted(names[i] for i in f)) for f in family_sets],
+            "typicality": _typicality(counts, set_idx, cls_idx, family_sets),
         }
     )
     n_tested = len(out)
@@ -237,9 +255,56 @@ def mine_rules(
         keep &= ~redundant
     out = out[keep].copy()
     out["saliency_share"] = _saliency_shares(saliency, x, counts, set_idx[keep], cls_idx[keep], codes) if saliency is not None else np.nan
-    out = out.sort_values(["class", "confidence_low", "n_images", "concepts"], ascending=[True, False, False, True])
-    out["rank"] = out.groupby("class").cumcount() + 1
+    out = _rank_by_family(out)
     return RuleTable(out.reset_index(drop=True)[RULE_COLUMNS], n, min_support, max_len, threshold, n_tested, pruned)
+
+
+def _roots(names: list[str], families: Mapping[str, str]) -> list[int]:
+    """Each column's top entity among the columns (itself when it refines nothing)."""
+    index = {c: i for i, c in enumerate(names)}
+    out = []
+    for c in names:
+        seen = {c}
+        while families.get(c) in index and families[c] not in seen:
+            c = families[c]
+            seen.add(c)
+        out.append(index[c])
+    return out
+
+
+def _holds_own_entity(itemsets: list[tuple[int, ...]], root: list[int]) -> npt.NDArray[np.bool_]:
+    """True for sets holding a refinement together with its entity, or two members of one family."""
+    return np.array([len({root[i] for i in s}) < len(s) for s in itemsets], dtype=bool)
+
+
+def _typicality(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64],
+                family_sets: list[tuple[int, ...]]) -> npt.NDArray[np.float64]:
+    """Images of the class holding the set, over those holding its family's set; NaN for a family's own set."""
+    index = {s: i for i, s in enumerate(counts.itemsets)}
+    out = np.full(len(set_idx), np.nan)
+    for r, (s, k, f) in enumerate(zip(set_idx.tolist(), cls_idx.tolist(), family_sets)):
+        j = index.get(f)
+        if f != counts.itemsets[s] and j is not None and counts.class_counts[j, k] > 0:
+            out[r] = counts.class_counts[s, k] / counts.class_counts[j, k]
+    return out
+
+
+def _rank_by_family(out: pd.DataFrame) -> pd.DataFrame:
+    """Order each class's rules by family (its strongest rule: Wilson low, then images, then fewer concepts), the family's own rule first."""
+    if out.empty:
+        return out.assign(rank=pd.Series(dtype=np.int64), parent=pd.Series(dtype=object))
+    shown = set(zip(out["class"], out["concepts"]))
+    out = out.assign(
+        parent=[f if f != c and (k, f) in shown else "" for k, c, f in zip(out["class"], out["concepts"], out["family"])],
+        _head=(out["concepts"] != out["family"]).astype(int),
+    )
+    group = out.groupby(["class", "family"])
+    out = out.assign(_best=group["confidence_low"].transform("max"), _most=group["n_images"].transform("max"))
+    out = out.assign(_size=out["family"].str.count(" & "))
+    out = out.sort_values(["class", "_best", "_most", "_size", "family", "_head", "confidence_low", "n_images", "concepts"],
+                          ascending=[True, False, False, True, True, True, False, False, True])
+    first = out.groupby("class")["family"].transform(lambda f: (f != f.shift()).cumsum())
+    return out.assign(rank=first.astype(np.int64)).drop(columns=["_head", "_best", "_most", "_size"])
 
 
 def _redundant(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64], confidence: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:

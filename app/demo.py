@@ -8,6 +8,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 from PIL import Image
 from sqlalchemy import select
 
@@ -77,10 +78,10 @@ DEMO_INSTRUCTIONS = """Name what you see inside the highlighted region of a sort
 Add attributes after a colon, e.g. "cap: red; label band: torn, white"."""
 
 
-def names_cue(concepts: str, cue: str) -> bool:
-    """Whether a rule's concept set is the injected cue on its own, or the cue with an attribute:
-    "yellow tag" names the tag as well as "tag" does (but "belt" does not name the green belt)."""
-    return concepts == cue or (concepts.endswith(" " + cue) and " & " not in concepts)
+def names_cue(concepts: str, cue: str, family: str = "") -> bool:
+    """Whether a rule names the injected cue: the cue itself, or a refinement of it on its own ("yellow tag"
+    is in the family of "tag"); a rule of the cue's entity does not ("belt" does not name the green belt)."""
+    return concepts == cue or (" & " not in concepts and family == cue)
 
 
 def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: int = 0, annotators: int = 3, min_support: float = 0.02,
@@ -130,7 +131,8 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
         rules = res.table.rules(min_support=min_support).rules
         (out / "rules.csv").write_text(to_csv(rules), encoding="utf-8")
         if cue_info:
-            mine = rules[(rules["class"] == cue_info["class"]) & rules["concepts"].map(lambda c: names_cue(str(c), str(cue_info["concept"])))]
+            named = [names_cue(str(c), str(cue_info["concept"]), str(f)) for c, f in zip(rules["concepts"], rules["family"])]
+            mine = rules[(rules["class"] == cue_info["class"]) & pd.Series(named, index=rules.index, dtype=bool)]
             summary["cue_rule"] = None if mine.empty else {
                 "rank": int(mine["rank"].iloc[0]), "concepts": str(mine["concepts"].iloc[0]), "lift": float(mine["lift"].iloc[0]),
                 "confidence": float(mine["confidence"].iloc[0]), "n_images": int(mine["n_images"].iloc[0]),

@@ -34,7 +34,9 @@ def one_run(cue: str, seed: int, size: str, aggregation: str) -> dict[str, objec
         game = demo_pointing_game(out)
         rules = pd.read_csv(out / "rules.csv")
     can = rules[rules["class"] == "can"]
-    cue_rules = can[can["concepts"].map(lambda c: any(names_cue(str(c), cue_name) for cue_name in CUE_CONCEPTS.values()))]
+    # A rule names the cue when it is the cue or a refinement of it ("yellow tag"); refinements share their family's rank.
+    named = [any(names_cue(str(c), cue_name, str(f)) for cue_name in CUE_CONCEPTS.values()) for c, f in zip(can["concepts"], can["family"].fillna(""))]
+    cue_rules = can[pd.Series(named, index=can.index, dtype=bool)]
     acc = summary["accuracy"]  # type: ignore[index]
     rule = summary.get("cue_rule") or {}
     return {
@@ -42,7 +44,7 @@ def one_run(cue: str, seed: int, size: str, aggregation: str) -> dict[str, objec
         "test_accuracy": round(float(acc["test"]), 3), "counterfactual_accuracy": round(float(acc["counterfactual"]), 3),  # type: ignore[index]
         "learned_cue": bool(acc["test"] - acc["counterfactual"] > 0.2) if cue != "none" else None,  # type: ignore[index]
         "rank": rule.get("rank"), "rule": rule.get("concepts"), "lift": round(float(rule["lift"]), 2) if rule else None,  # type: ignore[union-attr]
-        "n_can_rules": len(can), "cue_concept_rules_in_class": len(cue_rules),
+        "n_can_rules": len(can), "cue_concept_rules_in_class": len(cue_rules), "cue_families_in_class": int(cue_rules["family"].nunique()),
         "pointing_game": round(game.hit_rate, 3), "pointing_chance": round(game.chance_rate, 3),
         "seconds": round(sum(summary["timings"].values()), 1),  # type: ignore[union-attr]
     }
@@ -66,9 +68,10 @@ def main(argv: list[str] | None = None) -> str:
     args.out.mkdir(parents=True, exist_ok=True)
     frame.to_csv(args.out / "bias_recovery.csv", index=False)
     (args.out / "bias_recovery.json").write_text(json.dumps({"size": size, "aggregation": args.aggregation, "runs": rows}, indent=1))
-    cols = ["cue", "seed", "concept", "test_accuracy", "counterfactual_accuracy", "rank", "rule", "lift", "cue_concept_rules_in_class", "pointing_game", "pointing_chance"]
+    cols = ["cue", "seed", "concept", "test_accuracy", "counterfactual_accuracy", "rank", "rule", "lift", "cue_concept_rules_in_class", "cue_families_in_class", "pointing_game",
+            "pointing_chance"]
     return print_table(["cue", "seed", "injected concept", "test acc", "counterfactual acc", "rank in class", "top cue rule", "lift", "cue rules in 'can'",
-                        "pointing game", "chance"],
+                        "cue families in 'can'", "pointing game", "chance"],
                        frame[cols].astype(object).where(frame[cols].notna(), "-").to_numpy().tolist())
 
 

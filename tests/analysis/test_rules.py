@@ -161,3 +161,59 @@ def test_wilson_lower_bound_matches_statsmodels() -> None:
 
     for k, n in [(50, 50), (6, 6), (68, 74), (0, 10), (3, 1000)]:
         assert wilson_lower([k], [n])[0] == pytest.approx(proportion_confint(k, n, alpha=0.05, method="wilson")[0])
+
+
+def _family_table() -> tuple[pd.DataFrame, pd.Series]:
+    """Cans: 12 with a yellow tag, 4 with a plain tag, 4 with a rim; bottles: 2 yellow tags, 8 rims, 10 with red bodies;
+    one can has a red body. "red body" refines "body", which every image shows."""
+    rows = [("can", {"tag", "yellow tag"})] * 12 + [("can", {"tag"})] * 4 + [("can", {"rim"})] * 3 + [("can", {"rim", "red body"})]
+    rows += [("bottle", {"tag", "yellow tag"})] * 2 + [("bottle", {"rim"})] * 8 + [("bottle", {"red body"})] * 10
+    concepts = ["tag", "yellow tag", "rim", "body", "red body"]
+    table = pd.DataFrame([[c in s or (c == "body") for c in concepts] for _, s in rows], columns=concepts)
+    return table, pd.Series([k for k, _ in rows])
+
+
+def test_refinements_are_nested_under_their_entity_with_their_typicality() -> None:
+    table, classes = _family_table()
+    families = {"yellow tag": "tag", "red body": "body"}
+    plain = mine_rules(table, classes, min_support=0.02, max_len=2, min_lift=0.0)
+    nested = mine_rules(table, classes, min_support=0.02, max_len=2, min_lift=0.0, families=families)
+    can = nested.rules[nested.rules["class"] == "can"].reset_index(drop=True)
+    # The tag family comes first: "tag" and then "yellow tag" nested under it, sharing rank 1.
+    assert can.loc[0, ["rank", "concepts", "parent", "family"]].tolist() == [1, "tag", "", "tag"]
+    assert can.loc[1, ["rank", "concepts", "parent", "family"]].tolist() == [1, "yellow tag", "tag", "tag"]
+    # Typicality: of the 16 cans showing a tag, 12 show a yellow one (counted with pandas, not our counter).
+    tagged_cans = table[(classes == "can") & table["tag"]]
+    assert can.loc[1, "typicality"] == pytest.approx(tagged_cans["yellow tag"].mean()) == pytest.approx(12 / 16)
+    assert np.isnan(can.loc[0, "typicality"])
+    # No rule pairs a refinement with its own entity; those sets are not tested either.
+    assert not nested.rules["concepts"].str.contains("tag & yellow tag").any()
+    assert "tag & yellow tag" in set(plain.rules["concepts"])
+    assert nested.n_tested == plain.n_tested - int(((plain.rules["concepts"] == "tag & yellow tag") | (plain.rules["concepts"] == "body & red body")).sum())
+    # The figures of every rule are those of the plain table.
+    both = nested.rules.merge(plain.rules, on=["class", "concepts"], suffixes=("", "_plain"))
+    assert len(both) == len(nested.rules)
+    for col in ("n_images", "confidence", "confidence_low", "lift", "p_value"):
+        np.testing.assert_allclose(both[col].astype(float), both[col + "_plain"].astype(float))
+    # A refinement whose entity is no rule of the class keeps its family name but no parent row.
+    red = nested.rules[(nested.rules["class"] == "bottle") & (nested.rules["concepts"] == "red body")].iloc[0]
+    assert red["family"] == "body" and red["typicality"] == pytest.approx(10 / 20)
+    assert red["parent"] == ("body" if ((nested.rules["class"] == "bottle") & (nested.rules["concepts"] == "body")).any() else "")
+
+
+def test_a_refinement_never_stands_above_its_entity_and_one_family_takes_one_rank() -> None:
+    table, classes = _family_table()
+    rules = mine_rules(table, classes, min_support=0.02, max_len=2, min_lift=1.0, families={"yellow tag": "tag", "red body": "body"}).rules
+    for cls, group in rules.groupby("class"):
+        ranks = group["rank"].tolist()
+        assert ranks == sorted(ranks) and set(ranks) == set(range(1, max(ranks) + 1))
+        position = {c: i for i, c in enumerate(group["concepts"])}
+        for c, parent in zip(group["concepts"], group["parent"]):
+            if parent:
+                assert position[parent] < position[c]
+        assert group.groupby("family")["rank"].nunique().max() == 1
+    # Without families the order is the one it always was: by Wilson low, then images.
+    flat = mine_rules(table, classes, min_support=0.02, max_len=2, min_lift=1.0).rules
+    for cls, group in flat.groupby("class"):
+        assert group["rank"].tolist() == list(range(1, len(group) + 1))
+        assert group["confidence_low"].is_monotonic_decreasing
