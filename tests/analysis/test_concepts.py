@@ -84,3 +84,15 @@ def test_known_refinements_make_their_entity_known() -> None:
     votes = presence_votes(js, known={1: ["yellow tag"]})
     known = {votes.concepts[c]: int(k) for c, k in zip(votes.pair_concept, votes.known)}
     assert known == {"tag": 1, "yellow tag": 1, "cap": 0}
+
+
+def test_the_campaign_pipeline_keeps_families_in_its_table() -> None:
+    from analysis.pipeline import campaign_table
+
+    js = [Judgment(1, a, (("tag", ("yellow",)),)) for a in "abc"] + [Judgment(2, a, (("cap", ()),)) for a in "abc"]
+    predictions = pd.DataFrame({"label": ["can", "bottle"], "predicted": ["can", "bottle"], "confidence": 0.9, "split": "test",
+                                "regions": [[1], [2]], "mass_shares": [[0.6], [0.4]]}, index=[10, 11])
+    made = campaign_table(js, predictions, region_class={1: "can", 2: "bottle"})
+    assert made.table.families == {"yellow tag": "tag"}
+    rules = made.table.rules(min_support=0.1, max_len=1).rules
+    assert rules[rules["concepts"] == "yellow tag"]["parent"].tolist() == ["tag"]
