@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import numpy.typing as npt
 
@@ -71,6 +73,22 @@ def alpha_from_counts(counts: npt.ArrayLike) -> float:
     return _alpha_from_counts(pairable)
 
 
+@functools.lru_cache(maxsize=4)
+def _resample_weights(u: int, n_boot: int, seed: int) -> tuple[npt.NDArray[np.float64], ...]:
+    """How often each of ``u`` units is drawn in each resample, in chunks of 64 resamples (small for many units).
+
+    Kept for the last few sizes: per-concept alphas over the same regions resample the same
+    units with the same seed, and drawing the weights is most of a bootstrap's time.
+    """
+    rng = np.random.default_rng(seed)
+    chunks = []
+    for start in range(0, n_boot, 64):
+        w = rng.multinomial(u, np.full(u, 1.0 / u), size=min(64, n_boot - start)).astype(float)
+        w.flags.writeable = False
+        chunks.append(w)
+    return tuple(chunks)
+
+
 def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float = 0.95, seed: int = 0) -> tuple[float, float]:
     """Percentile bootstrap interval for nominal alpha, resampling units with replacement.
 
@@ -80,13 +98,11 @@ def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float =
     pairable = _pairable(np.asarray(counts, dtype=float))
     if len(pairable) < 2:
         raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
-    rng = np.random.default_rng(seed)
     u = len(pairable)
     m = pairable.sum(axis=1)
     d = (m**2 - (pairable**2).sum(axis=1)) / (m - 1)
     stats = []
-    for start in range(0, n_boot, 64):  # chunks keep the weight matrix small for many units
-        w = rng.multinomial(u, np.full(u, 1.0 / u), size=min(64, n_boot - start)).astype(float)
+    for w in _resample_weights(u, n_boot, seed):
         n_c = w @ pairable
         n = n_c.sum(axis=1)
         expected = n * n - (n_c**2).sum(axis=1)

@@ -9,7 +9,7 @@ from scipy.stats import norm
 
 from .concept_table import ConceptTable, Target
 from .errors import InvalidInputError
-from .rules import benjamini_hochberg
+from .association import benjamini_hochberg
 
 
 @dataclass(frozen=True)

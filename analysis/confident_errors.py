@@ -10,7 +10,7 @@ import numpy as np
 
 from .concept_table import ConceptTable
 from .errors import InvalidInputError
-from .rules import benjamini_hochberg, fisher_greater
+from .association import associate
 
 
 @dataclass(frozen=True)
@@ -66,15 +66,16 @@ def confident_errors(table: ConceptTable, *, threshold: float = 0.8, top: int = 
         e_counts = presence[members].sum(axis=0)
         r_counts = presence[ref].sum(axis=0)
         for c in np.nonzero(e_counts)[0]:
-            # Among images that are errors of this group or correct images of t: do errors show the concept more?
-            pv = float(fisher_greater([e_counts[c]], [e_counts[c] + r_counts[c]], [n_e], n_e + n_r)[0])
-            tests.append((g, int(c), int(e_counts[c]), e_counts[c] / n_e, r_counts[c] / n_r if n_r else float("nan"), pv))
+            # Among images that are errors of this group or correct images of t: do images with the concept hold the errors more?
+            tests.append((g, int(c), int(e_counts[c]), e_counts[c] / n_e, r_counts[c] / n_r if n_r else float("nan"),
+                          (e_counts[c], e_counts[c] + r_counts[c], n_e, n_e + n_r)))
         order = np.argsort(-meta["confidence"].to_numpy()[members], kind="stable")
         groups.append((t, p, [int(i) for i in meta.index[members][order]], float(meta["confidence"].to_numpy()[members].mean()), n_r))
-    q = benjamini_hochberg([x[5] for x in tests])
+    counts = np.array([x[5] for x in tests], dtype=np.float64).reshape(len(tests), 4)
+    found = associate(counts[:, 0], counts[:, 1], counts[:, 2], counts[:, 3])
     suspects: dict[int, list[SuspectConcept]] = {g: [] for g in range(len(cells))}
-    for (g, c, k, er, cr, pv), qv in zip(tests, q):
-        suspects[g].append(SuspectConcept(table.concepts[c], k, float(er), float(cr), pv, float(qv)))
+    for (g, c, k, er, cr, _), pv, qv in zip(tests, found.p_value, found.q_value):
+        suspects[g].append(SuspectConcept(table.concepts[c], k, float(er), float(cr), float(pv), float(qv)))
     out = [
         ErrorGroup(t, p, images, conf, n_r, sorted(suspects[g], key=lambda s: (s.p_value, -s.error_rate, s.concept))[:top])
         for g, (t, p, images, conf, n_r) in enumerate(groups)

@@ -22,7 +22,7 @@ import numpy as np
 from .concept_table import ConceptTable
 from .errors import InvalidInputError
 from .questions import QuestionError, evaluate, parse_question, render
-from .rules import benjamini_hochberg, fisher_greater
+from .association import associate
 
 Kind = Literal["relies_on", "must_not_rely_on"]
 KINDS: tuple[Kind, ...] = ("relies_on", "must_not_rely_on")
@@ -118,14 +118,12 @@ def check_expectations(expectations: ExpectationSet, table: ConceptTable) -> lis
         mask = evaluate(parse_question(e.question), table.presence, text=e.question).to_numpy()
         in_cls = (predicted == e.cls).to_numpy()
         n_c, n_m, both = int(in_cls.sum()), int(mask.sum()), int((in_cls & mask).sum())
-        p = float(fisher_greater([both], [n_m], [n_c], n)[0]) if n_m else 1.0
         examples = [int(i) for i in table.meta.index[in_cls & mask][:8]]
-        rows.append((e, n_c, n_m, both, p, examples))
-    q = benjamini_hochberg([r[4] for r in rows])
+        rows.append((e, n_c, n_m, both, examples))
+    found = associate([r[3] for r in rows], [r[2] for r in rows], [r[1] for r in rows], n)  # one family: the whole file
     out = []
-    for (e, n_c, n_m, both, p, examples), qv in zip(rows, q):
-        confidence = both / n_m if n_m else 0.0
-        lift = confidence / (n_c / n) if n_c and n_m else 0.0
+    for k, (e, n_c, n_m, both, examples) in enumerate(rows):
+        confidence, lift, p, qv = float(found.confidence[k]), float(found.lift[k]), float(found.p_value[k]), float(found.q_value[k])
         goes_with = bool(qv <= expectations.alpha and lift > 1)
         figures = f"{both} of {n_c} images ({both / n_c:.0%}) show it; lift {lift:.2f}, q {qv:.3g}" if n_c else ""
         if n_c < expectations.min_images:

@@ -15,7 +15,7 @@ import pandas as pd
 from .concept_table import ConceptTable
 from .concepts import normalise_label
 from .errors import InvalidInputError
-from .rules import benjamini_hochberg, fisher_greater
+from .association import associate_masks
 from .synonyms import edit_distance
 
 KEYWORDS = ("and", "or", "not")
@@ -244,18 +244,17 @@ def answer_question(text: str, table: ConceptTable) -> Answer:
     n = len(meta)
     hit = meta[mask.to_numpy()]
     predicted = meta["predicted_class"].astype(str)
-    rows = []
-    for cls in sorted(predicted.unique()):
-        in_cls = predicted == cls
-        both = int((in_cls & mask).sum())
-        n_cls, n_hit = int(in_cls.sum()), int(mask.sum())
-        sub = meta[(in_cls & mask).to_numpy()]
-        confidence = both / n_hit if n_hit else 0.0
-        rows.append([cls, n_cls, both, both / n_cls if n_cls else 0.0, confidence, confidence / (n_cls / n) if n_cls and n_hit else 0.0,
-                     float(fisher_greater([both], [n_hit], [n_cls], n)[0]) if n_hit else 1.0,
-                     float(sub["correct"].mean()) if len(sub) else None, float(sub["confidence"].mean()) if len(sub) else None])
-    q = benjamini_hochberg([r[6] for r in rows])
-    by_class = [ClassAnswer(r[0], r[1], r[2], r[3], r[4], r[5], r[6], float(qv), r[7], r[8]) for r, qv in zip(rows, q)]
+    classes = sorted(predicted.unique())
+    hits = mask.to_numpy(dtype=bool)
+    in_class = np.array([(predicted == cls).to_numpy() for cls in classes], dtype=bool).reshape(len(classes), n)
+    found = associate_masks(np.broadcast_to(hits, in_class.shape), in_class)
+    by_class = []
+    for k, cls in enumerate(classes):
+        sub = meta[in_class[k] & hits]
+        n_cls, both = int(found.n_y[k]), int(found.n_xy[k])
+        by_class.append(ClassAnswer(cls, n_cls, both, both / n_cls if n_cls else 0.0, float(found.confidence[k]), float(found.lift[k]),
+                                    float(found.p_value[k]), float(found.q_value[k]),
+                                    float(sub["correct"].mean()) if len(sub) else None, float(sub["confidence"].mean()) if len(sub) else None))
     by_class.sort(key=lambda a: (a.p_value, -a.lift, a.cls))
     return Answer(
         render(node), n, len(hit), [int(i) for i in hit.index],

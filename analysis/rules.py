@@ -13,8 +13,8 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 from scipy import sparse
-from scipy.special import betaln
 
+from .association import associate, benjamini_hochberg, fisher_greater  # noqa: F401  (the latter two are imported from here too)
 from .errors import InvalidInputError
 from .itemsets import ItemsetCounts, count_itemsets, count_with_mlxtend
 
@@ -80,64 +80,6 @@ def wilson_lower(successes: npt.ArrayLike, trials: npt.ArrayLike, *, z: float = 
     centre = p + z * z / (2 * n)
     spread = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
     return (centre - spread) / (1 + z * z / n)
-
-
-def benjamini_hochberg(p: npt.ArrayLike) -> npt.NDArray[np.float64]:
-    """Benjamini & Hochberg (1995) adjusted p-values (q-values): p * m / rank, made monotone, capped at 1."""
-    p = np.asarray(p, dtype=np.float64)
-    m = len(p)
-    if m == 0:
-        return p.copy()
-    order = np.argsort(p, kind="stable")
-    scaled = p[order] * m / np.arange(1, m + 1)
-    q = np.minimum.accumulate(scaled[::-1])[::-1].clip(max=1.0)
-    out = np.empty(m)
-    out[order] = q
-    return out
-
-
-def _log_comb(n: npt.NDArray[np.float64], k: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
-    return -np.log(n + 1) - betaln(n - k + 1, k + 1)
-
-
-def fisher_greater(n_xy: npt.ArrayLike, n_x: npt.ArrayLike, n_y: npt.ArrayLike, n: int) -> npt.NDArray[np.float64]:
-    """One-sided Fisher's exact p-value that images with the concept set hold the class more often than chance.
-
-    It is the hypergeometric tail P(X >= n_xy) for X images of the class among the n_x with the set,
-    drawn from n images of which n_y have the class. Vectorised over rules: from the exact
-    probability of one count, the tail is summed away from the distribution's mode with the
-    ratio of neighbouring probabilities, until the terms no longer change the sum (scipy's own
-    survival function sums each rule in a Python loop, which is slow for thousands of rules).
-    """
-    k0, nx, ny = (np.asarray(v, dtype=np.float64) for v in (n_xy, n_x, n_y))
-    lo = np.maximum(0.0, nx + ny - n)
-    hi = np.minimum(nx, ny)
-    mode = np.floor((nx + 1) * (ny + 1) / (n + 2))
-    upper = k0 > mode  # sum P(X >= k0) directly; otherwise 1 - P(X <= k0 - 1)
-    start = np.where(upper, k0, k0 - 1)
-    total = np.zeros_like(k0)
-    valid = (start >= lo) & (start <= hi)
-    term = np.where(valid, np.exp(_log_comb(ny, start) + _log_comb(n - ny, nx - start) - _log_comb(float(n), nx)), 0.0)
-    k = start.copy()
-    active = valid & (term > 0)
-    total += term
-    while active.any():
-        i = np.nonzero(active)[0]
-        ki, up = k[i], upper[i]
-        # P(k+1)/P(k) going up, P(k-1)/P(k) going down.
-        ratio = np.where(
-            up,
-            (ny[i] - ki) * (nx[i] - ki) / ((ki + 1) * (n - ny[i] - nx[i] + ki + 1)),
-            ki * (n - ny[i] - nx[i] + ki) / ((ny[i] - ki + 1) * (nx[i] - ki + 1)),
-        )
-        k[i] = np.where(up, ki + 1, ki - 1)
-        term[i] = term[i] * ratio
-        inside = np.where(up, k[i] <= hi[i], k[i] >= lo[i])
-        term[i] = np.where(inside, term[i], 0.0)
-        total[i] += term[i]
-        active[i] = inside & (term[i] > total[i] * 1e-17)
-    p = np.where(upper, total, 1.0 - total)
-    return p.clip(0.0, 1.0)
 
 
 def _as_sparse(table: pd.DataFrame) -> sparse.csr_matrix:
@@ -221,11 +163,11 @@ def mine_rules(
     family_sets = [tuple(sorted({root[i] for i in counts.itemsets[s]})) for s in set_idx.tolist()]
     n_x = counts.totals[set_idx]
     n_y = counts.class_sizes[cls_idx]
-    confidence = n_xy / n_x
+    found = associate(n_xy, n_x, n_y, n)
+    confidence = found.confidence
     p_class = n_y / n
     with np.errstate(divide="ignore"):
         conviction = np.where(confidence < 1, (1 - p_class) / np.maximum(1 - confidence, 1e-300), np.inf)
-    p_value = fisher_greater(n_xy, n_x, n_y, n)
     out = pd.DataFrame(
         {
             "class": class_names[cls_idx],
@@ -235,13 +177,13 @@ def mine_rules(
             "support": n_xy / n,
             "confidence": confidence,
             "confidence_low": wilson_lower(n_xy, n_x),
-            "lift": confidence / p_class,
+            "lift": found.lift,
             "leverage": n_xy / n - (n_x / n) * p_class,
             "conviction": conviction,
             "class_images": n_y,
             "concept_images": n_x,
-            "p_value": p_value,
-            "q_value": benjamini_hochberg(p_value),
+            "p_value": found.p_value,
+            "q_value": found.q_value,
             "family": [" & ".join(sorted(names[i] for i in f)) for f in family_sets],
             "typicality": _typicality(counts, set_idx, cls_idx, family_sets),
         }

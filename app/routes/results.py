@@ -12,10 +12,8 @@ import pandas as pd
 from fastapi import Form, Query, Request
 from fastapi.responses import PlainTextResponse, RedirectResponse, Response
 
-from analysis.agreement_report import agreement_report
 from analysis.compare import compare_classes
 from analysis.concept_table import TARGETS, Target
-from analysis.concept_votes import estimate_concepts, presence_agreement
 from analysis.confident_errors import confident_errors
 from analysis.errors import InvalidInputError
 from analysis.expectations import check_expectations, read_expectations
@@ -31,8 +29,7 @@ from ..deps import AnalystDep, ReviewerDep, SessionDep, SettingsDep, WriteSessio
 from ..errors import InvalidRequestError, NotFoundError
 from ..report import build_report
 from ..settings import Settings
-from ..services.campaign_analysis import Results, campaign_results, main_labels
-from ..services.campaign_analysis import votes as campaign_votes
+from ..services.campaign_analysis import Results, agreement_summary, campaign_results, main_labels
 from .common import render
 
 router = guarded_router(require_reviewer, prefix="/campaigns/{campaign_id}")
@@ -216,13 +213,9 @@ def report(request: Request, campaign_id: int, s: SessionDep, settings: Settings
 def agreement(request: Request, campaign_id: int, s: SessionDep, viewer: ReviewerDep) -> Response:
     """Agreement on the main entity and on each concept, per annotator, and the most disputed regions."""
     c = campaigns.get_campaign(s, campaign_id)
-    votes = campaign_votes(s, c)
-    report_ = agreement_report(votes.main_entities, n_boot=500, top_disputed=12)
-    concepts = presence_agreement(votes, n_boot=200)[:40]
-    ds = estimate_concepts(votes, method="dawid-skene")
+    found = agreement_summary(s, c, cache=request.app.state.results_cache)
     progress = {p.name: p for p in campaigns.campaign_progress(s, c)[0]}
-    reliability = {name: (float(ds.sensitivity[k]), float(ds.specificity[k])) for k, name in enumerate(votes.annotators)}
-    context = {"campaign": c, "report": report_, "concepts": concepts, "reliability": reliability, "progress": progress}
+    context = {"campaign": c, "report": found.report, "concepts": found.concepts, "reliability": found.reliability, "progress": progress}
     return render(request, "agreement.html", context, viewer=viewer)
 
 

@@ -8,13 +8,16 @@ from __future__ import annotations
 
 import threading
 from dataclasses import dataclass, field, replace
-from typing import cast
+from collections.abc import Callable
+from typing import TypeVar, cast
 
+import numpy as np
 import pandas as pd
 from sqlalchemy.orm import Session
 
 from analysis.concept_table import ConceptTable
-from analysis.concept_votes import PresenceVotes
+from analysis.agreement_report import AgreementReport, agreement_report
+from analysis.concept_votes import ConceptAgreement, PresenceVotes, estimate_concepts, presence_agreement
 from analysis.pipeline import campaign_table, campaign_votes
 from analysis.reliability import Method
 
@@ -22,6 +25,8 @@ from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..errors import NotFoundError
 from ..models import SaliencyRun
+
+T = TypeVar("T")
 
 
 @dataclass(frozen=True)
@@ -40,20 +45,25 @@ class Results:
 
 @dataclass
 class ResultsCache:
-    """Results per state of a campaign's labels (store.labels_version), shared by the app's request threads."""
+    """Computed results per (what, state of a campaign's labels), shared by the app's request threads.
 
-    size: int = 16
-    _found: dict[tuple[object, ...], Results] = field(default_factory=dict)
+    The key includes store.labels_version, which changes with every label, synonym rule, check
+    item or method change, so an entry is never stale; the oldest entries make room for new ones.
+    """
+
+    size: int = 32
+    _found: dict[tuple[object, ...], object] = field(default_factory=dict)
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
-    def get(self, key: tuple[object, ...]) -> Results | None:
-        return self._found.get(key)
-
-    def put(self, key: tuple[object, ...], value: Results) -> None:
-        with self._lock:
-            while len(self._found) >= self.size:
-                self._found.pop(next(iter(self._found)))
-            self._found[key] = value
+    def get_or_make(self, key: tuple[object, ...], make: Callable[[], T]) -> T:
+        found = self._found.get(key)
+        if found is None:
+            found = make()
+            with self._lock:
+                while len(self._found) >= self.size:
+                    self._found.pop(next(iter(self._found)))
+                self._found[key] = found
+        return cast(T, found)
 
 
 def _campaign(s: Session, campaign: CampaignInfo | int) -> CampaignInfo:
@@ -84,11 +94,7 @@ def campaign_results(s: Session, campaign: CampaignInfo | int, *, cache: Results
     c = _campaign(s, campaign)
     if cache is None:
         return compute_results(s, c)
-    key = store.labels_version(s, c.id)
-    found = cache.get(key)
-    if found is None:
-        found = compute_results(s, c)
-        cache.put(key, found)
+    found = cache.get_or_make(("results", *store.labels_version(s, c.id)), lambda: compute_results(s, c))
     return replace(found, campaign=c)  # the table is cached; the campaign's text fields are read fresh
 
 
@@ -108,3 +114,38 @@ def main_labels(s: Session, campaign: CampaignInfo | int) -> pd.DataFrame:
     m = votes(s, _campaign(s, campaign)).main_entities
     return pd.DataFrame({"item": [m.items[i] for i in m.item_codes], "annotator": [m.annotators[a] for a in m.annotator_codes],
                          "label": [m.classes[y] for y in m.label_codes]})
+
+
+@dataclass(frozen=True)
+class AgreementSummary:
+    """What the agreement page shows: agreement on the main entity, per concept (the most named), and each annotator's reliability."""
+
+    report: AgreementReport
+    concepts: list[ConceptAgreement]
+    reliability: dict[str, tuple[float, float]]  # annotator -> (sensitivity, specificity) from Dawid-Skene
+
+
+def most_named(v: PresenceVotes, top: int) -> list[str]:
+    """The ``top`` concepts named in the most regions (ties by name): the order presence_agreement sorts in."""
+    named_pair = np.bincount(v.vote_pair, weights=v.vote_yes, minlength=len(v.pair_region)) > 0
+    regions_named = np.bincount(v.pair_concept[named_pair], minlength=len(v.concepts))
+    order = sorted(range(len(v.concepts)), key=lambda c: (-int(regions_named[c]), v.concepts[c]))
+    return [v.concepts[c] for c in order[:top]]
+
+
+def _agreement(s: Session, c: CampaignInfo, *, top_concepts: int) -> AgreementSummary:
+    v = votes(s, c)
+    report = agreement_report(v.main_entities, n_boot=500, top_disputed=12)
+    # Alpha with its bootstrap interval costs the same for every concept: compute it only for those shown.
+    concepts = presence_agreement(v, concepts=most_named(v, top_concepts), n_boot=200)
+    ds = estimate_concepts(v, method="dawid-skene")
+    reliability = {name: (float(ds.sensitivity[k]), float(ds.specificity[k])) for k, name in enumerate(v.annotators)}
+    return AgreementSummary(report, concepts, reliability)
+
+
+def agreement_summary(s: Session, campaign: CampaignInfo | int, *, cache: ResultsCache | None = None, top_concepts: int = 40) -> AgreementSummary:
+    """Agreement on the main entity and on the ``top_concepts`` most named concepts, and each annotator's reliability."""
+    c = _campaign(s, campaign)
+    if cache is None:
+        return _agreement(s, c, top_concepts=top_concepts)
+    return cache.get_or_make(("agreement", top_concepts, *store.labels_version(s, c.id)), lambda: _agreement(s, c, top_concepts=top_concepts))
