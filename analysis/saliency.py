@@ -23,10 +23,10 @@ import numpy.typing as npt
 import torch
 import torch.nn.functional as F
 from captum.attr import LayerAttribution, LayerGradCam
-from torch import nn
 
 from .errors import GradientUnavailableError, InvalidInputError
-from .model_io import LoadedModel
+from .layer_taps import cam_inputs
+from .model_io import LoadedModel, batch_chunks
 
 METHOD = "grad-cam"
 
@@ -53,10 +53,13 @@ def saliency_provenance(model: LoadedModel, implementation: Implementation = "si
         "captum_version": captum.__version__,
         "torch_version": torch.__version__,
         "layer": model.sidecar.target_layer,
+        "map_size": list(model.map_size),
+        "tokens": None if model.grid is None else {"prefix": model.grid.prefix, "rows": model.grid.rows, "cols": model.grid.cols},
         "target": "predicted class",
         "relu_attributions": True,
         "upsample": "bilinear",
         "input_size": list(model.sidecar.input_size),
+        "sidecar": model.sidecar.key_fields(),
         "model_sha256": model.sha256,
         "model_kind": model.kind,
         "model_notes": list(model.notes),
@@ -87,7 +90,26 @@ def compute_saliency(model: LoadedModel, inputs: torch.Tensor, *, implementation
         raise InvalidInputError(f"inputs must be N x 3 x {h} x {w}; got {tuple(inputs.shape)}.")
     if implementation not in ("single-pass", "captum"):
         raise InvalidInputError(f"implementation must be 'single-pass' or 'captum'; got {implementation!r}.")
-    x = inputs.detach()
+    if model.max_batch is not None and len(inputs) != model.max_batch:
+        parts = [_compute(model, chunk, implementation) for _, chunk in batch_chunks(inputs.detach(), model.max_batch)]
+        probs = torch.cat([p for p, _ in parts])[: len(inputs)]
+        maps = torch.cat([m for _, m in parts])[: len(inputs)]
+    else:
+        probs, maps = _compute(model, inputs.detach(), implementation)
+    confidence, predicted = probs.max(dim=1)
+    maps_np = maps[:, 0].clamp_min(0).numpy().astype(np.float32)
+    empty = maps_np.reshape(len(maps_np), -1).max(axis=1) <= 0
+    return SaliencyBatch(
+        predicted=predicted.numpy().astype(np.int64),
+        confidence=confidence.numpy().astype(np.float32),
+        probabilities=probs.numpy().astype(np.float32),
+        maps=maps_np,
+        empty=empty,
+    )
+
+
+def _compute(model: LoadedModel, x: torch.Tensor, implementation: Implementation) -> tuple[torch.Tensor, torch.Tensor]:
+    x = x.to(model.device)
     try:
         if implementation == "captum":
             probs, maps = _captum(model, x.clone())
@@ -106,49 +128,16 @@ def compute_saliency(model: LoadedModel, inputs: torch.Tensor, *, implementation
                 "or detaches a tensor after the target layer."
             ) from None
         raise
-    confidence, predicted = probs.max(dim=1)
-    maps_np = maps[:, 0].clamp_min(0).numpy().astype(np.float32)
-    empty = maps_np.reshape(len(maps_np), -1).max(axis=1) <= 0
-    return SaliencyBatch(
-        predicted=predicted.numpy().astype(np.int64),
-        confidence=confidence.numpy().astype(np.float32),
-        probabilities=probs.numpy().astype(np.float32),
-        maps=maps_np,
-        empty=empty,
-    )
+    return probs.cpu(), maps.cpu()
 
 
 def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """One forward: no graph before the target layer, a graph from its output on; then the gradient
     of each image's predicted-class logit with respect to that output only."""
-    captured: list[torch.Tensor] = []
-
-    def tap(_module: nn.Module, _inputs: object, output: torch.Tensor) -> torch.Tensor:
-        if captured:
-            raise GradientUnavailableError(
-                f"layer {model.sidecar.target_layer!r} runs more than once in one forward pass; choose a layer that runs once."
-            )
-        if not isinstance(output, torch.Tensor) or output.ndim != 4:
-            raise GradientUnavailableError(
-                f"layer {model.sidecar.target_layer!r} must give an N x C x h x w feature map; it gave {type(output).__name__}"
-                + (f" of shape {tuple(output.shape)}" if isinstance(output, torch.Tensor) else "") + ". Choose a convolutional layer."
-            )
-        activation = output.detach().requires_grad_(True)
-        captured.append(activation)
-        torch.set_grad_enabled(True)  # record the graph from here on, for this forward only
-        return activation
-
-    handle = model.layer.register_forward_hook(tap)
-    previous = torch.is_grad_enabled()
-    try:
-        torch.set_grad_enabled(False)
-        logits = model.module(x)
-    finally:
-        handle.remove()
-        torch.set_grad_enabled(previous)
-    if not captured:
-        raise GradientUnavailableError(f"layer {model.sidecar.target_layer!r} did not run in the forward pass; check 'target_layer'.")
-    activation = captured[0]
+    if model.tap is None:
+        raise InvalidInputError("this LoadedModel has no tap; make it with analysis.model_io.prepare_model or load_model.")
+    out, activation = model.tap(x)
+    logits = model.logits(out)
     if not logits.requires_grad:
         raise GradientUnavailableError(
             "no gradient reaches the target layer: forward() runs part of the model under torch.no_grad() "
@@ -158,14 +147,17 @@ def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, tor
     predicted = probs.argmax(dim=1)
     with torch.enable_grad():
         (grads,) = torch.autograd.grad(logits.gather(1, predicted[:, None]).sum(), activation)
+    act, grads = cam_inputs(activation.detach(), grads, model.grid)
     weights = grads.mean(dim=(2, 3), keepdim=True)
-    coarse = torch.relu((weights * activation.detach()).sum(dim=1, keepdim=True))
+    coarse = torch.relu((weights * act).sum(dim=1, keepdim=True))
     h, w = model.sidecar.input_size
-    return probs, F.interpolate(coarse, size=(h, w), mode="bilinear", align_corners=False)
+    return probs, F.interpolate(coarse.float(), size=(h, w), mode="bilinear", align_corners=False)
 
 
 def _captum(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """The reference: predict, then captum's LayerGradCam with its own forward and backward."""
+    if model.layer is None or model.grid is not None:
+        raise InvalidInputError("the captum reference needs a hookable convolutional target layer (not TorchScript, not tokens).")
     with torch.no_grad():
         probs = torch.softmax(model.module(x).float(), dim=1)
     cam = LayerGradCam(model.module, model.layer)

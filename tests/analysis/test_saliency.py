@@ -63,9 +63,21 @@ def test_torchscript_with_stages_matches_python_model() -> None:
     torch.testing.assert_close(torch.from_numpy(a.maps), torch.from_numpy(b.maps), rtol=1e-4, atol=1e-6)
 
 
-def test_torchscript_without_stages_is_refused() -> None:
-    with pytest.raises(ModelInputError, match="stages"):
-        prepare_model(torch.jit.script(_model()), SIDECAR, kind="torchscript")
+def test_torchscript_needs_no_stages_and_reaches_layers_inside_them() -> None:
+    # A layer inside a top-level submodule (features.10, a ReLU) is found in the TorchScript graph.
+    model = _model()
+    sidecar = Sidecar(**{**SIDECAR.__dict__, "target_layer": "features.10"})
+    scripted = prepare_model(torch.jit.script(model), sidecar, kind="torchscript")
+    x = torch.randn(3, 3, 32, 32, generator=torch.Generator().manual_seed(4))
+    a = compute_saliency(scripted, x)
+    b = compute_saliency(prepare_model(model, sidecar), x)
+    assert scripted.target_layer == "features.10"
+    torch.testing.assert_close(torch.from_numpy(a.maps), torch.from_numpy(b.maps), rtol=1e-4, atol=1e-6)
+
+
+def test_unknown_layer_names_the_layers_that_exist() -> None:
+    with pytest.raises(ModelInputError, match=r"'nope'.*features \(8x8\)"):
+        prepare_model(torch.jit.script(_model()), Sidecar(**{**SIDECAR.__dict__, "target_layer": "nope"}), kind="torchscript")
 
 
 class _Tuple(nn.Module):
@@ -118,7 +130,7 @@ def test_single_pass_equals_captum_layergradcam(arch: str) -> None:
 
     torch.manual_seed(5)
     model = build_architecture(arch, 3).eval()
-    layer = "features" if arch == "sorter_cnn" else "layer4"
+    layer = "features" if arch == "sorter_cnn" else "layer3"  # layer4 is 2x2 at 64 px (and warns)
     sidecar = Sidecar(**{**SIDECAR.__dict__, "target_layer": layer, "input_size": (64, 64)})
     loaded = prepare_model(model, sidecar)
     x = torch.randn(4, 3, 64, 64, generator=torch.Generator().manual_seed(6))

@@ -1,0 +1,472 @@
+"""A model's layers by module path, one layer's output tapped with gradients, and the Grad-CAM layer chosen.
+
+Three kinds of graph are handled the same way:
+
+* an eager ``nn.Module`` (a factory's model, a named architecture): forward hooks;
+* an exported program (``torch.export``): its graph's nodes carry the module path they came
+  from (``meta["nn_module_stack"]``); a layer's output is the node of that module whose value
+  leaves it, and an identity module inserted after that node is the hook point;
+* TorchScript: the inlined graph's nodes carry their module hierarchy too; the layer's output
+  value is detached into a leaf that requires grad, inside the graph, and returned beside the
+  model's output.
+
+A tap returns ``(raw model output, activation)``: no autograd graph is recorded before the layer,
+one is recorded from the activation on, so Grad-CAM costs about one forward pass.
+"""
+
+from __future__ import annotations
+
+import re
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import torch
+from torch import nn
+
+from .errors import GradientUnavailableError, ModelInputError
+
+MIN_USEFUL_MAP = 4  # common practice: coarser maps make every region cover most of the image
+_MAX_PREFIX_GUESS = 5  # a class token plus up to four register tokens
+
+
+class DegenerateMapWarning(UserWarning):
+    """The Grad-CAM layer's map is too coarse for regions to mean anything."""
+
+
+@dataclass(frozen=True)
+class TokenGrid:
+    """Patch tokens of a transformer layer: ``prefix`` class/register tokens, then rows x cols patches."""
+
+    prefix: int
+    rows: int
+    cols: int
+
+
+@dataclass(frozen=True)
+class LayerInfo:
+    """One layer as seen on a probe batch: its per-image output shape and the map Grad-CAM would give."""
+
+    name: str
+    module_type: str
+    shape: tuple[int, ...]  # one image's output, without the batch dimension
+    map_size: tuple[int, int] | None  # (h, w), None when the output is neither a map nor a patch grid
+    grid: TokenGrid | None = None
+
+    def describe(self) -> str:
+        size = f"{self.map_size[0]}x{self.map_size[1]}" if self.map_size else "-"
+        extra = f", tokens: {self.grid.prefix} prefix + {self.grid.rows}x{self.grid.cols}" if self.grid else ""
+        return f"{self.name} ({self.module_type}) output {list(self.shape)}, map {size}{extra}"
+
+
+Tap = Callable[[torch.Tensor], tuple[object, torch.Tensor]]
+
+
+def infer_token_grid(n_tokens: int, input_size: tuple[int, int], *, grid: tuple[int, int] | None = None, prefix: int | None = None) -> TokenGrid | None:
+    """The patch grid of ``n_tokens`` tokens for an input of ``input_size`` (h, w), or None.
+
+    Stated values win: ``grid`` (rows, cols) and/or ``prefix``. Otherwise the grid must have the
+    input's aspect ratio with a whole patch size, after at most five leading class/register tokens.
+    """
+    h, w = input_size
+    if grid is not None:
+        rest = n_tokens - grid[0] * grid[1]
+        if rest < 0 or (prefix is not None and rest != prefix):
+            return None
+        return TokenGrid(rest, grid[0], grid[1])
+    prefixes = [prefix] if prefix is not None else list(range(_MAX_PREFIX_GUESS + 1))
+    for k in prefixes:
+        n = n_tokens - k
+        if n <= 0:
+            continue
+        for rows in range(1, n + 1):
+            if n % rows:
+                continue
+            cols = n // rows
+            if rows * w == cols * h and h % rows == 0 and w % cols == 0 and h // rows == w // cols:
+                return TokenGrid(k, rows, cols)
+    return None
+
+
+def _info(name: str, module_type: str, value: object, input_size: tuple[int, int], grid: tuple[int, int] | None, prefix: int | None) -> LayerInfo | None:
+    if not isinstance(value, torch.Tensor) or value.ndim not in (3, 4):
+        return None
+    shape = tuple(int(s) for s in value.shape[1:])
+    if value.ndim == 4:
+        return LayerInfo(name, module_type, shape, (shape[1], shape[2]))
+    tokens = infer_token_grid(shape[0], input_size, grid=grid, prefix=prefix)
+    return LayerInfo(name, module_type, shape, (tokens.rows, tokens.cols) if tokens else None, tokens)
+
+
+class HookTap:
+    """Tap by a forward hook on ``layer``: gradients off before it, on from its (detached) output."""
+
+    def __init__(self, module: nn.Module, layer: nn.Module, name: str) -> None:
+        self.module, self.layer, self.name = module, layer, name
+
+    def __call__(self, x: torch.Tensor) -> tuple[object, torch.Tensor]:
+        captured: list[torch.Tensor] = []
+        name = self.name
+
+        def hook(_module: nn.Module, _inputs: object, output: object) -> torch.Tensor:
+            if captured:
+                raise GradientUnavailableError(f"layer {name!r} runs more than once in one forward pass; choose a layer that runs once.")
+            if not isinstance(output, torch.Tensor) or output.ndim not in (3, 4):
+                shape = f" of shape {tuple(output.shape)}" if isinstance(output, torch.Tensor) else ""
+                raise GradientUnavailableError(
+                    f"layer {name!r} must give an N x C x h x w feature map or N x tokens x dim; it gave {type(output).__name__}{shape}. "
+                    "Choose another layer ('heedmap layers' lists them)."
+                )
+            activation = output.detach().requires_grad_(True)
+            captured.append(activation)
+            torch.set_grad_enabled(True)  # record the graph from here on, for this forward only
+            return activation
+
+        handle = self.layer.register_forward_hook(hook)
+        previous = torch.is_grad_enabled()
+        try:
+            torch.set_grad_enabled(False)
+            out = self.module(x)
+        finally:
+            handle.remove()
+            torch.set_grad_enabled(previous)
+        if not captured:
+            raise GradientUnavailableError(f"layer {name!r} did not run in the forward pass; check 'target_layer'.")
+        return out, captured[0]
+
+
+class EagerGraph:
+    """Layers of an eager module, by ``named_modules`` path, in the order their outputs complete."""
+
+    kind = "eager"
+
+    def __init__(self, module: nn.Module) -> None:
+        self.module = module
+
+    def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
+        calls: dict[str, int] = {}
+        seen: list[tuple[str, str, object]] = []
+        handles = []
+        for name, mod in self.module.named_modules():
+            if not name or isinstance(mod, torch.jit.ScriptModule):
+                continue
+
+            def hook(m: nn.Module, _i: object, out: object, name: str = name) -> None:
+                calls[name] = calls.get(name, 0) + 1
+                seen.append((name, type(m).__name__, out))
+
+            handles.append(mod.register_forward_hook(hook))
+        try:
+            with torch.no_grad():
+                self.module(probe)
+        finally:
+            for h in handles:
+                h.remove()
+        infos = []
+        for name, mtype, out in seen:
+            if calls[name] != 1:
+                continue
+            info = _info(name, mtype, out, input_size, grid, prefix)
+            if info is not None:
+                infos.append(info)
+        return infos
+
+    def names(self) -> list[str]:
+        return [n for n, _ in self.module.named_modules() if n]
+
+    def tap(self, name: str) -> tuple[Tap, nn.Module | None]:
+        try:
+            layer = self.module.get_submodule(name)
+        except AttributeError:
+            raise ModelInputError(f"target layer {name!r} is not a submodule of the model.") from None
+        return HookTap(self.module, layer, name), layer
+
+
+def _fx_paths(node: torch.fx.Node) -> list[tuple[str, str]]:
+    stack = node.meta.get("nn_module_stack") or {}
+    out = []
+    for value in stack.values():
+        path, mtype = value[0], value[1]
+        if path:
+            out.append((str(path), str(mtype).rsplit(".", 1)[-1] if isinstance(mtype, str) else getattr(mtype, "__name__", str(mtype))))
+    return out
+
+
+class FxGraph:
+    """Layers of an exported program's module, found from each node's module stack."""
+
+    kind = "exported"
+
+    def __init__(self, gm: torch.fx.GraphModule) -> None:
+        self.module = gm
+        self._taps: dict[str, str] = {}
+        self._outputs = self._layer_outputs()
+
+    def _layer_outputs(self) -> dict[str, tuple[torch.fx.Node, str, int]]:
+        """Module path -> (the one node whose value leaves the module, module type, depth)."""
+        members: dict[str, set[torch.fx.Node]] = {}
+        types: dict[str, str] = {}
+        for node in self.module.graph.nodes:
+            if node.op != "call_function":
+                continue
+            for path, mtype in _fx_paths(node):
+                members.setdefault(path, set()).add(node)
+                types[path] = mtype
+        outputs: dict[str, tuple[torch.fx.Node, str, int]] = {}
+        for path, nodes in members.items():
+            leaving = [n for n in nodes if any(u not in nodes for u in n.users)]
+            if len(leaving) == 1:
+                outputs[path] = (leaving[0], types[path], path.count(".") + 1)
+        return outputs
+
+    def names(self) -> list[str]:
+        return list(self._outputs)
+
+    def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
+        wanted = {node: path for path, (node, _, _) in self._outputs.items()}
+        values: dict[torch.fx.Node, object] = {}
+
+        class Recorder(torch.fx.Interpreter):
+            def run_node(self, n: torch.fx.Node) -> object:
+                result = super().run_node(n)
+                if n in wanted:
+                    values[n] = result
+                return result
+
+        with torch.no_grad():
+            Recorder(self.module).run(probe)
+        order = {n: i for i, n in enumerate(self.module.graph.nodes)}
+        # Execution order; a module ending on the same node as its child comes after it (outermost last).
+        ranked = sorted(self._outputs.items(), key=lambda kv: (order[kv[1][0]], -kv[1][2]))
+        infos = []
+        for path, (node, mtype, _) in ranked:
+            info = _info(path, mtype, values.get(node), input_size, grid, prefix)
+            if info is not None:
+                infos.append(info)
+        return infos
+
+    def tap(self, name: str) -> tuple[Tap, nn.Module | None]:
+        if name not in self._outputs:
+            raise ModelInputError(f"target layer {name!r} is not a module of the exported program, or its output is not one tensor.")
+        if name not in self._taps:
+            node = self._outputs[name][0]
+            attr = f"heedmap_tap_{len(self._taps)}"
+            self.module.add_submodule(attr, nn.Identity())
+            with self.module.graph.inserting_after(node):
+                tap_node = self.module.graph.call_module(attr, (node,))
+            node.replace_all_uses_with(tap_node, delete_user_cb=lambda user: user is not tap_node)
+            tap_node.meta.update({k: v for k, v in node.meta.items() if k in ("val", "nn_module_stack")})
+            self.module.recompile()
+            self._taps[name] = attr
+        layer = self.module.get_submodule(self._taps[name])
+        return HookTap(self.module, layer, name), layer
+
+
+_HIERARCHY = re.compile(r"([^.()]+)\(([^()]*)\)")
+
+
+_NON_COMPUTING = {"prim::Constant", "prim::GetAttr", "prim::ListConstruct", "prim::TupleConstruct", "prim::RaiseException", "prim::If", "prim::Loop"}
+
+
+def _ts_parts(node: torch._C.Node) -> list[tuple[str, str]]:
+    """(name, type) of each module the node ran inside, outermost first."""
+    return [(n, t) for n, t in _HIERARCHY.findall(node.getModuleHierarchy() or "") if n not in ("UNKNOWN_INSTANCE", "SELF")]
+
+
+class ScriptTap:
+    """Runs a TorchScript graph edited to detach the layer's output into a leaf and return it too."""
+
+    def __init__(self, fn: torch._C.ScriptFunction, owner: torch._C.ScriptModule, name: str) -> None:
+        self.fn, self.owner, self.name = fn, owner, name
+
+    def __call__(self, x: torch.Tensor) -> tuple[object, torch.Tensor]:
+        with torch.enable_grad():  # nothing before the leaf requires grad (parameters are frozen)
+            out, activation = self.fn(self.owner, x)
+        return out, activation
+
+
+class ScriptGraph:
+    """Layers of a TorchScript module, found from the module hierarchy of its inlined graph's nodes."""
+
+    kind = "torchscript"
+
+    def __init__(self, scripted: torch.jit.ScriptModule) -> None:
+        self.module = scripted
+        for p in scripted.parameters():
+            p.requires_grad_(False)
+
+    def _graph_outputs(self) -> tuple[torch._C.Graph, dict[str, tuple[torch._C.Value, str, int, int]]]:
+        """Module path -> (its output value, module type, node index, depth) in a fresh inlined graph.
+
+        A module's output is the value of the last computing node that ran inside it (TorchScript
+        leaves some of a module's control-flow nodes without a hierarchy, so "values leaving the
+        module" cannot be trusted); when that node gives a tuple or a list, the module has no single output.
+        """
+        graph = self.module.inlined_graph
+        last: dict[str, tuple[int, torch._C.Node]] = {}
+        types: dict[str, str] = {}
+        for i, node in enumerate(graph.nodes()):
+            if node.kind() in _NON_COMPUTING:
+                continue
+            parts = _ts_parts(node)
+            for k in range(1, len(parts) + 1):
+                prefix = ".".join(n for n, _ in parts[:k])
+                last[prefix] = (i, node)
+                types[prefix] = parts[k - 1][1]
+        outputs: dict[str, tuple[torch._C.Value, str, int, int]] = {}
+        for path, (i, node) in last.items():
+            if node.outputsSize() == 1 and isinstance(node.output().type(), torch._C.TensorType):
+                outputs[path] = (node.output(), types.get(path, ""), i, path.count(".") + 1)
+        return graph, outputs
+
+    def names(self) -> list[str]:
+        return list(self._graph_outputs()[1])
+
+    def _function(self, graph: torch._C.Graph, extra: list[torch._C.Value]) -> torch._C.ScriptFunction:
+        ret = graph.return_node()
+        original = ret.input()
+        tup = graph.create("prim::TupleConstruct", [original, *extra])
+        tup.insertBefore(ret)
+        tup.output().setType(torch._C.TupleType([original.type(), *[v.type() for v in extra]]))
+        ret.replaceInput(0, tup.output())
+        graph.lint()
+        return torch._C._create_function_from_graph("heedmap_tapped", graph)
+
+    def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
+        graph, outputs = self._graph_outputs()
+        ranked = sorted(outputs.items(), key=lambda kv: (kv[1][2], -kv[1][3]))
+        values = list(dict.fromkeys(v for _, (v, _, _, _) in ranked))
+        fn = self._function(graph, values)
+        with torch.no_grad():
+            result = fn(self.module._c, probe)
+        by_value = dict(zip(values, result[1:]))
+        infos = []
+        for path, (value, mtype, _, _) in ranked:
+            info = _info(path, mtype, by_value[value], input_size, grid, prefix)
+            if info is not None:
+                infos.append(info)
+        return infos
+
+    def tap(self, name: str) -> tuple[Tap, nn.Module | None]:
+        graph, outputs = self._graph_outputs()
+        if name not in outputs:
+            raise ModelInputError(f"target layer {name!r} is not a module of the TorchScript model, or its output is not one tensor.")
+        value = outputs[name][0]
+        det = graph.create("aten::detach", [value])
+        det.insertAfter(value.node())
+        flag = graph.insertConstant(True)
+        flag.node().moveAfter(det)
+        leaf = graph.create("aten::requires_grad_", [det.output(), flag])
+        leaf.insertAfter(flag.node())
+        leaf.output().setType(value.type())
+        value.replaceAllUsesWith(leaf.output())
+        det.replaceInput(0, value)  # the line above also redirected the detach itself
+        fn = self._function(graph, [leaf.output()])
+        return ScriptTap(fn, self.module._c, name), None
+
+
+ModelGraph = EagerGraph | FxGraph | ScriptGraph
+
+
+def select_logits(out: object, output: str | int | None) -> torch.Tensor:
+    """The logits tensor in a model's output: itself, ``out[key]`` of a dict, ``out[index]`` of a tuple."""
+    if isinstance(out, torch.Tensor):
+        if output not in (None, 0):
+            raise ModelInputError(f"the model returns one tensor, but the sidecar's 'output' is {output!r}; remove 'output'.")
+        return out
+    if isinstance(out, dict):
+        keys = list(out)
+        if output is None:
+            raise ModelInputError(f"the model returns a dict with keys {keys}; state which holds the logits in the sidecar, e.g. \"output\": \"{keys[0] if keys else 'logits'}\".")
+        if output not in out:
+            raise ModelInputError(f"the sidecar's 'output' is {output!r}, but the model's output has the keys {keys}.")
+        value = out[output]
+    elif isinstance(out, (tuple, list)):
+        index = 0 if output is None else output
+        if not isinstance(index, int) or not -len(out) <= index < len(out):
+            raise ModelInputError(f"the model returns a tuple of {len(out)}; the sidecar's 'output' must be an index 0..{len(out) - 1}; got {output!r}.")
+        value = out[index]
+    else:
+        raise ModelInputError(f"the model must return a logits tensor, a dict or a tuple; it returned {type(out).__name__}.")
+    if not isinstance(value, torch.Tensor):
+        raise ModelInputError(f"the model's output {output!r} is a {type(value).__name__}, not a logits tensor.")
+    return value
+
+
+def cam_inputs(activation: torch.Tensor, grads: torch.Tensor, grid: TokenGrid | None) -> tuple[torch.Tensor, torch.Tensor]:
+    """Activation and gradient as N x C x h x w maps: tokens lose their prefix and become the patch grid."""
+    if grid is None:
+        return activation, grads
+    n, _, d = activation.shape
+
+    def to_map(t: torch.Tensor) -> torch.Tensor:
+        return t[:, grid.prefix :, :].reshape(n, grid.rows, grid.cols, d).permute(0, 3, 1, 2)
+
+    return to_map(activation), to_map(grads)
+
+
+def layer_has_gradient(tap: Tap, probe: torch.Tensor, output: str | int | None, grid: TokenGrid | None) -> bool:
+    """Whether the top class's logit has a non-zero gradient on the layer's map for the probe batch."""
+    out, activation = tap(probe)
+    logits = select_logits(out, output)
+    if not logits.requires_grad:
+        return False
+    pred = logits.detach().argmax(dim=1)
+    (grads,) = torch.autograd.grad(logits.gather(1, pred[:, None]).sum(), activation, allow_unused=True)
+    if grads is None:
+        return False
+    _, g = cam_inputs(activation.detach(), grads, grid)
+    return bool(torch.count_nonzero(g) > 0)
+
+
+def choose_layer(graph: ModelGraph, infos: list[LayerInfo], probe: torch.Tensor, output: str | int | None) -> LayerInfo:
+    """The default Grad-CAM layer: the last layer (before global pooling) whose map is at least 4x4 and
+    that the predicted class's gradient reaches; failing that, the largest map that gradient reaches."""
+    maps = [i for i in infos if i.map_size is not None]
+    if not maps:
+        raise ModelInputError(
+            "no layer of this model gives a spatial map (N x C x h x w) or a grid of patch tokens; "
+            "state 'target_layer' in the sidecar, or 'token_grid' for a transformer whose tokens do not form the input's grid."
+        )
+    useful = [i for i in maps if i.map_size is not None and min(i.map_size) >= MIN_USEFUL_MAP]
+    for info in reversed(useful[-32:]):
+        tap, _ = graph.tap(info.name)
+        if layer_has_gradient(tap, probe, output, info.grid):
+            return info
+    by_area = sorted(enumerate(maps), key=lambda im: (-(im[1].map_size or (0, 0))[0] * (im[1].map_size or (0, 0))[1], -im[0]))
+    for _, info in by_area[:8]:
+        tap, _ = graph.tap(info.name)
+        if layer_has_gradient(tap, probe, output, info.grid):
+            return info
+    raise GradientUnavailableError(
+        "the predicted class's gradient reaches none of the model's spatial layers; forward() may detach its features "
+        "or run under torch.no_grad(). State 'target_layer' in the sidecar if you know the layer."
+    )
+
+
+def coarse_map_warning(chosen: LayerInfo, infos: list[LayerInfo]) -> str | None:
+    """A warning when the chosen layer's map is under 4x4, naming layers with larger maps; None otherwise."""
+    if chosen.map_size is None or min(chosen.map_size) >= MIN_USEFUL_MAP:
+        return None
+    larger = [i for i in infos if i.map_size and i.map_size[0] * i.map_size[1] > chosen.map_size[0] * chosen.map_size[1]]
+    useful = [i for i in larger if min(i.map_size or (0, 0)) >= MIN_USEFUL_MAP] or larger
+    if useful:  # name the outermost layers (blocks, stages) nearest the output
+        depth = min(i.name.count(".") for i in useful)
+        useful = [i for i in useful if i.name.count(".") <= depth + 1]
+    names = ", ".join(f"{i.name} ({i.map_size[0]}x{i.map_size[1]})" for i in reversed(useful[-4:]) if i.map_size)
+    h, w = chosen.map_size
+    text = (
+        f"layer {chosen.name!r} gives a {h}x{w} map at this input size: every region would cover most of the image. "
+    )
+    if names:
+        text += f"Layers with larger maps: {names}; set one as 'target_layer' in the sidecar."
+    else:
+        text += "No layer has a larger map; use a larger 'input_size' if the model allows it."
+    return text
+
+
+def warn_coarse(chosen: LayerInfo, infos: list[LayerInfo]) -> str | None:
+    message = coarse_map_warning(chosen, infos)
+    if message:
+        warnings.warn(message, DegenerateMapWarning, stacklevel=3)
+    return message

@@ -1,0 +1,149 @@
+"""Every zoo architecture in every format users bring: Grad-CAM equals its formula computed directly
+on the eager model at the same layer (Selvaraju et al., 2017, eq. 1-2: alpha_k = spatial mean of
+d y_c / d A^k, map = ReLU(sum_k alpha_k A^k), upsampled bilinearly), and the chosen layer is sane."""
+
+from __future__ import annotations
+
+import copy
+import json
+from pathlib import Path
+
+import pytest
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from analysis.architectures import ResNet18
+from analysis.layer_taps import DegenerateMapWarning
+from analysis.model_io import LoadedModel, Sidecar, load_model, prepare_model
+from analysis.saliency import compute_saliency
+
+from .model_zoo import BY_NAME, ZOO, ZooEntry
+
+FORMATS = ("exported", "torchscript", "factory")
+SIZE = 32
+
+
+def _trained_looking(entry: ZooEntry) -> nn.Module:
+    """The zoo model with its weights and batch-norm statistics moved off their initial values."""
+    torch.manual_seed(7)
+    model = entry.build().eval()
+    with torch.no_grad():
+        for p in model.parameters():
+            p.add_(0.1 * torch.randn_like(p))
+        for name, b in model.named_buffers():
+            if name.endswith("running_mean"):
+                b.copy_(0.1 * torch.randn_like(b))
+            elif name.endswith("running_var"):
+                b.copy_(1 + 0.2 * torch.rand_like(b))
+    return model
+
+
+@pytest.fixture(scope="module")
+def zoo_files(tmp_path_factory: pytest.TempPathFactory) -> dict[str, tuple[nn.Module, Path]]:
+    """Each model saved in each format beside its sidecar (built once for the module)."""
+    root = tmp_path_factory.mktemp("zoo")
+    out = {}
+    for i, entry in enumerate(ZOO):
+        d = root / entry.name
+        d.mkdir()
+        model = _trained_looking(entry)
+        x = torch.randn(2, 3, SIZE, SIZE)
+        program = torch.export.export(model, (x,), dynamic_shapes=({0: torch.export.Dim("batch")},))
+        torch.export.save(program, d / "model.pt2")
+        torch.jit.script(model).save(str(d / "model.pt"))
+        state = model.state_dict()
+        # Checkpoints come in the shapes people save them in: plain, wrapped, DataParallel-prefixed.
+        if i % 3 == 1:
+            torch.save({"state_dict": state, "epoch": 3}, d / "checkpoint.pt")
+        elif i % 3 == 2:
+            torch.save({f"module.{k}": v for k, v in state.items()}, d / "checkpoint.pt")
+        else:
+            torch.save(state, d / "checkpoint.pt")
+        sidecar = {"classes": ["bottle", "can", "carton"], "input_size": [SIZE, SIZE], "mean": [0.5, 0.5, 0.5], "std": [0.25, 0.25, 0.25]}
+        sidecar.update(dict(entry.sidecar_extra))
+        (d / "sidecar.json").write_text(json.dumps(sidecar))
+        out[entry.name] = (model, d)
+    return out
+
+
+def _load(fmt: str, entry: ZooEntry, d: Path) -> LoadedModel:
+    if fmt == "exported":
+        return load_model(d / "model.pt2", d / "sidecar.json")
+    if fmt == "torchscript":
+        return load_model(d / "model.pt", d / "sidecar.json")
+    return load_model(d / "checkpoint.pt", d / "sidecar.json", factory=f"tests.analysis.model_zoo:{entry.name}")
+
+
+def direct_gradcam(model: nn.Module, layer: str, x: torch.Tensor, *, output: str | None, prefix: int | None) -> tuple[torch.Tensor, torch.Tensor]:
+    """The formula written out on the eager model: hook the layer, differentiate the predicted logit."""
+    model = copy.deepcopy(model)
+    for m in model.modules():
+        if hasattr(m, "inplace"):
+            m.inplace = False
+    saved: list[torch.Tensor] = []
+    handle = model.get_submodule(layer).register_forward_hook(lambda _m, _i, o: saved.append(o))
+    out = model(x)
+    handle.remove()
+    logits = out[output] if output is not None else out
+    pred = logits.argmax(1)
+    (activation,) = saved
+    (grads,) = torch.autograd.grad(logits.gather(1, pred[:, None]).sum(), activation)
+    if activation.ndim == 3:  # tokens: drop the class token, lay the patches out on their grid
+        n, t, dim = activation.shape
+        side = int(round((t - (prefix or 0)) ** 0.5))
+        activation = activation[:, prefix:].reshape(n, side, side, dim).permute(0, 3, 1, 2)
+        grads = grads[:, prefix:].reshape(n, side, side, dim).permute(0, 3, 1, 2)
+    alpha = grads.mean(dim=(2, 3), keepdim=True)
+    cam = F.relu((alpha * activation).sum(1, keepdim=True))
+    return F.interpolate(cam, size=x.shape[2:], mode="bilinear", align_corners=False)[:, 0].detach(), pred
+
+
+@pytest.mark.parametrize("fmt", FORMATS)
+@pytest.mark.parametrize("name", [e.name for e in ZOO])
+def test_zoo_gradcam_equals_direct_formula_and_layer_is_sane(name: str, fmt: str, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    entry = BY_NAME[name]
+    eager, d = zoo_files[name]
+    loaded = _load(fmt, entry, d)
+    # Default layer: the last one before global pooling with a useful map, the one a person would pick.
+    assert loaded.target_layer == entry.expected_layer
+    assert min(loaded.map_size) >= 4 and not loaded.warnings
+    x = torch.randn(5, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(11))
+    ours = compute_saliency(loaded, x)
+    ref, pred = direct_gradcam(eager, loaded.target_layer, x, output=dict(entry.sidecar_extra).get("output"), prefix=entry.token_prefix)  # type: ignore[arg-type]
+    assert ours.predicted.tolist() == pred.tolist()
+    assert float(ref.max()) > 0  # a map that is not all zero, so the comparison can fail
+    torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
+    with torch.no_grad():
+        out = eager(x)
+        logits = out["logits"] if isinstance(out, dict) else out
+    torch.testing.assert_close(torch.from_numpy(ours.probabilities), torch.softmax(logits, 1), rtol=1e-4, atol=1e-5)
+
+
+def test_exported_program_fixed_to_one_batch_size_runs_in_chunks(tmp_path: Path, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    eager, d = zoo_files["residual_flatten"]
+    torch.export.save(torch.export.export(eager, (torch.randn(1, 3, SIZE, SIZE),)), tmp_path / "one.pt2")
+    loaded = load_model(tmp_path / "one.pt2", d / "sidecar.json")
+    assert loaded.max_batch == 1 and any("batch size 1" in n for n in loaded.notes)
+    x = torch.randn(3, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(2))
+    ref, _ = direct_gradcam(eager, loaded.target_layer, x, output=None, prefix=None)
+    torch.testing.assert_close(torch.from_numpy(compute_saliency(loaded, x).maps), ref, rtol=1e-4, atol=1e-6)
+
+
+def test_one_by_one_map_warns_and_names_larger_layers() -> None:
+    # ResNet-18 at 32 px: layer4 gives a 1x1 map, so every region would be the whole image.
+    torch.manual_seed(0)
+    sidecar = Sidecar(classes=("a", "b", "c"), input_size=(32, 32), target_layer="layer4")
+    with pytest.warns(DegenerateMapWarning, match=r"1x1 map.*layer2 \(4x4\)"):
+        loaded = prepare_model(ResNet18(3), sidecar)
+    assert loaded.map_size == (1, 1) and "layer2" in loaded.warnings[0]
+    chosen = prepare_model(ResNet18(3), Sidecar(classes=("a", "b", "c"), input_size=(32, 32)))
+    assert chosen.target_layer == "layer2" and chosen.map_size == (4, 4) and not chosen.warnings
+
+
+def test_default_layer_on_a_model_with_only_coarse_maps_takes_the_largest_and_warns() -> None:
+    torch.manual_seed(0)
+    model = nn.Sequential(nn.Conv2d(3, 4, 4, stride=4), nn.ReLU(), nn.Conv2d(4, 4, 2, stride=2), nn.Flatten(), nn.Linear(4, 3))
+    with pytest.warns(DegenerateMapWarning, match="2x2 map"):
+        loaded = prepare_model(model, Sidecar(classes=("a", "b", "c"), input_size=(8, 8)))
+    assert loaded.target_layer == "1" and loaded.map_size == (2, 2)
