@@ -43,12 +43,51 @@ class ExpectationSet:
     alpha: float = 0.05
 
 
+MAX_NESTING = 8  # brackets and braces open at once; expectations need two ([classes.x] and a list)
+MAX_TEXT = 200_000
+
+
+def _check_nesting(text: str, source: str) -> None:
+    """Refuse text nested deeper than expectations ever need before the TOML reader recurses into it.
+
+    Brackets inside quoted strings and comments do not count.
+    """
+    if len(text) > MAX_TEXT:
+        raise InvalidInputError(f"{source} is {len(text):,} characters; expectations are limited to {MAX_TEXT:,}.")
+    depth, line, quote, comment = 0, 1, "", False
+    for ch in text:
+        if ch == "\n":
+            line, comment = line + 1, False
+            if quote in ('"', "'"):
+                quote = ""
+            continue
+        if comment:
+            continue
+        if quote:
+            if ch == quote:
+                quote = ""
+            continue
+        if ch in "\"'":
+            quote = ch
+        elif ch == "#":
+            comment = True
+        elif ch in "[{":
+            depth += 1
+            if depth > MAX_NESTING:
+                raise InvalidInputError(f"{source} line {line}: arrays or tables nested more than {MAX_NESTING} deep; expectations need lists of strings only.")
+        elif ch in "]}":
+            depth = max(0, depth - 1)
+
+
 def read_expectations(text: str, *, source: str = "the expectations") -> ExpectationSet:
     """Parse and validate expectations TOML; every error names the class, key or line to fix."""
+    _check_nesting(text, source)
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InvalidInputError(f"{source} is not valid TOML: {exc}.") from None
+    except RecursionError:
+        raise InvalidInputError(f"{source} nests arrays or tables too deeply to read; expectations need lists of strings only.") from None
     unknown = set(raw) - {"min_images", "alpha", "classes"}
     if unknown:
         raise InvalidInputError(f"{source} has unknown top-level keys {sorted(unknown)}; use min_images, alpha and [classes.<name>] tables.")

@@ -93,11 +93,20 @@ def _tokens(text: str) -> list[_Tok]:
     return out
 
 
+MAX_DEPTH = 32  # nested parentheses and "not"s; deeper than any question a person writes
+
+
 class _Parser:
     def __init__(self, text: str) -> None:
         self.text = text
         self.toks = _tokens(text)
         self.i = 0
+        self.depth = 0
+
+    def _deeper(self, tok: _Tok) -> None:
+        self.depth += 1
+        if self.depth > MAX_DEPTH:
+            raise QuestionError(f"the question nests more than {MAX_DEPTH} levels of parentheses or 'not'; write it flatter.", tok.column, self.text)
 
     def peek(self) -> _Tok:
         return self.toks[self.i]
@@ -134,14 +143,18 @@ class _Parser:
 
     def not_expr(self) -> Node:
         if self.peek().kind == "not":
-            self.take()
-            return Not(self.not_expr())
+            self._deeper(self.take())
+            node = Not(self.not_expr())
+            self.depth -= 1
+            return node
         return self.atom()
 
     def atom(self) -> Node:
         tok = self.take()
         if tok.kind == "(":
+            self._deeper(tok)
             node = self.or_expr()
+            self.depth -= 1
             close = self.take()
             if close.kind != ")":
                 raise QuestionError(f"expected ')' to close the '(' at column {tok.column}" + (f", found {close.text!r}." if close.text else "."), close.column, self.text)

@@ -3,7 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import csv
+import io
 import json
+import os
+import re
+import sqlite3
 import sys
 import traceback
 from pathlib import Path
@@ -13,6 +18,7 @@ import pandas as pd
 from analysis.errors import AnalysisError
 from analysis.reliability import METHODS
 from analysis.exports import rules_document
+from analysis.rule_budget import DEFAULT_MAX_CANDIDATES, check_rule_budget
 from analysis.rules import mine_rules, to_csv
 
 from .errors import AppError
@@ -62,6 +68,18 @@ def _parser() -> argparse.ArgumentParser:
     i.add_argument("--base-url", default=None, help="where the app is served (default http://127.0.0.1:PORT)")
     i.add_argument("--list", action="store_true", help="list invites instead")
     i.add_argument("--revoke", type=int, metavar="INVITE_ID", help="revoke an invite instead")
+    n = sub.add_parser("init", help="make an empty project folder (owner-only) to add images to")
+    n.add_argument("project", type=Path)
+    ky = sub.add_parser("keys", help="the project's signing key (kept owner-only in secret.key)")
+    ky.add_argument("project", type=Path)
+    ky.add_argument("--rotate", action="store_true", help="make a new key: every browser is signed out and must open an invite link again")
+    ro = sub.add_parser("role", help="change a person's role on purpose (invites never change one)")
+    ro.add_argument("project", type=Path)
+    ro.add_argument("--name", required=True)
+    ro.add_argument("--role", choices=list(ROLES), required=True)
+    b = sub.add_parser("backup", help="copy the project's database with SQLite's online backup (safe while serving)")
+    b.add_argument("project", type=Path)
+    b.add_argument("--out", type=Path, required=True, help="the backup file to write (must not exist)")
     k = sub.add_parser("checks", help="mark regions of a campaign as check items from a CSV region,answer")
     k.add_argument("project", type=Path)
     k.add_argument("--campaign", type=int, required=True)
@@ -75,6 +93,7 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--min-lift", type=float, default=1.0)
     r.add_argument("--prune", action="store_true", help="drop rules whose set adds no confidence over a subset")
     r.add_argument("--json", action="store_true")
+    r.add_argument("--max-candidates", type=int, default=DEFAULT_MAX_CANDIDATES, help="refuse settings that could count more concept sets than this")
     from .cli_analysis import add_parsers
 
     add_parsers(sub)
@@ -92,40 +111,65 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
-def _read_text_csv(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
-    """A CSV read as text, with the columns it must have; errors name the file and what is missing."""
+def read_text_csv(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
+    """A UTF-8 CSV read as text, with the columns it must have; every row as long as the header.
+
+    Errors name the file, the line and what to fix (encoding, ragged rows, missing columns).
+    """
     try:
-        frame = pd.read_csv(path, dtype=str, keep_default_na=False)
-    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise AppError(f"cannot read {path}: {exc}") from None
-    if not set(columns) <= set(frame.columns):
-        raise AppError(f"{path} needs the columns {','.join(columns)}; it has {list(frame.columns)}.")
-    return frame
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise AppError(f"cannot read {path}: {exc.strerror or exc}.") from None
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise AppError(f"{path} line {line} is not UTF-8 text (byte 0x{raw[exc.start]:02x}); save the file as UTF-8 and try again.") from None
+    try:
+        rows = list(csv.reader(io.StringIO(text, newline="")))
+    except csv.Error as exc:
+        raise AppError(f"{path} is not a readable CSV: {exc}.") from None
+    if not rows or not any(cell.strip() for cell in rows[0]):
+        raise AppError(f"{path} is empty; it needs a header line with {','.join(columns)}.")
+    header = [h.strip() for h in rows[0]]
+    body = [r for r in rows[1:] if r]
+    for n, row in enumerate(rows[1:], start=2):
+        if row and len(row) != len(header):
+            raise AppError(f"{path} line {n} has {len(row)} fields but the header has {len(header)}; quote fields that hold commas, or fix the line.")
+    if len(set(header)) != len(header):
+        raise AppError(f"{path} names a column twice in its header: {header}.")
+    if not set(columns) <= set(header):
+        raise AppError(f"{path} needs the columns {','.join(columns)}; it has {header}.")
+    return pd.DataFrame(body, columns=header, dtype=str)
 
 
-def _factory(project: Path):  # type: ignore[no-untyped-def]
-    from .db import make_engine, session_factory
+def write_csv(rows: list[list[object]]) -> None:
+    """Rows as CSV on stdout, quoted where a field holds a comma, quote or line break."""
+    csv.writer(sys.stdout, lineterminator="\n").writerows(rows)
 
-    return session_factory(make_engine(project))
+
+def _factory(project: Path, *, create: bool = False):  # type: ignore[no-untyped-def]
+    from .db import open_project, session_factory
+
+    return session_factory(open_project(project, create=create))
 
 
 def _serve(project: Path, port: int | None) -> None:
     import uvicorn
 
-    from .db import write_session
+    from .db import open_project, session_factory, write_session
     from .main import create_app
-    from .people import create_invite
-
-    from .db import make_engine, session_factory
+    from .people import admin_invite, load_key
 
     settings = get_settings(project_dir=project, port=port)
-    engine = make_engine(project)
+    engine = open_project(project)
+    load_key(project)  # made now, owner-only, so a problem with it shows before serving
     with write_session(session_factory(engine)) as s:
-        _, token = create_invite(s, name="admin", role="admin", days=1, note="start-up link of heedmap serve")
+        name, token = admin_invite(s, days=1, note="start-up link of heedmap serve")
     engine.dispose()
     base = f"http://{settings.host}:{settings.port}"
     print(f"heedmap is serving {project} at {base}/", flush=True)
-    print(f"sign in as admin (link valid for a day): {base}/join/{token}", flush=True)
+    print(f"sign in as {name} (admin; link valid for a day): {base}/join/{token}", flush=True)
     uvicorn.run(create_app(settings), host=settings.host, port=settings.port, log_level="warning")
 
 
@@ -158,13 +202,14 @@ def _invite(args: argparse.Namespace) -> int:
     from .people import create_invite, list_invites, revoke_invite
 
     factory = _factory(args.project)
-    with write_session(factory) as s:
+    with (factory() if args.list else write_session(factory)) as s:
         if args.list:
             now = utcnow()
-            print("id,person,role,campaign,state,expires,last_used,note")
+            rows: list[list[object]] = [["id", "person", "role", "campaign", "state", "expires", "last_used", "note"]]
             for inv in list_invites(s):
                 used = inv.last_used_at.isoformat(timespec="minutes") if inv.last_used_at else ""
-                print(f"{inv.id},{inv.person},{inv.role},{inv.campaign_id or ''},{inv.state(now)},{inv.expires_at.isoformat(timespec='minutes')},{used},{inv.note}")
+                rows.append([inv.id, inv.person, inv.role, inv.campaign_id or "", inv.state(now), inv.expires_at.isoformat(timespec="minutes"), used, inv.note])
+            write_csv(rows)
             return 0
         if args.revoke is not None:
             revoke_invite(s, args.revoke)
@@ -190,11 +235,12 @@ def _checks(args: argparse.Namespace) -> int:
     from .campaigns import set_check_answer
     from .db import write_session
 
-    frame = _read_text_csv(args.file, ("region", "answer"))
+    frame = read_text_csv(args.file, ("region", "answer"))
     parsed = []
     for line, (region, answer) in enumerate(zip(frame["region"], frame["answer"]), start=2):
-        if not str(region).strip().isdigit():
-            raise AppError(f"{args.file} line {line}: region must be a region id (a number); got {region!r}.")
+        # ASCII digits only ("²".isdigit() is true) and within SQLite's integers.
+        if not re.fullmatch(r"[0-9]{1,18}", str(region).strip()):
+            raise AppError(f"{args.file} line {line}: region must be a region id (a whole number below 10^18); got {str(region)[:30]!r}.")
         try:
             parsed.append((int(region), parse_label_text(answer)))
         except InvalidInputError as exc:
@@ -207,18 +253,26 @@ def _checks(args: argparse.Namespace) -> int:
     return 0
 
 
+_TRUE, _FALSE = {"1", "1.0", "true", "yes"}, {"0", "0.0", "false", "no", ""}
+
+
 def _rules(args: argparse.Namespace) -> int:
-    try:
-        frame = pd.read_csv(args.table)
-    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
-        raise AppError(f"cannot read {args.table}: {exc}") from None
+    frame = read_text_csv(args.table, ())
     if args.target not in frame.columns:
         raise AppError(f"{args.table} has no column {args.target!r}; its columns are {list(frame.columns)}.")
-    concepts = frame.drop(columns=[args.target])
-    bad = [c for c in concepts.columns if not concepts[c].isin([0, 1, True, False]).all()]
+    concepts = frame.drop(columns=[args.target]).apply(lambda col: col.str.strip().str.lower())
+    bad = [c for c in concepts.columns if not concepts[c].isin(_TRUE | _FALSE).all()]
     if bad:
         raise AppError(f"concept columns must hold only 0/1; {bad[:5]} do not. Drop or recode them.")
-    table = mine_rules(concepts.astype(bool), frame[args.target].astype(str), min_support=args.min_support, max_len=args.max_len,
+    present = concepts.isin(_TRUE)
+    from analysis.rules import support_count
+
+    if not 0 < args.min_support <= 1:
+        raise AppError(f"--min-support must be in (0, 1]; got {args.min_support}. Give a fraction of images, e.g. 0.05.")
+    threshold = max(args.min_count, support_count(args.min_support, max(1, len(frame))))
+    check_rule_budget(present.sum(axis=1).to_numpy(), min_count=threshold, max_len=args.max_len, n_columns=present.shape[1],
+                      max_candidates=args.max_candidates)
+    table = mine_rules(present, frame[args.target].astype(str), min_support=args.min_support, max_len=args.max_len,
                        min_count=args.min_count, min_lift=args.min_lift, prune=args.prune)
     if args.json:
         print(json.dumps(rules_document(table, source=str(args.table), target=args.target), indent=2))
@@ -256,7 +310,7 @@ def _aggregate(args: argparse.Namespace) -> int:
     labels = read_long_labels(args.labels)
     known: dict[str, str] = {}
     if args.known:
-        gold = _read_text_csv(args.known, ("item", "label"))
+        gold = read_text_csv(args.known, ("item", "label"))
         known = {str(i).strip(): str(v).strip() for i, v in zip(gold["item"], gold["label"])}
     _, summary = aggregate_labels(labels, method=args.method, known=known, threshold=args.threshold)
     if args.json:
@@ -264,10 +318,105 @@ def _aggregate(args: argparse.Namespace) -> int:
         return 0
     state = "converged" if summary["converged"] else "did NOT converge"
     print(f"{summary['method']}: {len(summary['items'])} items, {state} after {summary['iterations']} iterations")
-    print("item,label,probability,ratings")
-    for it in summary["items"]:
-        print(f"{it['item']},{it['label'] or ''},{it['probability']:.4f},{it['ratings']}")
+    write_csv([["item", "label", "probability", "ratings"]]
+              + [[it["item"], it["label"] or "", f"{it['probability']:.4f}", it["ratings"]] for it in summary["items"]])
     return 0
+
+
+def _init(args: argparse.Namespace) -> int:
+    from .db import DB_NAME, open_project
+    from .people import load_key
+
+    if (args.project / DB_NAME).is_file():
+        raise AppError(f"{args.project} is a heedmap project already; nothing to do.")
+    open_project(args.project, create=True).dispose()
+    load_key(args.project)
+    print(f"made the project {args.project} (owner-only); add images with 'heedmap saliency {args.project} --model ... --sidecar ... --images ...'")
+    return 0
+
+
+def _keys(args: argparse.Namespace) -> int:
+    from .db import open_project
+    from .people import key_path, rotate_key
+
+    open_project(args.project).dispose()  # only a real project gets a key
+    if not args.rotate:
+        print(f"the signing key is {key_path(args.project)} (owner-only); 'heedmap keys {args.project} --rotate' makes a new one and signs everyone out")
+        return 0
+    rotate_key(args.project)
+    print("made a new signing key: every browser is signed out; people sign in again through their invite links (a running server picks it up at once)")
+    return 0
+
+
+def _role(args: argparse.Namespace) -> int:
+    from .db import write_session
+    from .people import set_role
+
+    with write_session(_factory(args.project)) as s:
+        old = set_role(s, args.name, args.role)
+    print(f"{args.name}: {old} -> {args.role} (their signed-in browsers have the new role at their next request)")
+    return 0
+
+
+def _backup(args: argparse.Namespace) -> int:
+    from .db import backup
+
+    pages = backup(args.project, args.out)
+    print(f"wrote {args.out} ({pages} pages); restore by putting it in place of {args.project / 'heedmap.db'} while heedmap is stopped")
+    return 0
+
+
+def _dispatch(args: argparse.Namespace) -> int:
+    if args.command == "demo":
+        from .demo import run_demo
+
+        summary = run_demo(args.out, size=args.size, cue=args.cue, seed=args.seed, annotators=args.simulate_annotators, method=args.aggregation)
+        print(json.dumps(summary, indent=2))
+        print(f"wrote {args.out / 'demo.json'}" + (f" and {args.out / 'rules.csv'}" if args.simulate_annotators else ""))
+        if not args.no_serve:
+            _serve(args.out / "project", args.port)
+    elif args.command == "saliency":
+        from analysis.images import find_images
+        from analysis.model_io import load_model
+
+        from .jobs import register_images, run_saliency
+
+        model = load_model(args.model, args.sidecar)
+        factory = _factory(args.project, create=True)
+        problems = register_images(factory, find_images(args.images))
+        rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=(args.model, args.sidecar))
+        for path, why in problems + rep.skipped:
+            print(f"skipped: {why}", file=sys.stderr)
+        print(f"run {rep.run_id}: {rep.processed} images processed, {rep.already_done} already done, {rep.regions} regions, {rep.empty_maps} empty maps, {len(problems) + len(rep.skipped)} skipped")
+    elif args.command == "serve":
+        _serve(args.project, args.port)
+    elif args.command in ("ask", "check", "export", "report", "interventions"):
+        from . import cli_analysis
+
+        return int(getattr(cli_analysis, args.command)(args))
+    else:
+        handlers = {"campaign": _campaign, "invite": _invite, "checks": _checks, "rules": _rules, "agreement": _agreement,
+                    "aggregate": _aggregate, "init": _init, "keys": _keys, "role": _role, "backup": _backup}
+        return handlers[args.command](args)
+    return 0
+
+
+def _message(exc: BaseException, args: argparse.Namespace) -> str:
+    """One line a user can act on for a failure; the traceback only with --debug."""
+    from sqlalchemy.exc import DBAPIError
+
+    from .db import explain_db_error
+
+    if isinstance(exc, (DBAPIError, sqlite3.Error)):
+        found = explain_db_error(exc, Path(getattr(args, "project", None) or "."))
+        if found is not None:
+            return found.message
+    if isinstance(exc, OSError):
+        where = f" ({exc.filename})" if exc.filename else ""
+        if exc.errno == 28:
+            return f"the disk is full{where}; nothing more was written. Free some space and run the command again (finished work is kept)."
+        return f"{exc.strerror or exc}{where}."
+    return f"unexpected {type(exc).__name__}: {exc}. Run again with --debug for the details, and report it if the input looks right."
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -276,52 +425,28 @@ def main(argv: list[str] | None = None) -> int:
     warnings.filterwarnings("ignore", message="`torch.jit", category=DeprecationWarning)
     args = _parser().parse_args(argv)
     try:
-        if args.command == "demo":
-            from .demo import run_demo
-
-            summary = run_demo(args.out, size=args.size, cue=args.cue, seed=args.seed, annotators=args.simulate_annotators, method=args.aggregation)
-            print(json.dumps(summary, indent=2))
-            print(f"wrote {args.out / 'demo.json'}" + (f" and {args.out / 'rules.csv'}" if args.simulate_annotators else ""))
-            if not args.no_serve:
-                _serve(args.out / "project", args.port)
-        elif args.command == "saliency":
-            from analysis.images import find_images
-            from analysis.model_io import load_model
-
-            from .db import make_engine, session_factory
-            from .jobs import register_images, run_saliency
-
-            model = load_model(args.model, args.sidecar)
-            factory = session_factory(make_engine(args.project))
-            problems = register_images(factory, find_images(args.images))
-            rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=(args.model, args.sidecar))
-            for path, why in problems + rep.skipped:
-                print(f"skipped: {why}", file=sys.stderr)
-            print(f"run {rep.run_id}: {rep.processed} images processed, {rep.already_done} already done, {rep.regions} regions, {rep.empty_maps} empty maps, {len(problems) + len(rep.skipped)} skipped")
-        elif args.command == "serve":
-            _serve(args.project, args.port)
-        elif args.command == "campaign":
-            return _campaign(args)
-        elif args.command == "invite":
-            return _invite(args)
-        elif args.command == "checks":
-            return _checks(args)
-        elif args.command in ("ask", "check", "export", "report", "interventions"):
-            from . import cli_analysis
-
-            return int(getattr(cli_analysis, args.command)(args))
-        elif args.command == "rules":
-            return _rules(args)
-        elif args.command == "agreement":
-            return _agreement(args)
-        elif args.command == "aggregate":
-            return _aggregate(args)
+        return _dispatch(args)
+    except BrokenPipeError:
+        # The reader went away (`| head`): stop quietly; point stdout at nothing so the final flush cannot fail again.
+        try:
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+        except (OSError, ValueError, io.UnsupportedOperation):
+            pass
+        return 141
+    except KeyboardInterrupt:
+        print("heedmap: stopped.", file=sys.stderr)
+        return 130
     except (AnalysisError, AppError, SettingsError) as exc:
         if args.debug:
             traceback.print_exc()
         print(f"heedmap: {getattr(exc, 'message', exc)}", file=sys.stderr)
         return 1
-    return 0
+    except Exception as exc:  # noqa: BLE001 - no command ends in a traceback; --debug shows it
+        if args.debug:
+            traceback.print_exc()
+        print(f"heedmap: {_message(exc, args)}", file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":

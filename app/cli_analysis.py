@@ -13,7 +13,7 @@ from analysis.interventions import FILLS
 from analysis.questions import answer_question
 
 from . import campaigns
-from .db import make_engine, session_factory
+from .db import open_project, session_factory
 from .errors import AppError
 from .layout import ProjectLayout
 from .reliance import Reliance, confirm_verdicts, model_for_run, rule_reliance
@@ -62,9 +62,7 @@ def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
 
 
 def _results(args: argparse.Namespace) -> tuple[Results, object]:
-    if not ProjectLayout(Path(args.project)).database.is_file():
-        raise AppError(f"{args.project} is not a heedmap project (no heedmap.db); run 'heedmap saliency' or 'heedmap demo' first.")
-    engine = make_engine(args.project)
+    engine = open_project(args.project)
     factory = session_factory(engine)
     with factory() as s:
         found = campaigns.list_campaigns(s)

@@ -1,33 +1,173 @@
-"""Engine factory for the project's SQLite file: WAL, busy timeout, write lock taken up front."""
+"""Opening a project's SQLite file: owner-only files, WAL, full sync, damage found at start, clear errors.
+
+Durability promise: a write that heedmap acknowledged (a label answered "stored", a command that
+printed its result) survives a crash of the process and a power cut. Every connection runs with
+``synchronous=FULL`` under WAL, so each commit is flushed to disk before it returns; the
+cost is measured by ``benchmarks/annotation_load.py``.
+"""
 
 from __future__ import annotations
 
+import os
+import sqlite3
+import stat
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import create_engine, event, select
+from sqlalchemy import create_engine, event, select, text
 from sqlalchemy.engine import Engine
+from sqlalchemy.exc import DBAPIError
 from sqlalchemy.orm import Session, sessionmaker
 
-from .errors import SchemaVersionError
-from .layout import ProjectLayout
+from .errors import AppError, SchemaVersionError
+from .layout import DB_NAME, ProjectLayout
 from .models import SCHEMA_VERSION, Base, SchemaInfo
 
+# SQLite's durability levels; FULL syncs the write-ahead log at every commit.
+SYNCHRONOUS = "FULL"
 
-def make_engine(project_dir: Path) -> Engine:
-    """One engine per app or CLI run, over ``project_dir/heedmap.db``; creates the schema when new."""
-    project_dir.mkdir(parents=True, exist_ok=True)
-    engine = create_engine(f"sqlite:///{ProjectLayout(project_dir).database}", connect_args={"check_same_thread": False, "timeout": 30})
+
+class ProjectError(AppError):
+    """The project folder or its database cannot be used as it is; the message says what to do."""
+
+    status_code = 503
+    code = "project_unavailable"
+
+
+class NotAProjectError(ProjectError):
+    code = "not_a_project"
+
+
+class ReadOnlyProjectError(ProjectError):
+    code = "read_only"
+
+
+class DamagedProjectError(ProjectError):
+    code = "damaged"
+
+
+class DiskFullError(ProjectError):
+    status_code = 507
+    code = "disk_full"
+
+
+class ProjectBusyError(ProjectError):
+    code = "busy"
+
+
+def db_path(project_dir: Path) -> Path:
+    return ProjectLayout(Path(project_dir)).database
+
+
+def _writable(path: Path) -> bool:
+    """Whether this process may write ``path`` (a file or folder); a separate function so tests can say no."""
+    return os.access(path, os.W_OK)
+
+
+def owner_only(path: Path) -> None:
+    """Take group and other permissions off a file or folder of ours; one we cannot change is left as it is."""
+    try:
+        st = path.stat()
+        if st.st_uid == os.getuid() and stat.S_IMODE(st.st_mode) & 0o077:
+            path.chmod(stat.S_IMODE(st.st_mode) & 0o700)
+    except OSError:
+        pass
+
+
+def explain_db_error(exc: BaseException, project_dir: Path) -> ProjectError | None:
+    """Our error for a SQLite failure a user can act on (read-only, damaged, full disk, locked); None for others."""
+    orig = exc.orig if isinstance(exc, DBAPIError) else exc
+    if not isinstance(orig, sqlite3.Error):
+        return None
+    text = str(orig).lower()
+    where = db_path(project_dir).resolve()
+    if "readonly" in text or "read-only" in text or "unable to open" in text:
+        return ReadOnlyProjectError(
+            f"heedmap cannot write to {where}: the database or its folder is read-only for this user ({orig}). Commands that only read "
+            "(ask, check, export, report, invite --list, backup) still work; to change the project, make the folder and heedmap.db writable by you, or work on a copy."
+        )
+    if "not a database" in text or "malformed" in text or "corrupt" in text:
+        return DamagedProjectError(
+            f"{where} is damaged ({orig}). Nothing was changed. Restore the last copy made with 'heedmap backup', or keep the damaged "
+            "file aside and ask SQLite to salvage it (sqlite3 heedmap.db .recover)."
+        )
+    if "disk is full" in text or "disk i/o" in text:
+        return DiskFullError(
+            f"the disk holding {where} is full or failing ({orig}); nothing of this action was saved. Free some space, then try again."
+        )
+    if "locked" in text or "busy" in text:
+        return ProjectBusyError(f"{where} is locked by another heedmap process ({orig}); try again when it has finished.")
+    return None
+
+
+@contextmanager
+def explained(project_dir: Path) -> Iterator[None]:
+    """Turn SQLite failures a user can act on into our errors with what to do."""
+    try:
+        yield
+    except (DBAPIError, sqlite3.Error) as exc:
+        found = explain_db_error(exc, project_dir)
+        if found is None:
+            raise
+        raise found from None
+
+
+def open_project(project_dir: Path, *, create: bool = False, readonly: bool | None = None) -> Engine:
+    """The engine of an existing project (or a new one with ``create``), checked for damage first.
+
+    Only the commands that make a project (demo, saliency, init) pass ``create``; the rest get
+    "not a heedmap project" with the place they looked. ``readonly=None`` opens read-only when the
+    folder or the database cannot be written, so reading commands still work there.
+    """
+    project_dir = Path(project_dir)
+    db = db_path(project_dir)
+    if not db.is_file() and not create:
+        raise NotAProjectError(
+            f"{project_dir} is not a heedmap project: there is no {DB_NAME} in {project_dir.resolve()}. Check the path; "
+            "'heedmap init', 'heedmap saliency' or 'heedmap demo' make a project."
+        )
+    if readonly is None:
+        readonly = db.is_file() and not (_writable(project_dir) and _writable(db))
+    return make_engine(project_dir, readonly=readonly)
+
+
+def make_engine(project_dir: Path, *, readonly: bool = False) -> Engine:
+    """One engine per app or CLI run, over ``project_dir/heedmap.db``; creates the schema when new.
+
+    A new project folder and database are made owner-only (0700, 0600): the database holds
+    everyone's labels and invites. ``readonly`` opens an existing database for reading only.
+    """
+    project_dir = Path(project_dir)
+    db = db_path(project_dir)
+    if readonly:
+        if not db.is_file():
+            raise NotAProjectError(f"{project_dir} is not a heedmap project: there is no {DB_NAME} in {project_dir.resolve()}.")
+        url = f"sqlite:///file:{db.resolve()}?mode=ro&uri=true"
+    else:
+        try:
+            if not project_dir.is_dir():
+                project_dir.mkdir(parents=True, mode=0o700)
+            if not db.exists():
+                os.close(os.open(db, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600))  # SQLite's empty database
+                owner_only(project_dir)  # a new project: its folder is the owner's only
+        except OSError as exc:
+            raise ProjectError(f"cannot make the project at {project_dir.resolve()}: {exc.strerror or exc}. Choose a folder you can write to.") from None
+        for path in (db, db.with_name(DB_NAME + "-wal"), db.with_name(DB_NAME + "-shm")):
+            if path.exists():
+                owner_only(path)
+        url = f"sqlite:///{db}"
+    engine = create_engine(url, connect_args={"check_same_thread": False, "timeout": 30})
 
     @event.listens_for(engine, "connect")
     def _pragmas(dbapi_conn: Any, _record: Any) -> None:
         dbapi_conn.isolation_level = None  # we emit BEGIN ourselves
         cur = dbapi_conn.cursor()
         cur.execute("PRAGMA foreign_keys=ON")
-        cur.execute("PRAGMA journal_mode=WAL")
-        cur.execute("PRAGMA synchronous=NORMAL")
+        if not readonly:
+            cur.execute("PRAGMA journal_mode=WAL")
+            cur.execute(f"PRAGMA synchronous={SYNCHRONOUS}")
         cur.execute("PRAGMA busy_timeout=30000")
         cur.close()
 
@@ -37,17 +177,65 @@ def make_engine(project_dir: Path) -> Engine:
         # when writers race; writes therefore take the lock up front.
         conn.exec_driver_sql("BEGIN IMMEDIATE" if conn.get_execution_options().get("immediate") else "BEGIN")
 
-    _ensure_schema(engine)
+    try:
+        with explained(project_dir):
+            _check_intact(engine)
+            _ensure_schema(engine, readonly=readonly)
+    except BaseException:
+        engine.dispose()
+        raise
     return engine
 
 
-def _ensure_schema(engine: Engine) -> None:
+def _check_intact(engine: Engine) -> None:
+    """Find damage at start (random bytes, a truncated file, broken pages), not on some later page."""
+    with engine.connect() as c:
+        problems = [str(r[0]) for r in c.exec_driver_sql("PRAGMA quick_check(5)")]
+    if problems != ["ok"]:
+        raise sqlite3.DatabaseError("database disk image is malformed: " + "; ".join(problems)[:300])
+
+
+def backup(project_dir: Path, out: Path) -> int:
+    """Copy the project's database to ``out`` with SQLite's online backup (safe while the app writes); returns its pages."""
+    src_path = db_path(project_dir)
+    if not src_path.is_file():
+        raise NotAProjectError(f"{project_dir} is not a heedmap project: there is no {DB_NAME} in {Path(project_dir).resolve()}.")
+    if out.exists():
+        raise AppError(f"{out} exists already; give a new file name, so no backup is overwritten.")
+    try:
+        fd = os.open(out, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600)
+    except OSError as exc:
+        raise AppError(f"cannot write the backup to {out}: {exc.strerror or exc}.") from None
+    os.close(fd)
+    src = sqlite3.connect(f"file:{src_path.resolve()}?mode=ro", uri=True)
+    dst = sqlite3.connect(out)
+    try:
+        with explained(project_dir):
+            src.backup(dst)
+            pages = int(dst.execute("PRAGMA page_count").fetchone()[0])
+            if dst.execute("PRAGMA quick_check(1)").fetchone()[0] != "ok":
+                raise sqlite3.DatabaseError("the backup is malformed")
+    except BaseException:
+        dst.close()
+        out.unlink(missing_ok=True)
+        raise
+    finally:
+        src.close()
+    dst.close()
+    return pages
+
+
+def _ensure_schema(engine: Engine, *, readonly: bool = False) -> None:
     """Create the tables of a new project, or bring an older project's schema up to date in one transaction."""
     with engine.connect() as c:
         has_info = c.exec_driver_sql("SELECT name FROM sqlite_master WHERE type='table' AND name='schema_info'").first()
         found = c.exec_driver_sql("SELECT version FROM schema_info").scalar() if has_info else None
     if found is not None and found > SCHEMA_VERSION:
         raise SchemaVersionError(f"this database has schema version {found}, newer than this heedmap's {SCHEMA_VERSION}; upgrade heedmap.")
+    if readonly:
+        if found != SCHEMA_VERSION:
+            raise sqlite3.OperationalError(f"attempt to write a readonly database (schema version {found} needs an upgrade to {SCHEMA_VERSION})")
+        return
     if found == 1:
         _migrate_v1(engine)
     Base.metadata.create_all(engine)
@@ -55,6 +243,9 @@ def _ensure_schema(engine: Engine) -> None:
         row = s.scalar(select(SchemaInfo))
         if row is None:
             s.add(SchemaInfo(version=SCHEMA_VERSION))
+        # Older projects kept the cookie-signing key here, readable by anyone who can read the
+        # database; that key is dropped (it now lives in an owner-only file, see people.load_key).
+        s.execute(text("DELETE FROM secrets WHERE name = 'cookie_key'"))
 
 
 def _migrate_v1(engine: Engine) -> None:

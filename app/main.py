@@ -11,9 +11,10 @@ from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 
-from .db import lazy_write_factory, make_engine, session_factory, write_session
+from .db import lazy_write_factory, open_project, session_factory
 from .errors import install_error_handlers
-from .people import project_key
+from .people import load_key
+from .security import install
 from .services.campaign_analysis import ResultsCache
 from .settings import Settings
 
@@ -25,17 +26,19 @@ def create_app(settings: Settings) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        engine = make_engine(settings.project_dir)
+        engine = open_project(settings.project_dir)
         app.state.sessions = session_factory(engine)
         app.state.writers = lazy_write_factory(engine)
         app.state.write_lock = asyncio.Lock()
         app.state.results_cache = ResultsCache()
-        with write_session(app.state.sessions) as s:
-            app.state.key = project_key(s)
+        app.state.key = load_key(settings.project_dir)
         yield
         engine.dispose()
 
-    app = FastAPI(title="heedmap", lifespan=lifespan)
+    # The API's self-description is off unless asked for (settings.api_docs): it maps every route for a stranger.
+    docs = settings.api_docs
+    app = FastAPI(title="heedmap", lifespan=lifespan, docs_url="/docs" if docs else None, redoc_url=None, openapi_url="/openapi.json" if docs else None)
+    install(app, project_dir=settings.project_dir, debug=settings.debug)
     app.state.settings = settings
     app.state.templates = Jinja2Templates(directory=str(UI_DIR / "templates"))
     app.mount("/static", StaticFiles(directory=str(UI_DIR / "static")), name="static")

@@ -3,24 +3,30 @@
 A signed-in browser holds a cookie naming its invite and signed with the project key, so
 revoking the invite signs that browser out at its next request. The anti-forgery token of a
 session is derived from the cookie with the same key, so it needs no storage either.
+
+The key lives in ``secret.key`` in the project folder, created owner-only (0600), never in the
+database (which more people may read); rotating it signs every browser out.
 """
 
 from __future__ import annotations
 
 import hashlib
 import hmac
+import os
 import re
 import secrets
 from dataclasses import dataclass
 from datetime import datetime, timedelta
+from pathlib import Path
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from .errors import ForbiddenError, InvalidRequestError, NotFoundError
-from .models import ROLES, Invite, Person, Secret, utcnow
+from .errors import ConflictError, ForbiddenError, InvalidRequestError, NotFoundError
+from .models import ROLES, Invite, Person, utcnow
 
 _NAME = re.compile(r"^[\w .@'-]{1,40}$")
+_COOKIE_ID = re.compile(r"[0-9]{1,18}")
 
 
 @dataclass(frozen=True)
@@ -64,33 +70,106 @@ def check_name(name: str) -> str:
     return name
 
 
-def project_key(s: Session) -> bytes:
-    """The project's signing key, made on first use."""
-    row = s.get(Secret, "cookie_key")
-    if row is None:
-        row = Secret(name="cookie_key", value=secrets.token_hex(32))
-        s.add(row)
-        s.flush()
-    return bytes.fromhex(row.value)
+KEY_FILE = "secret.key"
+
+
+class KeyFileError(ForbiddenError):
+    status_code = 503
+    code = "key_unavailable"
+
+
+def key_path(project_dir: Path) -> Path:
+    return Path(project_dir) / KEY_FILE
+
+
+def _write_key(path: Path) -> bytes:
+    """A new random key written owner-only and swapped in whole (no reader sees half a key)."""
+    key = secrets.token_bytes(32)
+    tmp = path.with_name(f".{KEY_FILE}.{os.getpid()}.{secrets.token_hex(4)}")
+    fd = os.open(tmp, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600)
+    try:
+        os.write(fd, key.hex().encode() + b"\n")
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    os.replace(tmp, path)
+    return key
+
+
+def load_key(project_dir: Path, *, create: bool = True) -> bytes:
+    """The project's signing key from its owner-only file, made on first use."""
+    path = key_path(project_dir)
+    try:
+        st = path.stat()
+        if st.st_uid == os.getuid() and st.st_mode & 0o077:
+            path.chmod(0o600)  # a copied or restored key file is made owner-only again
+        raw = path.read_text(encoding="ascii").strip()
+        key = bytes.fromhex(raw)
+        if len(key) < 32:
+            raise ValueError("short key")
+        return key
+    except FileNotFoundError:
+        if not create:
+            raise KeyFileError(f"the project has no signing key ({path}); start 'heedmap serve' once where it can write, or run 'heedmap keys --rotate'.") from None
+    except (OSError, ValueError, UnicodeDecodeError) as exc:
+        raise KeyFileError(f"cannot read the signing key {path} ({exc}); make a new one with 'heedmap keys --rotate' (everyone signs in again).") from None
+    try:
+        return _write_key(path)
+    except OSError as exc:
+        raise KeyFileError(f"cannot write the signing key {path}: {exc.strerror or exc}. The project folder must be writable by you.") from None
+
+
+def rotate_key(project_dir: Path) -> None:
+    """Replace the signing key: every session cookie and anti-forgery token made with the old one stops working."""
+    try:
+        _write_key(key_path(project_dir))
+    except OSError as exc:
+        raise KeyFileError(f"cannot write the signing key {key_path(project_dir)}: {exc.strerror or exc}.") from None
 
 
 def _hash(token: str) -> str:
     return hashlib.sha256(token.encode()).hexdigest()
 
 
-def ensure_person(s: Session, name: str, role: str) -> int:
-    """The id of the person called ``name``, created with ``role`` if new; an existing person's role is updated."""
+def _check_role(role: str) -> None:
     if role not in ROLES:
         raise InvalidRequestError(f"role must be one of {', '.join(ROLES)}; got {role!r}.")
+
+
+def ensure_person(s: Session, name: str, role: str) -> int:
+    """The id of the person called ``name``, created with ``role`` if new.
+
+    An existing person keeps their role: an invite never changes it (that would change what
+    their live sessions may do). A different role is refused; ``set_role`` changes it on purpose.
+    """
+    _check_role(role)
     name = check_name(name)
     person = s.scalar(select(Person).where(Person.name == name))
     if person is None:
         person = Person(name=name, role=role)
         s.add(person)
         s.flush()
-    else:
-        person.role = role
+    elif person.role != role:
+        raise ConflictError(
+            f"{name} is on the project already as {person.role}; an invite does not change a role. Invite them as {person.role}, "
+            f"choose another name for a new person, or change their role on purpose (admin page, or 'heedmap role --name {name!r} --role {role}')."
+        )
     return person.id
+
+
+def set_role(s: Session, name: str, role: str) -> str:
+    """Change a person's role on purpose (an admin's action); returns the old role. The last admin stays admin."""
+    _check_role(role)
+    person = s.scalar(select(Person).where(Person.name == check_name(name)))
+    if person is None:
+        raise NotFoundError(f"nobody called {name!r} is on the project.")
+    old = person.role
+    if old == "admin" and role != "admin":
+        admins = s.scalar(select(func.count()).select_from(Person).where(Person.role == "admin")) or 0
+        if admins <= 1:
+            raise ConflictError(f"{person.name} is the project's only admin; make someone else admin first.")
+    person.role = role
+    return old
 
 
 def create_invite(s: Session, *, name: str, role: str, campaign_id: int | None = None, days: float = 14, note: str = "", now: datetime | None = None) -> tuple[int, str]:
@@ -104,6 +183,15 @@ def create_invite(s: Session, *, name: str, role: str, campaign_id: int | None =
     s.add(row)
     s.flush()
     return row.id, token
+
+
+def admin_invite(s: Session, *, days: float = 1, note: str = "") -> tuple[str, str]:
+    """An invite for the project's first admin (made as "admin" when there is none); returns (name, token)."""
+    person = s.scalar(select(Person).where(Person.role == "admin").order_by(Person.id).limit(1))
+    name = person.name if person is not None else "admin"
+    if person is None and s.scalar(select(Person.id).where(Person.name == name)) is not None:
+        name = "project admin"
+    return name, create_invite(s, name=name, role="admin", days=days, note=note)[1]
 
 
 def _check_live(expires_at: datetime, revoked_at: datetime | None, now: datetime) -> None:
@@ -142,7 +230,8 @@ def viewer_from_cookie(s: Session, key: bytes, cookie: str | None, *, now: datet
     if not cookie or "." not in cookie:
         return None
     raw_id, _, _ = cookie.partition(".")
-    if not raw_id.isdigit() or not hmac.compare_digest(cookie, session_cookie(key, int(raw_id))):
+    # ASCII digits only, and short enough for SQLite's 64-bit integers ("²".isdigit() is true).
+    if not _COOKIE_ID.fullmatch(raw_id) or not hmac.compare_digest(cookie, session_cookie(key, int(raw_id))):
         return None
     # One query per request: the invite and its person together.
     row = s.execute(

@@ -21,6 +21,7 @@ class Settings:
     session_days: int = 30
     careless_seconds: float = 2.0  # median seconds per label below which an annotator is flagged
     debug: bool = False
+    api_docs: bool = False  # serve /docs and /openapi.json (off: they map every route for anyone who can reach the port)
 
     def __post_init__(self) -> None:
         if not 1 <= self.port <= 65535:

@@ -3,6 +3,7 @@ requests per second, and labels lost or stored twice (must be 0).
 
     .venv/bin/python -m benchmarks.annotation_load             # 50 annotators, 30 s
     .venv/bin/python -m benchmarks.annotation_load --quick     # 50 annotators, 8 s
+    .venv/bin/python -m benchmarks.annotation_load --compare-sync   # the cost of syncing each commit (NORMAL vs FULL)
 
 Each annotator signs in through its own invite link, then loops: fetch the next task, submit a
 label (JSON API, with the anti-forgery header); one submit in twenty is sent twice, as a browser
@@ -115,19 +116,15 @@ async def run_load(base: str, tokens: list[str], cid: int, seconds: float, think
     return timings, outcome, time.perf_counter() - t0
 
 
-def main(argv: list[str] | None = None) -> str:
-    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--quick", action="store_true", help="8 seconds instead of 30")
-    p.add_argument("--annotators", type=int, default=50)
-    p.add_argument("--per-region", type=int, default=3)
-    p.add_argument("--think", type=float, default=2.0, help="mean seconds an annotator spends on a region (0 = hammer the server)")
-    args = p.parse_args(argv)
-    seconds = 8.0 if args.quick else 30.0
+def run_once(args: argparse.Namespace, seconds: float, synchronous: str | None) -> tuple[dict[str, list[float]], Counter[str], float, int, int, int]:
+    """One served project under load; ``synchronous`` overrides SQLite's sync level in the server (for the side-by-side cost)."""
     with tempfile.TemporaryDirectory() as tmp:
         project = Path(tmp) / "project"
         cid, tokens = make_project(project, 5000, args.annotators, args.per_region)
         port = free_port()
-        server = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=open(os.environ.get("HEEDMAP_BENCH_LOG", os.devnull), "w"),
+        serve = ["serve", str(project), "--port", str(port)]
+        code = "import sys, app.db, app.cli; " + (f"app.db.SYNCHRONOUS = {synchronous!r}; " if synchronous else "") + "sys.exit(app.cli.main(sys.argv[1:]))"
+        server = subprocess.Popen([sys.executable, "-c", code, *serve], stdout=open(os.environ.get("HEEDMAP_BENCH_LOG", os.devnull), "w"),
                                   stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1"})
         base = f"http://127.0.0.1:{port}"
         try:
@@ -148,6 +145,21 @@ def main(argv: list[str] | None = None) -> str:
             worst = s.scalar(select(func.max(per_region.c.n))) or 0
             repeats = s.scalar(select(func.count()).select_from(select(Label.region_id, Label.person_id).group_by(Label.region_id, Label.person_id).having(func.count() > 1).subquery())) or 0
         engine.dispose()
+    return timings, outcome, wall, in_db, worst, repeats
+
+
+def main(argv: list[str] | None = None) -> str:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--quick", action="store_true", help="8 seconds instead of 30")
+    p.add_argument("--annotators", type=int, default=50)
+    p.add_argument("--per-region", type=int, default=3)
+    p.add_argument("--think", type=float, default=2.0, help="mean seconds an annotator spends on a region (0 = hammer the server)")
+    p.add_argument("--compare-sync", action="store_true", help="run once with SQLite synchronous=NORMAL and once with FULL (what heedmap uses), side by side")
+    args = p.parse_args(argv)
+    seconds = 8.0 if args.quick else 30.0
+    if args.compare_sync:
+        return _compare_sync(args, seconds)
+    timings, outcome, wall, in_db, worst, repeats = run_once(args, seconds, None)
     requests = sum(len(v) for v in timings.values())
     head = (f"{args.annotators} annotators, {args.think:g} s per region on average, for {wall:.1f} s on loopback, one uvicorn process; "
             f"{requests} requests, {requests / wall:.0f} per second.")
@@ -163,6 +175,24 @@ def main(argv: list[str] | None = None) -> str:
          ["most labels on one region (limit)", f"{worst} ({args.per_region})"]],
     )
     return head + "\n\n" + table + "\n\n" + checks
+
+
+def _compare_sync(args: argparse.Namespace, seconds: float) -> str:
+    """The cost of syncing every commit: the same load with synchronous=NORMAL and =FULL, one after the other."""
+    found = {mode: run_once(args, seconds, mode) for mode in ("NORMAL", "FULL")}
+    head = f"{args.annotators} annotators, {args.think:g} s per region on average, {seconds:g} s per side on loopback; SQLite WAL, synchronous NORMAL vs FULL."
+    print(head)
+    rows = []
+    for name in ("next task", "submit"):
+        for q in (50, 95, 99):
+            normal, full = (1000 * float(np.percentile(found[m][0][name], q)) for m in ("NORMAL", "FULL"))
+            rows.append([f"{name} p{q} ms", normal, full, full / normal])
+    for mode in ("NORMAL", "FULL"):
+        _, outcome, wall, in_db, _, repeats = found[mode]
+        print(f"{mode}: outcomes {dict(outcome)}; {in_db} labels in the database; lost {outcome['stored'] - in_db}; stored twice {repeats}")
+    rows.append(["lost (acknowledged, not stored)", found["NORMAL"][1]["stored"] - found["NORMAL"][3], found["FULL"][1]["stored"] - found["FULL"][3], float("nan")])
+    table = print_table(["measure", "NORMAL", "FULL", "FULL / NORMAL"], rows)
+    return head + "\n\n" + table
 
 
 if __name__ == "__main__":

@@ -73,7 +73,8 @@ def create_invite(
     except (AppError, ValueError) as exc:
         s.rollback()
         message = exc.message if isinstance(exc, AppError) else f"campaign must be a number; got {campaign_id!r}."
-        return _admin_page(request, s, viewer, error=message, form={"invite_name": name, "note": note}, status_code=422)
+        status = exc.status_code if isinstance(exc, AppError) else 422
+        return _admin_page(request, s, viewer, error=message, form={"invite_name": name, "note": note}, status_code=status)
     link = f"{str(request.base_url).rstrip('/')}/join/{token}"
     return _admin_page(request, s, viewer, new_link=link)
 

@@ -1,5 +1,6 @@
 from __future__ import annotations
 
+import uuid
 from collections.abc import Iterator
 from datetime import datetime
 from pathlib import Path
@@ -7,11 +8,13 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
+from app import campaigns
 from app.campaigns import create_campaign
+from app.cli import main
 from app.db import make_engine, session_factory, write_session
 from app.deps import COOKIE
 from app.main import create_app
-from app.people import create_invite, csrf_token
+from app.people import create_invite, csrf_token, ensure_person
 from app.settings import Settings
 from app.store import latest_run_id
 
@@ -44,3 +47,19 @@ def join(client: TestClient, name: str, role: str = "annotator", campaign: int |
     r = client.get(f"/join/{invite(client, name, role, campaign)}", follow_redirects=False)
     assert r.status_code == 303, r.text
     return csrf_token(client.app.state.key, client.cookies[COOKIE])  # type: ignore[attr-defined]
+
+
+def label_some(project: Path, campaign_id: int) -> None:
+    """A check item and a few labels by two people, stored as the app stores them."""
+    (project.parent / "c.csv").write_text("region,answer\n1,cap: red\n")
+    assert main(["checks", str(project), "--campaign", str(campaign_id), str(project.parent / "c.csv")]) == 0
+    engine = make_engine(project)
+    with write_session(session_factory(engine)) as s:
+        c = campaigns.get_campaign(s, campaign_id)
+        for name in ("ann", "bob"):
+            person = ensure_person(s, name, "annotator")
+            for _ in range(3):
+                task = campaigns.lease_tasks(s, campaign=c, person_id=person)[0]
+                campaigns.save_label(s, campaign=c, region_id=task.region_id, person_id=person, entities=[("cap", ["red"])], unsure=False,
+                                     client_id=uuid.uuid4().hex, seconds_spent=None)
+    engine.dispose()
