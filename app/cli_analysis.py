@@ -15,7 +15,6 @@ from analysis.questions import answer_question
 from . import campaigns
 from .db import open_project, session_factory
 from .errors import AppError
-from .layout import ProjectLayout
 from .reliance import Reliance, confirm_verdicts, model_for_run, rule_reliance
 from .services.campaign_analysis import Results, campaign_results
 from .settings import get_settings
