@@ -7,16 +7,20 @@ import json
 import sys
 from pathlib import Path
 
-from analysis.exports import FORMATS, export_frame, rules_document
-from analysis.expectations import check_expectations, read_expectations, verdict_counts
+from sqlalchemy.orm import Session, sessionmaker
+
+from analysis.expectations import read_expectations, verdict_counts
+from analysis.exports import FORMATS
 from analysis.interventions import FILLS
 from analysis.questions import answer_question
 
 from . import campaigns
 from .db import open_project, session_factory
 from .errors import AppError
-from .reliance import Reliance, confirm_verdicts, model_for_run, rule_reliance
+from .reliance import model_for_run
 from .services.campaign_analysis import Results, campaign_results
+from .services.exports import concepts_export, rules_export
+from .services.reliance import expectation_verdicts, run_interventions, running_lookup
 from .settings import get_settings
 
 
@@ -60,7 +64,7 @@ def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
     c.add_argument("--sidecar", type=Path)
 
 
-def _results(args: argparse.Namespace) -> tuple[Results, object]:
+def _results(args: argparse.Namespace) -> tuple[Results, sessionmaker[Session]]:
     engine = open_project(args.project)
     factory = session_factory(engine)
     with factory() as s:
@@ -94,18 +98,14 @@ def check(args: argparse.Namespace) -> int:
         text = args.expectations.read_text(encoding="utf-8")
     except OSError as exc:
         raise AppError(f"cannot read {args.expectations}: {exc}") from None
-    expectations = read_expectations(text, source=str(args.expectations))
+    read_expectations(text, source=str(args.expectations))  # a file that does not read fails before the project is opened
     res, factory = _results(args)
-    verdicts = check_expectations(expectations, res.table)
+    verdicts = expectation_verdicts(res, text, source=str(args.expectations))
     if any(v.expectation.kind == "must_not_rely_on" and v.verdict == "violated" for v in verdicts):
         # A violation of "must not rely on" stands only when an intervention confirms the reliance.
-        with factory() as s:  # type: ignore[operator]
+        with factory() as s:
             model = model_for_run(s, res.campaign.run_id, args.model, args.sidecar)
-
-            def lookup(cls: str, concepts: list[str]) -> Reliance | None:
-                return rule_reliance(s, Path(args.project), res, model, cls, concepts, progress=True)
-
-            verdicts = confirm_verdicts(verdicts, lookup)
+            verdicts = expectation_verdicts(res, text, source=str(args.expectations), lookup=running_lookup(s, Path(args.project), res, model, progress=True))
     if args.json:
         print(json.dumps([{**v.__dict__, "expectation": v.expectation.__dict__} for v in verdicts], indent=1))
     else:
@@ -119,13 +119,11 @@ def check(args: argparse.Namespace) -> int:
 
 def export(args: argparse.Namespace) -> int:
     res, _ = _results(args)
-    about = {"campaign": res.campaign.name, "aggregation": res.method}
     if args.what == "rules":
-        rules = res.table.rules(target=args.target, min_support=get_settings().min_support, max_len=args.max_len)
-        body = json.dumps(rules_document(rules, target=args.target, **about), indent=1).encode() if args.format == "json" else export_frame(rules.rules, args.format, about=about)
+        found = rules_export(res, args.format, target=args.target, max_len=args.max_len, min_support=get_settings().min_support, prune=True)
     else:
-        body = export_frame(res.table.frame().reset_index(), args.format, about=about)
-    args.out.write_bytes(body)
+        found = concepts_export(res, args.format)
+    args.out.write_bytes(found.body)
     print(f"wrote {args.out}")
     return 0
 
@@ -138,7 +136,7 @@ def report(args: argparse.Namespace) -> int:
 
     res, factory = _results(args)
     settings = get_settings(project_dir=args.project)
-    with factory() as s:  # type: ignore[operator]
+    with factory() as s:
         html = build_report(Jinja2Templates(directory=str(UI_DIR / "templates")), s, settings, res)
     args.out.write_text(html, encoding="utf-8")
     print(f"wrote {args.out}")
@@ -154,13 +152,10 @@ def interventions(args: argparse.Namespace) -> int:
     else:
         rules = res.table.rules(min_support=get_settings().min_support, max_len=2).rules
         todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, g in rules.groupby("class") for _, r in g.head(args.top).iterrows()]
-    found = []
-    with factory() as s:  # type: ignore[operator]
+    with factory() as s:
         model = model_for_run(s, res.campaign.run_id, args.model, args.sidecar)
-        for cls, concepts in todo:
-            r = rule_reliance(s, Path(args.project), res, model, cls, concepts, fill=args.fill, draws=args.draws, max_images=args.max_images,
-                              seed=args.seed, progress=not args.json)
-            found.append((cls, " & ".join(sorted(concepts)), r))
+        found = run_interventions(s, Path(args.project), res, model, todo, fill=args.fill, draws=args.draws, max_images=args.max_images,
+                                  seed=args.seed, progress=not args.json)
     if args.json:
         print(json.dumps([{"class": c, "concepts": k, "confirmed": r.confirmed if r else None, "ablation": r.ablation.to_json() if r else None,
                            "insertion": r.insertion.to_json() if r and r.insertion else None} for c, k, r in found], indent=1))

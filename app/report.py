@@ -12,15 +12,14 @@ from sqlalchemy.orm import Session
 
 from analysis.confident_errors import confident_errors
 from analysis.errors import InvalidInputError
-from analysis.expectations import check_expectations, read_expectations
 from analysis.images import thumbnail_png
 from analysis.plots import frequency_plot, lift_plot
 
 from .layout import ProjectLayout
 from .models import ImageRow, RegionRow, SaliencyRun
-from .reliance import cached_reliance, confirm_verdicts, with_reliance
 from .routes.common import CAUTION
 from .services.campaign_analysis import Results
+from .services.reliance import expectation_verdicts, rules_with_reliance, stored_lookup
 from .settings import Settings
 
 
@@ -38,7 +37,7 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
     """Render the report for a campaign's results; every image is embedded, nothing is fetched."""
     table = res.table
     rules = table.rules(min_support=settings.min_support, max_len=2)
-    frame = with_reliance(Path(settings.project_dir), res, rules.rules.groupby("class").head(10))
+    frame = rules_with_reliance(Path(settings.project_dir), res, rules.rules.groupby("class").head(10))
     by_class = []
     for cls, group in frame.groupby("class"):
         top = group.to_dict("records")
@@ -49,8 +48,7 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
     verdicts, expectation_error = [], ""
     if res.campaign.expectations.strip():
         try:
-            project = Path(settings.project_dir)
-            verdicts = confirm_verdicts(check_expectations(read_expectations(res.campaign.expectations), table), lambda c, k: cached_reliance(project, res, c, k))
+            verdicts = expectation_verdicts(res, res.campaign.expectations, lookup=stored_lookup(Path(settings.project_dir), res))
         except InvalidInputError as exc:
             expectation_error = str(exc)
     errors = confident_errors(table, threshold=threshold)

@@ -10,12 +10,20 @@ from sqlalchemy import select
 
 from analysis.concepts import format_label_text
 from analysis.reliability import METHODS
-from analysis.rules import to_csv
 
 from .. import campaigns, people
-from ..deps import MAX_ID, AdminDep, SessionDep, SettingsDep, WriteSessionDep, guarded_router, require_admin
+from ..deps import (
+    MAX_ID,
+    AdminDep,
+    SessionDep,
+    SettingsDep,
+    WriteSessionDep,
+    guarded_router,
+    require_admin,
+)
 from ..errors import AppError, InvalidRequestError
 from ..models import ROLES, CampaignRegion, Prediction, RegionRow, SaliencyRun, utcnow
+from ..services.exports import raw_labels_export
 from .common import render
 from .labelling import parse_entities
 
@@ -132,8 +140,7 @@ def set_check(
 
 
 @router.get("/campaigns/{campaign_id}/labels.csv", response_class=PlainTextResponse)
-def raw_labels(campaign_id: int, s: SessionDep, viewer: AdminDep) -> PlainTextResponse:
+def raw_labels(campaign_id: int, s: SessionDep) -> Response:
     """Every raw label of the campaign, one row per named entity."""
-    c = campaigns.get_campaign(s, campaign_id)
-    frame = campaigns.raw_labels(s, c.id)
-    return PlainTextResponse(to_csv(frame), media_type="text/csv", headers={"Content-Disposition": f"attachment; filename=labels-campaign-{c.id}.csv"})
+    found = raw_labels_export(s, campaign_id)
+    return Response(found.body, media_type=found.media_type, headers={"Content-Disposition": f"attachment; filename={found.filename}"})

@@ -3,38 +3,47 @@ agreement, the synonym editor, exports and the report."""
 
 from __future__ import annotations
 
-from dataclasses import replace
 from pathlib import Path
 from typing import Annotated
 from urllib.parse import urlencode
 
-import pandas as pd
 from fastapi import Form, Query, Request
 from fastapi.responses import PlainTextResponse, RedirectResponse, Response
 
 from analysis.compare import compare_classes
-from analysis.concept_table import TARGETS, Target
+from analysis.concept_table import TARGETS
 from analysis.confident_errors import confident_errors
 from analysis.errors import InvalidInputError
-from analysis.expectations import check_expectations, read_expectations
-from analysis.exports import FORMATS, export_frame, rules_document
+from analysis.expectations import Verdict
 from analysis.plots import frequency_plot, lift_plot
 from analysis.questions import QuestionError, answer_question, rule_question
-from analysis.rules import RuleTable, to_csv
 from analysis.synonyms import suggest_merges
 
 from .. import campaigns
-from ..reliance import cached_reliance, confirm_verdicts, with_reliance
-from ..deps import AnalystDep, ReviewerDep, SessionDep, SettingsDep, WriteSessionDep, guarded_router, require_reviewer
+from ..deps import (
+    AnalystDep,
+    ReviewerDep,
+    SessionDep,
+    SettingsDep,
+    WriteSessionDep,
+    guarded_router,
+    require_reviewer,
+)
 from ..errors import InvalidRequestError, NotFoundError
 from ..report import build_report
-from ..settings import Settings
-from ..services.campaign_analysis import Results, agreement_summary, campaign_results, main_labels
+from ..services.campaign_analysis import (
+    Results,
+    agreement_summary,
+    campaign_results,
+    campaign_rules,
+    target_of,
+)
+from ..services.exports import Export, concepts_export, main_labels_export, rules_export
+from ..services.reliance import expectation_verdicts, rules_with_reliance, stored_lookup
 from .common import render
 
 router = guarded_router(require_reviewer, prefix="/campaigns/{campaign_id}")
 routers = (router,)
-MEDIA = {"csv": "text/csv", "json": "application/json", "parquet": "application/vnd.apache.parquet"}
 
 
 def results_for(request: Request, s: SessionDep, campaign_id: int) -> Results:
@@ -42,17 +51,8 @@ def results_for(request: Request, s: SessionDep, campaign_id: int) -> Results:
     return campaign_results(s, campaign_id, cache=request.app.state.results_cache)
 
 
-def _target(target: str) -> Target:
-    for t in TARGETS:
-        if t == target:
-            return t
-    raise InvalidRequestError(f"target must be one of {', '.join(TARGETS)}; got {target!r}.")
-
-
-def _rules(res: Results, settings: Settings, target: str, max_len: int, min_support: float | None, prune: bool) -> RuleTable:
-    if not 1 <= max_len <= 4:
-        raise InvalidRequestError(f"max_len must be 1-4 concepts; got {max_len}.")
-    return res.table.rules(target=_target(target), min_support=min_support or settings.min_support, max_len=max_len, prune=prune)
+def _file(found: Export) -> Response:
+    return Response(found.body, media_type=found.media_type, headers={"Content-Disposition": f"attachment; filename={found.filename}"})
 
 
 @router.get("/results")
@@ -60,9 +60,9 @@ def results(request: Request, campaign_id: int, s: SessionDep, settings: Setting
             max_len: int = 2, min_support: float | None = None, prune: bool = True) -> Response:
     """Per-class concept rules with significance, for the predicted class, the true class or the errors."""
     res = results_for(request, s, campaign_id)
-    rules = _rules(res, settings, target, max_len, min_support, prune)
+    rules = campaign_rules(res, target=target, max_len=max_len, min_support=min_support or settings.min_support, prune=prune)
     shown = rules.rules.groupby("class").head(15)  # look up stored interventions only for the rules on the page
-    frame = with_reliance(Path(settings.project_dir), res, shown).assign(question=shown["concepts"].map(rule_question))
+    frame = rules_with_reliance(Path(settings.project_dir), res, shown).assign(question=shown["concepts"].map(rule_question))
     by_class = {k: g.to_dict("records") for k, g in frame.groupby("class")} if not frame.empty else {}
     context = {"campaign": res.campaign, "by_class": by_class, "table": res.table, "rules": rules, "n_regions": res.n_labelled_regions,
                "target": target, "targets": TARGETS, "max_len": max_len, "prune": prune, "query": urlencode({"target": target, "max_len": max_len})}
@@ -75,7 +75,7 @@ def plot(request: Request, campaign_id: int, kind: str, s: SessionDep, viewer: R
     if kind not in ("frequency", "lift"):
         raise NotFoundError(f"no plot called {kind!r}; there are frequency and lift.")
     table = results_for(request, s, campaign_id).table
-    png = (frequency_plot if kind == "frequency" else lift_plot)(table, _target(target))
+    png = (frequency_plot if kind == "frequency" else lift_plot)(table, target_of(target))
     return Response(png, media_type="image/png")
 
 
@@ -84,40 +84,20 @@ def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, se
                  max_len: int = 2, min_support: float | None = None, prune: bool = True) -> Response:
     """The rule table as CSV, JSON or Parquet."""
     res = results_for(request, s, campaign_id)
-    rules = _rules(res, settings, target, max_len, min_support, prune)
-    rules = replace(rules, rules=with_reliance(Path(settings.project_dir), res, rules.rules))
-    about = {"campaign": res.campaign.name, "target": target, "aggregation": res.method}
-    if fmt == "json":
-        import json
-
-        body = json.dumps(rules_document(rules, **about), indent=1).encode()
-    else:
-        body = _export(rules.rules, fmt, about)
-    return Response(body, media_type=MEDIA.get(fmt, "application/octet-stream"),
-                    headers={"Content-Disposition": f"attachment; filename=rules-campaign-{campaign_id}-{target}.{fmt}"})
-
-
-def _export(frame: pd.DataFrame, fmt: str, about: dict[str, object]) -> bytes:
-    if fmt not in FORMATS:
-        raise NotFoundError(f"no export as {fmt!r}; choose {', '.join(FORMATS)}.")
-    return export_frame(frame, fmt, about=about)
+    return _file(rules_export(res, fmt, target=target, max_len=max_len, min_support=min_support or settings.min_support, prune=prune,
+                              project=Path(settings.project_dir)))
 
 
 @router.get("/exports/concepts.{fmt}")
 def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep, viewer: ReviewerDep) -> Response:
     """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet."""
-    res = results_for(request, s, campaign_id)
-    frame = res.table.frame().reset_index()
-    body = _export(frame, fmt, {"campaign": res.campaign.name, "aggregation": res.method})
-    return Response(body, media_type=MEDIA.get(fmt, "application/octet-stream"),
-                    headers={"Content-Disposition": f"attachment; filename=concepts-campaign-{campaign_id}.{fmt}"})
+    return _file(concepts_export(results_for(request, s, campaign_id), fmt))
 
 
 @router.get("/exports/main-labels.csv", response_class=PlainTextResponse)
-def export_main_labels(campaign_id: int, s: SessionDep, viewer: ReviewerDep) -> PlainTextResponse:
+def export_main_labels(campaign_id: int, s: SessionDep) -> Response:
     """Each judgment's main entity as item,annotator,label: the input of `heedmap agreement` and `heedmap aggregate`."""
-    frame = main_labels(s, campaign_id)
-    return PlainTextResponse(to_csv(frame), media_type="text/csv", headers={"Content-Disposition": f"attachment; filename=main-labels-campaign-{campaign_id}.csv"})
+    return _file(main_labels_export(s, campaign_id))
 
 
 @router.get("/ask")
@@ -143,11 +123,10 @@ def expectations(request: Request, campaign_id: int, s: SessionDep, viewer: Revi
 
 
 def _expectations_page(request: Request, res: Results, viewer: ReviewerDep, text: str, error: str = "", status_code: int = 200) -> Response:
-    verdicts = []
+    verdicts: list[Verdict] = []
     if text.strip() and not error:
         try:
-            project = Path(request.app.state.settings.project_dir)
-            verdicts = confirm_verdicts(check_expectations(read_expectations(text), res.table), lambda c, k: cached_reliance(project, res, c, k))
+            verdicts = expectation_verdicts(res, text, lookup=stored_lookup(Path(request.app.state.settings.project_dir), res))
         except InvalidInputError as exc:
             error = str(exc)
     context = {"campaign": res.campaign, "text": text, "verdicts": verdicts, "error": error, "table": res.table,
@@ -161,7 +140,7 @@ def save_expectations(request: Request, campaign_id: int, s: WriteSessionDep, vi
     res = results_for(request, s, campaign_id)
     if text.strip():
         try:
-            check_expectations(read_expectations(text), res.table)
+            expectation_verdicts(res, text)
         except InvalidInputError as exc:
             return _expectations_page(request, res, viewer, text, error=str(exc), status_code=422)
     campaigns.update_campaign(s, campaign_id, expectations=text)
@@ -181,17 +160,17 @@ def compare(request: Request, campaign_id: int, s: SessionDep, settings: Setting
             target: str = "predicted") -> Response:
     """Two classes side by side: what sets each apart, what they share, their top rules."""
     res = results_for(request, s, campaign_id)
-    classes = sorted(res.table.targets(_target(target)).unique())
+    classes = sorted(res.table.targets(target_of(target)).unique())
     a = a or (classes[0] if classes else "")
     b = b or (classes[1] if len(classes) > 1 else "")
     comparison, top, crops = None, {}, {}
     if a and b:
-        comparison = compare_classes(res.table, a, b, target=_target(target))
-        frame = _rules(res, settings, target, 2, None, True).rules
+        comparison = compare_classes(res.table, a, b, target=target_of(target))
+        frame = campaign_rules(res, target=target, min_support=settings.min_support).rules
         frame = frame[frame["class"].isin([a, b])].groupby("class").head(8)
-        frame = with_reliance(Path(settings.project_dir), res, frame)
+        frame = rules_with_reliance(Path(settings.project_dir), res, frame)
         top = {k: frame[frame["class"] == k].to_dict("records") for k in (a, b)}
-        classes_of = res.table.targets(_target(target))
+        classes_of = res.table.targets(target_of(target))
         crops = {
             k: [(c.concept, res.table.example_regions([c.concept], classes_of == k, limit=4)) for c in distinct[:3]]
             for k, distinct in ((a, comparison.distinct_a), (b, comparison.distinct_b))

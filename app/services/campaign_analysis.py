@@ -7,23 +7,29 @@ itself is analysis.pipeline's.
 from __future__ import annotations
 
 import threading
-from dataclasses import dataclass, field, replace
 from collections.abc import Callable
+from dataclasses import dataclass, field, replace
 from typing import TypeVar, cast
 
 import numpy as np
 import pandas as pd
 from sqlalchemy.orm import Session
 
-from analysis.concept_table import ConceptTable
 from analysis.agreement_report import AgreementReport, agreement_report
-from analysis.concept_votes import ConceptAgreement, PresenceVotes, estimate_concepts, presence_agreement
+from analysis.concept_table import TARGETS, ConceptTable, Target
+from analysis.concept_votes import (
+    ConceptAgreement,
+    PresenceVotes,
+    estimate_concepts,
+    presence_agreement,
+)
 from analysis.pipeline import campaign_table, campaign_votes
 from analysis.reliability import Method
+from analysis.rules import RuleTable
 
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
-from ..errors import NotFoundError
+from ..errors import InvalidRequestError, NotFoundError
 from ..models import SaliencyRun
 
 T = TypeVar("T")
@@ -96,6 +102,21 @@ def campaign_results(s: Session, campaign: CampaignInfo | int, *, cache: Results
         return compute_results(s, c)
     found = cache.get_or_make(("results", *store.labels_version(s, c.id)), lambda: compute_results(s, c))
     return replace(found, campaign=c)  # the table is cached; the campaign's text fields are read fresh
+
+
+def target_of(target: str) -> Target:
+    """``target`` as one of TARGETS, or an error that lists them."""
+    for t in TARGETS:
+        if t == target:
+            return t
+    raise InvalidRequestError(f"target must be one of {', '.join(TARGETS)}; got {target!r}.")
+
+
+def campaign_rules(res: Results, *, target: str = "predicted", max_len: int = 2, min_support: float, prune: bool = True) -> RuleTable:
+    """The campaign's concept rules for a target class (predicted, true or errors)."""
+    if not 1 <= max_len <= 4:
+        raise InvalidRequestError(f"max_len must be 1-4 concepts; got {max_len}.")
+    return res.table.rules(target=target_of(target), min_support=min_support, max_len=max_len, prune=prune)
 
 
 def votes(s: Session, campaign: CampaignInfo) -> PresenceVotes:

@@ -13,7 +13,7 @@ from sqlalchemy import select
 from app import campaigns
 from app.db import make_engine, session_factory, write_session
 from app.errors import ConflictError
-from app.models import Label, utcnow
+from app.models import CampaignRegion, Label, utcnow
 from app.people import ensure_person
 
 
@@ -84,7 +84,7 @@ def test_concurrent_annotators_never_exceed_k_or_repeat(factory) -> None:  # typ
     assert not errors
     with factory() as s:
         rows = s.execute(select(Label.region_id, Label.person_id).where(Label.campaign_id == c.id)).all()
-        kept = dict(s.execute(select(campaigns.CampaignRegion.region_id, campaigns.CampaignRegion.n_labels).where(campaigns.CampaignRegion.campaign_id == c.id)).all())
+        kept = dict(s.execute(select(CampaignRegion.region_id, CampaignRegion.n_labels).where(CampaignRegion.campaign_id == c.id)).all())
     per_region = Counter(r for r, _ in rows)
     assert max(per_region.values()) == 3 and len(per_region) == c.n_regions  # all done, never more than k
     assert len(rows) == len(set(rows))  # no person twice on a region

@@ -1,0 +1,62 @@
+"""Campaigns and the work in them, one module per concern; the public functions are re-exported here."""
+
+from __future__ import annotations
+
+from .assignment import Task, lease_tasks
+from .checks import check_answers, examples, set_check_answer, set_example
+from .judgments import judgments, label_counts, raw_labels, region_classes
+from .labelling import save_label, skip_region, undo_last
+from .progress import (
+    AnnotatorProgress,
+    ClassProgress,
+    campaign_progress,
+    person_progress,
+)
+from .records import (
+    CampaignInfo,
+    Entities,
+    create_campaign,
+    get_campaign,
+    list_campaigns,
+    run_classes,
+    update_campaign,
+)
+from .synonym_rules import (
+    RuleRow,
+    add_synonym_rule,
+    delete_synonym_rule,
+    synonym_rule_rows,
+    synonym_rules,
+)
+
+__all__ = [
+    "AnnotatorProgress",
+    "CampaignInfo",
+    "ClassProgress",
+    "Entities",
+    "RuleRow",
+    "Task",
+    "add_synonym_rule",
+    "campaign_progress",
+    "check_answers",
+    "create_campaign",
+    "delete_synonym_rule",
+    "examples",
+    "get_campaign",
+    "judgments",
+    "label_counts",
+    "lease_tasks",
+    "list_campaigns",
+    "person_progress",
+    "raw_labels",
+    "region_classes",
+    "run_classes",
+    "save_label",
+    "set_check_answer",
+    "set_example",
+    "skip_region",
+    "synonym_rule_rows",
+    "synonym_rules",
+    "undo_last",
+    "update_campaign",
+]

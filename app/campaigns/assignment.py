@@ -1,0 +1,112 @@
+"""Which region goes to whom: k-way assignment with leases, check items mixed in unannounced.
+
+Every function that writes runs inside a write session (BEGIN IMMEDIATE), so the checks
+"fewer than k labels" and "nobody else holds the last slot" and the insert that follows are one
+step for SQLite's single writer: concurrent requests cannot both take the last place.
+"""
+
+from __future__ import annotations
+
+import random
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+
+from sqlalchemy import delete, func, select, union, update
+from sqlalchemy.orm import Session
+
+from ..models import CampaignRegion, Label, Lease, Prediction, RegionRow, Skip, utcnow
+from .records import CampaignInfo
+
+
+@dataclass(frozen=True)
+class Task:
+    """A region leased to one person."""
+
+    region_id: int
+    image_id: int
+    predicted: str
+    confidence: float
+    lease_expires: datetime
+
+
+def _seen(campaign_id: int, person_id: int, now: datetime):  # type: ignore[no-untyped-def]
+    """Regions this person labelled, skipped or holds a live lease on."""
+    return union(
+        select(Label.region_id).where(Label.campaign_id == campaign_id, Label.person_id == person_id),
+        select(Skip.region_id).where(Skip.campaign_id == campaign_id, Skip.person_id == person_id),
+        select(Lease.region_id).where(Lease.campaign_id == campaign_id, Lease.person_id == person_id, Lease.expires_at > now),
+    )
+
+
+def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n: int) -> list[int]:
+    """The least-labelled regions this person has not seen, whose places are not all held by others' leases.
+
+    Walks the (campaign, n_labels, region) index in order and stops at ``n``: no sort of the campaign.
+    """
+    conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
+    held_by_others = (
+        select(func.count()).where(Lease.campaign_id == c.id, Lease.region_id == CampaignRegion.region_id, Lease.expires_at > now, Lease.person_id != person_id)
+        .scalar_subquery()
+    )
+    q = (
+        select(CampaignRegion.region_id)
+        .where(CampaignRegion.campaign_id == c.id, CampaignRegion.n_labels < c.labels_per_region, CampaignRegion.check_answer.is_(None),
+               CampaignRegion.example_answer.is_(None),
+               CampaignRegion.region_id.not_in(_seen(c.id, person_id, now)), CampaignRegion.n_labels + held_by_others < c.labels_per_region)
+        .order_by(CampaignRegion.n_labels, CampaignRegion.region_id)
+        .limit(n)
+    )
+    return list(conn.scalars(q))
+
+
+def _pick_check(s: Session, c: CampaignInfo, person_id: int, now: datetime, done: int) -> int | None:
+    """One unseen check item, unannounced, in about one task of every ``check_every``."""
+    conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
+    if c.n_checks == 0 or (done + 1) % c.check_every:
+        return None
+    q = select(CampaignRegion.region_id).where(
+        CampaignRegion.campaign_id == c.id, CampaignRegion.check_answer.is_not(None), CampaignRegion.region_id.not_in(_seen(c.id, person_id, now))
+    )
+    options = sorted(conn.scalars(q))
+    return random.Random(person_id * 1_000_003 + done).choice(options) if options else None
+
+
+def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: datetime | None = None, want: int = 2) -> list[Task]:
+    """The person's current task first, then the one after (for preloading); leases what is needed.
+
+    Leases already held come back first (a reload shows the same crop) and are renewed; new ones
+    go to the least-covered regions this person has not seen. An empty list means no work is left.
+    """
+    conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
+    now = now or utcnow()
+    if campaign.closed_at is not None:
+        return []
+    expires = now + timedelta(seconds=campaign.lease_seconds)
+    mine = (Lease.campaign_id == campaign.id, Lease.person_id == person_id)
+    conn.execute(delete(Lease).where(*mine, Lease.expires_at <= now))
+    held = list(conn.scalars(select(Lease.region_id).where(*mine).order_by(Lease.id)))
+    if held:
+        conn.execute(update(Lease).where(*mine).values(expires_at=expires))
+    picks: list[int] = []
+    need = want - len(held)
+    if need > 0:
+        done = conn.scalar(select(func.count()).select_from(Label).where(Label.campaign_id == campaign.id, Label.person_id == person_id)) or 0
+        check = _pick_check(s, campaign, person_id, now, done + len(held))
+        if check is not None:
+            picks.append(check)
+        picks += _pick_regular(s, campaign, person_id, now, need - len(picks))
+        if picks:
+            conn.execute(Lease.__table__.insert(), [
+                {"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires} for r in picks
+            ])
+    order = held + picks
+    if not order:
+        return []
+    rows = {
+        r[0]: r
+        for r in conn.execute(
+            select(RegionRow.id, Prediction.image_id, Prediction.predicted, Prediction.confidence)
+            .join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(order))
+        )
+    }
+    return [Task(r, rows[r][1], rows[r][2], float(rows[r][3]), expires) for r in order]

@@ -1,0 +1,74 @@
+"""Reading the labels back as plain data: judgments, label counts, the raw table, each region's class."""
+
+from __future__ import annotations
+
+from collections import Counter
+
+import pandas as pd
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from analysis.concepts import Judgment, normalise_label
+from analysis.synonyms import SynonymRules
+
+from ..models import CampaignRegion, ImageRow, Label, Person, Prediction, RegionRow
+
+
+def region_classes(s: Session, campaign_id: int) -> dict[int, str]:
+    """Predicted class of every region in the campaign."""
+    return dict(
+        s.execute(
+            select(CampaignRegion.region_id, Prediction.predicted)
+            .join(RegionRow, RegionRow.id == CampaignRegion.region_id).join(Prediction, Prediction.id == RegionRow.prediction_id)
+            .where(CampaignRegion.campaign_id == campaign_id)
+        ).all()
+    )
+
+
+def entities_of(raw: list[list[object]] | None) -> tuple[tuple[str, tuple[str, ...]], ...]:
+    return tuple((str(e[0]), tuple(str(a) for a in e[1])) for e in (raw or []))  # type: ignore[union-attr]
+
+
+def judgments(s: Session, campaign_id: int) -> list[Judgment]:
+    rows = s.execute(
+        select(Label.region_id, Person.name, Label.entities, Label.unsure).join(Person, Person.id == Label.person_id)
+        .where(Label.campaign_id == campaign_id).order_by(Label.id)
+    )
+    return [Judgment(r, name, entities_of(ents), bool(unsure)) for r, name, ents, unsure in rows]
+
+
+def label_counts(s: Session, campaign_id: int, rules: SynonymRules | None = None) -> tuple[Counter[str], Counter[str]]:
+    """How often each normalised entity and attribute was used in the campaign (through the rules)."""
+    rules = rules or SynonymRules()
+    entities: Counter[str] = Counter()
+    attributes: Counter[str] = Counter()
+    for (raw,) in s.execute(select(Label.entities).where(Label.campaign_id == campaign_id)):
+        for e in raw or []:
+            name = rules.entity(normalise_label(str(e[0])))  # type: ignore[index]
+            if name:
+                entities[name] += 1
+            for a in e[1]:  # type: ignore[index, union-attr]
+                attr = rules.attribute(normalise_label(str(a)))
+                if attr:
+                    attributes[attr] += 1
+    return entities, attributes
+
+
+def raw_labels(s: Session, campaign_id: int) -> pd.DataFrame:
+    """Every label as long rows: one per entity named (a row with an empty entity for nothing recognisable)."""
+    rows = s.execute(
+        select(Label.id, Label.region_id, Prediction.image_id, ImageRow.path, Prediction.predicted, Person.name, Label.entities,
+               Label.unsure, Label.submitted_at, Label.seconds_spent, CampaignRegion.check_answer)
+        .join(Person, Person.id == Label.person_id).join(RegionRow, RegionRow.id == Label.region_id)
+        .join(Prediction, Prediction.id == RegionRow.prediction_id).join(ImageRow, ImageRow.id == Prediction.image_id)
+        .join(CampaignRegion, (CampaignRegion.region_id == Label.region_id) & (CampaignRegion.campaign_id == Label.campaign_id))
+        .where(Label.campaign_id == campaign_id).order_by(Label.id)
+    ).all()
+    out = []
+    for label_id, region, image, path, predicted, name, ents, unsure, at, secs, answer in rows:
+        base = {"label_id": label_id, "region": region, "image": image, "image_path": path, "predicted": predicted, "annotator": name}
+        tail = {"unsure": int(bool(unsure)), "check_item": int(answer is not None), "submitted_at": at.isoformat(sep=" ", timespec="seconds"), "seconds_spent": secs}
+        for e, attrs in entities_of(ents) or (("", ()),):
+            out.append({**base, "entity": e, "attributes": ", ".join(attrs), **tail})
+    columns = ["label_id", "region", "image", "image_path", "predicted", "annotator", "entity", "attributes", "unsure", "check_item", "submitted_at", "seconds_spent"]
+    return pd.DataFrame(out, columns=columns)

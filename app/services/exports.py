@@ -1,0 +1,64 @@
+"""The exports use case: a campaign's rules, concept table and labels as files to download or write."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+from sqlalchemy.orm import Session
+
+from analysis.exports import FORMATS, export_frame, rules_document
+from analysis.rules import to_csv
+
+from .. import campaigns
+from ..errors import NotFoundError
+from .campaign_analysis import Results, campaign_rules, main_labels
+from .reliance import rules_with_reliance
+
+MEDIA = {"csv": "text/csv", "json": "application/json", "parquet": "application/vnd.apache.parquet"}
+
+
+@dataclass(frozen=True)
+class Export:
+    """A file's bytes, its name and its media type."""
+
+    body: bytes
+    filename: str
+    media_type: str
+
+
+def _format(fmt: str) -> str:
+    if fmt not in FORMATS:
+        raise NotFoundError(f"no export as {fmt!r}; choose {', '.join(FORMATS)}.")
+    return fmt
+
+
+def rules_export(res: Results, fmt: str, *, target: str = "predicted", max_len: int = 2, min_support: float, prune: bool = True,
+                 project: Path | None = None) -> Export:
+    """The rule table (with stored intervention figures when ``project`` is given) as CSV, JSON or Parquet."""
+    fmt = _format(fmt)
+    rules = campaign_rules(res, target=target, max_len=max_len, min_support=min_support, prune=prune)
+    if project is not None:
+        rules = replace(rules, rules=rules_with_reliance(project, res, rules.rules))
+    about = {"campaign": res.campaign.name, "target": target, "aggregation": res.method}
+    body = json.dumps(rules_document(rules, **about), indent=1).encode() if fmt == "json" else export_frame(rules.rules, fmt, about=about)
+    return Export(body, f"rules-campaign-{res.campaign.id}-{target}.{fmt}", MEDIA[fmt])
+
+
+def concepts_export(res: Results, fmt: str) -> Export:
+    """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet."""
+    fmt = _format(fmt)
+    body = export_frame(res.table.frame().reset_index(), fmt, about={"campaign": res.campaign.name, "aggregation": res.method})
+    return Export(body, f"concepts-campaign-{res.campaign.id}.{fmt}", MEDIA[fmt])
+
+
+def main_labels_export(s: Session, campaign_id: int) -> Export:
+    """Each usable judgment's main entity as item,annotator,label (CSV)."""
+    return Export(to_csv(main_labels(s, campaign_id)).encode("utf-8"), f"main-labels-campaign-{campaign_id}.csv", MEDIA["csv"])
+
+
+def raw_labels_export(s: Session, campaign_id: int) -> Export:
+    """Every raw label of the campaign, one row per named entity (CSV)."""
+    c = campaigns.get_campaign(s, campaign_id)
+    return Export(to_csv(campaigns.raw_labels(s, c.id)).encode("utf-8"), f"labels-campaign-{c.id}.csv", MEDIA["csv"])
