@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import numpy.typing as npt
 import torch
-from PIL import Image, UnidentifiedImageError
+from PIL import Image, ImageOps, UnidentifiedImageError
 
 from .errors import ImageInputError, InvalidInputError
 
@@ -70,8 +70,25 @@ def _read_manifest(path: Path) -> list[ImageRecord]:
     return records
 
 
+_SIXTEEN_BIT = ("I;16", "I;16B", "I;16L", "I;16N", "I")
+_WITH_ALPHA = ("RGBA", "LA", "PA", "RGBa", "La")
+BACKGROUND = (255, 255, 255)  # transparent pixels are laid over white
+
+
+def _unreadable_mode(im: Image.Image, path: Path) -> str | None:
+    """Why the image's pixel format would be misread, or None. Decodes only 32-bit formats."""
+    if im.mode == "F":
+        return f"{path} holds 32-bit floating-point pixels, which have no agreed 0-255 meaning; save it as an 8- or 16-bit image."
+    if im.mode == "I":
+        arr = np.asarray(im)
+        if arr.size and (int(arr.min()) < 0 or int(arr.max()) > 65535):
+            return f"{path} holds 32-bit integer pixels outside 0..65535; save it as an 8- or 16-bit image."
+    return None
+
+
 def check_image(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> tuple[int, int]:
-    """Return (width, height) after checking the file opens and is within the pixel limit."""
+    """Return (width, height), upright after its EXIF orientation, after checking the file opens,
+    is within the pixel limit and has a pixel format heedmap reads correctly."""
     try:
         with Image.open(path) as im:
             width, height = im.size
@@ -81,23 +98,83 @@ def check_image(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> tuple[in
                     "downscale it or raise --max-pixels."
                 )
             im.verify()
+        with Image.open(path) as im:  # verify() leaves the image unusable; open again for orientation and mode
+            orientation = im.getexif().get(0x0112, 1)
+            if im.mode in ("F", "I"):
+                im.load()
+                problem = _unreadable_mode(im, Path(path))
+                if problem:
+                    raise ImageInputError(problem)
     except FileNotFoundError:
         raise ImageInputError(f"{path} does not exist.") from None
-    except (UnidentifiedImageError, OSError, SyntaxError) as exc:
-        raise ImageInputError(f"{path} is not a readable image ({exc}).") from None
     except Image.DecompressionBombError:
         raise ImageInputError(f"{path} is too large to decode safely; downscale it.") from None
+    except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
+        raise ImageInputError(f"{path} is not a readable image ({exc}).") from None
+    if orientation in (5, 6, 7, 8):  # rotated by 90 or 270 degrees
+        width, height = height, width
     return width, height
 
 
+def as_rgb(im: Image.Image, path: Path) -> Image.Image:
+    """8-bit RGB as the pixels mean: EXIF rotation applied, 16-bit scaled (not clipped to white),
+    transparency laid over white. Raises ImageInputError for formats without a 0-255 meaning."""
+    problem = _unreadable_mode(im, path)
+    if problem:
+        raise ImageInputError(problem)
+    im = ImageOps.exif_transpose(im)
+    if im.mode in _SIXTEEN_BIT:
+        arr = np.asarray(im).astype(np.float32)
+        eight = np.clip(np.rint(arr / 257.0), 0, 255).astype(np.uint8)  # 65535 -> 255
+        return Image.fromarray(eight, "L").convert("RGB")
+    has_alpha = im.mode in _WITH_ALPHA or (im.mode in ("P", "L", "RGB") and "transparency" in im.info)
+    if has_alpha:
+        rgba = im.convert("RGBA")
+        background = Image.new("RGBA", rgba.size, (*BACKGROUND, 255))
+        return Image.alpha_composite(background, rgba).convert("RGB")
+    return im.convert("RGB")
+
+
 def read_rgb(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> Image.Image:
-    """Open an image as RGB, refusing missing, corrupt and oversized files with ImageInputError."""
+    """Open an image as 8-bit RGB (see :func:`as_rgb`), refusing missing, corrupt, oversized and
+    misreadable files with ImageInputError."""
     check_image(path, max_pixels=max_pixels)
     try:
         with Image.open(path) as im:
-            return im.convert("RGB")
-    except (OSError, SyntaxError) as exc:
+            return as_rgb(im, Path(path))
+    except (OSError, SyntaxError, ValueError) as exc:
         raise ImageInputError(f"{path} could not be decoded ({exc}).") from None
+
+
+def fit_to_aspect(
+    image: Image.Image, size: tuple[int, int], *, resize: str = "resize", fill: tuple[int, int, int] = (0, 0, 0)
+) -> Image.Image:
+    """The part of ``image`` the model sees, at the image's own resolution, with the aspect of ``size`` (h, w).
+
+    ``resize``: the whole image (stretched later); ``center_crop``: the largest centred box of the
+    model's aspect; ``letterbox``: the whole image centred on a ``fill`` background of that aspect.
+    """
+    h, w = size
+    iw, ih = image.size
+    if resize == "resize" or iw * h == ih * w:
+        return image
+    if resize == "center_crop":
+        if iw * h > ih * w:  # wider than the model's aspect
+            cw = max(1, round(ih * w / h))
+            x0 = (iw - cw) // 2
+            return image.crop((x0, 0, x0 + cw, ih))
+        chh = max(1, round(iw * h / w))
+        y0 = (ih - chh) // 2
+        return image.crop((0, y0, iw, y0 + chh))
+    if resize == "letterbox":
+        if iw * h > ih * w:
+            bw, bh = iw, max(1, round(iw * h / w))
+        else:
+            bw, bh = max(1, round(ih * w / h)), ih
+        canvas = Image.new("RGB", (bw, bh), fill)
+        canvas.paste(image.convert("RGB"), ((bw - iw) // 2, (bh - ih) // 2))
+        return canvas
+    raise InvalidInputError(f"resize must be 'resize', 'center_crop' or 'letterbox'; got {resize!r}.")
 
 
 def to_model_input(
@@ -106,15 +183,27 @@ def to_model_input(
     size: tuple[int, int],
     mean: tuple[float, float, float],
     std: tuple[float, float, float],
+    resize: str = "resize",
+    channel_order: str = "RGB",
 ) -> torch.Tensor:
-    """Resize (bilinear) and normalise RGB images into a batch tensor N x 3 x H x W."""
+    """Fit (resize policy), resize (bilinear) and normalise RGB images into a batch N x 3 x H x W.
+
+    ``mean``/``std`` are on the 0-1 scale, in the model's ``channel_order`` (``RGB`` or ``BGR``).
+    """
     h, w = size
+    bgr = channel_order == "BGR"
+    mean_rgb = tuple(reversed(mean)) if bgr else mean
+    fill = tuple(int(round(255 * min(1.0, max(0.0, m)))) for m in mean_rgb)
     arrays: list[npt.NDArray[np.float32]] = []
     for im in images:
+        im = fit_to_aspect(im, size, resize=resize, fill=fill)  # type: ignore[arg-type]
         if im.size != (w, h):
             im = im.resize((w, h), Image.BILINEAR)
-        arrays.append(np.asarray(im, dtype=np.float32) / 255.0)
-    batch = torch.from_numpy(np.stack(arrays)).permute(0, 3, 1, 2).contiguous()
+        arrays.append(np.asarray(im.convert("RGB"), dtype=np.float32) / 255.0)
+    batch = torch.from_numpy(np.stack(arrays)).permute(0, 3, 1, 2)
+    if bgr:
+        batch = batch.flip(1)
+    batch = batch.contiguous()
     m = torch.tensor(mean, dtype=torch.float32).view(1, 3, 1, 1)
     s = torch.tensor(std, dtype=torch.float32).view(1, 3, 1, 1)
     return (batch - m) / s

@@ -71,6 +71,7 @@ class LoadedModel:
     warnings: tuple[str, ...] = ()
     device: str = "cpu"
     max_batch: int | None = None  # an exported program fixed to one batch size
+    graph: ModelGraph | None = None  # taps other layers (layer previews)
 
     @property
     def classes(self) -> tuple[str, ...]:
@@ -225,6 +226,7 @@ def prepare_model(module: nn.Module, sidecar: Sidecar, *, kind: str = "module", 
         warnings=(message,) if message else (),
         device=device,
         max_batch=max_batch,
+        graph=graph,
     )
 
 

@@ -39,19 +39,16 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--seed", type=int, default=0)
     d.add_argument("--port", type=int, default=None)
     d.add_argument("--aggregation", choices=list(METHODS), default="majority", help="how the simulated labels become concepts")
-    s = sub.add_parser("saliency", help="predict, Grad-CAM and regions for an image set (resumable)")
-    s.add_argument("project", type=Path)
-    s.add_argument("--model", type=Path, required=True)
-    s.add_argument("--sidecar", type=Path, required=True)
-    s.add_argument("--images", type=Path, required=True, help="folder with a subfolder per class, or a CSV with path,label")
-    s.add_argument("--batch-size", type=int, default=32)
+    from .cli_models import add_model_parsers
+
+    add_model_parsers(sub)
     v = sub.add_parser("serve", help="serve the app over a project folder; prints an admin sign-in link")
     v.add_argument("project", type=Path)
     v.add_argument("--port", type=int, default=None)
     c = sub.add_parser("campaign", help="create a labelling campaign over a saliency run")
     c.add_argument("project", type=Path)
     c.add_argument("--name", required=True)
-    c.add_argument("--run", type=int, default=None, help="saliency run id (default: the latest)")
+    c.add_argument("--run", default=None, help="saliency run id or name, e.g. test (default: the latest run)")
     c.add_argument("--classes", default="", help="comma-separated predicted classes to include (default: all)")
     c.add_argument("--per-region", type=int, default=3, help="annotators per region")
     c.add_argument("--instructions", type=Path, help="a text file shown to annotators")
@@ -174,13 +171,15 @@ def _serve(project: Path, port: int | None) -> None:
 
 
 def _campaign(args: argparse.Namespace) -> int:
-    from . import store
     from .campaigns import create_campaign
     from .db import write_session
+    from .jobs import find_run
 
     factory = _factory(args.project)
     with write_session(factory) as s:
-        run_id = args.run or store.latest_run_id(s)
+        run_id = find_run(s, args.run)
+        if run_id is None and args.run is not None:
+            raise AppError(f"{args.project} has no saliency run {args.run!r}; 'heedmap runs {args.project}' lists them.")
         if run_id is None:
             raise AppError(f"{args.project} has no saliency run yet; run 'heedmap saliency' first.")
         instructions = ""
@@ -375,19 +374,10 @@ def _dispatch(args: argparse.Namespace) -> int:
         print(f"wrote {args.out / 'demo.json'}" + (f" and {args.out / 'rules.csv'}" if args.simulate_annotators else ""))
         if not args.no_serve:
             _serve(args.out / "project", args.port)
-    elif args.command == "saliency":
-        from analysis.images import find_images
-        from analysis.model_io import load_model
+    elif args.command in ("saliency", "runs", "layers", "sidecar"):
+        from . import cli_models
 
-        from .jobs import register_images, run_saliency
-
-        model = load_model(args.model, args.sidecar)
-        factory = _factory(args.project, create=True)
-        problems = register_images(factory, find_images(args.images))
-        rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=(args.model, args.sidecar))
-        for path, why in problems + rep.skipped:
-            print(f"skipped: {why}", file=sys.stderr)
-        print(f"run {rep.run_id}: {rep.processed} images processed, {rep.already_done} already done, {rep.regions} regions, {rep.empty_maps} empty maps, {len(problems) + len(rep.skipped)} skipped")
+        return int(getattr(cli_models, args.command)(args))
     elif args.command == "serve":
         _serve(args.project, args.port)
     elif args.command in ("ask", "check", "export", "report", "interventions"):

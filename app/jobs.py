@@ -14,7 +14,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.errors import ImageInputError
-from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, read_rgb, to_model_input
+from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, fit_to_aspect, read_rgb, to_model_input
 from analysis.model_io import LoadedModel
 from analysis.regions import ThresholdPolicy, crop_region, extract_regions, outline_region
 from analysis.saliency import compute_saliency, saliency_provenance
@@ -38,11 +38,73 @@ class RegionParams:
 @dataclass
 class JobReport:
     run_id: int
+    name: str = ""
     processed: int = 0
     already_done: int = 0
     regions: int = 0
     empty_maps: int = 0
+    whole_image_regions: int = 0  # top regions covering 90% of the image or more: a sign of a too-coarse layer
     skipped: list[tuple[str, str]] = field(default_factory=list)  # (path, reason)
+    new_run: bool = False
+
+
+@dataclass(frozen=True)
+class RunSummary:
+    """A saliency run as `heedmap runs` lists it."""
+
+    id: int
+    name: str
+    created: str
+    images: int
+    done: int
+    layer: str
+    model_kind: str
+    model_sha256: str
+    key: str
+
+
+def image_set_key(records: list[ImageRecord]) -> dict[str, object]:
+    """What identifies an image set in a run's key: its size and a hash of its paths, labels and splits."""
+    rows = sorted(f"{Path(r.path).resolve()}\t{r.label}\t{r.split}" for r in records)
+    return {"count": len(rows), "sha256": hashlib.sha256("\n".join(rows).encode()).hexdigest()}
+
+
+def run_key(provenance: dict[str, object]) -> str:
+    """The run key: a hash of everything that changes a run's results (model hash, sidecar, layer,
+    method, region parameters and the image set); the run's name is a label, not part of it."""
+    keyed = {k: v for k, v in provenance.items() if k not in ("run_name", "image_source", "model_notes")}
+    return hashlib.sha256(json.dumps(keyed, sort_keys=True, default=str).encode()).hexdigest()[:16]
+
+
+def find_run(s: Session, ref: str | int | None) -> int | None:
+    """A run by id, or the latest run of that name; None gives the latest run of all."""
+    if ref is None:
+        return s.scalar(select(SaliencyRun.id).order_by(SaliencyRun.id.desc()).limit(1))
+    text = str(ref).strip()
+    if text.isdigit():
+        return s.scalar(select(SaliencyRun.id).where(SaliencyRun.id == int(text)))
+    for run in s.scalars(select(SaliencyRun).order_by(SaliencyRun.id.desc())):
+        if (run.provenance or {}).get("run_name") == text:
+            return run.id
+    return None
+
+
+def list_runs(factory: sessionmaker[Session]) -> list[RunSummary]:
+    """Every saliency run of the project, oldest first, with how many images it has done."""
+    from sqlalchemy import func
+
+    with factory() as s:
+        done = dict(s.execute(select(Prediction.run_id, func.count(Prediction.id)).group_by(Prediction.run_id)).all())
+        out = []
+        for run in s.scalars(select(SaliencyRun).order_by(SaliencyRun.id)):
+            p = run.provenance or {}
+            images = p.get("images") if isinstance(p.get("images"), dict) else {}
+            out.append(RunSummary(
+                id=run.id, name=str(p.get("run_name") or f"run {run.id}"), created=run.created_at.isoformat(timespec="minutes"),
+                images=int(images.get("count", done.get(run.id, 0))), done=int(done.get(run.id, 0)), layer=str(p.get("layer", "")),
+                model_kind=str(p.get("model_kind", "")), model_sha256=str(p.get("model_sha256", ""))[:12], key=run.config_key,
+            ))
+    return out
 
 
 def register_images(factory: sessionmaker[Session], records: list[ImageRecord], *, max_pixels: int = DEFAULT_MAX_PIXELS) -> list[tuple[str, str]]:
@@ -83,17 +145,38 @@ def run_saliency(
     progress: Callable[[int, int], None] | None = _progress,
     after_batch: Callable[[int], None] | None = None,
     model_files: tuple[Path, Path] | None = None,
+    images: list[ImageRecord] | None = None,
+    name: str = "default",
+    source: Path | None = None,
 ) -> JobReport:
-    """Process every registered image that this run has not done yet; each batch commits once.
+    """Process every image of the run's image set that it has not done yet; each batch commits once.
 
-    The run is keyed by its provenance (model hash, method, layer, parameters): running the
-    same again continues it, so an interrupted job resumes without duplicates. ``model_files``
-    (model, sidecar) are recorded so later steps can load the same model again.
+    ``images`` is the run's image set (registered first with :func:`register_images`); None means
+    every registered image. The run is keyed by :func:`run_key` (model hash, sidecar, layer,
+    method, region parameters, image set): the same again continues the run, so an interrupted job
+    resumes without duplicates, while a changed sidecar or another image folder starts a new run.
+    ``name`` labels the run ("test", "counterfactual"); ``model_files`` (model, sidecar) are
+    recorded so later steps can load the same model again.
     """
-    provenance = {**saliency_provenance(model), "regions": params.to_json()}
-    key = hashlib.sha256(json.dumps(provenance, sort_keys=True).encode()).hexdigest()[:16]
+    with factory() as s:
+        rows = list(s.scalars(select(ImageRow).order_by(ImageRow.id)))
+    if images is not None:
+        wanted = {str(Path(r.path).resolve()) for r in images}
+        rows = [r for r in rows if r.path in wanted]
+        records = images
+    else:
+        records = [ImageRecord(path=Path(r.path), label=r.label, split=r.split) for r in rows]
+    provenance = {
+        **saliency_provenance(model),
+        "regions": params.to_json(),
+        "images": image_set_key(records),
+        "run_name": name,
+        "image_source": str(source) if source is not None else None,
+    }
+    key = run_key(provenance)
     with write_session(factory) as s:
         run = s.scalar(select(SaliencyRun).where(SaliencyRun.config_key == key))
+        new_run = run is None
         if run is None:
             run = SaliencyRun(config_key=key, provenance=provenance)
             s.add(run)
@@ -101,10 +184,11 @@ def run_saliency(
         if model_files is not None:
             run.model_path, run.sidecar_path = (str(Path(p).resolve()) for p in model_files)
         run_id = run.id
+        run_name = str((run.provenance or {}).get("run_name") or name)
     with factory() as s:
         done = set(s.scalars(select(Prediction.image_id).where(Prediction.run_id == run_id)))
-        todo = [(i.id, i.path) for i in s.scalars(select(ImageRow).where(ImageRow.problem.is_(None)).order_by(ImageRow.id))]
-    report = JobReport(run_id=run_id, already_done=sum(1 for i, _ in todo if i in done))
+    todo = [(r.id, r.path) for r in rows if r.problem is None]
+    report = JobReport(run_id=run_id, name=run_name, already_done=sum(1 for i, _ in todo if i in done), new_run=new_run)
     todo = [t for t in todo if t[0] not in done]
     layout = ProjectLayout(Path(project_dir))
     layout.make_run_dirs(run_id)
@@ -112,10 +196,10 @@ def run_saliency(
     total = len(todo)
     for b, start in enumerate(range(0, total, batch_size)):
         batch = todo[start : start + batch_size]
-        images, ids = [], []
+        pictures, ids = [], []
         for image_id, path in batch:
             try:
-                images.append(read_rgb(Path(path)))
+                pictures.append(read_rgb(Path(path)))
                 ids.append(image_id)
             except ImageInputError as exc:
                 report.skipped.append((path, str(exc)))
@@ -123,8 +207,10 @@ def run_saliency(
                     row = s.get(ImageRow, image_id)
                     if row is not None:
                         row.problem = str(exc)
-        if images:
-            res = compute_saliency(model, to_model_input(images, size=sc.input_size, mean=sc.mean, std=sc.std))
+        if pictures:
+            fill = tuple(int(round(255 * m)) for m in (sc.mean[::-1] if sc.channel_order == "BGR" else sc.mean))
+            views = [fit_to_aspect(im, sc.input_size, resize=sc.resize, fill=fill) for im in pictures]  # type: ignore[arg-type]
+            res = compute_saliency(model, to_model_input(pictures, **sc.input_options()))  # type: ignore[arg-type]
             with write_session(factory) as s:
                 for k, image_id in enumerate(ids):
                     sal = res.maps[k]
@@ -136,11 +222,13 @@ def run_saliency(
                     s.add(pred)
                     s.flush()
                     report.empty_maps += int(res.empty[k])
+                    if regions and regions[0].area >= 0.9 * sal.size:
+                        report.whole_image_regions += 1
                     for r in regions:
                         crop_rel = layout.crop(run_id, image_id, r.rank)
                         outline_rel = layout.outline(run_id, image_id, r.rank)
-                        crop_region(images[k], r, map_size=sc.input_size, margin=params.margin).save(layout.path(crop_rel))
-                        outline_region(images[k], r, map_size=sc.input_size).save(layout.path(outline_rel))
+                        crop_region(views[k], r, map_size=sc.input_size, margin=params.margin).save(layout.path(crop_rel))
+                        outline_region(views[k], r, map_size=sc.input_size).save(layout.path(outline_rel))
                         s.add(RegionRow(prediction_id=pred.id, rank=r.rank, x0=r.x0, y0=r.y0, x1=r.x1, y1=r.y1, area=r.area, mass_share=r.mass_share, crop_path=crop_rel, outline_path=outline_rel))
                         report.regions += 1
             report.processed += len(ids)
