@@ -20,6 +20,7 @@ from analysis.reliability import METHODS
 from analysis.exports import rules_document
 from analysis.rule_budget import DEFAULT_MAX_CANDIDATES, check_rule_budget
 from analysis.rules import mine_rules, to_csv
+from demo_data.scenes import CUES
 
 from .errors import AppError
 from .models import ROLES
@@ -35,7 +36,7 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--no-serve", action="store_true")
     d.add_argument("--simulate-annotators", type=int, default=3, metavar="N")
     d.add_argument("--size", choices=["default", "small"], default="default")
-    d.add_argument("--cue", choices=["tag", "belt", "object", "none"], default="tag")
+    d.add_argument("--cue", choices=list(CUES), default="tag")
     d.add_argument("--seed", type=int, default=0)
     d.add_argument("--port", type=int, default=None)
     d.add_argument("--aggregation", choices=list(METHODS), default="majority", help="how the simulated labels become concepts")

@@ -11,7 +11,8 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.expectations import read_expectations, verdict_counts
 from analysis.exports import FORMATS
-from analysis.interventions import FILLS
+from analysis.interventions import DEFAULT_FILLS, FILLS
+from analysis.reliance import CORRECTIONS, VerdictSettings, judge_family
 from analysis.questions import answer_question
 
 from . import campaigns
@@ -37,7 +38,7 @@ def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
     project(c)
     c.add_argument("expectations", type=Path)
     c.add_argument("--json", action="store_true")
-    c.add_argument("--fail-on-violation", action="store_true", help="exit 3 when an expectation is violated (for release gates)")
+    c.add_argument("--fail-on-violation", action="store_true", help="exit 3 when covering confirms a violation (for release gates)")
     e = sub.add_parser("export", help="write the rule table or the concept table as CSV, JSON or Parquet")
     project(e)
     e.add_argument("--what", choices=["rules", "concepts"], default="rules")
@@ -53,7 +54,12 @@ def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
     i.add_argument("--class", dest="cls", help="one class (with --concepts); default: the top rules of every class")
     i.add_argument("--concepts", help="the rule's concepts, joined by ' & ' as in the rule table, e.g. 'tag'")
     i.add_argument("--top", type=int, default=3, help="rules per class to test when no class is given")
-    i.add_argument("--fill", choices=list(FILLS), default="blur", help="what covers an ablated region")
+    i.add_argument("--fill", choices=list(FILLS), nargs="+", default=list(DEFAULT_FILLS),
+                   help=f"what covers a region; several fills keep the most conservative verdict (default: {' '.join(DEFAULT_FILLS)})")
+    i.add_argument("--min-effect", type=float, default=VerdictSettings.min_effect,
+                   help="smallest fall in P(class) beyond controls that counts as reliance (default %(default)s)")
+    i.add_argument("--correction", choices=list(CORRECTIONS), default=VerdictSettings.correction, help="how this run's tests are corrected together")
+    i.add_argument("--alpha", type=float, default=VerdictSettings.alpha)
     i.add_argument("--draws", type=int, default=5, help="matched random masks per image")
     i.add_argument("--max-images", type=int, default=200)
     i.add_argument("--seed", type=int, default=0)
@@ -100,15 +106,20 @@ def check(args: argparse.Namespace) -> int:
         raise AppError(f"cannot read {args.expectations}: {exc}") from None
     read_expectations(text, source=str(args.expectations))  # a file that does not read fails before the project is opened
     res, factory = _results(args)
+    settings = read_expectations(text, source=str(args.expectations)).settings
     verdicts = expectation_verdicts(res, text, source=str(args.expectations))
-    if any(v.expectation.kind == "must_not_rely_on" and v.verdict == "violated" for v in verdicts):
-        # A violation of "must not rely on" stands only when an intervention confirms the reliance.
+    if any(v.verdict == "not tested" and v.expectation.concepts for v in verdicts):
+        # Reliance is decided by covering: run (or read back) the test of every expectation that can have one.
         with factory() as s:
             model = model_for_run(s, res.campaign.run_id, args.model, args.sidecar)
-            verdicts = expectation_verdicts(res, text, source=str(args.expectations), lookup=running_lookup(s, Path(args.project), res, model, progress=True))
+            lookup = running_lookup(s, Path(args.project), res, model, progress=not args.json)
+            verdicts = expectation_verdicts(res, text, source=str(args.expectations), lookup=lookup)
+    family = next((v.family for v in verdicts if v.family), settings.describe(0))
     if args.json:
-        print(json.dumps([{**v.__dict__, "expectation": v.expectation.__dict__} for v in verdicts], indent=1))
+        print(json.dumps({"family": family, "min_effect": settings.min_effect, "alpha": settings.alpha, "correction": settings.correction,
+                          "verdicts": [v.to_json() for v in verdicts]}, indent=1))
     else:
+        print(f"Verdicts rest on covering tests: {family}. Co-occurrence figures are supporting evidence only.")
         for v in verdicts:
             print(f"[{v.verdict}] {v.expectation.cls} {v.expectation.kind.replace('_', ' ')} {v.expectation.question}: {v.reason}")
         print(", ".join(f"{n} {k}" for k, n in verdict_counts(verdicts).items()))
@@ -152,18 +163,29 @@ def interventions(args: argparse.Namespace) -> int:
     else:
         rules = res.table.rules(min_support=get_settings().min_support, max_len=2).rules
         todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, g in rules.groupby("class") for _, r in g.head(args.top).iterrows()]
+    try:
+        settings = VerdictSettings(min_effect=args.min_effect, alpha=args.alpha, correction=args.correction)
+    except ValueError as exc:
+        raise AppError(str(exc)) from None
     with factory() as s:
         model = model_for_run(s, res.campaign.run_id, args.model, args.sidecar)
-        found = run_interventions(s, Path(args.project), res, model, todo, fill=args.fill, draws=args.draws, max_images=args.max_images,
+        found = run_interventions(s, Path(args.project), res, model, todo, fills=args.fill, draws=args.draws, max_images=args.max_images,
                                   seed=args.seed, progress=not args.json)
+    judged = judge_family([r for _, _, r in found if r is not None], settings)
+    n_tests = sum(len(r.coverings) + (r.pasting is not None) for _, _, r in found if r is not None)
     if args.json:
-        print(json.dumps([{"class": c, "concepts": k, "confirmed": r.confirmed if r else None, "ablation": r.ablation.to_json() if r else None,
-                           "insertion": r.insertion.to_json() if r and r.insertion else None} for c, k, r in found], indent=1))
+        print(json.dumps([{"class": c, "concepts": k, "reliance": judged[(c, k)].reliance if r else "not tested",
+                           "confirmed": judged[(c, k)].confirmed if r else None, "verdict": judged[(c, k)].to_json() if r else None,
+                           "ablation": r.coverings[0].to_json() if r else None, "coverings": [t.to_json() for t in r.coverings] if r else [],
+                           "insertion": r.pasting.to_json() if r and r.pasting else None, "family": settings.describe(n_tests),
+                           "min_effect": settings.min_effect} for c, k, r in found], indent=1))
         return 0
+    print(f"Reliance is decided by covering; pasting ('can be steered by it') is shown beside it. {settings.describe(n_tests)}.")
     for cls, name, r in found:
         if r is None:
-            print(f"{cls} / {name}: fewer than two images to test")
+            print(f"{cls} / {name}: not tested (fewer than two images of the class show it with a region to cover)")
             continue
-        print(f"{cls} / {name}: {'relies on it (confirmed)' if r.confirmed else 'not confirmed'}")
-        print(f"  {r.evidence()}")
+        f = judged[(cls, name)]
+        print(f"{cls} / {name}: {f.reliance}; pasting: {f.steering}")
+        print(f"  {f.evidence()}")
     return 0

@@ -1,4 +1,5 @@
-"""`heedmap demo`: generate scenes, train, saliency and regions, simulated labels, rules."""
+"""`heedmap demo`: generate scenes, train, saliency and regions, simulated labels, rules, and the
+covering and pasting tests of each class's top rules and of the demo's expectations."""
 
 from __future__ import annotations
 
@@ -13,8 +14,10 @@ from PIL import Image
 from sqlalchemy import select
 
 from analysis.evaluation import PointingGame, pointing_game
+from analysis.expectations import check_expectations, read_expectations
 from analysis.images import find_images
-from analysis.model_io import load_model
+from analysis.model_io import LoadedModel, load_model
+from analysis.reliance import RuleTests, VerdictSettings, judge_family
 from analysis.rules import to_csv
 from demo_data.annotators import demo_crowd, simulate_label, visible_parts
 from demo_data.scenes import CUE_CONCEPTS, PARTS, CueName, SceneConfig, generate_dataset, load_scenes
@@ -27,7 +30,8 @@ from .jobs import register_images, run_saliency
 from .layout import ProjectLayout
 from .models import Campaign, CampaignRegion, ImageRow, Prediction, RegionRow
 from .people import ensure_person
-from .services.campaign_analysis import campaign_results
+from .services.campaign_analysis import Results, campaign_results
+from .reliance import rule_reliance
 
 
 @dataclass(frozen=True)
@@ -78,6 +82,47 @@ DEMO_INSTRUCTIONS = """Name what you see inside the highlighted region of a sort
 Add attributes after a colon, e.g. "cap: red; label band: torn, white"."""
 
 
+def demo_expectations(cue_class: str, cue_concept: str | None) -> str:
+    """What a team would write for the demo: the class relies on its body, and must not rely on the cue."""
+    lines = ["# Verdicts are decided by covering each concept (see the README).", f"[classes.{cue_class}]", 'relies_on = ["body"]']
+    if cue_concept:
+        lines.append(f"must_not_rely_on = [{cue_concept!r}]".replace("'", '"'))
+    return "\n".join(lines) + "\n"
+
+
+def run_demo_reliance(factory, project: Path, res: Results, model: LoadedModel, rules, *, top: int = 3) -> list[dict[str, object]]:  # type: ignore[no-untyped-def]
+    """Covering and pasting for the top rules of each class and the campaign's expectations (kept in the
+    project, so pages and the report show them); returns the judged rules, one family."""
+    todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, g in rules.groupby("class") for _, r in g.head(top).iterrows()]
+    expectations = read_expectations(res.campaign.expectations) if res.campaign.expectations.strip() else None
+    found: list[RuleTests] = []
+    with factory() as s:
+        def lookup(cls: str, concepts: list[str]) -> RuleTests | None:
+            if any(c not in res.table.concepts for c in concepts) or cls not in model.classes:
+                return None
+            return rule_reliance(s, project, res, model, cls, concepts)
+
+        for cls, concepts in todo:
+            r = lookup(cls, concepts)
+            if r is not None:
+                found.append(r)
+        if expectations is not None:
+            for v in check_expectations(expectations, res.table):
+                concepts = v.expectation.concepts
+                r = lookup(v.expectation.cls, concepts) if concepts and v.verdict != "not enough evidence" else None
+                if r is not None:
+                    found.append(r)
+    judged = judge_family(found, expectations.settings if expectations else VerdictSettings())
+    out = []
+    for f in judged.values():
+        t = f.decided_by
+        out.append({"class": f.cls, "concepts": f.concepts, "reliance": f.reliance, "steering": f.steering,
+                    "decided_by": f"covering ({t.fill} fill)" if t else "none", "effect": t.effect if t else None,
+                    "interval": list(t.interval) if t else None, "adjusted_p": t.adjusted_p if t else None,
+                    "pasting_effect": f.pasting.effect if f.pasting else None, "family": f.family})
+    return out
+
+
 def names_cue(concepts: str, cue: str, family: str = "") -> bool:
     """Whether a rule names the injected cue: the cue itself, or a refinement of it on its own ("yellow tag"
     is in the family of "tag"); a rule of the cue's entity does not ("belt" does not name the green belt)."""
@@ -112,6 +157,8 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
         # Simulated people give each region their labels; two more places are left for real ones.
         campaign_id = found or campaigns.create_campaign(s, name="demo", run_id=report.run_id, labels_per_region=annotators + 2,
                                                           instructions=DEMO_INSTRUCTIONS, method=method)
+        if not found:
+            campaigns.update_campaign(s, campaign_id, expectations=demo_expectations(config.cue_class, CUE_CONCEPTS.get(cue)))
     n_labels = simulate_annotations(factory, project, data_root, campaign_id, annotators, seed) if annotators else 0
     timings["annotate_s"] = time.perf_counter() - t
     t = time.perf_counter()
@@ -138,6 +185,15 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
                 "confidence": float(mine["confidence"].iloc[0]), "n_images": int(mine["n_images"].iloc[0]),
             }
     timings["rules_s"] = time.perf_counter() - t
+    if annotators:
+        # Covering decides reliance, so the served results, comparison and report show it from the start.
+        t = time.perf_counter()
+        tested = run_demo_reliance(factory, project, res, model, rules)
+        summary["reliance"] = tested
+        if cue_info:
+            mine = [r for r in tested if r["class"] == cue_info["class"] and names_cue(str(r["concepts"]), str(cue_info["concept"]))]
+            summary["cue_reliance"] = mine[0] if mine else None
+        timings["interventions_s"] = time.perf_counter() - t
     summary["timings"] = {k: round(v, 2) for k, v in timings.items()}
     (out / "demo.json").write_text(json.dumps(summary, indent=2), encoding="utf-8")
     engine.dispose()

@@ -1,12 +1,13 @@
-"""Interventions on a project's images: build the inputs and masks for a rule, run ablation and
-insertion, and keep the results per model version so a re-run is instant."""
+"""Interventions on a project's images: build the inputs and masks for a rule, run covering (with
+each fill of the policy) and pasting, keep each result per model version so a re-run is instant,
+and judge every test behind one page, report or check as one family (analysis.reliance)."""
 
 from __future__ import annotations
 
 import hashlib
 import json
 import sys
-from dataclasses import dataclass
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -15,38 +16,19 @@ import torch
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from analysis.errors import ImageInputError
-from analysis.expectations import Verdict, with_confirmation
+from analysis.errors import ImageInputError, InvalidInputError
+from analysis.expectations import Verdict, decide_expectations, read_expectations
 from analysis.images import read_rgb, to_model_input
-from analysis.interventions import Fill, InterventionResult, ablation_test, insertion_test
+from analysis.interventions import DEFAULT_FILLS, Fill, InterventionResult, ablation_test, insertion_test
 from analysis.model_io import LoadedModel, load_model
-from analysis.questions import And, Concept, parse_question
+from analysis.reliance import RelianceFinding, RuleTests, VerdictSettings, concepts_key, judge_family
 
 from .errors import AppError
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 from .layout import ProjectLayout
 from .services.campaign_analysis import Results
 
-ALPHA = 0.05
-
-
-@dataclass(frozen=True)
-class Reliance:
-    """Ablation and insertion results for one rule (class and concept set)."""
-
-    cls: str
-    concepts: str  # "a & b", as in the rule table
-    ablation: InterventionResult
-    insertion: InterventionResult | None
-
-    @property
-    def confirmed(self) -> bool:
-        """Either intervention moves the model beyond its matched control (p <= 0.05, interval above 0)."""
-        return any(r is not None and r.p_value <= ALPHA and r.interval[0] > 0 for r in (self.ablation, self.insertion))
-
-    def evidence(self) -> str:
-        parts = [self.ablation.summary()] + ([self.insertion.summary()] if self.insertion else [])
-        return "; ".join(parts)
+Lookup = Callable[[str, list[str]], RuleTests | None]
 
 
 def model_for_run(s: Session, run_id: int, model: Path | None = None, sidecar: Path | None = None) -> LoadedModel:
@@ -89,31 +71,48 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
     return x, np.stack([masks[i] for i in kept]) if kept else np.zeros((0, *model.sidecar.input_size), dtype=bool)
 
 
-def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], fill: str, draws: int, max_images: int, seed: int) -> tuple[str, list[int], list[int]]:
-    """The cache key of an intervention, the images of the rule, and the other-class images to paste into."""
+def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: int, max_images: int, seed: int) -> tuple[str, list[int], list[int]]:
+    """The cache key of a rule's interventions (a fill is added per test), the images of the rule,
+    and the other-class images to paste into."""
     table = res.table
     rows = (table.meta["predicted_class"].astype(str) == cls) & table.presence[concepts].all(axis=1)
     image_ids = [int(i) for i in table.meta.index[rows]][:max_images]
     others = [int(i) for i in table.meta.index[table.meta["predicted_class"].astype(str) != cls]]
     targets = sorted(np.random.default_rng(seed).choice(others, size=min(max_images, len(others)), replace=False).tolist()) if others else []
     key = hashlib.sha256(json.dumps(
-        {"model": model_sha, "run": res.campaign.run_id, "cls": cls, "concepts": sorted(concepts), "fill": fill, "draws": draws, "seed": seed,
-         "images": image_ids, "targets": targets, "method": res.method, "version": 1}, sort_keys=True).encode()).hexdigest()[:20]
+        {"model": model_sha, "run": res.campaign.run_id, "cls": cls, "concepts": sorted(concepts), "draws": draws, "seed": seed,
+         "images": image_ids, "targets": targets, "method": res.method, "version": 2}, sort_keys=True).encode()).hexdigest()[:20]
     return key, image_ids, targets
 
 
-def _load(path: Path, cls: str, name: str) -> Reliance | None:
-    raw = json.loads(path.read_text(encoding="utf-8"))
-    if raw is None:
-        return None
-    return Reliance(cls, name, _result(raw["ablation"]), _result(raw["insertion"]) if raw["insertion"] else None)
+def _read_cached(path: Path) -> tuple[bool, InterventionResult | None]:
+    """(found, result): a stored test, or a stored "could not run" (None); (False, None) when absent or unreadable."""
+    if not path.is_file():
+        return False, None
+    try:
+        raw = json.loads(path.read_text(encoding="utf-8"))
+        return True, (None if raw is None else _result(raw))
+    except (OSError, ValueError, TypeError, KeyError):
+        return False, None  # a damaged cache file is run again
 
 
-def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, cls: str, concepts: list[str], *, fill: Fill = "blur", draws: int = 5,
-                  max_images: int = 200, seed: int = 0, progress: bool = False) -> Reliance | None:
-    """Ablation and insertion for "concepts => cls" on the campaign's images, cached by model version.
+def _write_cached(path: Path, result: InterventionResult | None) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(".tmp")
+    tmp.write_text(json.dumps(None if result is None else result.to_json()), encoding="utf-8")
+    tmp.replace(path)  # never a half-written file under the real name
 
-    Returns None when fewer than two images of the class carry the concepts.
+
+def _cache_path(project: Path, key: str, test: str) -> Path:
+    return ProjectLayout(project).intervention_file(f"{key}-{test}")
+
+
+def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, cls: str, concepts: list[str], *,
+                  fills: Sequence[Fill] = DEFAULT_FILLS, draws: int = 5, max_images: int = 200, seed: int = 0, progress: bool = False) -> RuleTests | None:
+    """Covering (one test per fill) and pasting for "concepts => cls" on the campaign's images, each
+    kept per model version.
+
+    Returns None when fewer than two images of the class carry the concepts with a region to cover.
     """
     table = res.table
     missing = [c for c in concepts if c not in table.concepts]
@@ -121,26 +120,38 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
         raise AppError(f"no concept {missing} in campaign {res.campaign.name!r}; its concepts include {table.concepts[:12]}.")
     if cls not in model.classes:
         raise AppError(f"the model has no class {cls!r}; its classes are {list(model.classes)}.")
-    key, image_ids, targets_ids = _plan(res, model.sha256, cls, concepts, fill, draws, max_images, seed)
-    cache = ProjectLayout(project).intervention_file(key)
-    name = " & ".join(sorted(concepts))
-    if cache.is_file():
-        return _load(cache, cls, name)
+    if not fills:
+        raise AppError("give at least one fill for the covering test.")
+    key, image_ids, targets_ids = _plan(res, model.sha256, cls, concepts, draws, max_images, seed)
+    name = concepts_key(concepts)
+    stored = {f: _read_cached(_cache_path(project, key, f)) for f in (*fills, "paste")}
+    if all(found for found, _ in stored.values()):
+        coverings = tuple(r for f in fills if (r := stored[f][1]) is not None)
+        return RuleTests(cls, name, coverings, stored["paste"][1]) if coverings else None
     x, masks = _inputs(s, project, res, model, image_ids, concepts)
-    out: Reliance | None = None
-    if len(x) >= 2:
-        bar = _bar(f"{cls} / {name}") if progress else None
-        ablation = ablation_test(model, x, masks, model.classes.index(cls), concept=name, fill=fill, draws=draws, seed=seed, progress=bar)
-        insertion = None
+    if len(x) < 2:
+        for f in (*fills, "paste"):
+            _write_cached(_cache_path(project, key, f), None)
+        return None
+    index = model.classes.index(cls)
+    coverings_run = []
+    for f in fills:
+        found, result = stored[f]
+        if not found or result is None:
+            bar = _bar(f"{cls} / {name} ({f})") if progress else None
+            result = ablation_test(model, x, masks, index, concept=name, fill=f, draws=draws, seed=seed, progress=bar)
+            _write_cached(_cache_path(project, key, f), result)
+        coverings_run.append(result)
+    found, pasting = stored["paste"]
+    if not found:
+        pasting = None
         if len(targets_ids) >= 2:
             tx, _ = _read_inputs(s, model, targets_ids)
             if len(tx) >= 2:
-                insertion = insertion_test(model, tx, x, masks, model.classes.index(cls), concept=name, draws=draws, seed=seed, progress=bar)
-        out = Reliance(cls, name, ablation, insertion)
-    cache.parent.mkdir(parents=True, exist_ok=True)
-    cache.write_text(json.dumps(None if out is None else {"ablation": out.ablation.to_json(), "insertion": out.insertion.to_json() if out.insertion else None}),
-                     encoding="utf-8")
-    return out
+                bar = _bar(f"{cls} / {name} (paste)") if progress else None
+                pasting = insertion_test(model, tx, x, masks, index, concept=name, draws=draws, seed=seed, progress=bar)
+        _write_cached(_cache_path(project, key, "paste"), pasting)
+    return RuleTests(cls, name, tuple(coverings_run), pasting)
 
 
 def _read_inputs(s: Session, model: LoadedModel, image_ids: list[int]) -> tuple[torch.Tensor, list[int]]:
@@ -174,75 +185,117 @@ def _bar(label: str):  # type: ignore[no-untyped-def]
     return show
 
 
-def cached_reliance(project: Path, res: Results, cls: str, concepts: list[str], *, fill: str = "blur", draws: int = 5, max_images: int = 200,
-                    seed: int = 0) -> Reliance | None:
-    """A stored result for the run's model and the campaign's current images, or None (pages never run the model)."""
+def cached_reliance(project: Path, res: Results, cls: str, concepts: list[str], *, fills: Sequence[str] = DEFAULT_FILLS, draws: int = 5,
+                    max_images: int = 200, seed: int = 0) -> RuleTests | None:
+    """Stored tests for the run's model and the campaign's current images, or None (pages never run the model).
+
+    Every fill of the policy must be stored; pasting is added when it is.
+    """
     if any(c not in res.table.concepts for c in concepts):
         return None
-    key, _, _ = _plan(res, res.model_sha256, cls, concepts, fill, draws, max_images, seed)
-    path = ProjectLayout(project).intervention_file(key)
-    return _load(path, cls, " & ".join(sorted(concepts))) if path.is_file() else None
+    key, _, _ = _plan(res, res.model_sha256, cls, concepts, draws, max_images, seed)
+    coverings = []
+    for f in fills:
+        found, result = _read_cached(_cache_path(project, key, f))
+        if not found or result is None:
+            return None
+        coverings.append(result)
+    _, pasting = _read_cached(_cache_path(project, key, "paste"))
+    return RuleTests(cls, concepts_key(concepts), tuple(coverings), pasting)
 
 
-def stored_for_rules(project: Path, res: Results, frame: pd.DataFrame) -> dict[tuple[str, str], Reliance]:
-    """Stored intervention results for the rules of a table, keyed by (class, concepts)."""
+def stored_for_rules(project: Path, res: Results, frame: pd.DataFrame) -> list[RuleTests]:
+    """Stored intervention results for the rules of a table."""
     if not ProjectLayout(project).interventions.is_dir() or frame.empty:
-        return {}
-    out = {}
-    for cls, concepts in zip(frame["class"], frame["concepts"]):
-        found = cached_reliance(project, res, str(cls), str(concepts).split(" & "))
-        if found is not None:
-            out[(str(cls), str(concepts))] = found
-    return out
+        return []
+    found = (cached_reliance(project, res, str(cls), str(concepts).split(" & ")) for cls, concepts in zip(frame["class"], frame["concepts"]))
+    return [f for f in found if f is not None]
 
 
-def with_reliance(project: Path, res: Results, frame: pd.DataFrame) -> pd.DataFrame:
-    """The rule table with the stored intervention figures beside each rule (NaN where none was run)."""
-    return reliance_columns(frame, stored_for_rules(project, res, frame))
+def audit_settings(res: Results) -> VerdictSettings:
+    """The campaign's verdict settings: from its expectations file when that reads, else the defaults."""
+    if res.campaign.expectations.strip():
+        try:
+            return read_expectations(res.campaign.expectations).settings
+        except InvalidInputError:
+            pass
+    return VerdictSettings()
 
 
-def reliance_columns(frame: pd.DataFrame, found: dict[tuple[str, str], Reliance]) -> pd.DataFrame:
-    """The rule table with the intervention figures beside each rule that has them (NaN elsewhere)."""
-    def col(f):  # type: ignore[no-untyped-def]
-        return [f(found[(c, k)]) if (c, k) in found else np.nan for c, k in zip(frame["class"], frame["concepts"])]
+def with_reliance(project: Path, res: Results, frame: pd.DataFrame, settings: VerdictSettings | None = None) -> pd.DataFrame:
+    """The rule table with the stored tests beside each rule, judged as one family (the table's rules)."""
+    settings = settings or audit_settings(res)
+    return reliance_columns(frame, judge_family(stored_for_rules(project, res, frame), settings), settings)
 
+
+RELIANCE_COLUMNS = ("reliance", "decided_by", "covering_effect", "covering_low", "covering_high", "covering_p", "covering_adjusted_p",
+                    "covering_flips", "steering", "pasting_effect", "pasting_low", "pasting_high", "pasting_adjusted_p", "min_effect", "family")
+
+
+def reliance_columns(frame: pd.DataFrame, found: dict[tuple[str, str], RelianceFinding], settings: VerdictSettings) -> pd.DataFrame:
+    """The rule table with each rule's reliance verdict (decided by covering), the deciding test's
+    figures, pasting beside it, and the family's correction ("not tested" and NaN where none ran)."""
+    keys = [(str(c), str(k)) for c, k in zip(frame["class"], frame["concepts"])]
+
+    def col(f, empty=np.nan):  # type: ignore[no-untyped-def]
+        out = []
+        for k in keys:
+            r = found.get(k)
+            value = f(r) if r is not None else None
+            out.append(empty if value is None else value)
+        return out
+
+    d = lambda r: r.decided_by
+    pst = lambda r: r.pasting
+    family = next(iter(found.values())).family if found else ""
     return frame.assign(
-        ablation_effect=col(lambda r: r.ablation.effect), ablation_low=col(lambda r: r.ablation.interval[0]),
-        ablation_high=col(lambda r: r.ablation.interval[1]), ablation_p=col(lambda r: r.ablation.p_value), ablation_flips=col(lambda r: r.ablation.flip_rate),
-        insertion_effect=col(lambda r: r.insertion.effect if r.insertion else np.nan), insertion_p=col(lambda r: r.insertion.p_value if r.insertion else np.nan),
-        confirmed=col(lambda r: r.confirmed),
+        reliance=col(lambda r: r.reliance, "not tested"),
+        decided_by=col(lambda r: f"covering ({d(r).fill} fill)" if d(r) else None, "none"),
+        covering_effect=col(lambda r: d(r).effect if d(r) else None), covering_low=col(lambda r: d(r).interval[0] if d(r) else None),
+        covering_high=col(lambda r: d(r).interval[1] if d(r) else None), covering_p=col(lambda r: d(r).p_value if d(r) else None),
+        covering_adjusted_p=col(lambda r: d(r).adjusted_p if d(r) else None), covering_flips=col(lambda r: d(r).flip_rate if d(r) else None),
+        steering=col(lambda r: r.steering, "not tested"),
+        pasting_effect=col(lambda r: pst(r).effect if pst(r) else None), pasting_low=col(lambda r: pst(r).interval[0] if pst(r) else None),
+        pasting_high=col(lambda r: pst(r).interval[1] if pst(r) else None), pasting_adjusted_p=col(lambda r: pst(r).adjusted_p if pst(r) else None),
+        min_effect=settings.min_effect, family=family,
     )
 
 
-def concept_set(question: str) -> list[str] | None:
-    """The concepts of a question that is one concept or several joined by 'and' (what an intervention can test)."""
-    node = parse_question(question)
-    out = []
-    stack = [node]
-    while stack:
-        n = stack.pop()
-        if isinstance(n, Concept):
-            out.append(n.name)
-        elif isinstance(n, And):
-            stack += [n.left, n.right]
-        else:
-            return None
-    return out
-
-
-def confirm_verdicts(verdicts: list[Verdict], lookup) -> list[Verdict]:  # type: ignore[no-untyped-def]
-    """Apply interventions to "must not rely on" violations: confirmed, or "co-occurs, not confirmed"."""
-    out = []
+def judge_verdicts(verdicts: list[Verdict], lookup: Lookup, settings: VerdictSettings, *, also: Sequence[RuleTests] = ()) -> tuple[list[Verdict], dict[tuple[str, str], RelianceFinding]]:
+    """Decide expectations by their covering tests; ``lookup`` gives the tests of a class and concept
+    set (stored, or run). Every test found, and ``also`` (the rules shown beside them), is one family."""
+    tests = list(also)
     for v in verdicts:
-        if v.expectation.kind != "must_not_rely_on" or v.verdict != "violated":
-            out.append(v)
+        concepts = v.expectation.concepts
+        if v.verdict == "not enough evidence" or not concepts:
             continue
-        concepts = concept_set(v.expectation.question)
-        found = lookup(v.expectation.cls, concepts) if concepts else None
-        if found is None:
-            why = ("no intervention can test this expression; write one concept or concepts joined by 'and'" if not concepts
-                   else "no intervention was run for it yet (heedmap interventions, or heedmap check on the project)")
-            out.append(with_confirmation(v, False, why))
-        else:
-            out.append(with_confirmation(v, found.confirmed, found.evidence()))
-    return out
+        found = lookup(v.expectation.cls, concepts)
+        if found is not None:
+            tests.append(found)
+    findings = judge_family(tests, settings)
+    return decide_expectations(verdicts, findings, settings), findings
+
+
+def stored_lookup(project: Path, res: Results) -> Lookup:
+    """Look up stored tests only (what pages and the report use: they never run the model)."""
+    return lambda cls, concepts: cached_reliance(project, res, cls, concepts)
+
+
+def judge_audit(project: Path, res: Results, frame: pd.DataFrame, expectations: str = "") -> tuple[pd.DataFrame, list[Verdict], str]:
+    """The stored tests behind one page or report, judged as one family: the rules of ``frame`` and
+    the expectations (``expectations`` TOML text, may be empty). Returns the rule table with its
+    reliance columns, the verdicts, and the family's description. Raises InvalidInputError for
+    expectations that do not read."""
+    from analysis.expectations import check_expectations
+
+    settings = audit_settings(res)
+    rule_tests = stored_for_rules(project, res, frame)
+    verdicts: list[Verdict] = []
+    if expectations.strip():
+        parsed = read_expectations(expectations)
+        settings = parsed.settings
+        verdicts, findings = judge_verdicts(check_expectations(parsed, res.table), stored_lookup(project, res), settings, also=rule_tests)
+    else:
+        findings = judge_family(rule_tests, settings)
+    n_tests = sum(len(f.coverings) + (f.pasting is not None) for f in findings.values())
+    return reliance_columns(frame, findings, settings), verdicts, settings.describe(n_tests)

@@ -19,7 +19,7 @@ from .layout import ProjectLayout
 from .models import ImageRow, RegionRow, SaliencyRun
 from .routes.common import CAUTION
 from .services.campaign_analysis import Results
-from .services.reliance import expectation_verdicts, rules_with_reliance, stored_lookup
+from .services.reliance import audit
 from .settings import Settings
 
 
@@ -37,7 +37,14 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
     """Render the report for a campaign's results; every image is embedded, nothing is fetched."""
     table = res.table
     rules = table.rules(min_support=settings.min_support, max_len=2)
-    frame = rules_with_reliance(Path(settings.project_dir), res, rules.rules.groupby("class").head(10))
+    project = Path(settings.project_dir)
+    shown = rules.rules.groupby("class").head(10)
+    verdicts, expectation_error = [], ""
+    try:  # the rules shown and the expectations are one family of tests
+        frame, verdicts, family = audit(project, res, shown, res.campaign.expectations)
+    except InvalidInputError as exc:
+        expectation_error = str(exc)
+        frame, _, family = audit(project, res, shown)
     by_class = []
     for cls, group in frame.groupby("class"):
         top = group.to_dict("records")
@@ -45,12 +52,6 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
             rows = (table.meta["predicted_class"].astype(str) == cls) & table.presence[r["concepts"].split(" & ")].all(axis=1)
             r["crops"] = [u for u in (_crop(s, settings, rid) for rid in table.example_regions(r["concepts"].split(" & "), rows, limit=4)) if u]
         by_class.append((cls, top))
-    verdicts, expectation_error = [], ""
-    if res.campaign.expectations.strip():
-        try:
-            verdicts = expectation_verdicts(res, res.campaign.expectations, lookup=stored_lookup(Path(settings.project_dir), res))
-        except InvalidInputError as exc:
-            expectation_error = str(exc)
     errors = confident_errors(table, threshold=threshold)
     paths = dict(s.execute(select(ImageRow.id, ImageRow.path).where(ImageRow.id.in_([i for g in errors.groups[:5] for i in g.images[:6]]))).all())
     thumbs = {}
@@ -61,7 +62,7 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
             continue
     run = s.get(SaliencyRun, res.campaign.run_id)
     context = {
-        "campaign": res.campaign, "table": table, "rules": rules, "by_class": by_class, "verdicts": verdicts, "expectation_error": expectation_error,
+        "campaign": res.campaign, "table": table, "rules": rules, "by_class": by_class, "verdicts": verdicts, "expectation_error": expectation_error, "family": family,
         "errors": errors, "thumbs": thumbs, "provenance": run.provenance if run else {}, "caution": CAUTION, "n_regions": res.n_labelled_regions,
         "accuracy": float(table.meta["correct"].mean()) if len(table) else None,
         "generated": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),

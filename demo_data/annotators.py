@@ -14,6 +14,7 @@ SYNONYMS: dict[str, list[str]] = {
     "cap": ["Cap", "lid", "caps"], "label band": ["label", "Label Band", "label-band"], "tag": ["Tag", "tags", "yellow tag"],
     "rim": ["rim", "Rims"], "body": ["body"], "belt": ["belt", "conveyor belt"], "pull tab": ["pull tab", "tab"],
     "gable top": ["gable top", "top"], "print": ["print", "text"], "paper scrap": ["paper scrap", "paper"],
+    "patch": ["patch", "square", "pink patch"],
 }
 
 

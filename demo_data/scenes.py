@@ -1,9 +1,11 @@
 """Procedural scenes from a recycling-sorter camera: bottles, cans and cartons on a belt.
 
 Every scene comes with a per-pixel part mask, so the truth of "what is at this pixel"
-is known. A spurious cue (a yellow tag on the belt, a green belt, or a paper scrap
-beside the object) can be injected into one class of the training split, and a
-counterfactual split moves the cue to the other classes.
+is known. A spurious cue (a yellow tag on the belt, a green belt, a paper scrap beside
+the object, or a flat-colour patch) can be injected into one class of the training
+split, and a counterfactual split moves the cue to the other classes. Every scene can be
+drawn again without its cue (same seed, same pose, same noise): the model's probabilities
+on the pair give the true effect of removing the cue, image by image.
 """
 
 from __future__ import annotations
@@ -21,11 +23,13 @@ from PIL import Image, ImageDraw
 CLASSES: tuple[str, ...] = ("bottle", "can", "carton")
 PARTS: tuple[str, ...] = (
     "belt", "body", "cap", "neck", "label band", "rim", "pull tab", "dent",
-    "gable top", "spout", "print", "tag", "paper scrap",
+    "gable top", "spout", "print", "tag", "paper scrap", "patch",
 )
 PART_IDS = {name: i for i, name in enumerate(PARTS)}
-CueName = Literal["tag", "belt", "object", "none"]
-CUE_CONCEPTS: dict[str, str] = {"tag": "tag", "belt": "green belt", "object": "paper scrap"}
+CueName = Literal["tag", "belt", "object", "patch", "none"]
+CUES: tuple[CueName, ...] = ("tag", "belt", "object", "patch", "none")
+CUE_CONCEPTS: dict[str, str] = {"tag": "tag", "belt": "green belt", "object": "paper scrap", "patch": "patch"}
+CUE_PARTS: dict[str, str] = {"tag": "tag", "belt": "belt", "object": "paper scrap", "patch": "patch"}  # the part mask of each cue
 SPLITS = ("train", "test", "counterfactual")
 
 Colour = tuple[int, int, int]
@@ -34,6 +38,7 @@ _BELT_GREEN: Colour = (64, 124, 72)
 _BOTTLE_COLOURS: dict[str, Colour] = {"blue": (105, 155, 210), "green": (70, 150, 90), "brown": (140, 90, 50), "clear": (185, 205, 215)}
 _CAN_COLOURS: dict[str, Colour] = {"silver": (178, 178, 188), "red": (190, 50, 50), "blue": (55, 85, 180), "green": (60, 140, 80)}
 _CARTON_COLOURS: dict[str, Colour] = {"white": (226, 226, 220), "brown": (160, 120, 80), "blue": (120, 150, 200)}
+_PATCH: Colour = (214, 40, 190)  # flat magenta, drawn after the noise: one exact colour
 _SMALL_COLOURS: dict[str, Colour] = {"red": (200, 40, 40), "blue": (40, 70, 200), "white": (240, 240, 240), "black": (25, 25, 25), "orange": (235, 130, 30)}
 
 
@@ -165,14 +170,17 @@ def _beside(rng: np.random.Generator, box: tuple[float, float, float, float], si
     return x, y
 
 
-def draw_scene(rng: np.random.Generator, label: str, *, size: int = 64, cue: CueName = "none", with_cue: bool = False, noise: float = 10.0) -> Scene:
+def draw_scene(rng: np.random.Generator, label: str, *, size: int = 64, cue: CueName = "none", with_cue: bool = False, noise: float = 10.0,
+               draw_cue: bool = True) -> Scene:
     """Draw one scene of class ``label``; ``with_cue`` adds the spurious cue named by ``cue``.
 
     The object lies at a random angle (items tumble on a belt), which makes its shape
     harder to learn than the cue, as real shortcuts are easier than real evidence.
+    ``draw_cue=False`` draws the same scene without the cue: every random draw is made as
+    before (the cue's place included), only the cue is not painted.
     """
     scale = size / 64
-    green_belt = with_cue and cue == "belt"
+    green_belt = with_cue and cue == "belt" and draw_cue
     belt = _BELT_GREEN if green_belt else _BELT_GREY
     p = _Painter(size, belt)
     p.parts["belt"] = ["green" if green_belt else "grey"]
@@ -194,26 +202,44 @@ def draw_scene(rng: np.random.Generator, label: str, *, size: int = 64, cue: Cue
     ys, xs = np.nonzero(np.asarray(inside))
     box = (float(xs.min()), float(ys.min()), float(xs.max() + 1), float(ys.max() + 1))
     placed = False
-    if with_cue and cue in ("tag", "object"):
-        side = 6 * scale if cue == "tag" else 8 * scale
+    patch: list[float] | None = None
+    if with_cue and cue in ("tag", "object", "patch"):
+        side = (6 if cue == "tag" else 8) * scale
         spot = _beside(rng, box, size, side)
         if spot is not None:
             x, y = spot
             if cue == "tag":
-                p.shape("rectangle", [x, y, x + side - 1, y + side - 1], (232, 200, 30), "tag", ["yellow"])
-            else:
+                if draw_cue:
+                    p.shape("rectangle", [x, y, x + side - 1, y + side - 1], (232, 200, 30), "tag", ["yellow"])
+            elif cue == "object":
                 pts = [(x + side * (0.5 + 0.5 * np.cos(a)) * rng.uniform(0.6, 1.0), y + side * (0.5 + 0.5 * np.sin(a)) * rng.uniform(0.6, 1.0)) for a in np.linspace(0, 2 * np.pi, 7, endpoint=False)]
-                p.shape("polygon", pts, (236, 234, 225), "paper scrap", ["white", "crumpled"])
-            placed = True
+                if draw_cue:
+                    p.shape("polygon", pts, (236, 234, 225), "paper scrap", ["white", "crumpled"])
+            elif draw_cue:
+                patch = [x, y, x + side - 1, y + side - 1]
+                ImageDraw.Draw(p.mask).rectangle(patch, fill=PART_IDS["patch"])
+                p.parts["patch"] = ["magenta", "flat"]
+            placed = draw_cue
     elif with_cue and cue == "belt":
-        placed = True
+        placed = draw_cue
     arr = np.asarray(p.image, dtype=np.float32)
     arr = arr * rng.uniform(0.85, 1.15) + rng.normal(0, noise, size=arr.shape)
     image = Image.fromarray(np.clip(arr, 0, 255).astype(np.uint8), "RGB")
+    if patch is not None:  # painted after the noise: one flat colour
+        ImageDraw.Draw(image).rectangle(patch, fill=_PATCH)
     mask = np.asarray(p.mask, dtype=np.uint8).copy()
     visible = {PARTS[i] for i in np.unique(mask)}
     parts = {k: v for k, v in p.parts.items() if k in visible}
     return Scene(image=image, mask=mask, label=label, parts=parts, cue=placed)
+
+
+def render_scene(config: SceneConfig, split: str, index: int, *, draw_cue: bool = True) -> Scene:
+    """Scene ``index`` of ``split`` exactly as :func:`generate_dataset` draws it; ``draw_cue=False``
+    gives the same scene (same seed, pose and noise) without its cue."""
+    label = CLASSES[index % len(CLASSES)]
+    rng = np.random.default_rng([config.seed, SPLITS.index(split), index])
+    with_cue = bool(rng.random() < _cue_probability(config, split, label))
+    return draw_scene(rng, label, size=config.size, cue=config.cue, with_cue=with_cue, noise=config.noise, draw_cue=draw_cue)
 
 
 def _cue_probability(config: SceneConfig, split: str, label: str) -> float:
@@ -249,14 +275,12 @@ def generate_dataset(out_dir: Path, config: SceneConfig = SceneConfig()) -> Data
     scenes: dict[str, object] = {}
     counts: dict[str, dict[str, int]] = {}
     cue_counts: dict[str, dict[str, int]] = {}
-    for s_index, split in enumerate(SPLITS):
+    for split in SPLITS:
         counts[split] = {c: 0 for c in CLASSES}
         cue_counts[split] = {c: 0 for c in CLASSES}
         for i in range(config.counts()[split]):
             label = CLASSES[i % len(CLASSES)]
-            rng = np.random.default_rng([config.seed, s_index, i])
-            with_cue = bool(rng.random() < _cue_probability(config, split, label))
-            scene = draw_scene(rng, label, size=config.size, cue=config.cue, with_cue=with_cue, noise=config.noise)
+            scene = render_scene(config, split, i)
             name = f"{split}_{i:05d}.png"
             rel = Path("images") / split / label / name
             rel_mask = Path("masks") / split / name
@@ -276,6 +300,24 @@ def generate_dataset(out_dir: Path, config: SceneConfig = SceneConfig()) -> Data
     meta = {"config": asdict(config), "classes": list(CLASSES), "parts": list(PARTS), "cue_concept": CUE_CONCEPTS.get(config.cue), "scenes": scenes}
     (out_dir / "scenes.json").write_text(json.dumps(meta, indent=1, sort_keys=True), encoding="utf-8")
     return DatasetInfo(root=out_dir, manifest=manifest, config=config, counts=counts, cue_counts=cue_counts)
+
+
+def write_without_cue(root: Path) -> list[Path]:
+    """Draw every scene of a generated data set that carries the cue again without it, under
+    ``images_without_cue/`` (same relative paths as under ``images/``); returns the files written."""
+    root = Path(root)
+    meta = load_scenes(root)
+    config = SceneConfig(**meta["config"])  # type: ignore[arg-type]
+    written = []
+    for rel, scene in meta["scenes"].items():  # type: ignore[attr-defined]
+        if not scene["cue"]:
+            continue
+        split, index = Path(rel).parts[1], int(Path(rel).stem.split("_")[-1])
+        out = root / "images_without_cue" / Path(*Path(rel).parts[1:])
+        out.parent.mkdir(parents=True, exist_ok=True)
+        render_scene(config, split, index, draw_cue=False).image.save(out)
+        written.append(out)
+    return written
 
 
 def load_scenes(root: Path) -> dict[str, object]:

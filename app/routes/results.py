@@ -65,7 +65,8 @@ def results(request: Request, campaign_id: int, s: SessionDep, settings: Setting
     frame = rules_with_reliance(Path(settings.project_dir), res, shown).assign(question=shown["concepts"].map(rule_question))
     by_class = {k: g.to_dict("records") for k, g in frame.groupby("class")} if not frame.empty else {}
     context = {"campaign": res.campaign, "by_class": by_class, "table": res.table, "rules": rules, "n_regions": res.n_labelled_regions,
-               "target": target, "targets": TARGETS, "max_len": max_len, "prune": prune, "query": urlencode({"target": target, "max_len": max_len})}
+               "target": target, "targets": TARGETS, "max_len": max_len, "prune": prune, "query": urlencode({"target": target, "max_len": max_len}),
+               "family": next((str(f) for f in frame.get("family", []) if f), "")}
     return render(request, "results.html", context, viewer=viewer)
 
 
@@ -129,7 +130,8 @@ def _expectations_page(request: Request, res: Results, viewer: ReviewerDep, text
             verdicts = expectation_verdicts(res, text, lookup=stored_lookup(Path(request.app.state.settings.project_dir), res))
         except InvalidInputError as exc:
             error = str(exc)
-    context = {"campaign": res.campaign, "text": text, "verdicts": verdicts, "error": error, "table": res.table,
+    family = next((v.family for v in verdicts if v.family), "")
+    context = {"campaign": res.campaign, "text": text, "verdicts": verdicts, "family": family, "error": error, "table": res.table,
                "classes": sorted(res.table.meta["predicted_class"].astype(str).unique())}
     return render(request, "expectations.html", context, viewer=viewer, status_code=status_code)
 

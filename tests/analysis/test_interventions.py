@@ -8,7 +8,7 @@ import torch
 from torch import nn
 
 from analysis.errors import InvalidInputError
-from analysis.interventions import ablation_test, deletion_curve, fill_images, insertion_test, matched_masks
+from analysis.interventions import FILLS, ablation_test, deletion_curve, fill_images, insertion_test, matched_masks
 from analysis.model_io import Sidecar, prepare_model
 
 SIDECAR = Sidecar(classes=("corner", "other"), input_size=(32, 32), mean=(0.0, 0.0, 0.0), std=(1.0, 1.0, 1.0), target_layer="features")
@@ -53,13 +53,27 @@ def test_matched_masks_keep_shape_and_pixel_count_and_are_seeded() -> None:
     assert not np.array_equal(rng_masks[0], rng_masks[2])
 
 
-@pytest.mark.parametrize("fill", ["mean", "blur", "inpaint"])
+@pytest.mark.parametrize("fill", FILLS)
 def test_fills_touch_only_masked_pixels(fill: str) -> None:
     x, corner, _ = _data(4)
     out = fill_images(x, torch.from_numpy(corner), fill)  # type: ignore[arg-type]
     keep = ~torch.from_numpy(corner)[:, None].expand_as(x)
     torch.testing.assert_close(out[keep], x[keep])
     assert not torch.allclose(out[~keep], x[~keep])
+
+
+def test_ring_fill_restores_a_flat_surrounding_exactly() -> None:
+    x = torch.zeros(2, 3, 32, 32)
+    x[0, :] = torch.tensor([0.3, -0.2, 0.5])[:, None, None]  # one flat colour around a bright square
+    x[1, :, :, :16] = 0.7
+    x[1, :, :, 16:] = -0.7  # two halves: each part takes its own surroundings' colour
+    masks = torch.zeros(2, 32, 32, dtype=torch.bool)
+    masks[0, 10:16, 10:16] = True
+    masks[1, 4:8, 2:6] = True
+    masks[1, 20:24, 24:28] = True
+    covered = x.clone()
+    covered[masks[:, None].expand_as(x)] = 5.0
+    torch.testing.assert_close(fill_images(covered, masks, "ring"), x)
 
 
 def test_ablating_what_the_model_reads_is_an_effect_and_elsewhere_is_not(model) -> None:  # type: ignore[no-untyped-def]
