@@ -10,7 +10,7 @@ sparse team produces; per concept it would be starved.
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import numpy.typing as npt
@@ -19,7 +19,7 @@ from .agreement import alpha_with_interval
 from .concepts import Judgment, attribute_words, entity_with_attributes, judgment_families, main_entity, normalise_label
 from .errors import InvalidInputError
 from .long_labels import LongLabels
-from .reliability import Method, aggregate
+from .reliability import ConfusionPrior, Method, Rate, aggregate, cell_rate
 from .synonyms import SynonymRules
 
 IntArray = npt.NDArray[np.int64]
@@ -145,17 +145,49 @@ def presence_votes(
 
 
 @dataclass(frozen=True)
+class AnnotatorRates:
+    """What the aggregation learned of one annotator, each rate with the items it rests on and its 95% interval."""
+
+    annotator: str
+    sensitivity: Rate  # P(names the concept | it is there)
+    specificity: Rate  # P(leaves it out | it is not there)
+
+    def to_dict(self) -> dict[str, object]:
+        return {"annotator": self.annotator, "sensitivity": self.sensitivity.to_dict(), "specificity": self.specificity.to_dict()}
+
+
+@dataclass(frozen=True)
 class ConceptEstimate:
-    """Probability that each (region, concept) pair is present, and what the method learned of each annotator."""
+    """Probability that each (region, concept) pair is present, and what the method learned of each annotator.
+
+    ``rate_counts[a, t, g]`` are the (expected) votes of annotator a with truth t (1 = present) and
+    vote g (1 = yes), and ``pseudo`` the prior's pseudo-counts added to each (zero for majority),
+    so that every sensitivity and specificity comes with the evidence behind it.
+    """
 
     method: Method
     threshold: float  # a pair is present when its probability exceeds this
     votes: PresenceVotes
     probability: FloatArray  # (P,)
-    sensitivity: FloatArray  # (annotators,) P(says yes | present)
+    sensitivity: FloatArray  # (annotators,) P(says yes | present); NaN where nothing supports an estimate
     specificity: FloatArray  # (annotators,) P(says no | absent)
     iterations: int
     converged: bool
+    rate_counts: FloatArray = field(default_factory=lambda: np.zeros((0, 2, 2)))  # (annotators, truth, vote)
+    pseudo: FloatArray = field(default_factory=lambda: np.zeros((2, 2)))  # (truth, vote)
+    prior: ConfusionPrior | None = None
+
+    def annotator_rates(self) -> list[AnnotatorRates]:
+        """Each annotator's sensitivity and specificity with their counts and 95% intervals (Beta posterior).
+
+        The interval is the marginal of the Dirichlet posterior of the confusion row: under the
+        Dawid-Skene prior for its methods, under a uniform prior for majority vote.
+        """
+        out = []
+        for k, name in enumerate(self.votes.annotators):
+            counts = self.rate_counts[k] if k < len(self.rate_counts) else np.zeros((2, 2))
+            out.append(AnnotatorRates(name, cell_rate(counts[1], self.pseudo[1], 1), cell_rate(counts[0], self.pseudo[0], 0)))
+        return out
 
     @property
     def present(self) -> BoolArray:
@@ -179,38 +211,69 @@ class ConceptEstimate:
         return out
 
 
-def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", threshold: float = 0.5, **options: float) -> ConceptEstimate:
+def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", threshold: float = 0.5, prior: ConfusionPrior = ConfusionPrior(),
+                      tol: float = 1e-8, max_iter: int = 1000) -> ConceptEstimate:
     """Aggregate the yes/no votes with ``method`` (majority, dawid-skene or one-coin).
 
     Majority gives each pair the share of its region's annotators who named it, so with the
     default threshold a concept needs more than half of them. Known pairs keep their answer.
+    Dawid-Skene learns each annotator's sensitivity and specificity under ``prior`` (see
+    :class:`analysis.reliability.ConfusionPrior`).
     """
     if not 0 <= threshold < 1:
         raise InvalidInputError(f"threshold must be in [0, 1); got {threshold}. 0.5 keeps what more than half support.")
     n_pairs = len(votes.pair_region)
+    n_ann = len(votes.annotators)
     if n_pairs == 0:
         probability = np.zeros(0)
-        sens = spec = np.full(len(votes.annotators), np.nan)
-        return ConceptEstimate(method, threshold, votes, probability, sens, spec, 0, True)
+        sens = spec = np.full(n_ann, np.nan)
+        return ConceptEstimate(method, threshold, votes, probability, sens, spec, 0, True, np.zeros((n_ann, 2, 2)))
     known = {int(p): int(votes.known[p]) for p in np.nonzero(votes.known >= 0)[0]}
     yes = votes.vote_yes.astype(np.int64)
-    agg = aggregate(votes.vote_pair, votes.vote_annotator, yes, n_classes=2, method=method, known=known, **options)
-    probability = np.asarray(agg.posterior[:, 1], dtype=np.float64)  # every pair has its region's votes
-    n_ann = len(votes.annotators)
-    if agg.confusion is not None:
+    if method == "majority":
+        agg = aggregate(votes.vote_pair, votes.vote_annotator, yes, n_classes=2, method=method, known=known)
+    else:
+        items, anns, said, weights = _with_unnamed(votes, known)
+        agg = aggregate(items, anns, said, n_classes=2, method=method, known=known, prior=prior, tol=tol, max_iter=max_iter, item_weights=weights)
+    probability = np.asarray(agg.posterior[:n_pairs, 1], dtype=np.float64)  # every pair has its region's votes
+    counts = np.zeros((n_ann, 2, 2))
+    if agg.confusion_counts is not None:
         # An annotator who only ever said "nothing recognisable" where nobody named anything casts no vote.
-        sens = np.full(n_ann, np.nan)
-        spec = np.full(n_ann, np.nan)
-        sens[: len(agg.confusion)] = agg.confusion[:, 1, 1]
-        spec[: len(agg.confusion)] = agg.confusion[:, 0, 0]
+        counts[: len(agg.confusion_counts)] = agg.confusion_counts
+        used = agg.confusion_prior or prior
+        pseudo = used.pseudo_counts(2)
     else:
         # Majority: how often an annotator's yes/no matches the aggregated presence.
-        truth = (probability > threshold)[votes.vote_pair]
-        a = votes.vote_annotator
-        said = votes.vote_yes
-        sens = np.bincount(a, weights=(truth & said), minlength=n_ann) / np.maximum(np.bincount(a, weights=truth, minlength=n_ann), 1)
-        spec = np.bincount(a, weights=(~truth & ~said), minlength=n_ann) / np.maximum(np.bincount(a, weights=~truth, minlength=n_ann), 1)
-    return ConceptEstimate(method, threshold, votes, probability, sens, spec, agg.iterations, agg.converged)
+        truth = (probability > threshold)[votes.vote_pair].astype(np.int64)
+        np.add.at(counts, (votes.vote_annotator, truth, votes.vote_yes.astype(np.int64)), 1.0)
+        pseudo = np.zeros((2, 2))
+    est = ConceptEstimate(method, threshold, votes, probability, np.full(n_ann, np.nan), np.full(n_ann, np.nan), agg.iterations, agg.converged,
+                          counts, pseudo, agg.confusion_prior)
+    rates = est.annotator_rates()
+    return replace(est, sensitivity=np.array([r.sensitivity.estimate for r in rates]), specificity=np.array([r.specificity.estimate for r in rates]))
+
+
+def _with_unnamed(votes: PresenceVotes, known: dict[int, int]) -> tuple[IntArray, IntArray, IntArray, FloatArray]:
+    """The votes plus, per region, one item standing for every campaign concept nobody named there.
+
+    Each annotator who judged a region said "no" to those concepts as plainly as to one somebody
+    else named. Without them every pair has at least one "yes", and Dawid-Skene, which does not
+    know that, can explain the data better by calling "present" only what everybody named.
+    The item's weight is the number of such concepts; on a check region they are known absent.
+    """
+    n_pairs = len(votes.pair_region)
+    n_regions = len(votes.regions)
+    named_pairs = np.bincount(votes.pair_region, minlength=n_regions)
+    weights = len(votes.concepts) - named_pairs
+    m = votes.main_entities
+    item = n_pairs + m.item_codes  # region codes are the main entities' item codes
+    known_regions = {int(votes.pair_region[p]) for p in known}
+    for r in known_regions:
+        known[n_pairs + r] = 0
+    items = np.concatenate([votes.vote_pair, item])
+    anns = np.concatenate([votes.vote_annotator, m.annotator_codes])
+    said = np.concatenate([votes.vote_yes.astype(np.int64), np.zeros(len(item), dtype=np.int64)])
+    return items, anns, said, np.concatenate([np.ones(n_pairs), weights.astype(np.float64)])
 
 
 @dataclass(frozen=True)

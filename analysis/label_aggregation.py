@@ -9,7 +9,7 @@ import numpy as np
 
 from .errors import InvalidInputError
 from .long_labels import LongLabels
-from .reliability import Aggregation, Method, aggregate
+from .reliability import Aggregation, Method, Rate, aggregate, cell_rate
 
 
 def known_codes(labels: LongLabels, known: Mapping[str, str]) -> dict[int, int]:
@@ -24,6 +24,23 @@ def known_codes(labels: LongLabels, known: Mapping[str, str]) -> dict[int, int]:
             raise InvalidInputError(f"the known answer {answer!r} for item {item!r} is not a label anyone used; known answers must be among {list(labels.classes)}.")
         out[items[item]] = classes[answer]
     return out
+
+
+def accuracy_rate(agg: Aggregation, labels: LongLabels, annotator: int) -> Rate:
+    """How often one annotator gives the right label, with the (expected) judgments behind it and a 95% interval.
+
+    Dawid-Skene: expected right and wrong judgments under the posterior, with its prior's pseudo-counts
+    (MAP estimate, Beta posterior interval); majority vote: agreement with the winning label, uniform prior.
+    """
+    if agg.confusion_counts is not None and agg.confusion_prior is not None:
+        counts = agg.confusion_counts[annotator] if annotator < len(agg.confusion_counts) else np.zeros((1, 1))
+        right = float(np.trace(counts))
+        row = np.array([float(counts.sum()) - right, right])
+        p = agg.confusion_prior
+        return cell_rate(row, np.array([p.strength * (1 - p.accuracy), p.strength * p.accuracy]), 1)
+    mine = labels.annotator_codes == annotator
+    hits = float((agg.labels[labels.item_codes[mine]] == labels.label_codes[mine]).sum())
+    return cell_rate(np.array([float(mine.sum()) - hits, hits]), np.zeros(2), 1)
 
 
 def aggregate_labels(labels: LongLabels, *, method: Method, known: Mapping[str, str] | None = None, threshold: float = 0.0) -> tuple[Aggregation, dict[str, Any]]:
@@ -49,7 +66,9 @@ def aggregate_labels(labels: LongLabels, *, method: Method, known: Mapping[str, 
     ]
     annotators = []
     for k, name in enumerate(labels.annotators):
-        row: dict[str, Any] = {"annotator": name, "judgments": int(per_ann[k]), "accuracy": float(agg.annotator_accuracy[k])}
+        acc = accuracy_rate(agg, labels, k)
+        row: dict[str, Any] = {"annotator": name, "judgments": int(per_ann[k]), "accuracy": acc.estimate, "accuracy_n": acc.n,
+                               "accuracy_interval": [acc.low, acc.high]}
         if agg.confusion is not None:
             row["confusion"] = {t: {g: float(agg.confusion[k, ti, gi]) for gi, g in enumerate(labels.classes)} for ti, t in enumerate(labels.classes)}
         annotators.append(row)
@@ -57,6 +76,7 @@ def aggregate_labels(labels: LongLabels, *, method: Method, known: Mapping[str, 
         "method": agg.method,
         "classes": list(labels.classes),
         "prior": {c: float(p) for c, p in zip(labels.classes, agg.prior)},
+        "confusion_prior": {**agg.confusion_prior.to_dict(), "description": agg.confusion_prior.describe()} if agg.confusion_prior else None,
         "iterations": agg.iterations,
         "converged": agg.converged,
         "log_likelihood": agg.log_likelihood,

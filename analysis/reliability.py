@@ -25,8 +25,47 @@ IntArray = npt.NDArray[np.int64]
 
 
 @dataclass(frozen=True)
+class ConfusionPrior:
+    """The Dirichlet prior Dawid-Skene puts on what it learns, stated as pseudo-counts.
+
+    Each annotator's row of the confusion matrix for one true label starts with ``strength``
+    imaginary judgments, ``accuracy`` of them correct and the rest spread evenly over the other
+    labels; each class share starts with ``class_count`` imaginary items. The estimates are the
+    posterior mode (MAP) under Dirichlet(1 + pseudo-counts). ``strength=0, class_count=0`` is the
+    unsmoothed maximum-likelihood model of Dawid & Skene (1979).
+    """
+
+    strength: float = 2.0
+    accuracy: float = 0.7
+    class_count: float = 1.0
+
+    def describe(self) -> str:
+        if self.strength == 0 and self.class_count == 0:
+            return "no prior (maximum likelihood)"
+        return (f"Dirichlet prior: {self.strength:g} pseudo-judgments per annotator and true label, {self.accuracy:.0%} of them correct; "
+                f"{self.class_count:g} pseudo-item per class")
+
+    def to_dict(self) -> dict[str, float | str]:
+        return {"kind": "dirichlet", "strength": self.strength, "accuracy": self.accuracy, "class_count": self.class_count}
+
+    def pseudo_counts(self, k: int) -> FloatArray:
+        """(true, given) pseudo-counts of one confusion row set."""
+        off = self.strength * (1 - self.accuracy) / (k - 1)
+        out = np.full((k, k), off)
+        np.fill_diagonal(out, self.strength * self.accuracy)
+        return out
+
+
+NO_PRIOR = ConfusionPrior(0.0, 0.7, 0.0)
+
+
+@dataclass(frozen=True)
 class Aggregation:
-    """Posterior class probabilities per item and what the method learned about each annotator."""
+    """Posterior class probabilities per item and what the method learned about each annotator.
+
+    ``confusion_counts`` are the expected judgments behind each confusion cell (annotator, true
+    class, given label), without the prior's pseudo-counts: how much evidence each estimate rests on.
+    """
 
     method: Method
     posterior: FloatArray  # (items, classes), rows sum to 1
@@ -36,11 +75,58 @@ class Aggregation:
     log_likelihood: float | None  # marginal log-likelihood of the judgments; None for majority vote
     iterations: int
     converged: bool
+    confusion_counts: FloatArray | None = None  # (annotators, true class, given label) expected judgments
+    confusion_prior: ConfusionPrior | None = None  # None for majority vote
 
     @property
     def labels(self) -> IntArray:
         """Most probable class per item (ties go to the lowest code)."""
         return self.posterior.argmax(axis=1)
+
+
+@dataclass(frozen=True)
+class Rate:
+    """An estimated proportion with the evidence behind it: ``n`` (expected) items and a 95% interval."""
+
+    estimate: float
+    n: float
+    low: float
+    high: float
+
+    def __str__(self) -> str:
+        return f"{self.estimate:.3f} (n={self.n:.0f}, 95% {self.low:.2f} to {self.high:.2f})"
+
+    def to_dict(self) -> dict[str, float]:
+        return {"estimate": self.estimate, "n": self.n, "low": self.low, "high": self.high}
+
+
+def beta_interval(successes: float, trials: float, *, prior_successes: float = 1.0, prior_failures: float = 1.0,
+                  level: float = 0.95) -> tuple[float, float]:
+    """Equal-tailed interval of the Beta(prior_successes + k, prior_failures + n - k) posterior of a proportion.
+
+    With a Beta(1/2, 1/2) prior it is the Jeffreys interval (Brown, Cai & DasGupta, 2001).
+    """
+    from scipy.stats import beta
+
+    a = prior_successes + successes
+    b = prior_failures + max(trials - successes, 0.0)
+    tail = (1 - level) / 2
+    return float(beta.ppf(tail, a, b)), float(beta.ppf(1 - tail, a, b))
+
+
+def cell_rate(counts: FloatArray, pseudo: FloatArray, cell: int) -> Rate:
+    """The MAP estimate of one cell of a confusion row under Dirichlet(1 + pseudo), with its marginal Beta interval.
+
+    ``counts`` and ``pseudo`` are one row's (expected) judgments and pseudo-counts per given label.
+    """
+    n = float(counts.sum())
+    total = n + float(pseudo.sum())
+    k = float(counts[cell])
+    estimate = (k + float(pseudo[cell])) / total if total > 0 else float("nan")
+    low, high = beta_interval(k, n, prior_successes=1 + float(pseudo[cell]), prior_failures=1 + float(pseudo.sum() - pseudo[cell]))
+    if estimate == estimate:
+        low, high = min(low, estimate), max(high, estimate)
+    return Rate(estimate, n, low, high)
 
 
 def _check(items: npt.ArrayLike, annotators: npt.ArrayLike, labels: npt.ArrayLike, n_classes: int) -> tuple[IntArray, IntArray, IntArray]:
@@ -111,64 +197,93 @@ def dawid_skene(
     n_classes: int,
     one_coin: bool = False,
     known: Mapping[int, int] | None = None,
-    tol: float = 1e-6,
+    tol: float = 1e-8,
     max_iter: int = 1000,
-    smoothing: float = 0.01,
+    prior: ConfusionPrior = ConfusionPrior(),
+    item_weights: npt.ArrayLike | None = None,
 ) -> Aggregation:
-    """Dawid & Skene (1979) EM, from majority-vote shares until the log-likelihood gains less than ``tol``.
+    """Dawid & Skene (1979) EM with a Dirichlet prior, started from majority vote.
 
     The full model learns a confusion matrix per annotator; ``one_coin`` learns one accuracy per
     annotator (errors spread evenly over the other labels), which needs far fewer judgments per
-    person. ``known`` fixes check items to their known answer throughout. ``smoothing`` is a
-    pseudo-count per confusion cell (or per right/wrong count) so no label gets probability 0.
-    Iterations stop at ``max_iter``; ``converged`` says whether the tolerance was met.
+    person. ``known`` fixes check items to their known answer throughout.
+
+    ``prior`` (see :class:`ConfusionPrior`) keeps a label seen a few times from becoming a class
+    of its own: without it, a typo ("strok" once among many "stroke") can take a region from a
+    clear two-of-three majority, because the one annotator who typed it looks perfectly reliable
+    on it and the other two perfectly wrong. The start is majority vote's shares; each EM step
+    raises the log posterior, and iterations stop when it gains less than ``tol`` relative to its
+    size (or at ``max_iter``; ``converged`` says which). ``item_weights`` lets one item stand for
+    several identical ones (same judges, same labels), e.g. the many concepts nobody named in a region.
+
+    Reference: Dawid & Skene (1979), Applied Statistics 28(1):20-28; MAP-EM with Dirichlet priors
+    as in Raykar et al. (2010), JMLR 11:1297-1322 (section 2.6, from memory).
     """
     i, a, y = _check(items, annotators, labels, n_classes)
+    if prior.strength < 0 or prior.class_count < 0 or not 0 < prior.accuracy < 1:
+        raise InvalidInputError(f"the prior needs strength >= 0, class_count >= 0 and 0 < accuracy < 1; got {prior}.")
     k = n_classes
     n_items, n_ann = int(i.max()) + 1, int(a.max()) + 1
     fixed = _known_array(known, n_items, k)
     # S[(annotator, label), item] = number of such judgments; M-step and E-step are products with it.
     s = sparse.csr_matrix((np.ones(len(i)), (a * k + y, i)), shape=(n_ann * k, n_items))
     st = s.T.tocsr()
-    per_ann = np.bincount(a, minlength=n_ann).astype(np.float64)
+    w = np.ones(n_items) if item_weights is None else np.asarray(item_weights, dtype=np.float64)
+    if w.shape != (n_items,) or not np.all(np.isfinite(w)) or w.min() < 0:
+        raise InvalidInputError(f"item_weights must be {n_items} finite non-negative numbers, one per item.")
+    per_ann = np.bincount(a, weights=w[i], minlength=n_ann)
+    pseudo = prior.pseudo_counts(k) + 1e-10  # the floor stands in for crowd-kit's clipping when there is no prior
     post = _clamp(_normalise_rows(_votes(i, y, n_items, k)), fixed)
-    ll_old = -np.inf
+    obj_old = -np.inf
     converged = False
     it = 0
+    counts = np.zeros((n_ann, k, k))
     for it in range(1, max_iter + 1):
-        prior = post.mean(axis=0).clip(min=1e-12)
-        prior /= prior.sum()
+        weighted = post * w[:, None]
+        class_total = weighted.sum(axis=0) + prior.class_count
+        pi = class_total.clip(min=1e-12) / class_total.clip(min=1e-12).sum()
+        log_prior = prior.class_count * float(np.log(pi).sum())
+        counts = np.asarray(s @ weighted).reshape(n_ann, k, k).transpose(0, 2, 1)  # (ann, true, given) expected judgments
         if one_coin:
-            right = np.bincount(a, weights=post[i, y], minlength=n_ann)
-            p = (right + smoothing) / (per_ann + 2 * smoothing)
+            right = np.einsum("att->a", counts)
+            p = (right + prior.strength * prior.accuracy + 1e-10) / (per_ann + prior.strength + 2e-10)
             log_right, log_wrong = np.log(p), np.log((1 - p) / (k - 1))
-            log_post = np.log(prior) + np.bincount(i, weights=log_wrong[a], minlength=n_items)[:, None]
+            log_prior += float((prior.strength * prior.accuracy * log_right + prior.strength * (1 - prior.accuracy) * log_wrong).sum())
+            log_post = np.log(pi) + np.bincount(i, weights=log_wrong[a], minlength=n_items)[:, None]
             log_post += np.bincount(i * k + y, weights=(log_right - log_wrong)[a], minlength=n_items * k).reshape(n_items, k)
         else:
-            counts = np.asarray(s @ post).reshape(n_ann, k, k).transpose(0, 2, 1) + smoothing  # (ann, true, given)
-            confusion = counts / counts.sum(axis=2, keepdims=True)
-            log_conf = np.log(confusion).transpose(0, 2, 1).reshape(n_ann * k, k)  # rows (ann, given)
-            log_post = np.log(prior) + np.asarray(st @ log_conf)
+            smoothed = counts + pseudo
+            confusion = smoothed / smoothed.sum(axis=2, keepdims=True)
+            log_conf = np.log(confusion)
+            log_prior += float((pseudo * log_conf).sum())
+            log_post = np.log(pi) + np.asarray(st @ log_conf.transpose(0, 2, 1).reshape(n_ann * k, k))
         post, norm = _log_norm(log_post)
         post = _clamp(post, fixed)
-        ll = float(norm.sum())
-        if abs(ll - ll_old) < tol:
+        obj = float(norm @ w) + log_prior
+        if abs(obj - obj_old) <= tol * max(1.0, abs(obj)):
             converged = True
             break
-        ll_old = ll
+        obj_old = obj
+    ll = float(norm @ w)
     if one_coin:
         confusion = np.broadcast_to(((1 - p) / (k - 1))[:, None, None], (n_ann, k, k)).copy()
         confusion[:, np.arange(k), np.arange(k)] = p[:, None]
         accuracy = p
     else:
-        accuracy = np.einsum("k,akk->a", prior, confusion)
-    return Aggregation("one-coin" if one_coin else "dawid-skene", post, accuracy, confusion, prior, ll, it, converged)
+        accuracy = np.einsum("k,akk->a", pi, confusion)
+    return Aggregation("one-coin" if one_coin else "dawid-skene", post, accuracy, confusion, pi, ll, it, converged, counts, prior)
 
 
-def aggregate(items: npt.ArrayLike, annotators: npt.ArrayLike, labels: npt.ArrayLike, *, n_classes: int, method: Method, known: Mapping[int, int] | None = None, **options: float) -> Aggregation:
-    """Run the named method: ``majority``, ``dawid-skene`` (full confusion matrices) or ``one-coin``."""
+def aggregate(items: npt.ArrayLike, annotators: npt.ArrayLike, labels: npt.ArrayLike, *, n_classes: int, method: Method, known: Mapping[int, int] | None = None,
+              prior: ConfusionPrior = ConfusionPrior(), tol: float = 1e-8, max_iter: int = 1000, item_weights: npt.ArrayLike | None = None) -> Aggregation:
+    """Run the named method: ``majority``, ``dawid-skene`` (full confusion matrices) or ``one-coin``.
+
+    ``prior``, ``tol``, ``max_iter`` and ``item_weights`` go to :func:`dawid_skene`; majority vote has none
+    (and counts every item once).
+    """
     if method == "majority":
         return majority_vote(items, annotators, labels, n_classes=n_classes, known=known)
     if method in ("dawid-skene", "one-coin"):
-        return dawid_skene(items, annotators, labels, n_classes=n_classes, one_coin=method == "one-coin", known=known, **options)  # type: ignore[arg-type]
+        return dawid_skene(items, annotators, labels, n_classes=n_classes, one_coin=method == "one-coin", known=known, prior=prior, tol=tol, max_iter=max_iter,
+                           item_weights=item_weights)
     raise InvalidInputError(f"unknown aggregation method {method!r}; choose one of {', '.join(METHODS)}.")

@@ -318,8 +318,14 @@ def _aggregate(args: argparse.Namespace) -> int:
         return 0
     state = "converged" if summary["converged"] else "did NOT converge"
     print(f"{summary['method']}: {len(summary['items'])} items, {state} after {summary['iterations']} iterations")
+    if summary["confusion_prior"]:
+        print(f"smoothing: {summary['confusion_prior']['description']}")
     write_csv([["item", "label", "probability", "ratings"]]
               + [[it["item"], it["label"] or "", f"{it['probability']:.4f}", it["ratings"]] for it in summary["items"]])
+    print()
+    write_csv([["annotator", "judgments", "accuracy", "95% interval low", "95% interval high"]]
+              + [[a["annotator"], a["judgments"], f"{a['accuracy']:.3f}", f"{a['accuracy_interval'][0]:.3f}", f"{a['accuracy_interval'][1]:.3f}"]
+                 for a in summary["annotators"]])
     return 0
 
 

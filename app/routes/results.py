@@ -196,7 +196,8 @@ def agreement(request: Request, campaign_id: int, s: SessionDep, viewer: Reviewe
     c = campaigns.get_campaign(s, campaign_id)
     found = agreement_summary(s, c, cache=request.app.state.results_cache)
     progress = {p.name: p for p in campaigns.campaign_progress(s, c)[0]}
-    context = {"campaign": c, "report": found.report, "concepts": found.concepts, "reliability": found.reliability, "progress": progress}
+    context = {"campaign": c, "report": found.report, "concepts": found.concepts, "reliability": found.reliability, "progress": progress,
+               "reliability_note": found.reliability_note}
     return render(request, "agreement.html", context, viewer=viewer)
 
 

@@ -18,6 +18,7 @@ from sqlalchemy.orm import Session
 from analysis.agreement_report import AgreementReport, agreement_report
 from analysis.concept_table import TARGETS, ConceptTable, Target
 from analysis.concept_votes import (
+    AnnotatorRates,
     ConceptAgreement,
     PresenceVotes,
     estimate_concepts,
@@ -143,7 +144,8 @@ class AgreementSummary:
 
     report: AgreementReport
     concepts: list[ConceptAgreement]
-    reliability: dict[str, tuple[float, float]]  # annotator -> (sensitivity, specificity) from Dawid-Skene
+    reliability: dict[str, AnnotatorRates]  # annotator -> sensitivity and specificity from Dawid-Skene, with counts and intervals
+    reliability_note: str = ""  # the smoothing and convergence behind them
 
 
 def most_named(v: PresenceVotes, top: int) -> list[str]:
@@ -160,8 +162,9 @@ def _agreement(s: Session, c: CampaignInfo, *, top_concepts: int) -> AgreementSu
     # Alpha with its bootstrap interval costs the same for every concept: compute it only for those shown.
     concepts = presence_agreement(v, concepts=most_named(v, top_concepts), n_boot=200)
     ds = estimate_concepts(v, method="dawid-skene")
-    reliability = {name: (float(ds.sensitivity[k]), float(ds.specificity[k])) for k, name in enumerate(v.annotators)}
-    return AgreementSummary(report, concepts, reliability)
+    reliability = {r.annotator: r for r in ds.annotator_rates()}
+    note = f"{ds.prior.describe() if ds.prior else 'no smoothing'}; {'converged' if ds.converged else 'did not converge'} after {ds.iterations} iterations"
+    return AgreementSummary(report, concepts, reliability, note)
 
 
 def agreement_summary(s: Session, campaign: CampaignInfo | int, *, cache: ResultsCache | None = None, top_concepts: int = 40) -> AgreementSummary:

@@ -264,6 +264,10 @@ def test_agreement_and_synonym_editor(client: TestClient, campaign_id: int) -> N
     csrf = join(client, "ana", role="analyst")
     agreement = client.get(f"/campaigns/{campaign_id}/agreement")
     assert agreement.context["report"].alpha is not None and "Krippendorff" in agreement.text  # type: ignore[attr-defined]
+    # Sensitivity and specificity show the pairs they rest on and an interval, never a bare figure.
+    rates = agreement.context["reliability"]  # type: ignore[attr-defined]
+    assert rates and all(r.sensitivity.low <= r.sensitivity.estimate <= r.sensitivity.high for r in rates.values())
+    assert "(n=" in agreement.text and "Dirichlet prior" in agreement.text
     r = client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "Lids", "target": "cap"})
     page = client.get(f"/campaigns/{campaign_id}/synonyms")
     assert [(x.source, x.target) for x in page.context["rules"]] == [("lid", "cap")]  # type: ignore[attr-defined]
