@@ -317,15 +317,15 @@ def _aggregate(args: argparse.Namespace) -> int:
         print(json.dumps(summary, indent=2))
         return 0
     state = "converged" if summary["converged"] else "did NOT converge"
-    print(f"{summary['method']}: {len(summary['items'])} items, {state} after {summary['iterations']} iterations")
-    if summary["confusion_prior"]:
-        print(f"smoothing: {summary['confusion_prior']['description']}")
+    smoothing = f" ({summary['confusion_prior']['description']})" if summary["confusion_prior"] else ""
+    print(f"{summary['method']}: {len(summary['items'])} items, {state} after {summary['iterations']} iterations{smoothing}")
     write_csv([["item", "label", "probability", "ratings"]]
               + [[it["item"], it["label"] or "", f"{it['probability']:.4f}", it["ratings"]] for it in summary["items"]])
-    print()
-    write_csv([["annotator", "judgments", "accuracy", "95% interval low", "95% interval high"]]
-              + [[a["annotator"], a["judgments"], f"{a['accuracy']:.3f}", f"{a['accuracy_interval'][0]:.3f}", f"{a['accuracy_interval'][1]:.3f}"]
-                 for a in summary["annotators"]])
+    # Annotators go to stderr so that stdout stays one CSV table; --json has both.
+    print("annotator, judgments, accuracy (95% interval)", file=sys.stderr)
+    for a in summary["annotators"]:
+        low, high = a["accuracy_interval"]
+        print(f"{a['annotator']}, {a['judgments']}, {a['accuracy']:.3f} ({low:.2f} to {high:.2f})", file=sys.stderr)
     return 0
 
 

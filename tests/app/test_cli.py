@@ -105,3 +105,21 @@ def test_campaign_invite_and_checks_commands(project: Path, tmp_path: Path, caps
     with session_factory(engine)() as s:
         assert sorted(check_answers(s, 1)) == [1, 2]  # the bad file stored nothing
     engine.dispose()
+
+
+def test_aggregate_states_its_smoothing_and_each_annotators_interval(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # Two of three say "stroke" on every region; the third once types "strok": the majority keeps its region.
+    rows = ["item,annotator,label"] + [f"r{u},{a},stroke" for u in range(30) for a in ("x", "y", "z") if (u, a) != (7, "z")] + ["r7,z,strok"]
+    rows += [f"r{u},{a},loop" for u in range(30, 36) for a in ("x", "y", "z")]
+    (tmp_path / "labels.csv").write_text("\n".join(rows) + "\n")
+    assert main(["aggregate", str(tmp_path / "labels.csv")]) == 0
+    captured = capsys.readouterr()
+    first = captured.out.splitlines()[0]
+    assert "converged" in first and "NOT" not in first and "Dirichlet prior" in first
+    assert "r7,stroke," in captured.out
+    assert "accuracy (95% interval)" in captured.err and "z, 36," in captured.err
+    assert main(["aggregate", str(tmp_path / "labels.csv"), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["confusion_prior"]["strength"] > 0
+    z = next(a for a in out["annotators"] if a["annotator"] == "z")
+    assert z["accuracy_interval"][0] < z["accuracy"] < z["accuracy_interval"][1] and z["accuracy_n"] == pytest.approx(36)
