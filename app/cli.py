@@ -6,6 +6,7 @@ import argparse
 import csv
 import io
 import json
+import math
 import os
 import re
 import sqlite3
@@ -189,6 +190,8 @@ def _campaign(args: argparse.Namespace) -> int:
                 instructions = args.instructions.read_text(encoding="utf-8")
             except OSError as exc:
                 raise AppError(f"cannot read {args.instructions}: {exc}") from None
+        if not math.isfinite(args.lease_minutes):
+            raise AppError(f"--lease-minutes must be a number of minutes, e.g. 10; got {args.lease_minutes}.")
         classes = [c.strip() for c in args.classes.split(",") if c.strip()]
         cid = create_campaign(s, name=args.name, run_id=run_id, classes=classes, labels_per_region=args.per_region, instructions=instructions,
                               lease_seconds=int(args.lease_minutes * 60), check_every=args.check_every, method=args.method)

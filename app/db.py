@@ -79,6 +79,8 @@ def owner_only(path: Path) -> None:
 def explain_db_error(exc: BaseException, project_dir: Path) -> ProjectError | None:
     """Our error for a SQLite failure a user can act on (read-only, damaged, full disk, locked); None for others."""
     orig = exc.orig if isinstance(exc, DBAPIError) else exc
+    if isinstance(orig, UnicodeDecodeError):  # SQLite's own message about a broken schema can hold the broken bytes
+        orig = sqlite3.DatabaseError("database disk image is malformed: its schema holds bytes that are not text")
     if not isinstance(orig, sqlite3.Error):
         return None
     text = str(orig).lower()
@@ -107,7 +109,7 @@ def explained(project_dir: Path) -> Iterator[None]:
     """Turn SQLite failures a user can act on into our errors with what to do."""
     try:
         yield
-    except (DBAPIError, sqlite3.Error) as exc:
+    except (DBAPIError, sqlite3.Error, UnicodeDecodeError) as exc:
         found = explain_db_error(exc, project_dir)
         if found is None:
             raise
@@ -163,6 +165,7 @@ def make_engine(project_dir: Path, *, readonly: bool = False) -> Engine:
     @event.listens_for(engine, "connect")
     def _pragmas(dbapi_conn: Any, _record: Any) -> None:
         dbapi_conn.isolation_level = None  # we emit BEGIN ourselves
+        dbapi_conn.text_factory = _text
         cur = dbapi_conn.cursor()
         cur.execute("PRAGMA foreign_keys=ON")
         if not readonly:
@@ -185,6 +188,14 @@ def make_engine(project_dir: Path, *, readonly: bool = False) -> Engine:
         engine.dispose()
         raise
     return engine
+
+
+def _text(raw: bytes) -> str:
+    """Decode a text value; bytes that are not UTF-8 are damage to report, not a crash in some later page."""
+    try:
+        return raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise sqlite3.DatabaseError("database disk image is malformed: a text value is not UTF-8") from None
 
 
 def _check_intact(engine: Engine) -> None:

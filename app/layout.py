@@ -60,8 +60,13 @@ class ProjectLayout:
         return f"runs/{run_id}/outlines/{image_id}_{rank}.png"
 
     def path(self, rel: str) -> Path:
-        """The file a stored relative path names."""
-        return self.root / rel
+        """The file a stored relative path names, resolved; a path that leads outside the folder (absolute,
+        '..', a link) is refused, so a tampered row cannot make the app serve /etc/passwd."""
+        root = self.root.resolve()
+        found = (root / rel).resolve()
+        if not found.is_relative_to(root):
+            raise NotFoundError(f"the stored path {rel[:200]!r} leads outside the project folder; heedmap only serves files inside it.")
+        return found
 
     def existing(self, rel: str, *, what: str) -> Path:
         """The file a stored relative path names; NotFoundError naming ``what`` when it is missing."""

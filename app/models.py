@@ -173,6 +173,19 @@ class Label(Base):
     seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)
 
 
+class WithdrawnLabel(Base):
+    """A label its author undid; its ``client_id`` stays spent, so a late retry of that submit stores nothing."""
+
+    __tablename__ = "withdrawn_labels"
+    id: Mapped[int] = mapped_column(primary_key=True)
+    client_id: Mapped[str] = mapped_column(String, unique=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
+    person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
+    entities: Mapped[list[list[object]]] = mapped_column(JSON)
+    withdrawn_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+
+
 class Skip(Base):
     """A region a person passed over; it is not offered to them again."""
 

@@ -209,6 +209,14 @@ def _invite_viewer(s: Session, invite: Invite, now: datetime) -> Viewer:
     return Viewer(person.id, person.name, person.role, invite.id, invite.campaign_id)
 
 
+def check_invite(s: Session, token: str, *, now: datetime | None = None) -> Viewer:
+    """Whom a live invite token signs in as; reads only. Errors say whether it is unknown, revoked or expired."""
+    invite = s.scalar(select(Invite).where(Invite.token_hash == _hash(token)))
+    if invite is None:
+        raise ForbiddenError("this invite link is not valid; check that it was copied whole, or ask for a new one.")
+    return _invite_viewer(s, invite, now or utcnow())
+
+
 def redeem_invite(s: Session, token: str, *, now: datetime | None = None) -> Viewer:
     """Check an invite token and record its use; errors say whether it is unknown, revoked or expired."""
     now = now or utcnow()

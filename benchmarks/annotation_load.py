@@ -69,7 +69,9 @@ async def annotator(base: str, token: str, cid: int, start: asyncio.Event, secon
                     outcome: Counter[str], seed: int) -> None:
     rng = random.Random(seed)
     async with httpx.AsyncClient(base_url=base, timeout=60, follow_redirects=True) as client:
-        r = await client.get(f"/join/{token}")
+        page = await client.get(f"/join/{token}")  # the invite page, then its sign-in button
+        join = page.text.split('name="join" value="', 1)[1].split('"', 1)[0] if page.status_code == 200 else ""
+        r = await client.post(f"/join/{token}", data={"join": join})
         cookie = client.cookies.get(COOKIE)
         if r.status_code != 200 or cookie is None:
             outcome["sign-in failed"] += 1
@@ -83,7 +85,7 @@ async def annotator(base: str, token: str, cid: int, start: asyncio.Event, secon
         deadline = time.perf_counter() + seconds
         while time.perf_counter() < deadline:
             t = time.perf_counter()
-            r = await client.get(f"/api/campaigns/{cid}/tasks/next")
+            r = await client.post(f"/api/campaigns/{cid}/tasks/next", headers=headers)
             timings["next task"].append(time.perf_counter() - t)
             task = r.json().get("task") if r.status_code == 200 else None
             if task is None:

@@ -2,10 +2,10 @@
 
 from __future__ import annotations
 
-from .assignment import Task, lease_tasks
+from .assignment import Task, held_tasks, lease_tasks
 from .checks import check_answers, examples, set_check_answer, set_example
 from .judgments import judgments, label_counts, raw_labels, region_classes
-from .labelling import save_label, skip_region, undo_last
+from .labelling import region_visible_to, save_label, skip_region, undo_last
 from .progress import (
     AnnotatorProgress,
     ClassProgress,
@@ -37,6 +37,8 @@ __all__ = [
     "RuleRow",
     "Task",
     "add_synonym_rule",
+    "held_tasks",
+    "region_visible_to",
     "campaign_progress",
     "check_answers",
     "create_campaign",

@@ -110,3 +110,16 @@ def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
         )
     }
     return [Task(r, rows[r][1], rows[r][2], float(rows[r][3]), expires) for r in order]
+
+
+def held_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: datetime | None = None) -> list[Task]:
+    """The regions leased to the person now, oldest first; reads only (a page shown on GET takes no lease)."""
+    now = now or utcnow()
+    if campaign.closed_at is not None:
+        return []
+    rows = s.execute(
+        select(Lease.region_id, Prediction.image_id, Prediction.predicted, Prediction.confidence, Lease.expires_at)
+        .join(RegionRow, RegionRow.id == Lease.region_id).join(Prediction, Prediction.id == RegionRow.prediction_id)
+        .where(Lease.campaign_id == campaign.id, Lease.person_id == person_id, Lease.expires_at > now).order_by(Lease.id)
+    ).all()
+    return [Task(r, i, p, float(c), e) for r, i, p, c, e in rows]

@@ -10,8 +10,8 @@ from sqlalchemy.orm import Session
 
 from analysis.concepts import format_label_text
 
-from ..errors import ConflictError, NotFoundError
-from ..models import CampaignRegion, Label, Lease, Skip, utcnow
+from ..errors import ConflictError, ForbiddenError, NotFoundError
+from ..models import CampaignRegion, Label, Lease, Skip, WithdrawnLabel, utcnow
 from .records import CampaignInfo, Entities
 
 
@@ -22,9 +22,27 @@ def campaign_region(s: Session, campaign_id: int, region_id: int) -> CampaignReg
     return cr
 
 
+def region_visible_to(s: Session, *, person_id: int, campaign_id: int | None, region_id: int) -> bool:
+    """Whether an annotator may see a region: handed to them, labelled by them, or an example of a campaign they work in
+    (``campaign_id``: the one campaign their invite ties them to, None for any)."""
+    queries = [
+        select(Lease.id).where(Lease.person_id == person_id, Lease.region_id == region_id),
+        select(Label.id).where(Label.person_id == person_id, Label.region_id == region_id),
+        select(CampaignRegion.id).where(CampaignRegion.region_id == region_id, CampaignRegion.example_answer.is_not(None)),
+    ]
+    if campaign_id is not None:
+        queries = [queries[0].where(Lease.campaign_id == campaign_id), queries[1].where(Label.campaign_id == campaign_id),
+                   queries[2].where(CampaignRegion.campaign_id == campaign_id)]
+    return any(s.scalar(q.limit(1)) is not None for q in queries)
+
+
+def _as_stored(entities: list[list[object]] | Entities) -> tuple[tuple[str, tuple[str, ...]], ...]:
+    return tuple((str(e[0]), tuple(str(a) for a in e[1])) for e in entities)  # type: ignore[union-attr]
+
+
 def save_label(
     s: Session, *, campaign: CampaignInfo, region_id: int, person_id: int, entities: Entities, unsure: bool, client_id: str,
-    seconds_spent: float | None, now: datetime | None = None,
+    seconds_spent: float | None, now: datetime | None = None, require_lease: bool = False,
 ) -> bool:
     """Store one label; False when this ``client_id`` was stored before (a retry), storing nothing.
 
@@ -33,11 +51,18 @@ def save_label(
     """
     conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
     now = now or utcnow()
-    found = conn.execute(select(Label.person_id, Label.region_id).where(Label.client_id == client_id)).first()
+    found = conn.execute(select(Label.person_id, Label.region_id, Label.entities, Label.unsure).where(Label.client_id == client_id)).first()
     if found is not None:
-        if tuple(found) != (person_id, region_id):
+        if (found.person_id, found.region_id) != (person_id, region_id):
             raise ConflictError("this submission id was used for another label; reload the page to get a fresh form.")
-        return False
+        stored = _as_stored(found.entities or [])
+        if stored != _as_stored(entities) or bool(found.unsure) != unsure:
+            text = format_label_text([(e, list(a)) for e, a in stored]) or "nothing recognisable"
+            raise ConflictError(f"this submission was stored already with other content: region {region_id}: {text!r}"
+                                f"{' (not sure)' if found.unsure else ''}. To change it, undo it and label again.")
+        return False  # the same submit again (a retry): stored once
+    if conn.scalar(select(WithdrawnLabel.id).where(WithdrawnLabel.client_id == client_id)) is not None:
+        raise ConflictError("this submission was undone, and a submission id stays used; reload the page to label the region again.")
     if campaign.closed_at is not None:
         raise ConflictError(f"campaign {campaign.name!r} is closed; labels are no longer taken.")
     here = (CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
@@ -49,6 +74,9 @@ def save_label(
         raise ConflictError(f"you have labelled region {region_id} already; undo your last label to change it.")
     lease_here = (Lease.campaign_id == campaign.id, Lease.region_id == region_id)
     mine = conn.scalar(select(Lease.expires_at).where(*lease_here, Lease.person_id == person_id))
+    if require_lease and mine is None:
+        # An annotator labels what was handed to them; an ended hold still counts while its place is free (below).
+        raise ForbiddenError(f"region {region_id} was not handed to you in campaign {campaign.name!r}; label the region your page shows.")
     if not is_check:
         k = campaign.labels_per_region
         if n_labels >= k:
@@ -89,6 +117,8 @@ def undo_last(s: Session, *, campaign: CampaignInfo, person_id: int, now: dateti
         return None
     text = format_label_text([(str(e[0]), [str(a) for a in e[1]]) for e in last.entities])  # type: ignore[index, union-attr]
     region_id = last.region_id
+    s.add(WithdrawnLabel(client_id=last.client_id, campaign_id=last.campaign_id, region_id=region_id, person_id=person_id, entities=last.entities,
+                         withdrawn_at=now))
     s.delete(last)
     s.execute(update(CampaignRegion).where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
               .values(n_labels=CampaignRegion.n_labels - 1))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from typing import Annotated
 
 from fastapi import Form, Request
@@ -74,7 +75,10 @@ def create_invite(
 ) -> Response:
     """Make an invite link; it is shown once, on the page that answers this form."""
     try:
-        cid = int(campaign_id) if campaign_id.strip() else None
+        raw = campaign_id.strip()
+        if raw and not re.fullmatch(r"[0-9]{1,18}", raw):
+            raise ValueError(raw)
+        cid = int(raw) if raw else None
         if cid is not None:
             campaigns.get_campaign(s, cid)
         _, token = people.create_invite(s, name=name, role=role, campaign_id=cid, days=days, note=note)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import unicodedata
 import uuid
 from typing import Annotated
 from urllib.parse import urlencode
@@ -103,22 +104,60 @@ def parse_entities(text: str, nothing: bool) -> list[tuple[str, list[str]]]:
     return entities
 
 
+_SEPARATORS = frozenset(";:,\n\r")
+
+
+def _word(value: str, where: str) -> str:
+    """One entity or attribute as sent, spaces tidied; characters that separate words in typed labels are refused, not split on."""
+    raw = unicodedata.normalize("NFKC", value)
+    bad = sorted({ch for ch in raw if ch in _SEPARATORS or unicodedata.category(ch).startswith("C")})
+    word = " ".join(raw.split())
+    if bad:
+        raise InvalidRequestError(f"{where} is {value[:60]!r}, which holds {', '.join(repr(c) for c in bad)}; send one word or phrase per field "
+                                  "(each thing its own entity, each attribute its own list item).")
+    if not word:
+        raise InvalidRequestError(f"{where} is empty; name the thing, or leave the field out.")
+    if len(word) > 60:
+        raise InvalidRequestError(f"{where} is longer than 60 characters; shorten it.")
+    return word
+
+
+def structured_entities(body: LabelCreate) -> list[tuple[str, list[str]]]:
+    """The entities of a JSON label exactly as sent (one per item), after checking their characters."""
+    entities = [(_word(e.entity, f"entities[{i}].entity"), [_word(a, f"entities[{i}].attributes[{j}]") for j, a in enumerate(e.attributes)])
+                for i, e in enumerate(body.entities)]
+    if not entities and not body.nothing_recognisable:
+        raise InvalidRequestError("name at least one thing in entities, or set nothing_recognisable.")
+    if entities and body.nothing_recognisable:
+        raise InvalidRequestError("a region with named things cannot also be nothing recognisable; choose one.")
+    return entities
+
+
 def _page(request: Request, s: Session, viewer: Viewer, c: CampaignInfo, *, typed: str = "", unsure: bool = False, error: str = "",
-          notice: str = "", status_code: int = 200) -> Response:
-    tasks = campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)
+          notice: str = "", status_code: int = 200, lease: bool = True, offer: bool = True) -> Response:
+    """The labelling page; ``lease`` (POST answers only) hands out new regions, a GET shows those already held."""
+    tasks = (campaigns.lease_tasks if lease else campaigns.held_tasks)(s, campaign=c, person_id=viewer.person_id)
     done, total = campaigns.person_progress(s, c, viewer.person_id)
     context = {
         "campaign": c, "task": public(tasks[0]) if tasks else None, "upcoming": public(tasks[1]) if len(tasks) > 1 else None,
         "done": done, "total": total, "client_id": uuid.uuid4().hex, "typed": typed, "unsure": unsure, "error": error,
         "notice": notice, "attribute_kinds": ATTRIBUTE_KINDS, "examples": campaigns.examples(s, c.id),
+        "may_start": offer and not tasks and c.closed_at is None and done < total,
     }
     return render(request, "annotate.html", context, viewer=viewer, status_code=status_code)
 
 
 @router.get("/label")
-def label_page(request: Request, campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, text: str = "", notice: str = "") -> Response:
-    """One region at a time, keyboard first."""
-    return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), typed=text[:1000], notice=notice[:200])
+def label_page(request: Request, campaign_id: int, s: SessionDep, viewer: AnnotatorDep, text: str = "", notice: str = "", empty: bool = False) -> Response:
+    """One region at a time, keyboard first; shows the region held for you (taking one is a POST to /next)."""
+    return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), typed=text[:1000], notice=notice[:200], lease=False, offer=not empty)
+
+
+@router.post("/next")
+def take_next(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Response:
+    """Have the next region handed to you, then show it."""
+    got = campaigns.lease_tasks(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
+    return RedirectResponse(f"/campaigns/{campaign_id}/label" + ("" if got else "?empty=1"), status_code=303)
 
 
 @router.post("/label")
@@ -139,18 +178,23 @@ def submit_label(
     try:
         entities = parse_entities(labels, bool(nothing))
         campaigns.save_label(s, campaign=c, region_id=region_id, person_id=viewer.person_id, entities=entities, unsure=bool(unsure),
-                             client_id=client_id, seconds_spent=seconds_spent)
+                             client_id=client_id, seconds_spent=seconds_spent, require_lease=True)
     except InvalidRequestError as exc:
         return _page(request, s, viewer, c, typed=labels, unsure=bool(unsure), error=exc.message, status_code=422)
     except ConflictError as exc:
+        s.rollback()
+        campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)
         return RedirectResponse(f"/campaigns/{campaign_id}/label?{urlencode({'notice': exc.message})}", status_code=303)
+    campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)  # the next region is ready when the page shows
     return RedirectResponse(f"/campaigns/{campaign_id}/label", status_code=303)
 
 
 @router.post("/skip")
 def skip_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, region_id: Annotated[int, Form(ge=0, le=MAX_ID)]) -> Response:
     """Pass over a region and show the next."""
-    campaigns.skip_region(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id)
+    c = campaign_for(s, viewer, campaign_id)
+    campaigns.skip_region(s, campaign=c, region_id=region_id, person_id=viewer.person_id)
+    campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)
     return RedirectResponse(f"/campaigns/{campaign_id}/label", status_code=303)
 
 
@@ -165,7 +209,7 @@ def undo_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Res
 # --- JSON ------------------------------------------------------------------------------------------
 
 
-@api.get("/tasks/next")
+@api.post("/tasks/next")
 def next_task(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> NextTask:
     """Your current region (leased to you) and the one after; null task when none is left."""
     c = campaign_for(s, viewer, campaign_id)
@@ -177,10 +221,10 @@ def next_task(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Nex
 @api.post("/regions/{region_id}/labels", status_code=201)
 def create_label(campaign_id: int, region_id: int, body: LabelCreate, s: WriteSessionDep, viewer: AnnotatorDep) -> LabelResult:
     """Store your label of a region; a retried client_id stores nothing twice."""
-    text = "; ".join(f"{e.entity}: {', '.join(e.attributes)}" for e in body.entities)
-    entities = parse_entities(text, body.nothing_recognisable)
+    entities = structured_entities(body)
     stored = campaigns.save_label(s, campaign=campaign_for(s, viewer, campaign_id), region_id=region_id, person_id=viewer.person_id,
-                                  entities=entities, unsure=body.unsure, client_id=body.client_id, seconds_spent=body.seconds_spent)
+                                  entities=entities, unsure=body.unsure, client_id=body.client_id, seconds_spent=body.seconds_spent,
+                                  require_lease=True)
     return LabelResult(stored=stored, region_id=region_id)
 
 

@@ -12,11 +12,14 @@ from analysis.errors import ImageInputError
 from analysis.images import read_rgb, thumbnail_png
 from analysis.regions import Region, saliency_overlay
 
-from .. import store
-from ..deps import ReviewerDep, SessionDep, SettingsDep, guarded_router, require_viewer
+from sqlalchemy.orm import Session
+
+from .. import campaigns, store
+from ..deps import ReviewerDep, SessionDep, SettingsDep, ViewerDep, guarded_router, require_viewer
 from ..errors import NotFoundError
 from ..layout import ProjectLayout
 from ..models import ImageRow
+from ..people import Viewer
 
 router = guarded_router(require_viewer, prefix="/api")
 routers = (router,)
@@ -27,22 +30,30 @@ def _project_file(settings: SettingsDep, rel: str, region_id: int) -> Path:
     return ProjectLayout(Path(settings.project_dir)).existing(rel, what=f"an image file of region {region_id}")
 
 
+def _files(s: Session, viewer: Viewer, region_id: int) -> store.RegionFiles:
+    """The region's files, if this person may see it: reviewers and up see every region; an annotator
+    only what their campaigns handed them (or show as examples)."""
+    if not viewer.can("reviewer") and not campaigns.region_visible_to(s, person_id=viewer.person_id, campaign_id=viewer.campaign_id, region_id=region_id):
+        raise NotFoundError(f"region {region_id} is not one of the regions handed to you.")
+    return store.region_files(s, region_id)
+
+
 @router.get("/regions/{region_id}/crop.png")
-def region_crop(region_id: int, s: SessionDep, settings: SettingsDep) -> FileResponse:
+def region_crop(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse:
     """The region's crop."""
-    return FileResponse(_project_file(settings, store.region_files(s, region_id).crop, region_id), media_type="image/png", headers=_CACHE)
+    return FileResponse(_project_file(settings, _files(s, viewer, region_id).crop, region_id), media_type="image/png", headers=_CACHE)
 
 
 @router.get("/regions/{region_id}/outline.png")
-def region_outline(region_id: int, s: SessionDep, settings: SettingsDep) -> FileResponse:
+def region_outline(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse:
     """The full image with the region outlined."""
-    return FileResponse(_project_file(settings, store.region_files(s, region_id).outline, region_id), media_type="image/png", headers=_CACHE)
+    return FileResponse(_project_file(settings, _files(s, viewer, region_id).outline, region_id), media_type="image/png", headers=_CACHE)
 
 
 @router.get("/regions/{region_id}/overlay.png")
-def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep) -> Response:
+def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> Response:
     """The full image with its saliency map as heat and the region outlined."""
-    files = store.region_files(s, region_id)
+    files = _files(s, viewer, region_id)
     saliency = np.load(_project_file(settings, files.saliency_map, region_id)).astype(np.float32)
     try:
         image = read_rgb(Path(files.image_path))

@@ -2,6 +2,7 @@ from __future__ import annotations
 
 import uuid
 from collections.abc import Iterator
+from typing import Any
 from datetime import datetime
 from pathlib import Path
 
@@ -44,9 +45,27 @@ def invite(client: TestClient, name: str, role: str = "annotator", campaign: int
 def join(client: TestClient, name: str, role: str = "annotator", campaign: int | None = None) -> str:
     """Sign the client in as ``name`` through an invite link; returns the session's anti-forgery token."""
     client.cookies.clear()
-    r = client.get(f"/join/{invite(client, name, role, campaign)}", follow_redirects=False)
+    token = invite(client, name, role, campaign)
+    page = client.get(f"/join/{token}")
+    assert page.status_code == 200, page.text
+    r = client.post(f"/join/{token}", data={"join": page.context["join_token"]}, follow_redirects=False)  # type: ignore[attr-defined]
     assert r.status_code == 303, r.text
+    return csrf_of(client)
+
+
+def csrf_of(client: TestClient) -> str:
+    """The anti-forgery token of the client's current session."""
     return csrf_token(client.app.state.key, client.cookies[COOKIE])  # type: ignore[attr-defined]
+
+
+def start(client: TestClient, campaign_id: int) -> Any:
+    """Have the next region handed out (a POST) and return the labelling page that shows it."""
+    return client.post(f"/campaigns/{campaign_id}/next", data={"csrf": csrf_of(client)})
+
+
+def next_task(client: TestClient, campaign_id: int) -> Any:
+    """POST /api/campaigns/N/tasks/next as the signed-in client; the response."""
+    return client.post(f"/api/campaigns/{campaign_id}/tasks/next", headers={"X-CSRF-Token": csrf_of(client)})
 
 
 def label_some(project: Path, campaign_id: int) -> None:

@@ -12,7 +12,7 @@ from fastapi.testclient import TestClient
 
 from app.routes import admin, auth, labelling, pages, regions, results
 
-from .conftest import join
+from .conftest import join, next_task
 
 BAD_PATH_VALUES = ("0", "abc", "99999999999999999999")
 BAD_QUERIES = ({}, {"target": "nonsense", "max_len": "0", "min_support": "7", "threshold": "-3", "a": "x" * 300, "b": "", "q": "((("},
@@ -53,7 +53,7 @@ def test_no_route_answers_500_to_bad_input(client: TestClient, campaign_id: int,
     if labelled:
         csrf = join(client, "lab")
         for _ in range(6):
-            nxt = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]
+            nxt = next_task(client, campaign_id).json()["task"]
             if nxt is None:
                 break
             body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]}

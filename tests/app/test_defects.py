@@ -12,12 +12,12 @@ from app import campaigns
 from app.db import make_engine, session_factory, write_session
 from app.errors import InvalidRequestError
 
-from .conftest import join
+from .conftest import join, next_task
 
 
 def test_campaign_whose_only_label_is_not_sure_answers_without_a_server_error(client: TestClient, campaign_id: int) -> None:
     csrf = join(client, "una")
-    nxt = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]
+    nxt = next_task(client, campaign_id).json()["task"]
     body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap"}], "unsure": True}
     r = client.post(f"/api/campaigns/{campaign_id}/regions/{nxt['region_id']}/labels", json=body, headers={"X-CSRF-Token": csrf})
     assert r.status_code == 201

@@ -14,7 +14,7 @@ from app.main import create_app
 from app.security import KIB, body_limit
 from app.settings import Settings
 
-from .conftest import join
+from .conftest import join, next_task
 
 
 def _raw_post(app: Any, path: str, *, chunks: int, chunk: bytes, cookie: str | None = None, length: int | None = None) -> tuple[int, int]:
@@ -90,7 +90,7 @@ def test_api_description_is_off_unless_asked_for(project: Path, client: TestClie
 
 def test_a_signed_in_write_within_bounds_still_works(client: TestClient, campaign_id: int) -> None:
     csrf = join(client, "bo", campaign=campaign_id)
-    rid = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"]
+    rid = next_task(client, campaign_id).json()["task"]["region_id"]
     body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]}
     r = client.post(f"/api/campaigns/{campaign_id}/regions/{rid}/labels", json=body, headers={"X-CSRF-Token": csrf})
     assert r.status_code == 201 and r.json()["stored"] is True

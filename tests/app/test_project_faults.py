@@ -18,7 +18,7 @@ from app.main import create_app
 from app.models import Label
 from app.settings import Settings
 
-from .conftest import join, label_some
+from .conftest import join, label_some, next_task
 
 
 @pytest.mark.parametrize("argv", [
@@ -82,7 +82,7 @@ def test_a_damaged_database_is_found_at_start_with_what_to_do(project: Path, cam
 
 def test_a_full_disk_answers_with_what_happened_and_stores_nothing(client: TestClient, campaign_id: int) -> None:
     csrf = join(client, "ann", campaign=campaign_id)
-    rid = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"]
+    rid = next_task(client, campaign_id).json()["task"]["region_id"]
 
     def full(conn, cursor, statement, *args):  # type: ignore[no-untyped-def]
         if statement.lstrip().upper().startswith("INSERT INTO LABELS"):

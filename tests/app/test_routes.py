@@ -13,7 +13,7 @@ from app.deps import COOKIE
 from app.models import Invite, Label, utcnow
 from app.people import revoke_invite
 
-from .conftest import invite, join
+from .conftest import invite, join, next_task, start
 
 
 def _label_count(client: TestClient) -> int:
@@ -22,17 +22,19 @@ def _label_count(client: TestClient) -> int:
 
 
 def _post_label(client: TestClient, cid: int, csrf: str, text: str, **extra: str) -> Any:
-    page = client.get(f"/campaigns/{cid}/label")
+    page = start(client, cid)
     data = {"csrf": csrf, "region_id": page.context["task"].region_id, "client_id": page.context["client_id"], "labels": text, **extra}  # type: ignore[attr-defined]
     return page, client.post(f"/campaigns/{cid}/label", data=data)
 
 
 def test_invite_link_signs_in_and_label_page_saves_and_moves_on(client: TestClient, campaign_id: int) -> None:
     token = invite(client, "ana", campaign=campaign_id)
-    r = client.get(f"/join/{token}", follow_redirects=False)
+    shown = client.get(f"/join/{token}", follow_redirects=False)  # opening the link only asks
+    assert shown.status_code == 200 and shown.template.name == "join.html" and "ana" in shown.text  # type: ignore[attr-defined]
+    r = client.post(f"/join/{token}", data={"join": shown.context["join_token"]}, follow_redirects=False)  # type: ignore[attr-defined]
     assert r.status_code == 303 and r.headers["location"] == f"/campaigns/{campaign_id}/label"
     csrf = join(client, "ana", campaign=campaign_id)
-    page = client.get(f"/campaigns/{campaign_id}/label")
+    page = start(client, campaign_id)
     assert page.template.name == "annotate.html" and page.context["done"] == 0  # type: ignore[attr-defined]
     assert "Name the &lt;b&gt;parts&lt;/b&gt;." in page.text  # instructions are text, escaped
     first, client_id = page.context["task"].region_id, page.context["client_id"]  # type: ignore[attr-defined]
@@ -73,7 +75,7 @@ def test_labels_stay_text_everywhere(client: TestClient, campaign_id: int) -> No
 
 def test_forged_requests_are_refused_and_store_nothing(client: TestClient, campaign_id: int) -> None:
     csrf = join(client, "dd")
-    page = client.get(f"/campaigns/{campaign_id}/label")
+    page = start(client, campaign_id)
     data = {"region_id": page.context["task"].region_id, "client_id": uuid.uuid4().hex, "labels": "cap"}  # type: ignore[attr-defined]
     for bad in ({}, {"csrf": "0" * 40}):
         r = client.post(f"/campaigns/{campaign_id}/label", data={**data, **bad})
@@ -109,7 +111,7 @@ def test_expired_and_revoked_invites_are_refused(client: TestClient, campaign_id
 
 def test_roles_gate_the_pages(client: TestClient, campaign_id: int) -> None:
     assert client.get(f"/campaigns/{campaign_id}/label").status_code == 401
-    assert client.get("/api/campaigns/1/tasks/next").json()["code"] == "sign_in_required"
+    assert client.post("/api/campaigns/1/tasks/next").json()["code"] == "sign_in_required"
     join(client, "hal", campaign=campaign_id)
     for url in ("/admin", f"/campaigns/{campaign_id}/results", f"/campaigns/{campaign_id}/agreement", f"/admin/campaigns/{campaign_id}/labels.csv"):
         assert client.get(url).status_code == 403, url
@@ -123,7 +125,7 @@ def test_roles_gate_the_pages(client: TestClient, campaign_id: int) -> None:
 def test_json_api_next_label_retry_skip_undo(client: TestClient, campaign_id: int) -> None:
     csrf = join(client, "eve")
     h = {"X-CSRF-Token": csrf}
-    nxt = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()
+    nxt = next_task(client, campaign_id).json()
     rid = nxt["task"]["region_id"]
     for key in ("crop_url", "outline_url", "overlay_url"):
         r = client.get(nxt["task"][key])
@@ -134,12 +136,12 @@ def test_json_api_next_label_retry_skip_undo(client: TestClient, campaign_id: in
     assert client.post(url, json=body, headers=h).json() == {"stored": False, "region_id": rid}
     dup = client.post(url, json={**body, "client_id": uuid.uuid4().hex}, headers=h)
     assert dup.status_code == 409 and dup.json()["code"] == "conflict" and "undo" in dup.json()["message"]
-    skipped = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"]
+    skipped = next_task(client, campaign_id).json()["task"]["region_id"]
     assert client.post(f"/api/campaigns/{campaign_id}/regions/{skipped}/skip", headers=h).status_code == 204
-    assert client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"] not in (rid, skipped)
+    assert next_task(client, campaign_id).json()["task"]["region_id"] not in (rid, skipped)
     undone = client.post(f"/api/campaigns/{campaign_id}/undo", headers=h).json()
     assert undone == {"region_id": rid, "text": "Cap: red"}
-    assert client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]["region_id"] == rid
+    assert next_task(client, campaign_id).json()["task"]["region_id"] == rid
     vocab = client.get(f"/api/campaigns/{campaign_id}/vocabulary").json()
     assert "red" in vocab["attributes"] and "torn" in vocab["attributes"]
 
@@ -149,7 +151,7 @@ def test_errors_share_one_json_shape(client: TestClient, campaign_id: int) -> No
     h = {"X-CSRF-Token": csrf}
     responses = [
         client.get("/api/regions/99999/crop.png"),
-        client.get("/api/campaigns/999/tasks/next"),
+        next_task(client, 999),
         client.post(f"/api/campaigns/{campaign_id}/regions/1/labels", json={"entities": []}, headers=h),
         client.post(f"/api/campaigns/{campaign_id}/regions/1/labels", json={"client_id": uuid.uuid4().hex, "entities": []}, headers=h),
         client.post(f"/api/campaigns/{campaign_id}/regions/99999/labels", json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap"}]}, headers=h),
@@ -157,7 +159,7 @@ def test_errors_share_one_json_shape(client: TestClient, campaign_id: int) -> No
     assert [r.status_code for r in responses] == [404, 404, 422, 422, 404]
     for r in responses:
         assert set(r.json()) == {"message", "code", "status"} and r.json()["status"] == r.status_code
-    assert "nothing recognisable" in responses[3].json()["message"]
+    assert "nothing_recognisable" in responses[3].json()["message"]
 
 
 def test_admin_makes_campaigns_invites_and_check_items(client: TestClient, campaign_id: int) -> None:
@@ -190,7 +192,7 @@ def _label_everything(client: TestClient, campaign_id: int) -> None:
     for who in ("p", "q"):
         csrf = join(client, who)
         h = {"X-CSRF-Token": csrf}
-        while (nxt := client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]) is not None:
+        while (nxt := next_task(client, campaign_id).json()["task"]) is not None:
             if nxt["region_id"] % 2:
                 entities = [{"entity": "tag"}] if nxt["predicted"] == "can" else [{"entity": "=SUM(A1)"}, {"entity": "rim"}]
             else:

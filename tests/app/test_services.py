@@ -10,13 +10,13 @@ from analysis.concept_votes import presence_agreement
 from app.campaigns import get_campaign
 from app.services.campaign_analysis import ResultsCache, agreement_summary, campaign_results, votes
 
-from .conftest import join
+from .conftest import join, next_task
 
 
 def _label(client: TestClient, campaign_id: int, who: str, n: int) -> None:
     csrf = join(client, who)
     for _ in range(n):
-        nxt = client.get(f"/api/campaigns/{campaign_id}/tasks/next").json()["task"]
+        nxt = next_task(client, campaign_id).json()["task"]
         if nxt is None:
             return
         entities = [{"entity": "cap", "attributes": ["red"]}] if nxt["region_id"] % 2 else [{"entity": "tag"}, {"entity": who}]

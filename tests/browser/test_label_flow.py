@@ -72,6 +72,8 @@ def test_invite_link_then_keyboard_labelling_suggestions_and_undo(served: tuple[
         page = browser.new_page()
         page.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
         page.goto(f"{url}/join/{token}")
+        page.click("[data-join-confirm]")  # opening the link asks; the button signs in
+        page.click("[data-start]")  # showing the page takes nothing; the button hands out a region
         page.wait_for_selector("body[data-ready]")
         assert page.locator("[data-crop]").evaluate("img => img.naturalWidth") > 0
 
