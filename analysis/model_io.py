@@ -101,6 +101,14 @@ class _Logits(nn.Module):
         return self
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if isinstance(self.inner, torch.jit.ScriptModule) and torch.is_inference_mode_enabled():
+            # TorchScript keeps tensors made on its first runs; made in inference mode, they would
+            # break every later Grad-CAM pass on this model. Plain no-grad gives the same logits.
+            with torch.inference_mode(False), torch.no_grad():
+                return self._forward(x.clone() if x.is_inference() else x)
+        return self._forward(x)
+
+    def _forward(self, x: torch.Tensor) -> torch.Tensor:
         if self.max_batch is None or len(x) == self.max_batch:
             return select_logits(self.inner(x), self.output)
         return torch.cat([select_logits(self.inner(chunk), self.output)[: len(x) - start] for start, chunk in batch_chunks(x, self.max_batch)])

@@ -25,7 +25,7 @@ import torch.nn.functional as F
 from captum.attr import LayerAttribution, LayerGradCam
 
 from .errors import GradientUnavailableError, InvalidInputError
-from .layer_taps import cam_inputs
+from .layer_taps import TokenGrid
 from .model_io import LoadedModel, batch_chunks
 
 METHOD = "grad-cam"
@@ -147,11 +147,25 @@ def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, tor
     predicted = probs.argmax(dim=1)
     with torch.enable_grad():
         (grads,) = torch.autograd.grad(logits.gather(1, predicted[:, None]).sum(), activation)
-    act, grads = cam_inputs(activation.detach(), grads, model.grid)
-    weights = grads.mean(dim=(2, 3), keepdim=True)
-    coarse = torch.relu((weights * act).sum(dim=1, keepdim=True))
+    coarse = torch.relu(weighted_sum(activation.detach(), grads, model.grid))
     h, w = model.sidecar.input_size
     return probs, F.interpolate(coarse.float(), size=(h, w), mode="bilinear", align_corners=False)
+
+
+def weighted_sum(activation: torch.Tensor, grads: torch.Tensor, grid: TokenGrid | None) -> torch.Tensor:
+    """sum_k alpha_k A^k as N x 1 x h x w, alpha_k the spatial mean of the gradient on channel k.
+
+    A batched matrix product, so no activation-sized temporary is made (large temporaries cost
+    page faults on every batch with the default allocator).
+    """
+    n = activation.shape[0]
+    if grid is None:
+        _, c, h, w = activation.shape
+        alpha = grads.mean(dim=(2, 3))  # N x C
+        return torch.bmm(alpha.unsqueeze(1), activation.reshape(n, c, h * w)).view(n, 1, h, w)
+    patches = activation[:, grid.prefix :, :]  # N x (rows*cols) x D
+    alpha = grads[:, grid.prefix :, :].mean(dim=1)  # N x D
+    return torch.bmm(patches, alpha.unsqueeze(2)).view(n, 1, grid.rows, grid.cols)
 
 
 def _captum(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:

@@ -19,6 +19,7 @@ ROOT = Path(__file__).resolve().parent.parent
 BENCHMARKS = [
     ("bias_recovery", "Does it find the injected cue?"),
     ("saliency_throughput", "Saliency stage against plain inference"),
+    ("model_zoo", "Saliency stage against plain inference, every zoo model in every format"),
     ("interventions", "Ablation and insertion against plain inference"),
     ("intervention_truth", "Covering estimates against the true effect of removing the cue"),
     ("rules_scale", "Per-class rules at scale against scripted mlxtend"),

@@ -147,3 +147,16 @@ def test_default_layer_on_a_model_with_only_coarse_maps_takes_the_largest_and_wa
     with pytest.warns(DegenerateMapWarning, match="2x2 map"):
         loaded = prepare_model(model, Sidecar(classes=("a", "b", "c"), input_size=(8, 8)))
     assert loaded.target_layer == "1" and loaded.map_size == (2, 2)
+
+
+@pytest.mark.parametrize("name", ["dense_concat", "vit"])
+def test_torchscript_predicting_in_inference_mode_does_not_break_later_gradcam(name: str, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    # TorchScript keeps tensors from its first runs; made under inference_mode they broke autograd later.
+    _, d = zoo_files[name]
+    loaded = load_model(d / "model.pt", d / "sidecar.json")
+    x = torch.randn(2, 3, SIZE, SIZE)
+    for _ in range(3):
+        with torch.inference_mode():
+            before = loaded.module(x)
+        after = compute_saliency(loaded, x)
+    torch.testing.assert_close(torch.from_numpy(after.probabilities), torch.softmax(before, 1))

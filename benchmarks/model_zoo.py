@@ -1,0 +1,143 @@
+"""Saliency-stage throughput against plain batched inference of the same model, for every zoo
+architecture in every format users bring (exported program, TorchScript, factory + state_dict).
+
+    .venv/bin/python -m benchmarks.model_zoo            # 6 batches per measurement
+    .venv/bin/python -m benchmarks.model_zoo --quick    # 2 batches
+
+The zoo is the one the tests use (tests/analysis/model_zoo.py), built wider and at a larger input
+so the work is the model's, not Python's: width 32 (ViT: 64 wide, 12 blocks as in ViT-B, patch 8)
+at 96 px, batch 16, random weights (speed does not depend on them). For each model and format the
+loaded model's plain forward (inference mode) and heedmap's saliency stage (prediction, confidence
+and Grad-CAM of the predicted class at the default layer) run alternately, batch by batch. Each is
+timed as the process's CPU time on one thread: on a machine shared with other work, wall-clock
+ratios swing by 2x from one batch to the next, while CPU time measures the work each side does.
+The table gives medians and their ratio as images per CPU-second. Goal: >= 0.9x.
+
+A class-token ViT bounds the ratio by construction: Grad-CAM's layer (the last block's first norm)
+lies inside the last block, whose attention and MLP must run backward, about 2/depth of a forward.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import sys
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+import torch
+from torch import nn
+
+from analysis.model_io import LoadedModel, load_model
+from analysis.saliency import compute_saliency
+
+from .measure import print_table
+
+ROOT = Path(__file__).resolve().parent.parent
+BATCH = 16
+SIZE = 96
+FORMATS = ("exported", "torchscript", "factory")
+
+
+def _zoo() -> tuple[object, ...]:
+    if str(ROOT) not in sys.path:
+        sys.path.insert(0, str(ROOT))
+    from tests.analysis import model_zoo
+
+    return model_zoo.ZOO
+
+
+def _build(entry: object) -> nn.Module:
+    torch.manual_seed(0)
+    if entry.name == "vit":  # type: ignore[attr-defined]
+        return entry.build(64, size=SIZE, patch=8, depth=12).eval()  # type: ignore[attr-defined, no-any-return]
+    return entry.build(32).eval()  # type: ignore[attr-defined, no-any-return]
+
+
+def _save_all(entry: object, model: nn.Module, folder: Path) -> dict[str, tuple[Path, str | None]]:
+    x = torch.randn(2, 3, SIZE, SIZE)
+    program = torch.export.export(model, (x,), dynamic_shapes=({0: torch.export.Dim("batch")},))
+    torch.export.save(program, folder / "model.pt2")
+    torch.jit.script(model).save(str(folder / "model.pt"))
+    torch.save(model.state_dict(), folder / "state.pt")
+    sidecar = {"classes": ["bottle", "can", "carton"], "input_size": [SIZE, SIZE], "mean": [0.5] * 3, "std": [0.25] * 3}
+    sidecar.update(dict(entry.sidecar_extra))  # type: ignore[attr-defined]
+    (folder / "sidecar.json").write_text(json.dumps(sidecar))
+    return {"exported": (folder / "model.pt2", None), "torchscript": (folder / "model.pt", None), "factory": (folder / "state.pt", "factory")}
+
+
+class _Factory:
+    """Stands in for the user's module:function, building the wide variant."""
+
+    model: nn.Module | None = None
+
+
+def bench_factory() -> nn.Module:
+    if _Factory.model is None:
+        raise RuntimeError("set _Factory.model first")
+    return _Factory.model
+
+
+def measure(model: LoadedModel, batches: int) -> tuple[float, float]:
+    """Median images per CPU-second of plain inference and of the saliency stage, measured alternately."""
+    x = torch.randn(BATCH, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(1))
+
+    def plain() -> object:
+        with torch.inference_mode():
+            return model.module(x)
+
+    for _ in range(2):  # warm-up (TorchScript profiles its first runs)
+        plain()
+        compute_saliency(model, x)
+    plain_rates, sal_rates = [], []
+    for _ in range(batches):
+        t = time.process_time()
+        plain()
+        plain_rates.append(BATCH / (time.process_time() - t))
+        t = time.process_time()
+        compute_saliency(model, x)
+        sal_rates.append(BATCH / (time.process_time() - t))
+    return statistics.median(plain_rates), statistics.median(sal_rates)
+
+
+def main(argv: list[str] | None = None) -> str:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--quick", action="store_true", help="2 batches per measurement instead of 6")
+    p.add_argument("--only", nargs="*", help="zoo model names")
+    args = p.parse_args(argv)
+    batches = 2 if args.quick else 6
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    print(f"torch {torch.__version__}, 1 thread, CPU time, batch {BATCH}, {SIZE} px", flush=True)
+    rows = []
+    with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for entry in _zoo():
+            if args.only and entry.name not in args.only:  # type: ignore[attr-defined]
+                continue
+            folder = Path(tmp) / entry.name  # type: ignore[attr-defined]
+            folder.mkdir()
+            eager = _build(entry)
+            files = _save_all(entry, eager, folder)
+            for fmt in FORMATS:
+                path, factory = files[fmt]
+                if factory:
+                    from benchmarks import model_zoo as this  # the importable module, also when run as __main__
+
+                    this._Factory.model = _build(entry)
+                    loaded = load_model(path, folder / "sidecar.json", factory="benchmarks.model_zoo:bench_factory")
+                else:
+                    loaded = load_model(path, folder / "sidecar.json")
+                plain, sal = measure(loaded, batches)
+                size = f"{loaded.map_size[0]}x{loaded.map_size[1]}"
+                rows.append([entry.name, fmt, f"{loaded.target_layer} ({size})", plain, sal, sal / plain])  # type: ignore[attr-defined]
+                print(f"{entry.name} {fmt}: {plain:.1f} / {sal:.1f} img/s", flush=True)  # type: ignore[attr-defined]
+    torch.set_num_threads(threads)
+    return print_table(["model", "format", "default layer (map)", "plain img/CPU-s", "saliency img/CPU-s", "saliency / plain"], rows)
+
+
+if __name__ == "__main__":
+    main()
