@@ -165,7 +165,7 @@ def _read_inputs(s: Session, model: LoadedModel, image_ids: list[int]) -> tuple[
             continue
         kept.append(i)
     sc = model.sidecar
-    return (to_model_input(images, size=sc.input_size, mean=sc.mean, std=sc.std) if images else torch.zeros((0, 3, *sc.input_size))), kept
+    return (to_model_input(images, **sc.input_options()) if images else torch.zeros((0, 3, *sc.input_size))), kept
 
 
 def _result(raw: dict[str, object]) -> InterventionResult:
