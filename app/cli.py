@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from analysis.errors import AnalysisError
+from analysis.errors import AnalysisError, InvalidInputError
 from analysis.reliability import METHODS
 from analysis.exports import rules_document
 from analysis.rule_budget import DEFAULT_MAX_CANDIDATES, check_rule_budget
@@ -83,9 +83,11 @@ def _parser() -> argparse.ArgumentParser:
     k.add_argument("project", type=Path)
     k.add_argument("--campaign", type=int, required=True)
     k.add_argument("file", type=Path, help="CSV with columns region,answer (answer like 'cap: red; label band'; empty = nothing recognisable)")
-    r = sub.add_parser("rules", help="concept rules from a 0/1 table (rows images, one column per concept)")
+    r = sub.add_parser("rules", help="concept rules from a 0/1 table (rows images, one column per concept) or heedmap's concept export")
     r.add_argument("table", type=Path)
     r.add_argument("--target", required=True, help="column holding each image's class")
+    r.add_argument("--id", dest="id_column", metavar="COLUMN", help="column naming the images (not a concept)")
+    r.add_argument("--no-families", action="store_true", help="do not nest a column 'yellow tag' under a column 'tag'")
     r.add_argument("--min-support", type=float, default=0.02, help="fraction of all images holding the set and the class")
     r.add_argument("--min-count", type=int, default=1, help="fewest images holding the set and the class")
     r.add_argument("--max-len", type=int, default=2, help="most concepts in a rule")
@@ -233,7 +235,6 @@ def _invite(args: argparse.Namespace) -> int:
 
 def _checks(args: argparse.Namespace) -> int:
     from analysis.concepts import parse_label_text
-    from analysis.errors import InvalidInputError
 
     from .campaigns import set_check_answer
     from .db import write_session
@@ -256,29 +257,26 @@ def _checks(args: argparse.Namespace) -> int:
     return 0
 
 
-_TRUE, _FALSE = {"1", "1.0", "true", "yes"}, {"0", "0.0", "false", "no", ""}
-
-
 def _rules(args: argparse.Namespace) -> int:
-    frame = read_text_csv(args.table, ())
-    if args.target not in frame.columns:
-        raise AppError(f"{args.table} has no column {args.target!r}; its columns are {list(frame.columns)}.")
-    concepts = frame.drop(columns=[args.target]).apply(lambda col: col.str.strip().str.lower())
-    bad = [c for c in concepts.columns if not concepts[c].isin(_TRUE | _FALSE).all()]
-    if bad:
-        raise AppError(f"concept columns must hold only 0/1; {bad[:5]} do not. Drop or recode them.")
-    present = concepts.isin(_TRUE)
+    from analysis.rule_tables import read_rule_table
     from analysis.rules import support_count
 
+    frame = read_text_csv(args.table, ())
+    try:
+        found = read_rule_table(frame, target=args.target, id_column=args.id_column, families=not args.no_families)
+    except InvalidInputError as exc:
+        raise AppError(f"{args.table}: {exc}") from None
+    present = found.presence
     if not 0 < args.min_support <= 1:
         raise AppError(f"--min-support must be in (0, 1]; got {args.min_support}. Give a fraction of images, e.g. 0.05.")
     threshold = max(args.min_count, support_count(args.min_support, max(1, len(frame))))
     check_rule_budget(present.sum(axis=1).to_numpy(), min_count=threshold, max_len=args.max_len, n_columns=present.shape[1],
                       max_candidates=args.max_candidates)
-    table = mine_rules(present, frame[args.target].astype(str), min_support=args.min_support, max_len=args.max_len,
-                       min_count=args.min_count, min_lift=args.min_lift, prune=args.prune)
+    table = mine_rules(present, found.classes, min_support=args.min_support, max_len=args.max_len,
+                       min_count=args.min_count, min_lift=args.min_lift, prune=args.prune, families=found.families)
     if args.json:
-        print(json.dumps(rules_document(table, source=str(args.table), target=args.target), indent=2))
+        print(json.dumps(rules_document(table, source=str(args.table), target=args.target, read_as=found.source, id_column=found.id_column,
+                                        families=found.families), indent=2))
     else:
         sys.stdout.write(to_csv(table.rules))
     return 0

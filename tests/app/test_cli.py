@@ -123,3 +123,51 @@ def test_aggregate_states_its_smoothing_and_each_annotators_interval(tmp_path: P
     assert out["confusion_prior"]["strength"] > 0
     z = next(a for a in out["annotators"] if a["annotator"] == "z")
     assert z["accuracy_interval"][0] < z["accuracy"] < z["accuracy_interval"][1] and z["accuracy_n"] == pytest.approx(36)
+
+
+def test_rules_reads_a_table_with_an_id_column(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rows = ["image,cls,tag,yellow tag,cap"] + [f"can_{i}.png,can,1,{int(i < 6)},0" for i in range(8)] + [f"bottle_{i}.png,bottle,0,0,1" for i in range(8)]
+    (tmp_path / "t.csv").write_text("\n".join(rows) + "\n")
+    # Without --id the file names are no concept: the message names the column and the option.
+    assert main(["rules", str(tmp_path / "t.csv"), "--target", "cls"]) == 1
+    err = capsys.readouterr().err
+    assert "'image'" in err and "--id image" in err and "Traceback" not in err
+    assert main(["rules", str(tmp_path / "t.csv"), "--target", "cls", "--id", "image", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["id_column"] == "image" and out["families"] == {"yellow tag": "tag"}
+    can = [r for r in out["rules"] if r["class"] == "can"]
+    assert [(r["concepts"], r["parent"], r["rank"]) for r in can] == [("tag", "", 1), ("yellow tag", "tag", 1)]
+    assert can[1]["typicality"] == pytest.approx(6 / 8)
+    assert main(["rules", str(tmp_path / "t.csv"), "--target", "cls", "--id", "image", "--no-families", "--json"]) == 0
+    assert {r["parent"] for r in json.loads(capsys.readouterr().out)["rules"]} == {""}
+    # Clear errors: an id column that is not there, one that repeats, one that is also the target.
+    assert main(["rules", str(tmp_path / "t.csv"), "--target", "cls", "--id", "name"]) == 1
+    assert "no column 'name'" in capsys.readouterr().err
+    (tmp_path / "dup.csv").write_text("image,cls,tag\na.png,can,1\na.png,can,0\n")
+    assert main(["rules", str(tmp_path / "dup.csv"), "--target", "cls", "--id", "image"]) == 1
+    assert "repeats 'a.png'" in capsys.readouterr().err
+    assert main(["rules", str(tmp_path / "t.csv"), "--target", "cls", "--id", "cls"]) == 1
+    assert "both the id column and the target" in capsys.readouterr().err
+
+
+def test_rules_reads_heedmaps_own_concept_export(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import pandas as pd
+
+    from analysis.concept_table import build_concept_table
+    from analysis.rules import to_csv
+
+    meta = pd.DataFrame({"true_class": ["can"] * 6 + ["bottle"] * 6, "predicted_class": ["can"] * 5 + ["bottle"] * 7, "confidence": 0.9,
+                         "split": "test"}, index=pd.Index(range(100, 112), name="image_id"))  # as the app names it
+    found = {r: ({"tag": 1.0, "yellow tag": 1.0} if r < 104 else {"tag": 1.0} if r < 105 else {"cap": 1.0}) for r in range(12)}
+    table = build_concept_table(meta, {100 + r: [r] for r in range(12)}, {r: 0.5 for r in range(12)}, found, method="majority",
+                                families={"yellow tag": "tag"})
+    (tmp_path / "concepts.csv").write_text(to_csv(table.frame().reset_index()))
+    assert main(["rules", str(tmp_path / "concepts.csv"), "--target", "predicted_class", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["read_as"] == "heedmap concept export" and out["id_column"] == "image_id" and out["families"] == {"yellow tag": "tag"}
+    ours = {(r["class"], r["concepts"]): r for r in out["rules"]}
+    direct = table.rules(target="predicted", min_support=0.02, prune=False).rules
+    assert set(ours) == set(zip(direct["class"], direct["concepts"]))
+    for r in direct.to_dict("records"):
+        got = ours[(r["class"], r["concepts"])]
+        assert (got["n_images"], got["confidence"], got["rank"], got["parent"]) == (r["n_images"], pytest.approx(r["confidence"]), r["rank"], r["parent"])
