@@ -206,7 +206,8 @@ def check_expectations(expectations: ExpectationSet, table: ConceptTable) -> lis
             reason = f"only {n_c} images predicted as {e.cls}; {expectations.min_images} are needed for a verdict."
         else:
             verdict = "not tested"
-            reason = (f"not tested: no covering test was run for {e.question!r} in {e.cls} (heedmap check runs it)."
+            reason = (f"not tested: no covering test of {e.question!r} in {e.cls} is stored or could be run (it needs two or more images of "
+                      f"{e.cls} with regions labelled so; heedmap check runs it)."
                       if e.concepts else f"not tested: covering can test one concept or concepts joined by 'and', not {e.question!r}.")
         out.append(Verdict(e, verdict, reason, n_c, n_m, both, both / n_c if n_c else 0.0, confidence, lift, p, float(qv), examples))
     return out

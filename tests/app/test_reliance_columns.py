@@ -1,0 +1,32 @@
+"""The reliance columns beside the rules: the verdict covering decided, its figures, pasting beside it, the family."""
+
+from __future__ import annotations
+
+import math
+
+import pandas as pd
+
+from analysis.interventions import InterventionResult
+from analysis.reliance import RuleTests, VerdictSettings, judge_family
+from app.reliance import RELIANCE_COLUMNS, reliance_columns
+
+
+def _result(kind: str, effect: float, interval: tuple[float, float], p: float) -> InterventionResult:
+    return InterventionResult(kind, "can", "tag", "ring" if kind == "ablation" else "paste", "in place", 30, 5, effect, 0.4, 0.0, 0.0,  # type: ignore[arg-type]
+                              effect, interval, p, 0)
+
+
+def test_rules_show_the_covering_verdict_pasting_beside_it_and_not_tested_elsewhere() -> None:
+    frame = pd.DataFrame({"class": ["can", "can", "bottle"], "concepts": ["tag", "rim", "cap"], "lift": [2.5, 1.0, 1.4]})
+    settings = VerdictSettings(min_effect=0.1)
+    tests = [RuleTests("can", "tag", (_result("ablation", 0.45, (0.38, 0.52), 2e-4),), _result("insertion", 0.2, (0.15, 0.25), 2e-4)),
+             RuleTests("can", "rim", (_result("ablation", 0.01, (-0.02, 0.04), 0.3),))]
+    out = reliance_columns(frame, judge_family(tests, settings), settings)
+    assert set(RELIANCE_COLUMNS) <= set(out.columns)
+    tag, rim, cap = (out.iloc[i] for i in range(3))
+    assert tag["reliance"] == "relies on" and tag["decided_by"] == "covering (ring fill)" and tag["steering"] == "steered"
+    assert tag["covering_effect"] == 0.45 and (tag["covering_low"], tag["covering_high"]) == (0.38, 0.52)
+    assert tag["covering_adjusted_p"] == 3 * 2e-4 and tag["pasting_effect"] == 0.2  # Holm over the three tests
+    assert rim["reliance"] == "no reliance" and rim["steering"] == "not tested" and math.isnan(rim["pasting_effect"])
+    assert cap["reliance"] == "not tested" and cap["decided_by"] == "none" and math.isnan(cap["covering_effect"])
+    assert (out["min_effect"] == 0.1).all() and "Holm correction over the 3 intervention tests" in tag["family"]
