@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hmac
+import re
 from collections.abc import AsyncIterator, Callable, Iterator
 from typing import Annotated
 
@@ -122,7 +123,8 @@ MAX_ID = 2**63 - 1  # SQLite's largest integer
 def check_path_ids(request: Request) -> None:
     """Refuse an id in the path that is not a whole number SQLite can hold, before any query sees it."""
     for name, value in request.path_params.items():
-        if name.endswith("_id") and not (str(value).isdigit() and int(value) <= MAX_ID):
+        # ASCII digits only: "²".isdigit() is true, and int() of it fails.
+        if name.endswith("_id") and not (re.fullmatch(r"[0-9]{1,19}", str(value)) and int(value) <= MAX_ID):
             raise InvalidRequestError(f"{name} must be a whole number from 0 to {MAX_ID}; got {str(value)[:40]!r}.")
 
 

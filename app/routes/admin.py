@@ -91,6 +91,18 @@ def create_invite(
     return _admin_page(request, s, viewer, new_link=link)
 
 
+@router.post("/people/role")
+def change_role(request: Request, s: WriteSessionDep, viewer: AdminDep, name: Annotated[str, Form(max_length=60)],
+                role: Annotated[str, Form(max_length=20)]) -> Response:
+    """Change a person's role on purpose (an invite never does); the last admin stays admin."""
+    try:
+        people.set_role(s, name, role)
+    except AppError as exc:
+        s.rollback()
+        return _admin_page(request, s, viewer, error=exc.message, status_code=exc.status_code)
+    return RedirectResponse("/admin", status_code=303)
+
+
 @router.post("/invites/{invite_id}/revoke")
 def revoke_invite(invite_id: int, s: WriteSessionDep, viewer: AdminDep) -> Response:
     """Revoke an invite link; browsers signed in through it are signed out."""

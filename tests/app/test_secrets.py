@@ -84,4 +84,8 @@ def test_an_invite_never_changes_an_existing_persons_role(client: TestClient, pr
     assert main(["role", str(project), "--name", "root", "--role", "annotator"]) == 1
     assert "only admin" in capsys.readouterr().err
     with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
-        assert set_role(s, "ed", "admin") == "reviewer"
+        assert set_role(s, "ed", "analyst") == "reviewer"
+    csrf = join(client, "root", role="admin")
+    assert client.post("/admin/people/role", data={"csrf": csrf, "name": "ed", "role": "admin"}, follow_redirects=False).status_code == 303
+    lone = client.post("/admin/people/role", data={"csrf": csrf, "name": "nobody", "role": "admin"})
+    assert lone.status_code == 404 and "nobody called" in lone.text
