@@ -385,6 +385,12 @@ def _dispatch(args: argparse.Namespace) -> int:
     elif args.command in ("saliency", "runs", "layers", "sidecar"):
         from . import cli_models
 
+        if args.command == "saliency":
+            from .job_lock import saliency_job_lock
+
+            Path(args.project).mkdir(parents=True, exist_ok=True, mode=0o700)
+            with saliency_job_lock(args.project):  # a second job on the project is refused, naming the first
+                return int(cli_models.saliency(args))
         return int(getattr(cli_models, args.command)(args))
     elif args.command == "serve":
         _serve(args.project, args.port)

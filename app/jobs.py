@@ -107,6 +107,9 @@ def list_runs(factory: sessionmaker[Session]) -> list[RunSummary]:
     return out
 
 
+MAX_ASPECT = 16  # longest side over shortest; beyond it an image is refused with a message
+
+
 def register_images(factory: sessionmaker[Session], records: list[ImageRecord], *, max_pixels: int = DEFAULT_MAX_PIXELS) -> list[tuple[str, str]]:
     """Add images not yet known; a missing, corrupt or oversized one is stored with its problem and listed."""
     problems = []
@@ -119,6 +122,9 @@ def register_images(factory: sessionmaker[Session], records: list[ImageRecord], 
             known.add(path)
             try:
                 w, h = check_image(Path(path), max_pixels=max_pixels)
+                if max(w, h) > MAX_ASPECT * max(1, min(w, h)):
+                    raise ImageInputError(f"{path} is {w}x{h} pixels, more than {MAX_ASPECT} times longer one way than the other; "
+                                          "crop or pad it to a less extreme shape (its crops and outlines would be mostly scaling).")
                 s.add(ImageRow(path=path, label=rec.label, split=rec.split, width=w, height=h))
             except ImageInputError as exc:
                 s.add(ImageRow(path=path, label=rec.label, split=rec.split, problem=str(exc)))
@@ -214,6 +220,10 @@ def run_saliency(
             with write_session(factory) as s:
                 for k, image_id in enumerate(ids):
                     sal = res.maps[k]
+                    if not (np.isfinite(float(res.confidence[k])) and np.isfinite(sal).all()):
+                        why = "the model gave NaN or infinite outputs for this image; nothing was stored for it (check the model and its input scaling)"
+                        report.skipped.append((dict(batch)[image_id], why))
+                        continue
                     map_rel = layout.saliency_map(run_id, image_id)
                     regions, labels = extract_regions(sal, policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
                     np.save(layout.path(map_rel), sal.astype(np.float16))

@@ -16,14 +16,16 @@ from sqlalchemy.orm import Session
 
 from .. import campaigns, store
 from ..deps import ReviewerDep, SessionDep, SettingsDep, ViewerDep, guarded_router, require_viewer
-from ..errors import NotFoundError
+from ..errors import InvalidRequestError, NotFoundError
 from ..layout import ProjectLayout
+from ..jobs import MAX_ASPECT
 from ..models import ImageRow
 from ..people import Viewer
 
 router = guarded_router(require_viewer, prefix="/api")
 routers = (router,)
 _CACHE = {"Cache-Control": "private, max-age=3600"}
+MAX_OVERLAY_SIDE = 1024
 
 
 def _project_file(settings: SettingsDep, rel: str, region_id: int) -> Path:
@@ -59,6 +61,11 @@ def region_overlay(region_id: int, s: SessionDep, settings: SettingsDep, viewer:
         image = read_rgb(Path(files.image_path))
     except ImageInputError as exc:
         raise NotFoundError(f"the image of region {region_id} cannot be read: {exc}") from None
+    if max(image.size) > MAX_ASPECT * max(1, min(image.size)):
+        raise InvalidRequestError(f"the image of region {region_id} is {image.width}x{image.height} pixels, too elongated for an overlay "
+                                  f"(more than {MAX_ASPECT} to 1); look at its crop and outline instead.")
+    if max(image.size) > MAX_OVERLAY_SIDE:
+        image.thumbnail((MAX_OVERLAY_SIDE, MAX_OVERLAY_SIDE))  # the overlay is for looking at, not for the full resolution
     x0, y0, x1, y1 = files.box
     box = Region(rank=0, x0=x0, y0=y0, x1=x1, y1=y1, area=0, mass_share=0.0, peak_x=x0, peak_y=y0)
     buf = io.BytesIO()

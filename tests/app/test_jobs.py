@@ -61,3 +61,40 @@ def test_bad_images_are_skipped_and_listed(tmp_path: Path, small_scenes: Path, t
     assert report.processed == 2
     with factory() as s:
         assert s.scalar(select(func.count(ImageRow.id)).where(ImageRow.problem.is_not(None))) == 3
+
+
+def test_extreme_shapes_are_refused_with_a_message(tmp_path: Path, small_scenes: Path) -> None:
+    Image.new("RGB", (8000, 1), "white").save(tmp_path / "strip.png")
+    Image.new("RGB", (64, 48), "white").save(tmp_path / "fine.png")
+    factory = session_factory(make_engine(tmp_path / "p"))
+    problems = register_images(factory, [ImageRecord(path=tmp_path / "strip.png", label="can"), ImageRecord(path=tmp_path / "fine.png", label="can")])
+    assert len(problems) == 1 and "8000x1" in problems[0][1] and "less extreme shape" in problems[0][1]
+
+
+def test_a_model_that_gives_nan_stores_nothing_for_those_images(tmp_path: Path, small_scenes: Path, tiny_model: LoadedModel) -> None:
+    import torch
+
+    last = [m for m in tiny_model.module.modules() if isinstance(m, torch.nn.Linear)][-1]
+    with torch.no_grad():
+        last.bias[0] = float("nan")
+    factory = session_factory(make_engine(tmp_path / "p"))
+    register_images(factory, find_images(small_scenes / "manifest.csv"))
+    rep = run_saliency(factory, tmp_path / "p", tiny_model, batch_size=4, progress=None)
+    assert rep.processed >= 0 and len(rep.skipped) == 18 and all("NaN or infinite" in why for _, why in rep.skipped)
+    assert _counts(factory)[:2] == (0, 0)
+
+
+def test_a_second_saliency_job_is_refused_naming_the_first(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import os
+
+    from app.cli import main
+    from app.job_lock import saliency_job_lock
+
+    project = tmp_path / "p"
+    project.mkdir()
+    with saliency_job_lock(project):
+        assert main(["saliency", str(project), "--model", str(tmp_path / "m.pt"), "--sidecar", str(tmp_path / "s.json"), "--images", str(tmp_path)]) == 1
+    err = capsys.readouterr().err
+    assert "another saliency job is running" in err and f"process {os.getpid()}" in err and "Traceback" not in err
+    with saliency_job_lock(project):  # released when the first ended
+        pass

@@ -135,3 +135,25 @@ def test_a_submission_id_stays_spent(client: TestClient, campaign_id: int) -> No
     fresh = client.post(url, json={**body, "client_id": uuid.uuid4().hex, "entities": [{"entity": "tag"}]}, headers=h)
     assert fresh.status_code == 201 and _count(client, Label) == 1
     assert csrf_of(client) == csrf
+
+
+def test_an_extreme_image_gets_no_overlay_and_large_ones_are_bounded(client: TestClient, campaign_id: int, tmp_path: Path) -> None:
+    from PIL import Image
+
+    from app.models import ImageRow, Prediction
+
+    join(client, "rev", role="reviewer")
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        image_id = s.scalar(select(Prediction.image_id).join(RegionRow, RegionRow.prediction_id == Prediction.id).where(RegionRow.id == 1))
+    for size, expected in (((8000, 1), 422), ((3000, 2000), 200)):
+        Image.new("RGB", size, "white").save(tmp_path / "odd.png")
+        with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+            s.execute(update(ImageRow).where(ImageRow.id == image_id).values(path=str(tmp_path / "odd.png")))
+        r = client.get("/api/regions/1/overlay.png")
+        assert r.status_code == expected, r.text[:200]
+        if expected == 422:
+            assert "8000x1" in r.json()["message"] and "too elongated" in r.json()["message"]
+        else:
+            import io
+
+            assert max(Image.open(io.BytesIO(r.content)).size) <= 1024
