@@ -16,10 +16,24 @@ import numpy as np
 import numpy.typing as npt
 
 from .agreement import alpha_with_interval
-from .concepts import Judgment, attribute_words, entity_with_attributes, judgment_families, main_entity, normalise_label
+from .concepts import (
+    Judgment,
+    attribute_words,
+    entity_with_attributes,
+    judgment_families,
+    main_entity,
+    normalise_label,
+)
 from .errors import InvalidInputError
 from .long_labels import LongLabels
-from .reliability import ConfusionPrior, Method, Rate, aggregate, cell_rate
+from .reliability import (
+    DEFAULT_PRIOR,
+    ConfusionPrior,
+    Method,
+    Rate,
+    aggregate,
+    cell_rate,
+)
 from .synonyms import SynonymRules
 
 IntArray = npt.NDArray[np.int64]
@@ -85,9 +99,9 @@ def presence_votes(
                 continue
             head, lead = entity_with_attributes(label, rules or SynonymRules(), region_class.get(int(r)), words)
             found.add(head)
-            for a in lead:
-                found.add(f"{a} {head}")
-                families.setdefault(f"{a} {head}", head)
+            for attr in lead:
+                found.add(f"{attr} {head}")
+                families.setdefault(f"{attr} {head}", head)
         known_sets[int(r)] = found
     named: dict[tuple[int, str], set[str]] = {}
     entity: dict[tuple[int, str], str] = {}
@@ -139,7 +153,7 @@ def presence_votes(
         np.array([a_index[a] for _, a in keys], dtype=np.int64),
         np.array([e_index[entity[k]] for k in keys], dtype=np.int64),
     )
-    as_int = lambda v: np.array(v, dtype=np.int64)  # noqa: E731
+    as_int = lambda v: np.array(v, dtype=np.int64)
     fams = {c: e for c, e in sorted(families.items()) if c in concept_set and e in concept_set}
     return PresenceVotes(regions, annotators, concepts, as_int(pr), as_int(pc), as_int(kn), as_int(vp), as_int(va), np.array(vy, dtype=bool), main, fams)
 
@@ -211,7 +225,7 @@ class ConceptEstimate:
         return out
 
 
-def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", threshold: float = 0.5, prior: ConfusionPrior = ConfusionPrior(),
+def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", threshold: float = 0.5, prior: ConfusionPrior = DEFAULT_PRIOR,
                       tol: float = 1e-8, max_iter: int = 1000) -> ConceptEstimate:
     """Aggregate the yes/no votes with ``method`` (majority, dawid-skene or one-coin).
 

@@ -7,6 +7,7 @@ judgments take seconds, not minutes.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Literal
@@ -56,6 +57,7 @@ class ConfusionPrior:
         return out
 
 
+DEFAULT_PRIOR = ConfusionPrior()
 NO_PRIOR = ConfusionPrior(0.0, 0.7, 0.0)
 
 
@@ -124,7 +126,7 @@ def cell_rate(counts: FloatArray, pseudo: FloatArray, cell: int) -> Rate:
     k = float(counts[cell])
     estimate = (k + float(pseudo[cell])) / total if total > 0 else float("nan")
     low, high = beta_interval(k, n, prior_successes=1 + float(pseudo[cell]), prior_failures=1 + float(pseudo.sum() - pseudo[cell]))
-    if estimate == estimate:
+    if not math.isnan(estimate):
         low, high = min(low, estimate), max(high, estimate)
     return Rate(estimate, n, low, high)
 
@@ -199,7 +201,7 @@ def dawid_skene(
     known: Mapping[int, int] | None = None,
     tol: float = 1e-8,
     max_iter: int = 1000,
-    prior: ConfusionPrior = ConfusionPrior(),
+    prior: ConfusionPrior = DEFAULT_PRIOR,
     item_weights: npt.ArrayLike | None = None,
 ) -> Aggregation:
     """Dawid & Skene (1979) EM with a Dirichlet prior, started from majority vote.
@@ -275,7 +277,7 @@ def dawid_skene(
 
 
 def aggregate(items: npt.ArrayLike, annotators: npt.ArrayLike, labels: npt.ArrayLike, *, n_classes: int, method: Method, known: Mapping[int, int] | None = None,
-              prior: ConfusionPrior = ConfusionPrior(), tol: float = 1e-8, max_iter: int = 1000, item_weights: npt.ArrayLike | None = None) -> Aggregation:
+              prior: ConfusionPrior = DEFAULT_PRIOR, tol: float = 1e-8, max_iter: int = 1000, item_weights: npt.ArrayLike | None = None) -> Aggregation:
     """Run the named method: ``majority``, ``dawid-skene`` (full confusion matrices) or ``one-coin``.
 
     ``prior``, ``tol``, ``max_iter`` and ``item_weights`` go to :func:`dawid_skene`; majority vote has none

@@ -1,11 +1,19 @@
 from __future__ import annotations
 
+import pandas as pd
 import pytest
 
-from analysis.concept_votes import estimate_concepts, presence_votes
 from analysis.concept_table import build_concept_table
-from analysis.concepts import Judgment, attribute_words, judgment_concepts, judgment_families, main_entity, normalise_label, parse_label_text
-import pandas as pd
+from analysis.concept_votes import estimate_concepts, presence_votes
+from analysis.concepts import (
+    Judgment,
+    attribute_words,
+    judgment_concepts,
+    judgment_families,
+    main_entity,
+    normalise_label,
+    parse_label_text,
+)
 from analysis.errors import InvalidInputError
 
 

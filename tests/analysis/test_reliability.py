@@ -188,7 +188,7 @@ def test_accuracy_of_an_annotator_with_few_judgments_has_a_wide_interval() -> No
     anns = np.concatenate([anns, [3, 3, 3]])
     labels = np.concatenate([labels, (truth[few] + 1) % 3])
     long = LongLabels(tuple(f"i{u}" for u in range(200)), ("a", "b", "c", "d"), ("x", "y", "z"), items, anns, labels)
-    agg, summary = aggregate_labels(long, method="dawid-skene")
+    _, summary = aggregate_labels(long, method="dawid-skene")
     rows = {a["annotator"]: a for a in summary["annotators"]}
     assert summary["converged"] and summary["confusion_prior"]["kind"] == "dirichlet"
     d, a = rows["d"], rows["a"]
