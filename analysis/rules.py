@@ -201,6 +201,12 @@ def mine_rules(
     return RuleTable(out.reset_index(drop=True)[RULE_COLUMNS], n, min_support, max_len, threshold, n_tested, pruned)
 
 
+def top_rules(rules: pd.DataFrame, per_class: int) -> pd.DataFrame:
+    """Each class's ``per_class`` best rules, one per family: the family's own rule, or its strongest member where
+    the entity is no rule of the class (a rule table from :func:`mine_rules`, in its order)."""
+    return rules.drop_duplicates(["class", "family"]).groupby("class").head(per_class)
+
+
 def _roots(names: list[str], families: Mapping[str, str]) -> list[int]:
     """Each column's top entity among the columns (itself when it refines nothing)."""
     index = {c: i for i, c in enumerate(names)}

@@ -14,6 +14,7 @@ from analysis.exports import FORMATS
 from analysis.interventions import DEFAULT_FILLS, FILLS
 from analysis.reliance import CORRECTIONS, VerdictSettings, judge_family
 from analysis.questions import answer_question
+from analysis.rules import top_rules
 
 from . import campaigns
 from .db import open_project, session_factory
@@ -162,7 +163,7 @@ def interventions(args: argparse.Namespace) -> int:
         todo = [(args.cls, [c.strip() for c in args.concepts.split("&") if c.strip()])]
     else:
         rules = res.table.rules(min_support=get_settings().min_support, max_len=2).rules
-        todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, g in rules.groupby("class") for _, r in g.head(args.top).iterrows()]
+        todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, r in top_rules(rules, args.top).iterrows()]
     try:
         settings = VerdictSettings(min_effect=args.min_effect, alpha=args.alpha, correction=args.correction)
     except ValueError as exc:

@@ -18,7 +18,7 @@ from analysis.expectations import check_expectations, read_expectations
 from analysis.images import find_images
 from analysis.model_io import LoadedModel, load_model
 from analysis.reliance import RuleTests, VerdictSettings, judge_family
-from analysis.rules import to_csv
+from analysis.rules import to_csv, top_rules
 from demo_data.annotators import demo_crowd, simulate_label, visible_parts
 from demo_data.scenes import CUE_CONCEPTS, PARTS, CueName, SceneConfig, generate_dataset, load_scenes
 from demo_data.train import train_demo_model
@@ -93,7 +93,7 @@ def demo_expectations(cue_class: str, cue_concept: str | None) -> str:
 def run_demo_reliance(factory, project: Path, res: Results, model: LoadedModel, rules, *, top: int = 3) -> list[dict[str, object]]:  # type: ignore[no-untyped-def]
     """Covering and pasting for the top rules of each class and the campaign's expectations (kept in the
     project, so pages and the report show them); returns the judged rules, one family."""
-    todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, g in rules.groupby("class") for _, r in g.head(top).iterrows()]
+    todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, r in top_rules(rules, top).iterrows()]
     expectations = read_expectations(res.campaign.expectations) if res.campaign.expectations.strip() else None
     found: list[RuleTests] = []
     with factory() as s:

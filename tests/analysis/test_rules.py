@@ -217,3 +217,15 @@ def test_a_refinement_never_stands_above_its_entity_and_one_family_takes_one_ran
     for cls, group in flat.groupby("class"):
         assert group["rank"].tolist() == list(range(1, len(group) + 1))
         assert group["confidence_low"].is_monotonic_decreasing
+
+
+def test_top_rules_take_one_rule_per_family() -> None:
+    from analysis.rules import top_rules
+
+    table, classes = _family_table()
+    rules = mine_rules(table, classes, min_support=0.02, max_len=1, min_lift=0.0, families={"yellow tag": "tag", "red body": "body"}).rules
+    top = top_rules(rules, 2)
+    for cls, group in top.groupby("class"):
+        assert group["family"].is_unique and len(group) <= 2
+    can = top[top["class"] == "can"]["concepts"].tolist()
+    assert can[0] == "tag" and "yellow tag" not in can  # the entity stands for its family
