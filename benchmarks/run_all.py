@@ -34,7 +34,7 @@ def main(argv: list[str] | None = None) -> str:
     p.add_argument("--quick", action="store_true")
     p.add_argument("--only", nargs="*", help="names of the benchmarks to run (their sections are replaced, the rest kept)")
     args = p.parse_args(argv)
-    command = "./dev bench" + (" --quick" if args.quick else "")
+    command = "./dev bench" + (" --quick" if args.quick else "") + (f" --only {' '.join(args.only)}" if args.only else "")
     stamp = (f"Measured {datetime.now(timezone.utc):%Y-%m-%d} on {platform.machine()} ({_cpus()} CPUs), Python {platform.python_version()}, "
              f"with `{command}`" + (" (quick sizes)." if args.quick else " (full sizes)."))
     parts = [stamp]
@@ -72,7 +72,7 @@ def _replace_sections(body: str, sections: dict[str, str]) -> str:
         if pattern.search(body):
             body = pattern.sub(lambda _, s=section: s + "\n", body, count=1)  # type: ignore[misc]
         elif END in body:
-            body = body.replace(END, section + "\n" + END, 1)
+            body = body.replace(END, "\n" + section + "\n" + END, 1)
         else:
             body = body.rstrip("\n") + "\n\n" + section + "\n"
     return body
