@@ -26,7 +26,8 @@ def _codes(ratings: npt.ArrayLike) -> tuple[npt.NDArray[np.int64], int]:
 def _pairable(counts: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
     """Units x values count table, keeping only units with two or more ratings (the pairable ones)."""
     counts = np.asarray(counts, dtype=float)
-    return counts[counts.sum(axis=1) >= 2]
+    kept: npt.NDArray[np.float64] = counts[counts.sum(axis=1) >= 2]
+    return kept
 
 
 def _alpha_from_counts(counts: npt.NDArray[np.float64]) -> float:

@@ -73,7 +73,7 @@ def _fleiss(counts: np.ndarray) -> tuple[float | None, str]:
 
 def _pairs(labels: LongLabels, min_common: int) -> list[PairKappa]:
     out = []
-    by_ann = {a: {} for a in range(len(labels.annotators))}  # annotator -> {item: label}
+    by_ann: dict[int, dict[int, int]] = {a: {} for a in range(len(labels.annotators))}  # annotator -> {item: label}
     for i, a, y in zip(labels.item_codes.tolist(), labels.annotator_codes.tolist(), labels.label_codes.tolist()):
         by_ann[a][i] = y
     for a, b in combinations(range(len(labels.annotators)), 2):

@@ -47,7 +47,8 @@ class SorterCNN(nn.Module):
         )
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return self.head(self.features(x))
+        out: torch.Tensor = self.head(self.features(x))
+        return out
 
 
 class _BasicBlock(nn.Module):
@@ -67,11 +68,17 @@ class _BasicBlock(nn.Module):
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         out = self.relu(self.bn1(self.conv1(x)))
         out = self.bn2(self.conv2(out))
-        return self.relu(out + self.downsample(x))
+        summed: torch.Tensor = self.relu(out + self.downsample(x))
+        return summed
 
 
 class ResNet18(nn.Module):
     """ResNet-18 (He et al., 2016) with the usual layer names; Grad-CAM layer ``layer4``."""
+
+    layer1: nn.Sequential  # made in a loop below; declared for the type checker
+    layer2: nn.Sequential
+    layer3: nn.Sequential
+    layer4: nn.Sequential
 
     def __init__(self, num_classes: int = 1000) -> None:
         super().__init__()
@@ -91,7 +98,8 @@ class ResNet18(nn.Module):
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = self.maxpool(self.relu(self.bn1(self.conv1(x))))
         x = self.layer4(self.layer3(self.layer2(self.layer1(x))))
-        return self.fc(torch.flatten(self.avgpool(x), 1))
+        logits: torch.Tensor = self.fc(torch.flatten(self.avgpool(x), 1))
+        return logits
 
 
 ARCHITECTURES: dict[str, Callable[[int], nn.Module]] = {

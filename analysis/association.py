@@ -87,7 +87,8 @@ def benjamini_hochberg(p: npt.ArrayLike) -> npt.NDArray[np.float64]:
 
 
 def _log_comb(n: npt.NDArray[np.float64], k: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
-    return -np.log(n + 1) - betaln(n - k + 1, k + 1)
+    out: npt.NDArray[np.float64] = -np.log(n + 1) - betaln(n - k + 1, k + 1)
+    return out
 
 
 def fisher_greater(n_xy: npt.ArrayLike, n_x: npt.ArrayLike, n_y: npt.ArrayLike, n: npt.ArrayLike) -> npt.NDArray[np.float64]:

@@ -7,9 +7,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.stats import norm
 
+from .association import benjamini_hochberg
 from .concept_table import ConceptTable, Target
 from .errors import InvalidInputError
-from .association import benjamini_hochberg
 
 
 @dataclass(frozen=True)

@@ -137,7 +137,11 @@ def build_concept_table(
     concepts = sorted({c for cs in carried.values() for c in cs})
     col = {c: j for j, c in enumerate(concepts)}
     row = {image: i for i, image in enumerate(meta.index)}
-    r_image, r_mass, r_rows, r_cols, r_ids = [], [], [], [], []
+    r_image: list[int] = []
+    r_mass: list[float] = []
+    r_rows: list[int] = []
+    r_cols: list[int] = []
+    r_ids: list[int] = []
     for image in meta.index:
         for r in image_regions.get(image, ()):
             k = len(r_image)

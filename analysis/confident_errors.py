@@ -8,9 +8,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .association import associate
 from .concept_table import ConceptTable
 from .errors import InvalidInputError
-from .association import associate
 
 
 @dataclass(frozen=True)
@@ -74,8 +74,8 @@ def confident_errors(table: ConceptTable, *, threshold: float = 0.8, top: int = 
     counts = np.array([x[5] for x in tests], dtype=np.float64).reshape(len(tests), 4)
     found = associate(counts[:, 0], counts[:, 1], counts[:, 2], counts[:, 3])
     suspects: dict[int, list[SuspectConcept]] = {g: [] for g in range(len(cells))}
-    for (g, c, k, er, cr, _), pv, qv in zip(tests, found.p_value, found.q_value):
-        suspects[g].append(SuspectConcept(table.concepts[c], k, float(er), float(cr), float(pv), float(qv)))
+    for (g, ci, k, er, cr, _), pv, qv in zip(tests, found.p_value, found.q_value):
+        suspects[g].append(SuspectConcept(table.concepts[ci], k, float(er), float(cr), float(pv), float(qv)))
     out = [
         ErrorGroup(t, p, images, conf, n_r, sorted(suspects[g], key=lambda s: (s.p_value, -s.error_rate, s.concept))[:top])
         for g, (t, p, images, conf, n_r) in enumerate(groups)

@@ -198,7 +198,7 @@ def to_model_input(
     for im in images:
         im = fit_to_aspect(im, size, resize=resize, fill=fill)  # type: ignore[arg-type]
         if im.size != (w, h):
-            im = im.resize((w, h), Image.BILINEAR)
+            im = im.resize((w, h), Image.Resampling.BILINEAR)
         arrays.append(np.asarray(im.convert("RGB"), dtype=np.float32) / 255.0)
     batch = torch.from_numpy(np.stack(arrays)).permute(0, 3, 1, 2)
     if bgr:
@@ -215,7 +215,7 @@ def thumbnail_png(path: Path, *, side: int = 160) -> bytes:
 
     image = read_rgb(path)
     scale = side / max(image.size)
-    resample = Image.NEAREST if scale >= 1 else Image.BILINEAR
+    resample = Image.Resampling.NEAREST if scale >= 1 else Image.Resampling.BILINEAR
     small = image.resize((max(1, round(image.width * scale)), max(1, round(image.height * scale))), resample)
     buf = io.BytesIO()
     small.save(buf, format="PNG")

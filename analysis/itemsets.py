@@ -97,7 +97,7 @@ def count_itemsets(x: sparse.spmatrix | sparse.sparray, y: npt.ArrayLike, *, n_c
         pair_counts = np.column_stack([np.asarray(g[a_idx, b_idx]).ravel() for g in blocks]).astype(np.int64)
         itemsets += [(int(keep1[a]), int(keep1[b])) for a, b in pairs]
         counts.append(pair_counts)
-    level: list[tuple[int, ...]] = pairs  # in positions of keep1
+    level: list[tuple[int, ...]] = list(pairs)  # in positions of keep1
     if max_len >= 3 and len(level) >= 2:
         packed, word_starts = _pack_by_class(xf, bounds)
         for _ in range(3, max_len + 1):

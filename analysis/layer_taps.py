@@ -20,6 +20,7 @@ import re
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 import torch
 from torch import nn
@@ -276,7 +277,7 @@ def _ts_parts(node: torch._C.Node) -> list[tuple[str, str]]:
 class ScriptTap:
     """Runs a TorchScript graph edited to detach the layer's output into a leaf and return it too."""
 
-    def __init__(self, fn: torch._C.ScriptFunction, owner: torch._C.ScriptModule, name: str) -> None:
+    def __init__(self, fn: torch._C.ScriptFunction[..., Any], owner: torch._C.ScriptModule, name: str) -> None:
         self.fn, self.owner, self.name = fn, owner, name
 
     def __call__(self, x: torch.Tensor) -> tuple[object, torch.Tensor]:
@@ -322,10 +323,10 @@ class ScriptGraph:
     def names(self) -> list[str]:
         return list(self._graph_outputs()[1])
 
-    def _function(self, graph: torch._C.Graph, extra: list[torch._C.Value]) -> torch._C.ScriptFunction:
+    def _function(self, graph: torch._C.Graph, extra: list[torch._C.Value]) -> torch._C.ScriptFunction[..., Any]:
         ret = graph.return_node()
         original = ret.input()
-        tup = graph.create("prim::TupleConstruct", [original, *extra])
+        tup = graph.create("prim::TupleConstruct", [original, *extra], 1)
         tup.insertBefore(ret)
         tup.output().setType(torch._C.TupleType([original.type(), *[v.type() for v in extra]]))
         ret.replaceInput(0, tup.output())
@@ -352,11 +353,11 @@ class ScriptGraph:
         if name not in outputs:
             raise ModelInputError(f"target layer {name!r} is not a module of the TorchScript model, or its output is not one tensor.")
         value = outputs[name][0]
-        det = graph.create("aten::detach", [value])
+        det = graph.create("aten::detach", [value], 1)
         det.insertAfter(value.node())
-        flag = graph.insertConstant(True)
+        flag = graph.insertConstant(True)  # type: ignore[attr-defined]  # missing from torch's stubs
         flag.node().moveAfter(det)
-        leaf = graph.create("aten::requires_grad_", [det.output(), flag])
+        leaf = graph.create("aten::requires_grad_", [det.output(), flag], 1)
         leaf.insertAfter(flag.node())
         leaf.output().setType(value.type())
         value.replaceAllUsesWith(leaf.output())

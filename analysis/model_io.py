@@ -427,7 +427,7 @@ def load_model(model_path: Path | None, sidecar_path: Path, *, factory: str | No
     if model_path.suffix == ".pt2":
         return prepare_model(_load_exported(model_path), sidecar, kind="exported", sha256=sha, device=device)
     try:
-        scripted = torch.jit.load(str(model_path), map_location="cpu")
+        scripted = torch.jit.load(str(model_path), map_location="cpu")  # type: ignore[no-untyped-call]  # untyped in torch
     except Exception:  # noqa: BLE001 - not TorchScript; try the other formats next
         scripted = None
     if scripted is not None:

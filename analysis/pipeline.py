@@ -12,6 +12,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
+import numpy as np
 import pandas as pd
 
 from .concept_table import ConceptTable, build_concept_table
@@ -114,6 +115,6 @@ def campaign_table(
     if complete.empty:
         raise NotEnoughLabelsError("no image has all its regions labelled yet; label some more regions first.")
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
-    image_regions = {int(i): list(r) for i, r in complete["regions"].items()}
+    image_regions = {int(i): list(r) for i, r in zip(complete.index.to_numpy(dtype=np.int64), complete["regions"])}
     table = build_concept_table(meta, image_regions, mass, region_concepts, method=str(method), threshold=threshold, families=votes.families)
     return CampaignTable(table, len(labelled))

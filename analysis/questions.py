@@ -10,12 +10,13 @@ import re
 from dataclasses import dataclass
 
 import numpy as np
+import numpy.typing as npt
 import pandas as pd
 
+from .association import associate_masks
 from .concept_table import ConceptTable
 from .concepts import normalise_label
 from .errors import InvalidInputError
-from .association import associate_masks
 from .synonyms import edit_distance
 
 KEYWORDS = ("and", "or", "not")
@@ -209,9 +210,10 @@ def evaluate(node: Node, presence: pd.DataFrame, *, text: str = "") -> pd.Series
             hint = f" Close ones: {', '.join(close)}." if close else " No concept has been labelled yet."
             raise QuestionError(f"no concept {c.name!r} in the labels.{hint}", c.column, text or render(node))
 
-    def ev(n: Node) -> np.ndarray:
+    def ev(n: Node) -> npt.NDArray[np.bool_]:
         if isinstance(n, Concept):
-            return presence[n.name].to_numpy(dtype=bool)
+            column: npt.NDArray[np.bool_] = presence[n.name].to_numpy(dtype=bool)
+            return column
         if isinstance(n, Not):
             return ~ev(n.operand)
         if isinstance(n, And):

@@ -67,7 +67,8 @@ def threshold_mask(saliency: npt.NDArray[np.float32], policy: ThresholdPolicy) -
     cumulative = np.cumsum(flat, dtype=np.float64)
     k = int(np.searchsorted(cumulative, policy.value * cumulative[-1]))
     cut = flat[min(k, flat.size - 1)]
-    return saliency >= cut
+    inside: npt.NDArray[np.bool_] = saliency >= cut
+    return inside
 
 
 def extract_regions(
@@ -145,7 +146,7 @@ def crop_region(image: Image.Image, region: Region, *, map_size: tuple[int, int]
 def outline_region(image: Image.Image, region: Region, *, map_size: tuple[int, int], min_side: int = 256) -> Image.Image:
     """The full image (enlarged to at least ``min_side``) with the region's box drawn on it."""
     scale = max(1, int(np.ceil(min_side / max(1, min(image.size)))))
-    big = image.convert("RGB").resize((image.width * scale, image.height * scale), Image.NEAREST)
+    big = image.convert("RGB").resize((image.width * scale, image.height * scale), Image.Resampling.NEAREST)
     x0, y0, x1, y1 = scaled_box(region, map_size=map_size, image_size=image.size, margin=0.0)
     draw = ImageDraw.Draw(big)
     width = max(2, scale // 2)
@@ -161,13 +162,13 @@ def saliency_overlay(image: Image.Image, saliency: npt.NDArray[np.floating], reg
     rgb = image.convert("RGB")
     peak = float(np.max(saliency))
     norm = np.clip(np.asarray(saliency, dtype=np.float32) / peak, 0, 1) if peak > 0 else np.zeros(saliency.shape, np.float32)
-    heat = np.asarray(Image.fromarray((norm * 255).astype(np.uint8), "L").resize(rgb.size, Image.BILINEAR), dtype=np.float32) / 255.0
+    heat = np.asarray(Image.fromarray((norm * 255).astype(np.uint8), "L").resize(rgb.size, Image.Resampling.BILINEAR), dtype=np.float32) / 255.0
     colour = np.stack([np.full_like(heat, 255.0), 255.0 * heat, np.zeros_like(heat)], axis=-1)
     alpha = (0.65 * heat)[..., None]
     blended = Image.fromarray((np.asarray(rgb, dtype=np.float32) * (1 - alpha) + colour * alpha).astype(np.uint8), "RGB")
     scale = max(1, int(np.ceil(min_side / max(1, min(blended.size)))))
-    big = blended.resize((blended.width * scale, blended.height * scale), Image.NEAREST)
+    big = blended.resize((blended.width * scale, blended.height * scale), Image.Resampling.NEAREST)
     if region is not None:
-        x0, y0, x1, y1 = scaled_box(region, map_size=saliency.shape, image_size=rgb.size, margin=0.0)  # type: ignore[arg-type]
+        x0, y0, x1, y1 = scaled_box(region, map_size=saliency.shape, image_size=rgb.size, margin=0.0)
         ImageDraw.Draw(big).rectangle([x0 * scale, y0 * scale, x1 * scale - 1, y1 * scale - 1], outline=OUTLINE_COLOUR, width=max(2, scale // 2))
     return big

@@ -84,7 +84,7 @@ def wilson_lower(successes: npt.ArrayLike, trials: npt.ArrayLike, *, z: float = 
 
 def _as_sparse(table: pd.DataFrame) -> sparse.csr_matrix:
     if len(table.columns) and all(isinstance(t, pd.SparseDtype) for t in table.dtypes):
-        return sparse.csr_matrix(table.sparse.to_coo()).astype(bool)
+        return sparse.csr_matrix(table.sparse.to_coo()).astype(bool)  # type: ignore[attr-defined]  # pandas-stubs lack DataFrame.sparse
     return sparse.csr_matrix(table.to_numpy(dtype=bool))
 
 

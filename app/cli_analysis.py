@@ -26,7 +26,7 @@ from .services.reliance import expectation_verdicts, run_interventions, running_
 from .settings import get_settings
 
 
-def add_parsers(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def add_parsers(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     def project(p: argparse.ArgumentParser) -> None:
         p.add_argument("project", type=Path)
         p.add_argument("--campaign", type=int, default=None, help="campaign id (default: the latest)")

@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 from PIL import Image
 from sqlalchemy import select
+from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.evaluation import PointingGame, pointing_game
 from analysis.expectations import check_expectations, read_expectations
@@ -45,7 +46,7 @@ class DemoSize:
 SIZES = {"default": DemoSize(1200, 300, 300, 6), "small": DemoSize(600, 150, 150, 6)}
 
 
-def simulate_annotations(factory, project_dir: Path, data_root: Path, campaign_id: int, n_annotators: int, seed: int = 0) -> int:  # type: ignore[no-untyped-def]
+def simulate_annotations(factory: sessionmaker[Session], project_dir: Path, data_root: Path, campaign_id: int, n_annotators: int, seed: int = 0) -> int:
     """Label every region of the campaign by ``n_annotators`` simulated people reading the part masks."""
     scenes = load_scenes(data_root)["scenes"]
     crowd = demo_crowd(n_annotators, seed)
@@ -62,7 +63,7 @@ def simulate_annotations(factory, project_dir: Path, data_root: Path, campaign_i
         ).all()
         for region_id, rank, image_id, path in rows:
             rel = Path(path).relative_to(data_root.resolve()).as_posix()
-            scene = scenes[rel]  # type: ignore[index]
+            scene = scenes[rel]
             part_mask = np.asarray(Image.open(data_root / scene["mask"]))
             labels = np.load(ProjectLayout(project_dir).path(ProjectLayout.region_labels(campaign.run_id, image_id)))
             truth = visible_parts(labels == rank + 1, part_mask)
@@ -210,7 +211,7 @@ def demo_pointing_game(out: Path, *, tolerance: int = 2) -> PointingGame:
     engine.dispose()
     maps, masks = [], []
     for map_path, path in rows:
-        scene = scenes[Path(path).relative_to(data_root.resolve()).as_posix()]  # type: ignore[index]
+        scene = scenes[Path(path).relative_to(data_root.resolve()).as_posix()]
         maps.append(np.load(ProjectLayout(out / "project").path(map_path)).astype(np.float32))
         masks.append(np.asarray(Image.open(data_root / scene["mask"])) != PARTS.index("belt"))
     return pointing_game(np.stack(maps), np.stack(masks), tolerance=tolerance)

@@ -46,7 +46,8 @@ async def _write_session(request: Request) -> AsyncIterator[Session]:
 
 
 def _settings(request: Request) -> Settings:
-    return request.app.state.settings  # type: ignore[no-any-return]
+    settings: Settings = request.app.state.settings
+    return settings
 
 
 def optional_viewer(request: Request) -> Viewer | None:

@@ -83,7 +83,8 @@ def install_error_handlers(app: FastAPI, *, debug: bool = False) -> None:
         from .routes.common import CAUTION
 
         context = {"message": message, "status": status, "caution": CAUTION, "viewer": None}
-        return app.state.templates.TemplateResponse(request, "error.html", context, status_code=status)  # type: ignore[no-any-return]
+        page: Response = app.state.templates.TemplateResponse(request, "error.html", context, status_code=status)
+        return page
 
     async def known(request: Request, exc: Exception) -> Response:
         return respond(request, *error_status(exc))

@@ -228,7 +228,8 @@ def run_saliency(
                     regions, labels = extract_regions(sal, policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
                     np.save(layout.path(map_rel), sal.astype(np.float16))
                     np.save(layout.path(layout.region_labels(run_id, image_id)), labels.astype(np.uint8))
-                    pred = Prediction(run_id=run_id, image_id=image_id, predicted=sc.classes[int(res.predicted[k])], confidence=float(res.confidence[k]), empty_map=bool(res.empty[k]), map_path=map_rel)
+                    pred = Prediction(run_id=run_id, image_id=image_id, predicted=sc.classes[int(res.predicted[k])], confidence=float(res.confidence[k]),
+                                      empty_map=bool(res.empty[k]), map_path=map_rel)
                     s.add(pred)
                     s.flush()
                     report.empty_maps += int(res.empty[k])

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 from sqlalchemy import JSON, Boolean, DateTime, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
@@ -13,8 +13,11 @@ ROLES = ("annotator", "reviewer", "analyst", "admin")
 
 def utcnow() -> datetime:
     """Now in UTC, without tzinfo: SQLite stores datetimes naive, and comparisons must match."""
-    return datetime.now(timezone.utc).replace(tzinfo=None)
+    return datetime.now(UTC).replace(tzinfo=None)
 
+
+# A label as stored (JSON): [[entity, [attribute, ...]], ...]; [] = nothing recognisable.
+StoredEntities = list[tuple[str, list[str]]]
 
 class Base(DeclarativeBase):
     pass
@@ -138,9 +141,9 @@ class CampaignRegion(Base):
     id: Mapped[int] = mapped_column(primary_key=True)
     campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
-    check_answer: Mapped[list[list[object]] | None] = mapped_column(JSON(none_as_null=True), nullable=True)
+    check_answer: Mapped[StoredEntities | None] = mapped_column(JSON(none_as_null=True), nullable=True)
     # An example shown with the instructions, with its answer; examples are never handed out as tasks.
-    example_answer: Mapped[list[list[object]] | None] = mapped_column(JSON(none_as_null=True), nullable=True)
+    example_answer: Mapped[StoredEntities | None] = mapped_column(JSON(none_as_null=True), nullable=True)
     n_labels: Mapped[int] = mapped_column(Integer, default=0)  # kept with every label stored or undone
 
 
@@ -167,7 +170,7 @@ class Label(Base):
     campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
     region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
     person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
-    entities: Mapped[list[list[object]]] = mapped_column(JSON)  # [[entity, [attributes...]], ...]; [] = nothing recognisable
+    entities: Mapped[StoredEntities] = mapped_column(JSON)  # [[entity, [attributes...]], ...]; [] = nothing recognisable
     unsure: Mapped[bool] = mapped_column(Boolean, default=False)
     submitted_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
     seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)

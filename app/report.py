@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import base64
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from fastapi.templating import Jinja2Templates
@@ -65,7 +65,7 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
         "campaign": res.campaign, "table": table, "rules": rules, "by_class": by_class, "verdicts": verdicts, "expectation_error": expectation_error, "family": family,
         "errors": errors, "thumbs": thumbs, "provenance": run.provenance if run else {}, "caution": CAUTION, "n_regions": res.n_labelled_regions,
         "accuracy": float(table.meta["correct"].mean()) if len(table) else None,
-        "generated": datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+        "generated": datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"),
         "frequency_png": _data_uri(frequency_plot(table)), "lift_png": _data_uri(lift_plot(table)),
     }
     return templates.get_template("report.html").render(context)

@@ -8,6 +8,7 @@ through ``receive``, and the guard counts what passes there.
 from __future__ import annotations
 
 import hmac
+import inspect
 import json
 import os
 import re
@@ -211,7 +212,8 @@ def install(app: FastAPI, *, project_dir: Path, debug: bool = False) -> None:
             return JSONResponse({"message": message, "code": "internal_error", "status": 500}, status_code=500)
         handler = app.exception_handlers.get(AppError)
         if handler is not None:
-            return await handler(request, found)  # type: ignore[no-any-return]
+            got = handler(request, found)
+            return await got if inspect.isawaitable(got) else got
         return JSONResponse({"message": found.message, "code": found.code, "status": found.status_code}, status_code=found.status_code)
 
     app.add_exception_handler(DBAPIError, _db_error)

@@ -95,7 +95,7 @@ async def annotator(base: str, token: str, cid: int, start: asyncio.Event, secon
                 await asyncio.sleep(think * rng.uniform(0.5, 1.5))
             body = {"client_id": uuid.uuid4().hex, "entities": [{"entity": rng.choice(["cap", "tag", "rim", "label band"]), "attributes": ["red"]}],
                     "seconds_spent": 1.0}
-            for attempt in range(2 if rng.random() < 0.05 else 1):
+            for _attempt in range(2 if rng.random() < 0.05 else 1):
                 t = time.perf_counter()
                 r = await client.post(f"/api/campaigns/{cid}/regions/{task['region_id']}/labels", json=body, headers=headers)
                 timings["submit"].append(time.perf_counter() - t)

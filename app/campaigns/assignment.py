@@ -11,7 +11,7 @@ import random
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
-from sqlalchemy import delete, func, select, union, update
+from sqlalchemy import CompoundSelect, delete, func, insert, select, union, update
 from sqlalchemy.orm import Session
 
 from ..models import CampaignRegion, Label, Lease, Prediction, RegionRow, Skip, utcnow
@@ -29,7 +29,7 @@ class Task:
     lease_expires: datetime
 
 
-def _seen(campaign_id: int, person_id: int, now: datetime):  # type: ignore[no-untyped-def]
+def _seen(campaign_id: int, person_id: int, now: datetime) -> CompoundSelect[tuple[int]]:
     """Regions this person labelled, skipped or holds a live lease on."""
     return union(
         select(Label.region_id).where(Label.campaign_id == campaign_id, Label.person_id == person_id),
@@ -96,7 +96,7 @@ def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
             picks.append(check)
         picks += _pick_regular(s, campaign, person_id, now, need - len(picks))
         if picks:
-            conn.execute(Lease.__table__.insert(), [
+            conn.execute(insert(Lease), [
                 {"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires} for r in picks
             ])
     order = held + picks

@@ -25,7 +25,7 @@ def set_check_answer(s: Session, *, campaign_id: int, region_id: int, entities: 
     cr = campaign_region(s, campaign_id, region_id)
     if entities is not None and cr.example_answer is not None:
         raise ConflictError(f"region {region_id} is an example shown with the instructions; it cannot be a check item too.")
-    cr.check_answer = None if entities is None else [[e, a] for e, a in entities]
+    cr.check_answer = None if entities is None else [(e, list(a)) for e, a in entities]
     s.flush()
     c = s.get(Campaign, campaign_id)
     if c is not None:
@@ -42,7 +42,7 @@ def set_example(s: Session, *, campaign_id: int, region_id: int, entities: Entit
         raise ConflictError(f"region {region_id} is a check item; an example is shown to everyone, so make it a normal region first.")
     if entities is not None and cr.n_labels:
         raise ConflictError(f"region {region_id} has labels already; choose an unlabelled region as an example.")
-    cr.example_answer = None if entities is None else [[e, a] for e, a in entities]
+    cr.example_answer = None if entities is None else [(e, list(a)) for e, a in entities]
 
 
 def examples(s: Session, campaign_id: int) -> list[tuple[int, str]]:

@@ -11,7 +11,7 @@ from sqlalchemy.orm import Session
 from analysis.concepts import Judgment, normalise_label
 from analysis.synonyms import SynonymRules
 
-from ..models import CampaignRegion, ImageRow, Label, Person, Prediction, RegionRow
+from ..models import CampaignRegion, ImageRow, Label, Person, Prediction, RegionRow, StoredEntities
 
 
 def region_classes(s: Session, campaign_id: int) -> dict[int, str]:
@@ -25,8 +25,8 @@ def region_classes(s: Session, campaign_id: int) -> dict[int, str]:
     )
 
 
-def entities_of(raw: list[list[object]] | None) -> tuple[tuple[str, tuple[str, ...]], ...]:
-    return tuple((str(e[0]), tuple(str(a) for a in e[1])) for e in (raw or []))  # type: ignore[union-attr]
+def entities_of(raw: StoredEntities | None) -> tuple[tuple[str, tuple[str, ...]], ...]:
+    return tuple((str(e[0]), tuple(str(a) for a in e[1])) for e in (raw or []))
 
 
 def judgments(s: Session, campaign_id: int) -> list[Judgment]:
@@ -44,10 +44,10 @@ def label_counts(s: Session, campaign_id: int, rules: SynonymRules | None = None
     attributes: Counter[str] = Counter()
     for (raw,) in s.execute(select(Label.entities).where(Label.campaign_id == campaign_id)):
         for e in raw or []:
-            name = rules.entity(normalise_label(str(e[0])))  # type: ignore[index]
+            name = rules.entity(normalise_label(str(e[0])))
             if name:
                 entities[name] += 1
-            for a in e[1]:  # type: ignore[index, union-attr]
+            for a in e[1]:
                 attr = rules.attribute(normalise_label(str(a)))
                 if attr:
                     attributes[attr] += 1

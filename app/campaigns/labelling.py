@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from datetime import datetime, timedelta
 
-from sqlalchemy import delete, func, select, update
+from sqlalchemy import delete, func, insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -86,7 +86,7 @@ def save_label(
             if n_labels + held >= k:
                 raise ConflictError(f"your hold on region {region_id} ran out and other annotators have its last places; your next region is ready.")
     try:
-        conn.execute(Label.__table__.insert().values(
+        conn.execute(insert(Label).values(
             client_id=client_id, campaign_id=campaign.id, region_id=region_id, person_id=person_id, entities=[[e, a] for e, a in entities],
             unsure=unsure, submitted_at=now, seconds_spent=seconds_spent,
         ))
@@ -115,7 +115,7 @@ def undo_last(s: Session, *, campaign: CampaignInfo, person_id: int, now: dateti
     last = s.scalar(select(Label).where(Label.campaign_id == campaign.id, Label.person_id == person_id).order_by(Label.id.desc()).limit(1))
     if last is None:
         return None
-    text = format_label_text([(str(e[0]), [str(a) for a in e[1]]) for e in last.entities])  # type: ignore[index, union-attr]
+    text = format_label_text([(str(e[0]), [str(a) for a in e[1]]) for e in last.entities])
     region_id = last.region_id
     s.add(WithdrawnLabel(client_id=last.client_id, campaign_id=last.campaign_id, region_id=region_id, person_id=person_id, entities=last.entities,
                          withdrawn_at=now))

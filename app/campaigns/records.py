@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import datetime
 
-from sqlalchemy import select
+from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
 from analysis.reliability import METHODS
@@ -113,7 +113,7 @@ def create_campaign(
     ids = list(s.scalars(regions.order_by(RegionRow.id)))
     if not ids:
         raise InvalidRequestError(f"run {run_id} has no region in the chosen classes; nothing to label.")
-    s.execute(CampaignRegion.__table__.insert(), [{"campaign_id": c.id, "region_id": r, "n_labels": 0} for r in ids])
+    s.execute(insert(CampaignRegion), [{"campaign_id": c.id, "region_id": r, "n_labels": 0} for r in ids])
     c.n_regions = len(ids)
     return c.id
 

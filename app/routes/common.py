@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 from fastapi import Request
 from fastapi.responses import Response
 
@@ -14,7 +16,8 @@ CAUTION = (
 )
 
 
-def render(request: Request, name: str, context: dict[str, object], *, viewer: Viewer | None, status_code: int = 200) -> Response:
+def render(request: Request, name: str, context: Mapping[str, object], *, viewer: Viewer | None, status_code: int = 200) -> Response:
     """Render a template with the caution, the viewer and their form token."""
     base = {"caution": CAUTION, "viewer": viewer, "csrf": request_csrf(request) if viewer else ""}
-    return request.app.state.templates.TemplateResponse(request, name, {**base, **context}, status_code=status_code)
+    page: Response = request.app.state.templates.TemplateResponse(request, name, {**base, **context}, status_code=status_code)
+    return page

@@ -18,7 +18,9 @@ def _crowd(seed: int, accuracies: list[float], n_items: int = 400, k: int = 3, c
         rated = rng.random(n_items) < coverage
         wrong = (truth + rng.integers(1, k, n_items)) % k
         lab = np.where(rng.random(n_items) < acc, truth, wrong)
-        items += list(np.nonzero(rated)[0]); anns += [a] * int(rated.sum()); labels += list(lab[rated])
+        items += list(np.nonzero(rated)[0])
+        anns += [a] * int(rated.sum())
+        labels += list(lab[rated])
     return truth, np.array(items), np.array(anns), np.array(labels)
 
 

@@ -204,7 +204,7 @@ def test_refinements_are_nested_under_their_entity_with_their_typicality() -> No
 def test_a_refinement_never_stands_above_its_entity_and_one_family_takes_one_rank() -> None:
     table, classes = _family_table()
     rules = mine_rules(table, classes, min_support=0.02, max_len=2, min_lift=1.0, families={"yellow tag": "tag", "red body": "body"}).rules
-    for cls, group in rules.groupby("class"):
+    for _cls, group in rules.groupby("class"):
         ranks = group["rank"].tolist()
         assert ranks == sorted(ranks) and set(ranks) == set(range(1, max(ranks) + 1))
         position = {c: i for i, c in enumerate(group["concepts"])}
@@ -214,7 +214,7 @@ def test_a_refinement_never_stands_above_its_entity_and_one_family_takes_one_ran
         assert group.groupby("family")["rank"].nunique().max() == 1
     # Without families the order is the one it always was: by Wilson low, then images.
     flat = mine_rules(table, classes, min_support=0.02, max_len=2, min_lift=1.0).rules
-    for cls, group in flat.groupby("class"):
+    for _cls, group in flat.groupby("class"):
         assert group["rank"].tolist() == list(range(1, len(group) + 1))
         assert group["confidence_low"].is_monotonic_decreasing
 

@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from fastapi.testclient import TestClient
 from scipy import sparse
 
 from analysis.errors import InvalidInputError
@@ -18,7 +19,6 @@ from analysis.itemsets import count_itemsets
 from analysis.questions import QuestionError, parse_question
 from analysis.rule_budget import candidate_bound
 from app.cli import main
-from fastapi.testclient import TestClient
 
 from .conftest import join, label_some
 

@@ -40,7 +40,8 @@ def served(project: Path) -> Iterator[tuple[str, str]]:
         _, token = create_invite(s, name="kim", role="annotator", campaign_id=cid)
     engine.dispose()
     port = _free_port()
-    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, env={**os.environ, "PYTHONUNBUFFERED": "1"})
+    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+                            env={**os.environ, "PYTHONUNBUFFERED": "1"})
     url = f"http://127.0.0.1:{port}"
     deadline = time.monotonic() + 60
     while True:
@@ -68,7 +69,8 @@ def test_invite_link_then_keyboard_labelling_suggestions_and_undo(served: tuple[
     url, token = served
     dialogs: list[str] = []
     with sync_playwright() as p:
-        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--disable-sync", "--no-first-run"])
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True,
+                                    args=["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--disable-sync", "--no-first-run"])
         page = browser.new_page()
         page.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
         page.goto(f"{url}/join/{token}")
