@@ -45,7 +45,7 @@ def preview_sheet(image: Image.Image, sidecar: Sidecar, items: list[tuple[str, t
     sheet = Image.new("RGB", (cols * TILE, rows * (TILE + CAPTION)), (255, 255, 255))
     draw = ImageDraw.Draw(sheet)
     for k, (name, size, saliency) in enumerate(items):
-        tile = saliency_overlay(view, saliency, min_side=TILE).resize((TILE, TILE), Image.BILINEAR)
+        tile = saliency_overlay(view, saliency, min_side=TILE).resize((TILE, TILE), Image.Resampling.BILINEAR)
         x, y = (k % cols) * TILE, (k // cols) * (TILE + CAPTION)
         sheet.paste(tile, (x, y))
         label = f"{name} {size[0]}x{size[1]}" if size else name

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Literal
+from typing import Literal, TypedDict
 
 from .errors import ModelInputError
 
@@ -20,6 +20,16 @@ RESIZE_POLICIES: tuple[str, ...] = ("resize", "center_crop", "letterbox")
 CHANNEL_ORDERS: tuple[str, ...] = ("RGB", "BGR")
 SCALES: tuple[str, ...] = ("0-1", "0-255")
 
+
+
+class InputOptions(TypedDict):
+    """Keyword arguments of ``analysis.images.to_model_input`` for one model."""
+
+    size: tuple[int, int]
+    mean: tuple[float, float, float]
+    std: tuple[float, float, float]
+    resize: str
+    channel_order: str
 
 @dataclass(frozen=True)
 class Sidecar:
@@ -47,7 +57,7 @@ class Sidecar:
     def with_layer(self, layer: str) -> Sidecar:
         return replace(self, target_layer=layer)
 
-    def input_options(self) -> dict[str, object]:
+    def input_options(self) -> InputOptions:
         """Keyword arguments of ``analysis.images.to_model_input`` for this model."""
         return {"size": self.input_size, "mean": self.mean, "std": self.std, "resize": self.resize, "channel_order": self.channel_order}
 

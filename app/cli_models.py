@@ -11,6 +11,8 @@ from typing import TYPE_CHECKING
 from .errors import AppError
 
 if TYPE_CHECKING:
+    from PIL import Image
+
     from analysis.model_io import LoadedModel
 
 
@@ -22,7 +24,7 @@ def _model_options(p: argparse.ArgumentParser, *, model_flag: bool = True) -> No
     p.add_argument("--device", default="cpu", help="cpu (default) or cuda")
 
 
-def add_model_parsers(sub: argparse._SubParsersAction) -> None:
+def add_model_parsers(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     s = sub.add_parser("saliency", help="predict, Grad-CAM and regions for an image set (resumable)")
     s.add_argument("project", type=Path)
     _model_options(s)
@@ -83,7 +85,8 @@ def saliency(args: argparse.Namespace) -> int:
     _print_model(model)
     records = find_images(args.images)
     # A model that gives NaN or inf is refused before the long run, naming the image.
-    probe, names = [], []
+    probe: list[Image.Image] = []
+    names: list[str] = []
     for rec in records:
         if len(probe) >= 8:
             break
@@ -99,7 +102,7 @@ def saliency(args: argparse.Namespace) -> int:
     problems = register_images(factory, records)
     model_files = (args.model, args.sidecar) if args.model is not None and args.model_factory is None else None
     rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=model_files, images=records, name=name, source=args.images)
-    for path, why in problems + rep.skipped:
+    for _path, why in problems + rep.skipped:
         print(f"skipped: {why}", file=sys.stderr)
     state = "new run" if rep.new_run else "continued"
     print(f"run {rep.run_id} '{rep.name}' ({state}): {rep.processed} images processed, {rep.already_done} already done, {rep.regions} regions, "

@@ -8,6 +8,7 @@ import sys
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from sqlalchemy import select
@@ -98,7 +99,8 @@ def list_runs(factory: sessionmaker[Session]) -> list[RunSummary]:
         out = []
         for run in s.scalars(select(SaliencyRun).order_by(SaliencyRun.id)):
             p = run.provenance or {}
-            images = p.get("images") if isinstance(p.get("images"), dict) else {}
+            listed = p.get("images")
+            images: dict[str, Any] = listed if isinstance(listed, dict) else {}
             out.append(RunSummary(
                 id=run.id, name=str(p.get("run_name") or f"run {run.id}"), created=run.created_at.isoformat(timespec="minutes"),
                 images=int(images.get("count", done.get(run.id, 0))), done=int(done.get(run.id, 0)), layer=str(p.get("layer", "")),
@@ -216,7 +218,7 @@ def run_saliency(
         if pictures:
             fill = tuple(int(round(255 * m)) for m in (sc.mean[::-1] if sc.channel_order == "BGR" else sc.mean))
             views = [fit_to_aspect(im, sc.input_size, resize=sc.resize, fill=fill) for im in pictures]  # type: ignore[arg-type]
-            res = compute_saliency(model, to_model_input(pictures, **sc.input_options()))  # type: ignore[arg-type]
+            res = compute_saliency(model, to_model_input(pictures, **sc.input_options()))
             with write_session(factory) as s:
                 for k, image_id in enumerate(ids):
                     sal = res.maps[k]
