@@ -7,6 +7,7 @@ architectures heedmap knows by name are written out here.
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import TYPE_CHECKING
 
 import torch
 from torch import nn
@@ -75,10 +76,11 @@ class _BasicBlock(nn.Module):
 class ResNet18(nn.Module):
     """ResNet-18 (He et al., 2016) with the usual layer names; Grad-CAM layer ``layer4``."""
 
-    layer1: nn.Sequential  # made in a loop below; declared for the type checker
-    layer2: nn.Sequential
-    layer3: nn.Sequential
-    layer4: nn.Sequential
+    if TYPE_CHECKING:  # made in a loop below; declared for the type checker only, where TorchScript does not read them
+        layer1: nn.Sequential
+        layer2: nn.Sequential
+        layer3: nn.Sequential
+        layer4: nn.Sequential
 
     def __init__(self, num_classes: int = 1000) -> None:
         super().__init__()

@@ -104,7 +104,7 @@ def change_role(request: Request, s: WriteSessionDep, viewer: AdminDep, name: An
 
 
 @router.post("/invites/{invite_id}/revoke")
-def revoke_invite(invite_id: int, s: WriteSessionDep, viewer: AdminDep) -> Response:
+def revoke_invite(invite_id: int, s: WriteSessionDep) -> Response:
     """Revoke an invite link; browsers signed in through it are signed out."""
     people.revoke_invite(s, invite_id)
     return RedirectResponse("/admin", status_code=303)
@@ -130,7 +130,7 @@ def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: Ad
 
 @router.post("/campaigns/{campaign_id}/settings")
 def campaign_settings(
-    campaign_id: int, s: WriteSessionDep, viewer: AdminDep,
+    campaign_id: int, s: WriteSessionDep,
     instructions: Annotated[str, Form()] = "", labels_per_region: Annotated[int, Form(ge=0, le=MAX_ID)] = 3, method: Annotated[str, Form()] = "majority",
     closed: Annotated[str, Form()] = "",
 ) -> Response:
@@ -141,7 +141,7 @@ def campaign_settings(
 
 @router.post("/campaigns/{campaign_id}/checks")
 def set_check(
-    campaign_id: int, s: WriteSessionDep, viewer: AdminDep, region_id: Annotated[int, Form(ge=0, le=MAX_ID)], answer: Annotated[str, Form()] = "",
+    campaign_id: int, s: WriteSessionDep, region_id: Annotated[int, Form(ge=0, le=MAX_ID)], answer: Annotated[str, Form()] = "",
     nothing: Annotated[str, Form()] = "", clear: Annotated[str, Form()] = "", role: Annotated[str, Form()] = "check",
 ) -> Response:
     """Make a region a check item (or an example shown with the instructions) with a known answer, or a normal region again."""

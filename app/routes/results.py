@@ -7,7 +7,7 @@ from pathlib import Path
 from typing import Annotated
 from urllib.parse import urlencode
 
-from fastapi import Form, Query, Request
+from fastapi import Depends, Form, Query, Request
 from fastapi.responses import PlainTextResponse, RedirectResponse, Response
 
 from analysis.compare import compare_classes
@@ -27,6 +27,7 @@ from ..deps import (
     SettingsDep,
     WriteSessionDep,
     guarded_router,
+    require_analyst,
     require_reviewer,
 )
 from ..errors import InvalidRequestError, NotFoundError
@@ -71,7 +72,7 @@ def results(request: Request, campaign_id: int, s: SessionDep, settings: Setting
 
 
 @router.get("/plots/{kind}.png")
-def plot(request: Request, campaign_id: int, kind: str, s: SessionDep, viewer: ReviewerDep, target: str = "predicted") -> Response:
+def plot(request: Request, campaign_id: int, kind: str, s: SessionDep, target: str = "predicted") -> Response:
     """Concept frequency or lift per class, as a PNG heat map."""
     if kind not in ("frequency", "lift"):
         raise NotFoundError(f"no plot called {kind!r}; there are frequency and lift.")
@@ -81,7 +82,7 @@ def plot(request: Request, campaign_id: int, kind: str, s: SessionDep, viewer: R
 
 
 @router.get("/exports/rules.{fmt}")
-def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep, target: str = "predicted",
+def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, settings: SettingsDep, target: str = "predicted",
                  max_len: int = 2, min_support: float | None = None, prune: bool = True) -> Response:
     """The rule table as CSV, JSON or Parquet."""
     res = results_for(request, s, campaign_id)
@@ -90,7 +91,7 @@ def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, se
 
 
 @router.get("/exports/concepts.{fmt}")
-def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep, viewer: ReviewerDep) -> Response:
+def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep) -> Response:
     """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet."""
     return _file(concepts_export(results_for(request, s, campaign_id), fmt))
 
@@ -183,7 +184,7 @@ def compare(request: Request, campaign_id: int, s: SessionDep, settings: Setting
 
 
 @router.get("/report.html")
-def report(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep, viewer: ReviewerDep) -> Response:
+def report(request: Request, campaign_id: int, s: SessionDep, settings: SettingsDep) -> Response:
     """A self-contained HTML report (images and plots inline) that opens offline."""
     res = results_for(request, s, campaign_id)
     html = build_report(request.app.state.templates, s, settings, res)
@@ -237,8 +238,8 @@ def add_synonym(
     return RedirectResponse(f"/campaigns/{campaign_id}/synonyms", status_code=303)
 
 
-@router.post("/synonyms/{rule_id}/delete")
-def delete_synonym(campaign_id: int, rule_id: int, s: WriteSessionDep, viewer: AnalystDep) -> Response:
+@router.post("/synonyms/{rule_id}/delete", dependencies=[Depends(require_analyst)])
+def delete_synonym(campaign_id: int, rule_id: int, s: WriteSessionDep) -> Response:
     """Undo a merge, split or rejection."""
     campaigns.delete_synonym_rule(s, campaign_id=campaign_id, rule_id=rule_id)
     return RedirectResponse(f"/campaigns/{campaign_id}/synonyms", status_code=303)
