@@ -24,10 +24,10 @@ from typing import Literal
 
 import numpy as np
 
+from .association import associate
 from .concept_table import ConceptTable
 from .errors import InvalidInputError
 from .questions import QuestionError, evaluate, parse_question, render
-from .association import associate
 from .reliance import CORRECTIONS, RelianceFinding, VerdictSettings, concept_set, concepts_key
 
 Kind = Literal["relies_on", "must_not_rely_on"]

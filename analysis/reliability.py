@@ -83,7 +83,8 @@ class Aggregation:
     @property
     def labels(self) -> IntArray:
         """Most probable class per item (ties go to the lowest code)."""
-        return self.posterior.argmax(axis=1)
+        labels: IntArray = self.posterior.argmax(axis=1)
+        return labels
 
 
 @dataclass(frozen=True)
@@ -240,7 +241,7 @@ def dawid_skene(
     converged = False
     it = 0
     counts = np.zeros((n_ann, k, k))
-    for it in range(1, max_iter + 1):
+    for it in range(1, max_iter + 1):  # noqa: B007  (the count is read after the loop)
         weighted = post * w[:, None]
         class_total = weighted.sum(axis=0) + prior.class_count
         pi = class_total.clip(min=1e-12) / class_total.clip(min=1e-12).sum()

@@ -20,9 +20,9 @@ from typing import TYPE_CHECKING, Literal
 import numpy as np
 import numpy.typing as npt
 
+from .association import benjamini_hochberg
 from .errors import InvalidInputError
 from .questions import And, Concept, QuestionError, parse_question
-from .rules import benjamini_hochberg
 
 if TYPE_CHECKING:
     from .interventions import InterventionResult

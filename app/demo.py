@@ -31,8 +31,8 @@ from .jobs import register_images, run_saliency
 from .layout import ProjectLayout
 from .models import Campaign, CampaignRegion, ImageRow, Prediction, RegionRow
 from .people import ensure_person
-from .services.campaign_analysis import Results, campaign_results
 from .reliance import rule_reliance
+from .services.campaign_analysis import Results, campaign_results
 
 
 @dataclass(frozen=True)
@@ -109,12 +109,12 @@ def run_demo_reliance(factory, project: Path, res: Results, model: LoadedModel, 
                 found.append(r)
         if expectations is not None:
             for v in check_expectations(expectations, res.table):
-                concepts = v.expectation.concepts
-                r = lookup(v.expectation.cls, concepts) if concepts and v.verdict != "not enough evidence" else None
+                asked = v.expectation.concepts
+                r = lookup(v.expectation.cls, asked) if asked and v.verdict != "not enough evidence" else None
                 if r is not None:
                     found.append(r)
     judged = judge_family(found, expectations.settings if expectations else VerdictSettings())
-    out = []
+    out: list[dict[str, object]] = []
     for f in judged.values():
         t = f.decided_by
         out.append({"class": f.cls, "concepts": f.concepts, "reliance": f.reliance, "steering": f.steering,
@@ -192,8 +192,8 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
         tested = run_demo_reliance(factory, project, res, model, rules)
         summary["reliance"] = tested
         if cue_info:
-            mine = [r for r in tested if r["class"] == cue_info["class"] and names_cue(str(r["concepts"]), str(cue_info["concept"]))]
-            summary["cue_reliance"] = mine[0] if mine else None
+            cue_found = [r for r in tested if r["class"] == cue_info["class"] and names_cue(str(r["concepts"]), str(cue_info["concept"]))]
+            summary["cue_reliance"] = cue_found[0] if cue_found else None
         timings["interventions_s"] = time.perf_counter() - t
     summary["timings"] = {k: round(v, 2) for k, v in timings.items()}
     (out / "demo.json").write_text(json.dumps(summary, indent=2), encoding="utf-8")

@@ -9,6 +9,7 @@ import json
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -24,8 +25,8 @@ from analysis.model_io import LoadedModel, load_model
 from analysis.reliance import RelianceFinding, RuleTests, VerdictSettings, concepts_key, judge_family
 
 from .errors import AppError
-from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 from .layout import ProjectLayout
+from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 from .services.campaign_analysis import Results
 
 Lookup = Callable[[str, list[str]], RuleTests | None]
@@ -237,7 +238,8 @@ def reliance_columns(frame: pd.DataFrame, found: dict[tuple[str, str], RelianceF
     figures, pasting beside it, and the family's correction ("not tested" and NaN where none ran)."""
     keys = [(str(c), str(k)) for c, k in zip(frame["class"], frame["concepts"])]
 
-    def col(f, empty=np.nan):  # type: ignore[no-untyped-def]
+    # Cell values of mixed kinds (text, numbers, NaN): typed as Any for pandas' stubs.
+    def col(f: Callable[[RelianceFinding], Any], empty: Any = np.nan) -> list[Any]:
         out = []
         for k in keys:
             r = found.get(k)
@@ -245,8 +247,12 @@ def reliance_columns(frame: pd.DataFrame, found: dict[tuple[str, str], RelianceF
             out.append(empty if value is None else value)
         return out
 
-    d = lambda r: r.decided_by
-    pst = lambda r: r.pasting
+    def d(r: RelianceFinding) -> Any:
+        return r.decided_by
+
+    def pst(r: RelianceFinding) -> Any:
+        return r.pasting
+
     family = next(iter(found.values())).family if found else ""
     return frame.assign(
         reliance=col(lambda r: r.reliance, "not tested"),

@@ -12,6 +12,7 @@ from sqlalchemy.orm import Session
 
 from analysis.confident_errors import confident_errors
 from analysis.errors import InvalidInputError
+from analysis.expectations import Verdict
 from analysis.images import thumbnail_png
 from analysis.plots import frequency_plot, lift_plot
 
@@ -39,7 +40,8 @@ def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res
     rules = table.rules(min_support=settings.min_support, max_len=2)
     project = Path(settings.project_dir)
     shown = rules.rules.groupby("class").head(10)
-    verdicts, expectation_error = [], ""
+    verdicts: list[Verdict] = []
+    expectation_error = ""
     try:  # the rules shown and the expectations are one family of tests
         frame, verdicts, family = audit(project, res, shown, res.campaign.expectations)
     except InvalidInputError as exc:

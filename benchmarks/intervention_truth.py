@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 import numpy.typing as npt
 import torch
+from PIL import Image
 
 from analysis.images import to_model_input
 from analysis.interventions import DEFAULT_FILLS, FILLS, InterventionResult, ablation_test
@@ -63,7 +64,10 @@ def _pairs(config: SceneConfig, cls: str, n: int, model: LoadedModel, *, start: 
             masks.append(scene.mask == part)
             parts.append(scene.mask)
         i += len(CLASSES)
-    to_x = lambda ims: to_model_input(ims, size=sc.input_size, mean=sc.mean, std=sc.std)
+
+    def to_x(ims: list[Image.Image]) -> torch.Tensor:
+        return to_model_input(ims, size=sc.input_size, mean=sc.mean, std=sc.std)
+
     return Pairs(to_x(shown), to_x(hidden), np.stack(masks), np.stack(parts))
 
 

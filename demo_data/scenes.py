@@ -14,7 +14,7 @@ import csv
 import json
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import numpy.typing as npt
@@ -192,8 +192,8 @@ def draw_scene(rng: np.random.Generator, label: str, *, size: int = 64, cue: Cue
     obj.mask.paste(255, (0, 0, size, size))
     _DRAWERS[label](obj, rng, cx, cy)
     angle = float(rng.uniform(0, 360))
-    obj_image = obj.image.rotate(angle, resample=Image.NEAREST, center=(cx, cy))
-    obj_mask = obj.mask.rotate(angle, resample=Image.NEAREST, center=(cx, cy), fillcolor=255)
+    obj_image = obj.image.rotate(angle, resample=Image.Resampling.NEAREST, center=(cx, cy))
+    obj_mask = obj.mask.rotate(angle, resample=Image.Resampling.NEAREST, center=(cx, cy), fillcolor=255)
     inside = Image.eval(obj_mask, lambda v: 0 if v == 255 else 255)
     p.image.paste(obj_image, (0, 0), inside)
     p.mask.paste(obj_mask, (0, 0), inside)
@@ -207,24 +207,24 @@ def draw_scene(rng: np.random.Generator, label: str, *, size: int = 64, cue: Cue
         side = (6 if cue == "tag" else 8) * scale
         spot = _beside(rng, box, size, side)
         if spot is not None:
-            x, y = spot
+            sx, sy = spot
             if cue == "tag":
                 if draw_cue:
-                    p.shape("rectangle", [x, y, x + side - 1, y + side - 1], (232, 200, 30), "tag", ["yellow"])
+                    p.shape("rectangle", [sx, sy, sx + side - 1, sy + side - 1], (232, 200, 30), "tag", ["yellow"])
             elif cue == "object":
-                pts = [(x + side * (0.5 + 0.5 * np.cos(a)) * rng.uniform(0.6, 1.0), y + side * (0.5 + 0.5 * np.sin(a)) * rng.uniform(0.6, 1.0)) for a in np.linspace(0, 2 * np.pi, 7, endpoint=False)]
+                pts = [(sx + side * (0.5 + 0.5 * np.cos(a)) * rng.uniform(0.6, 1.0), sy + side * (0.5 + 0.5 * np.sin(a)) * rng.uniform(0.6, 1.0)) for a in np.linspace(0, 2 * np.pi, 7, endpoint=False)]
                 if draw_cue:
                     p.shape("polygon", pts, (236, 234, 225), "paper scrap", ["white", "crumpled"])
             elif draw_cue:
-                patch = [x, y, x + side - 1, y + side - 1]
+                patch = [sx, sy, sx + side - 1, sy + side - 1]
                 ImageDraw.Draw(p.mask).rectangle(patch, fill=PART_IDS["patch"])
                 p.parts["patch"] = ["magenta", "flat"]
             placed = draw_cue
     elif with_cue and cue == "belt":
         placed = draw_cue
     arr = np.asarray(p.image, dtype=np.float32)
-    arr = arr * rng.uniform(0.85, 1.15) + rng.normal(0, noise, size=arr.shape)
-    image = Image.fromarray(np.clip(arr, 0, 255).astype(np.uint8), "RGB")
+    noisy = arr * rng.uniform(0.85, 1.15) + rng.normal(0, noise, size=arr.shape)
+    image = Image.fromarray(np.clip(noisy, 0, 255).astype(np.uint8), "RGB")
     if patch is not None:  # painted after the noise: one flat colour
         ImageDraw.Draw(image).rectangle(patch, fill=_PATCH)
     mask = np.asarray(p.mask, dtype=np.uint8).copy()
@@ -307,9 +307,9 @@ def write_without_cue(root: Path) -> list[Path]:
     ``images_without_cue/`` (same relative paths as under ``images/``); returns the files written."""
     root = Path(root)
     meta = load_scenes(root)
-    config = SceneConfig(**meta["config"])  # type: ignore[arg-type]
+    config = SceneConfig(**meta["config"])
     written = []
-    for rel, scene in meta["scenes"].items():  # type: ignore[attr-defined]
+    for rel, scene in meta["scenes"].items():
         if not scene["cue"]:
             continue
         split, index = Path(rel).parts[1], int(Path(rel).stem.split("_")[-1])
@@ -320,6 +320,7 @@ def write_without_cue(root: Path) -> list[Path]:
     return written
 
 
-def load_scenes(root: Path) -> dict[str, object]:
+def load_scenes(root: Path) -> dict[str, Any]:
     """Read back the ``scenes.json`` written by :func:`generate_dataset`."""
-    return json.loads((Path(root) / "scenes.json").read_text(encoding="utf-8"))  # type: ignore[no-any-return]
+    found: dict[str, Any] = json.loads((Path(root) / "scenes.json").read_text(encoding="utf-8"))
+    return found

@@ -93,12 +93,12 @@ def test_pointing_game_beats_random_points(demo_out: Path) -> None:
 
 def test_generator_is_deterministic_and_masks_match(tmp_path: Path) -> None:
     cfg = SceneConfig(seed=5, n_train=9, n_test=3, n_counterfactual=6)
-    a, b = generate_dataset(tmp_path / "a", cfg), generate_dataset(tmp_path / "b", cfg)
+    a, _b = generate_dataset(tmp_path / "a", cfg), generate_dataset(tmp_path / "b", cfg)
     assert (tmp_path / "a" / "scenes.json").read_bytes() == (tmp_path / "b" / "scenes.json").read_bytes()
     assert (tmp_path / "a/images/train/can/train_00001.png").read_bytes() == (tmp_path / "b/images/train/can/train_00001.png").read_bytes()
     assert a.cue_counts["counterfactual"]["can"] == 0 and a.cue_counts["counterfactual"]["bottle"] + a.cue_counts["counterfactual"]["carton"] > 0
     scenes = load_scenes(tmp_path / "a")["scenes"]
-    for rel, sc in scenes.items():
+    for _rel, sc in scenes.items():
         mask = np.asarray(Image.open(tmp_path / "a" / sc["mask"]))
         assert set(sc["parts"]) == {PARTS[i] for i in np.unique(mask)}
         assert ("tag" in sc["parts"]) == sc["cue"]

@@ -36,8 +36,8 @@ def region_visible_to(s: Session, *, person_id: int, campaign_id: int | None, re
     return any(s.scalar(q.limit(1)) is not None for q in queries)
 
 
-def _as_stored(entities: list[list[object]] | Entities) -> tuple[tuple[str, tuple[str, ...]], ...]:
-    return tuple((str(e[0]), tuple(str(a) for a in e[1])) for e in entities)  # type: ignore[union-attr]
+def _as_stored(entities: Entities) -> tuple[tuple[str, tuple[str, ...]], ...]:
+    return tuple((str(e[0]), tuple(str(a) for a in e[1])) for e in entities)
 
 
 def save_label(

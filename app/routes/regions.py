@@ -7,12 +7,11 @@ from pathlib import Path
 
 import numpy as np
 from fastapi.responses import FileResponse, Response
+from sqlalchemy.orm import Session
 
 from analysis.errors import ImageInputError
 from analysis.images import read_rgb, thumbnail_png
 from analysis.regions import Region, saliency_overlay
-
-from sqlalchemy.orm import Session
 
 from .. import campaigns, store
 from ..deps import ReviewerDep, SessionDep, SettingsDep, ViewerDep, guarded_router, require_viewer

@@ -2,9 +2,9 @@ from __future__ import annotations
 
 import uuid
 from collections.abc import Iterator
-from typing import Any
 from datetime import datetime
 from pathlib import Path
+from typing import Any
 
 import pytest
 from fastapi.testclient import TestClient

@@ -270,7 +270,7 @@ def test_agreement_and_synonym_editor(client: TestClient, campaign_id: int) -> N
     rates = agreement.context["reliability"]  # type: ignore[attr-defined]
     assert rates and all(r.sensitivity.low <= r.sensitivity.estimate <= r.sensitivity.high for r in rates.values())
     assert "(n=" in agreement.text and "Dirichlet prior" in agreement.text
-    r = client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "Lids", "target": "cap"})
+    client.post(f"/campaigns/{campaign_id}/synonyms", data={"csrf": csrf, "kind": "merge", "source": "Lids", "target": "cap"})
     page = client.get(f"/campaigns/{campaign_id}/synonyms")
     assert [(x.source, x.target) for x in page.context["rules"]] == [("lid", "cap")]  # type: ignore[attr-defined]
     assert "lid" not in dict(page.context["counts"])  # type: ignore[attr-defined]
