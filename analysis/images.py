@@ -146,6 +146,12 @@ def read_rgb(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> Image.Image
         raise ImageInputError(f"{path} could not be decoded ({exc}).") from None
 
 
+def mean_fill(mean: tuple[float, float, float], *, channel_order: str = "RGB") -> tuple[int, int, int]:
+    """The model's mean colour as 0-255 RGB (``mean`` is on the 0-1 scale, in ``channel_order``): what padding is filled with."""
+    r, g, b = tuple(reversed(mean)) if channel_order == "BGR" else mean
+    return (int(round(255 * min(1.0, max(0.0, r)))), int(round(255 * min(1.0, max(0.0, g)))), int(round(255 * min(1.0, max(0.0, b)))))
+
+
 def fit_to_aspect(
     image: Image.Image, size: tuple[int, int], *, resize: str = "resize", fill: tuple[int, int, int] = (0, 0, 0)
 ) -> Image.Image:
@@ -192,11 +198,10 @@ def to_model_input(
     """
     h, w = size
     bgr = channel_order == "BGR"
-    mean_rgb = tuple(reversed(mean)) if bgr else mean
-    fill = tuple(int(round(255 * min(1.0, max(0.0, m)))) for m in mean_rgb)
+    fill = mean_fill(mean, channel_order=channel_order)
     arrays: list[npt.NDArray[np.float32]] = []
     for im in images:
-        im = fit_to_aspect(im, size, resize=resize, fill=fill)  # type: ignore[arg-type]
+        im = fit_to_aspect(im, size, resize=resize, fill=fill)
         if im.size != (w, h):
             im = im.resize((w, h), Image.Resampling.BILINEAR)
         arrays.append(np.asarray(im.convert("RGB"), dtype=np.float32) / 255.0)

@@ -10,7 +10,7 @@ import torch
 from PIL import Image, ImageDraw
 
 from .errors import InvalidInputError
-from .images import fit_to_aspect
+from .images import fit_to_aspect, mean_fill
 from .model_io import LoadedModel
 from .regions import saliency_overlay
 from .saliency import compute_saliency
@@ -38,8 +38,7 @@ def layer_maps(model: LoadedModel, x: torch.Tensor, names: list[str]) -> dict[st
 
 def preview_sheet(image: Image.Image, sidecar: Sidecar, items: list[tuple[str, tuple[int, int] | None, npt.NDArray[np.float32]]]) -> Image.Image:
     """Tiles of the image with each layer's map over it, captioned with the layer and its map size."""
-    fill = tuple(int(round(255 * m)) for m in sidecar.mean)
-    view = fit_to_aspect(image, sidecar.input_size, resize=sidecar.resize, fill=fill).convert("RGB")  # type: ignore[arg-type]
+    view = fit_to_aspect(image, sidecar.input_size, resize=sidecar.resize, fill=mean_fill(sidecar.mean)).convert("RGB")
     cols = max(1, min(6, len(items)))
     rows = max(1, -(-len(items) // cols))
     sheet = Image.new("RGB", (cols * TILE, rows * (TILE + CAPTION)), (255, 255, 255))

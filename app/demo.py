@@ -91,7 +91,7 @@ def demo_expectations(cue_class: str, cue_concept: str | None) -> str:
     return "\n".join(lines) + "\n"
 
 
-def run_demo_reliance(factory, project: Path, res: Results, model: LoadedModel, rules, *, top: int = 3) -> list[dict[str, object]]:  # type: ignore[no-untyped-def]
+def run_demo_reliance(factory: sessionmaker[Session], project: Path, res: Results, model: LoadedModel, rules: pd.DataFrame, *, top: int = 3) -> list[dict[str, object]]:
     """Covering and pasting for the top rules of each class and the campaign's expectations (kept in the
     project, so pages and the report show them); returns the judged rules, one family."""
     todo = [(str(r["class"]), str(r["concepts"]).split(" & ")) for _, r in top_rules(rules, top).iterrows()]

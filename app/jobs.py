@@ -15,7 +15,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.errors import ImageInputError
-from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, fit_to_aspect, read_rgb, to_model_input
+from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, fit_to_aspect, mean_fill, read_rgb, to_model_input
 from analysis.model_io import LoadedModel
 from analysis.regions import ThresholdPolicy, crop_region, extract_regions, outline_region
 from analysis.saliency import compute_saliency, saliency_provenance
@@ -216,8 +216,8 @@ def run_saliency(
                     if row is not None:
                         row.problem = str(exc)
         if pictures:
-            fill = tuple(int(round(255 * m)) for m in (sc.mean[::-1] if sc.channel_order == "BGR" else sc.mean))
-            views = [fit_to_aspect(im, sc.input_size, resize=sc.resize, fill=fill) for im in pictures]  # type: ignore[arg-type]
+            fill = mean_fill(sc.mean, channel_order=sc.channel_order)
+            views = [fit_to_aspect(im, sc.input_size, resize=sc.resize, fill=fill) for im in pictures]
             res = compute_saliency(model, to_model_input(pictures, **sc.input_options()))
             with write_session(factory) as s:
                 for k, image_id in enumerate(ids):

@@ -175,7 +175,7 @@ def _result(raw: dict[str, object]) -> InterventionResult:
     return InterventionResult(**raw)  # type: ignore[arg-type]
 
 
-def _bar(label: str):  # type: ignore[no-untyped-def]
+def _bar(label: str) -> Callable[[int, int], None]:
     def show(done: int, total: int) -> None:
         filled = int(30 * done / max(1, total))
         sys.stderr.write(f"\r{label[:40]:<40} [{'#' * filled}{'.' * (30 - filled)}] {done}/{total}")

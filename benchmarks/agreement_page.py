@@ -15,45 +15,37 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
+from sqlalchemy import insert
 
 from analysis import agreement
 from analysis.agreement_report import agreement_report
 from analysis.concept_votes import estimate_concepts, presence_agreement
-from app.campaigns import create_campaign, get_campaign
+from app.campaigns import get_campaign
 from app.db import make_engine, session_factory, write_session
-from app.models import ImageRow, Label, Person, Prediction, RegionRow, SaliencyRun
+from app.models import Label, Person
 from app.services.campaign_analysis import ResultsCache, agreement_summary, votes
 
+from . import annotation_load
 from .measure import print_table, timed
-
-CLASSES = ("bottle", "can", "carton")
 
 
 def make_project(root: Path, n_images: int, *, n_people: int = 20, k: int = 3, n_concepts: int = 300, seed: int = 0) -> int:
-    """A run of ``n_images`` images x 2 regions, a campaign over it, and ``k`` labels per region."""
+    """The load benchmark's run and campaign (``n_images`` images x 2 regions), and ``k`` labels per region."""
+    cid, _ = annotation_load.make_project(root, n_images, 0, k)
     rng = np.random.default_rng(seed)
+    popularity = 1 / np.arange(1, n_concepts + 1)  # a few concepts named often, a long tail
+    popularity /= popularity.sum()
+    rows = []
+    for region in range(1, 2 * n_images + 1):
+        truth = rng.choice(n_concepts, size=2, replace=False, p=popularity)
+        for person in rng.choice(n_people, size=k, replace=False):
+            named = [int(c) if rng.random() < 0.8 else int(rng.choice(n_concepts, p=popularity)) for c in truth[: rng.integers(1, 3)]]
+            rows.append({"client_id": f"{region}-{person}", "campaign_id": cid, "region_id": region, "person_id": int(person) + 1,
+                         "entities": [[f"concept {c}", []] for c in dict.fromkeys(named)], "unsure": False})
     engine = make_engine(root)
     with write_session(session_factory(engine)) as s:
-        run = SaliencyRun(config_key="bench", provenance={"method": "synthetic"})
-        s.add(run)
-        s.flush()
-        s.execute(ImageRow.__table__.insert(), [{"id": i + 1, "path": f"/synthetic/{i}.png", "label": CLASSES[i % 3], "split": "test"} for i in range(n_images)])
-        s.execute(Prediction.__table__.insert(), [{"id": i + 1, "run_id": run.id, "image_id": i + 1, "predicted": CLASSES[i % 3], "confidence": 0.9,
-                                                   "empty_map": False, "map_path": "none"} for i in range(n_images)])
-        s.execute(RegionRow.__table__.insert(), [{"id": i + 1, "prediction_id": i // 2 + 1, "rank": i % 2, "x0": 0, "y0": 0, "x1": 8, "y1": 8, "area": 64,
-                                                  "mass_share": 0.5, "crop_path": "none", "outline_path": "none"} for i in range(2 * n_images)])
-        cid = create_campaign(s, name="agreement", run_id=run.id, labels_per_region=k)
-        s.execute(Person.__table__.insert(), [{"id": p + 1, "name": f"annotator {p:02d}", "role": "annotator"} for p in range(n_people)])
-        popularity = 1 / np.arange(1, n_concepts + 1)  # a few concepts named often, a long tail
-        popularity /= popularity.sum()
-        rows = []
-        for region in range(1, 2 * n_images + 1):
-            truth = rng.choice(n_concepts, size=2, replace=False, p=popularity)
-            for person in rng.choice(n_people, size=k, replace=False):
-                named = [int(c) if rng.random() < 0.8 else int(rng.choice(n_concepts, p=popularity)) for c in truth[: rng.integers(1, 3)]]
-                rows.append({"client_id": f"{region}-{person}", "campaign_id": cid, "region_id": region, "person_id": int(person) + 1,
-                             "entities": [[f"concept {c}", []] for c in dict.fromkeys(named)], "unsure": False})
-        s.execute(Label.__table__.insert(), rows)
+        s.execute(insert(Person), [{"id": p + 1, "name": f"annotator {p:02d}", "role": "annotator"} for p in range(n_people)])
+        s.execute(insert(Label), rows)
     engine.dispose()
     return cid
 
