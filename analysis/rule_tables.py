@@ -49,7 +49,8 @@ def _as_presence(frame: pd.DataFrame, columns: list[str], *, hint: str) -> pd.Da
     if bad:
         examples = ", ".join(f"{c!r} (e.g. {frame.loc[~text[c].isin(TRUE | FALSE), c].iloc[0]!r})" for c in bad[:3])
         raise InvalidInputError(f"concept columns must hold only 0/1 (or true/false, yes/no); {examples} {'does' if len(bad) == 1 else 'do'} not. {hint}")
-    return text.isin(TRUE)
+    flags: pd.DataFrame = text.isin(TRUE)
+    return flags
 
 
 def read_rule_table(frame: pd.DataFrame, *, target: str, id_column: str | None = None, families: bool = True) -> RuleInput:

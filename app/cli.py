@@ -15,10 +15,11 @@ import traceback
 from pathlib import Path
 
 import pandas as pd
+from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.errors import AnalysisError, InvalidInputError
-from analysis.reliability import METHODS
 from analysis.exports import rules_document
+from analysis.reliability import METHODS
 from analysis.rule_budget import DEFAULT_MAX_CANDIDATES, check_rule_budget
 from analysis.rules import mine_rules, to_csv
 from demo_data.scenes import CUES
@@ -149,7 +150,7 @@ def write_csv(rows: list[list[object]]) -> None:
     csv.writer(sys.stdout, lineterminator="\n").writerows(rows)
 
 
-def _factory(project: Path, *, create: bool = False):  # type: ignore[no-untyped-def]
+def _factory(project: Path, *, create: bool = False) -> sessionmaker[Session]:
     from .db import open_project, session_factory
 
     return session_factory(open_project(project, create=create))
@@ -299,7 +300,9 @@ def _agreement(args: argparse.Namespace) -> int:
     print(f"Fleiss' kappa: {rep.fleiss:.3f}" if rep.fleiss is not None else f"Fleiss' kappa: {rep.fleiss_note}")
     print("annotator, judgments, agreement with others, mean Cohen's kappa")
     for a in rep.annotators:
-        fmt = lambda v: "-" if v is None else f"{v:.3f}"  # noqa: E731
+        def fmt(v: float | None) -> str:
+            return "-" if v is None else f"{v:.3f}"
+
         print(f"{a.annotator}, {a.judgments}, {fmt(a.agreement_with_others)}, {fmt(a.mean_kappa)}")
     return 0
 
@@ -331,7 +334,8 @@ def _aggregate(args: argparse.Namespace) -> int:
 
 
 def _init(args: argparse.Namespace) -> int:
-    from .db import DB_NAME, open_project
+    from .db import open_project
+    from .layout import DB_NAME
     from .people import load_key
 
     if (args.project / DB_NAME).is_file():
