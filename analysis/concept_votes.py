@@ -130,7 +130,12 @@ def presence_votes(
     per_region: dict[int, list[tuple[int, set[str]]]] = {}
     for (r, a), cs in named.items():
         per_region.setdefault(r, []).append((a_index[a], cs))
-    pr, pc, kn, vp, va, vy = [], [], [], [], [], []
+    pr: list[int] = []
+    pc: list[int] = []
+    kn: list[int] = []
+    vp: list[int] = []
+    va: list[int] = []
+    vy: list[bool] = []
     for r in regions:
         raters = per_region[r]
         answer = known_sets.get(r)
@@ -140,9 +145,9 @@ def presence_votes(
             pr.append(r_index[r])
             pc.append(c_index[c])
             kn.append(-1 if answer is None else int(c in answer))
-            for a, cs in raters:
+            for rater, cs in raters:
                 vp.append(p)
-                va.append(a)
+                va.append(rater)
                 vy.append(c in cs)
     keys = sorted(entity)
     ent_names = tuple(sorted(set(entity.values())))
@@ -153,7 +158,10 @@ def presence_votes(
         np.array([a_index[a] for _, a in keys], dtype=np.int64),
         np.array([e_index[entity[k]] for k in keys], dtype=np.int64),
     )
-    as_int = lambda v: np.array(v, dtype=np.int64)
+
+    def as_int(v: list[int]) -> IntArray:
+        return np.array(v, dtype=np.int64)
+
     fams = {c: e for c, e in sorted(families.items()) if c in concept_set and e in concept_set}
     return PresenceVotes(regions, annotators, concepts, as_int(pr), as_int(pc), as_int(kn), as_int(vp), as_int(va), np.array(vy, dtype=bool), main, fams)
 

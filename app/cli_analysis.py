@@ -12,8 +12,8 @@ from sqlalchemy.orm import Session, sessionmaker
 from analysis.expectations import read_expectations, verdict_counts
 from analysis.exports import FORMATS
 from analysis.interventions import DEFAULT_FILLS, FILLS
-from analysis.reliance import CORRECTIONS, VerdictSettings, judge_family
 from analysis.questions import answer_question
+from analysis.reliance import CORRECTIONS, VerdictSettings, judge_family
 from analysis.rules import top_rules
 
 from . import campaigns

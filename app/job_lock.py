@@ -13,7 +13,7 @@ import socket
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from .errors import ConflictError
@@ -32,7 +32,7 @@ def saliency_job_lock(project_dir: Path) -> Iterator[None]:
         except BlockingIOError:
             raise ConflictError(f"another saliency job is running on {project_dir}: {_holder(path)}. Wait for it to finish (it resumes "
                                 "where it stopped if interrupted), or stop that process first.") from None
-        holder = {"pid": os.getpid(), "host": socket.gethostname(), "started": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        holder = {"pid": os.getpid(), "host": socket.gethostname(), "started": datetime.now(UTC).isoformat(timespec="seconds"),
                   "command": " ".join(sys.argv[:6])[:200]}
         os.ftruncate(fd, 0)
         os.pwrite(fd, json.dumps(holder).encode(), 0)

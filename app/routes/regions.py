@@ -16,8 +16,8 @@ from analysis.regions import Region, saliency_overlay
 from .. import campaigns, store
 from ..deps import ReviewerDep, SessionDep, SettingsDep, ViewerDep, guarded_router, require_viewer
 from ..errors import InvalidRequestError, NotFoundError
-from ..layout import ProjectLayout
 from ..jobs import MAX_ASPECT
+from ..layout import ProjectLayout
 from ..models import ImageRow
 from ..people import Viewer
 

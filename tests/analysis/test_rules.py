@@ -225,7 +225,7 @@ def test_top_rules_take_one_rule_per_family() -> None:
     table, classes = _family_table()
     rules = mine_rules(table, classes, min_support=0.02, max_len=1, min_lift=0.0, families={"yellow tag": "tag", "red body": "body"}).rules
     top = top_rules(rules, 2)
-    for cls, group in top.groupby("class"):
+    for _cls, group in top.groupby("class"):
         assert group["family"].is_unique and len(group) <= 2
     can = top[top["class"] == "can"]["concepts"].tolist()
     assert can[0] == "tag" and "yellow tag" not in can  # the entity stands for its family
