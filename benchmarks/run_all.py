@@ -11,7 +11,7 @@ import platform
 import re
 import sys
 import time
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from importlib import import_module
 from pathlib import Path
 
@@ -35,7 +35,7 @@ def main(argv: list[str] | None = None) -> str:
     p.add_argument("--only", nargs="*", help="names of the benchmarks to run (their sections are replaced, the rest kept)")
     args = p.parse_args(argv)
     command = "./dev bench" + (" --quick" if args.quick else "") + (f" --only {' '.join(args.only)}" if args.only else "")
-    stamp = (f"Measured {datetime.now(timezone.utc):%Y-%m-%d} on {platform.machine()} ({_cpus()} CPUs), Python {platform.python_version()}, "
+    stamp = (f"Measured {datetime.now(UTC):%Y-%m-%d} on {platform.machine()} ({_cpus()} CPUs), Python {platform.python_version()}, "
              f"with `{command}`" + (" (quick sizes)." if args.quick else " (full sizes)."))
     parts = [stamp]
     sections: dict[str, str] = {}
