@@ -78,13 +78,17 @@ def alpha_from_counts(counts: npt.ArrayLike) -> float:
 def _resample_weights(u: int, n_boot: int, seed: int) -> tuple[npt.NDArray[np.float64], ...]:
     """How often each of ``u`` units is drawn in each resample, in chunks of 64 resamples (small for many units).
 
+    Each resample draws ``u`` unit indices uniformly with replacement and counts them: the same
+    multinomial distribution as ``rng.multinomial(u, [1/u] * u)``, several times cheaper to draw.
     Kept for the last few sizes: per-concept alphas over the same regions resample the same
     units with the same seed, and drawing the weights is most of a bootstrap's time.
     """
     rng = np.random.default_rng(seed)
     chunks = []
     for start in range(0, n_boot, 64):
-        w = rng.multinomial(u, np.full(u, 1.0 / u), size=min(64, n_boot - start)).astype(float)
+        rows = min(64, n_boot - start)
+        picks = rng.integers(0, u, size=(rows, u)) + (np.arange(rows) * u)[:, None]
+        w = np.bincount(picks.ravel(), minlength=rows * u).reshape(rows, u).astype(float)
         w.flags.writeable = False
         chunks.append(w)
     return tuple(chunks)

@@ -13,20 +13,19 @@ import sqlite3
 import sys
 import traceback
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import pandas as pd
-from sqlalchemy.orm import Session, sessionmaker
-
+# Only light imports here: `heedmap --help` and commands that need no model start in well under a
+# second; each command imports what it needs (numpy, pandas, SQLAlchemy, torch) when it runs.
 from analysis.errors import AnalysisError, InvalidInputError
-from analysis.exports import rules_document
-from analysis.reliability import METHODS
-from analysis.rule_budget import DEFAULT_MAX_CANDIDATES, check_rule_budget
-from analysis.rules import mine_rules, to_csv
-from demo_data.scenes import CUES
 
+from .cli_choices import CUES, DEFAULT_MAX_CANDIDATES, METHODS, ROLES
 from .errors import AppError
-from .models import ROLES
 from .settings import SettingsError, get_settings
+
+if TYPE_CHECKING:
+    import pandas as pd
+    from sqlalchemy.orm import Session, sessionmaker
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -96,7 +95,7 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--prune", action="store_true", help="drop rules whose set adds no confidence over a subset")
     r.add_argument("--json", action="store_true")
     r.add_argument("--max-candidates", type=int, default=DEFAULT_MAX_CANDIDATES, help="refuse settings that could count more concept sets than this")
-    from .cli_analysis import add_parsers
+    from .cli_analysis_args import add_parsers
 
     add_parsers(sub)
     g = sub.add_parser("agreement", help="agreement among annotators from a LABELS.csv (item,annotator,label)")
@@ -118,6 +117,8 @@ def read_text_csv(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
 
     Errors name the file, the line and what to fix (encoding, ragged rows, missing columns).
     """
+    import pandas as pd
+
     try:
         raw = path.read_bytes()
     except OSError as exc:
@@ -259,6 +260,10 @@ def _checks(args: argparse.Namespace) -> int:
 
 
 def _rules(args: argparse.Namespace) -> int:
+    from analysis.exports import rules_document
+    from analysis.rule_budget import check_rule_budget
+    from analysis.rules import mine_rules, to_csv
+
     from analysis.rule_tables import read_rule_table
     from analysis.rules import support_count
 

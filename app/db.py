@@ -254,9 +254,20 @@ def _ensure_schema(engine: Engine, *, readonly: bool = False) -> None:
         row = s.scalar(select(SchemaInfo))
         if row is None:
             s.add(SchemaInfo(version=SCHEMA_VERSION))
+        elif row.version < 3:
+            _count_words(s)  # version 3 keeps each campaign's word counts beside its labels
+            row.version = SCHEMA_VERSION
         # Older projects kept the cookie-signing key here, readable by anyone who can read the
         # database; that key is dropped (it now lives in an owner-only file, see people.load_key).
         s.execute(text("DELETE FROM secrets WHERE name = 'cookie_key'"))
+
+
+def _count_words(s: Session) -> None:
+    from .campaigns.vocabulary import recount_words
+    from .models import Campaign
+
+    for campaign_id in s.scalars(select(Campaign.id)):
+        recount_words(s, campaign_id)
 
 
 def _migrate_v1(engine: Engine) -> None:

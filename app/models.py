@@ -7,7 +7,7 @@ from datetime import UTC, datetime
 from sqlalchemy import JSON, Boolean, DateTime, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 ROLES = ("annotator", "reviewer", "analyst", "admin")
 
 
@@ -213,3 +213,20 @@ class SynonymRule(Base):
     targets: Mapped[dict[str, str]] = mapped_column(JSON, default=dict)  # split: class -> concept
     created_by: Mapped[str] = mapped_column(String, default="")
     created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+
+
+class WordCount(Base):
+    """How often a normalised word was typed in a campaign, as an entity or an attribute.
+
+    Kept with every label stored or undone, in the same transaction, so the labelling page's
+    vocabulary reads these few rows instead of every label of the campaign. Synonym rules are
+    applied when reading, so a new rule never needs a recount.
+    """
+
+    __tablename__ = "word_counts"
+    __table_args__ = (UniqueConstraint("campaign_id", "kind", "word"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    kind: Mapped[str] = mapped_column(String)  # entity | attribute
+    word: Mapped[str] = mapped_column(String)
+    n: Mapped[int] = mapped_column(Integer, default=0)

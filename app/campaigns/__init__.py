@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from .assignment import Task, held_tasks, lease_tasks
 from .checks import check_answers, examples, set_check_answer, set_example
-from .judgments import judgments, label_counts, raw_labels, region_classes
+from .judgments import judgments, raw_labels, region_classes
 from .labelling import region_visible_to, save_label, skip_region, undo_last
 from .progress import (
     AnnotatorProgress,
@@ -21,6 +21,7 @@ from .records import (
     run_classes,
     update_campaign,
 )
+from .vocabulary import label_counts, recount_words
 from .synonym_rules import (
     RuleRow,
     add_synonym_rule,
@@ -51,6 +52,7 @@ __all__ = [
     "list_campaigns",
     "person_progress",
     "raw_labels",
+    "recount_words",
     "region_classes",
     "run_classes",
     "save_label",

@@ -2,14 +2,11 @@
 
 from __future__ import annotations
 
-from collections import Counter
-
 import pandas as pd
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from analysis.concepts import Judgment, normalise_label
-from analysis.synonyms import SynonymRules
+from analysis.concepts import Judgment
 
 from ..models import CampaignRegion, ImageRow, Label, Person, Prediction, RegionRow, StoredEntities
 
@@ -35,23 +32,6 @@ def judgments(s: Session, campaign_id: int) -> list[Judgment]:
         .where(Label.campaign_id == campaign_id).order_by(Label.id)
     )
     return [Judgment(r, name, entities_of(ents), bool(unsure)) for r, name, ents, unsure in rows]
-
-
-def label_counts(s: Session, campaign_id: int, rules: SynonymRules | None = None) -> tuple[Counter[str], Counter[str]]:
-    """How often each normalised entity and attribute was used in the campaign (through the rules)."""
-    rules = rules or SynonymRules()
-    entities: Counter[str] = Counter()
-    attributes: Counter[str] = Counter()
-    for (raw,) in s.execute(select(Label.entities).where(Label.campaign_id == campaign_id)):
-        for e in raw or []:
-            name = rules.entity(normalise_label(str(e[0])))
-            if name:
-                entities[name] += 1
-            for a in e[1]:
-                attr = rules.attribute(normalise_label(str(a)))
-                if attr:
-                    attributes[attr] += 1
-    return entities, attributes
 
 
 def raw_labels(s: Session, campaign_id: int) -> pd.DataFrame:

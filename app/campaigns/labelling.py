@@ -13,6 +13,7 @@ from analysis.concepts import format_label_text
 from ..errors import ConflictError, ForbiddenError, NotFoundError
 from ..models import CampaignRegion, Label, Lease, Skip, WithdrawnLabel, utcnow
 from .records import CampaignInfo, Entities
+from .vocabulary import add_words, words_of
 
 
 def campaign_region(s: Session, campaign_id: int, region_id: int) -> CampaignRegion:
@@ -93,6 +94,7 @@ def save_label(
     except IntegrityError:
         raise ConflictError(f"region {region_id} was labelled twice at once; reload the page.") from None
     conn.execute(update(CampaignRegion).where(CampaignRegion.id == cr_id).values(n_labels=CampaignRegion.n_labels + 1))
+    add_words(s, campaign.id, words_of(entities))
     if mine is not None:
         conn.execute(delete(Lease).where(*lease_here, Lease.person_id == person_id))
     return True
@@ -119,6 +121,7 @@ def undo_last(s: Session, *, campaign: CampaignInfo, person_id: int, now: dateti
     region_id = last.region_id
     s.add(WithdrawnLabel(client_id=last.client_id, campaign_id=last.campaign_id, region_id=region_id, person_id=person_id, entities=last.entities,
                          withdrawn_at=now))
+    add_words(s, campaign.id, words_of(last.entities), sign=-1)
     s.delete(last)
     s.execute(update(CampaignRegion).where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
               .values(n_labels=CampaignRegion.n_labels - 1))

@@ -93,3 +93,31 @@ def test_bootstrap_interval_brackets_alpha_and_narrows_with_more_units() -> None
     # The interval width shrinks roughly with the square root of the units (16x units -> about 1/4).
     assert (hi_l - lo_l) < 0.5 * (hi_s - lo_s)
     assert alpha_bootstrap(small, n_boot=400, seed=1) == alpha_bootstrap(small, n_boot=400, seed=1)
+
+
+def test_bootstrap_by_indices_matches_scipy_percentile_interval() -> None:
+    """Resampling unit indices gives the interval scipy.stats.bootstrap (percentile method, units
+    resampled with replacement) gives for the same statistic, within Monte Carlo error."""
+    from scipy.stats import bootstrap
+
+    rng = np.random.default_rng(7)
+    truth = rng.integers(0, 3, 300)
+    ratings = np.where(rng.random((3, 300)) < 0.75, truth, rng.integers(0, 3, (3, 300)))
+    counts = unit_counts(ratings.tolist())
+    ours = alpha_bootstrap(counts, n_boot=4000, seed=0)
+    ref = bootstrap((np.arange(len(counts)),), lambda idx: alpha_from_counts(counts[idx]), vectorized=False, n_resamples=4000,
+                    method="percentile", random_state=np.random.default_rng(1)).confidence_interval
+    width = ref.high - ref.low
+    assert ours[0] == pytest.approx(ref.low, abs=0.05 * width + 0.005)
+    assert ours[1] == pytest.approx(ref.high, abs=0.05 * width + 0.005)
+
+
+def test_resample_weights_are_multinomial_counts() -> None:
+    """Each resample's weights count u draws (they sum to u) and every unit is equally likely (mean 1)."""
+    from analysis.agreement import _resample_weights
+
+    w = np.concatenate(_resample_weights(50, 400, 0))
+    assert w.shape == (400, 50) and np.all(w.sum(axis=1) == 50)
+    assert w.mean() == pytest.approx(1.0) and abs(w.mean(axis=0) - 1).max() < 0.25
+    # The variance of a multinomial count with p = 1/u is u * p * (1 - p) = 0.98.
+    assert w.var() == pytest.approx(1 - 1 / 50, rel=0.1)
