@@ -229,20 +229,31 @@ def measure_size(n_images: int, prepared: dict[str, str], work: Path, *, repeat:
     for when, who, campaign in (("start", "start", fresh), ("end", "end", cid)):
         for k, v in task_costs(who, campaign).items():
             out[f"{k}_{when}_s"] = v
-    out["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    out["peak_rss_mb"] = _peak_rss_mb()
     return out
 
 
-def cli_start() -> float:
-    """Seconds for `heedmap --help` in a fresh interpreter (best of three)."""
-    exe = Path(sys.executable).with_name("heedmap")
-    cmd = [str(exe), "--help"] if exe.exists() else [sys.executable, "-m", "app.cli", "--help"]
-    best = float("inf")
+def _peak_rss_mb() -> float:
+    """This process's peak resident memory since it started (VmHWM; ru_maxrss would count the parent it forked from)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def cli_start() -> tuple[float, float]:
+    """Seconds for `heedmap --help` of this tree in a fresh interpreter, and for a bare interpreter (best of three each)."""
+    code = "from app.cli import main\ntry:\n    main(['--help'])\nexcept SystemExit:\n    pass"
+    best = {"help": float("inf"), "bare": float("inf")}
     for _ in range(3):
-        t = time.perf_counter()
-        subprocess.run(cmd, check=True, capture_output=True)
-        best = min(best, time.perf_counter() - t)
-    return best
+        for what, cmd in (("help", [sys.executable, "-c", code]), ("bare", [sys.executable, "-c", "pass"])):
+            t = time.perf_counter()
+            subprocess.run(cmd, check=True, capture_output=True, cwd=ROOT)
+            best[what] = min(best[what], time.perf_counter() - t)
+    return best["help"], best["bare"]
 
 
 ROWS = [
@@ -274,12 +285,18 @@ def main(argv: list[str] | None = None) -> str:
     p.add_argument("--quick", action="store_true", help="500 and 2,000 images instead of 5,000 and 20,000")
     p.add_argument("--sizes", nargs=2, type=int, help="the two image counts")
     p.add_argument("--child", help=argparse.SUPPRESS)  # JSON: one size, run in this process
+    p.add_argument("--keep", type=Path, help="build one project of the first size here and keep it (for profiling); measure nothing")
     args = p.parse_args(argv)
     if args.child:
         job = json.loads(args.child)
         print(json.dumps(measure_size(job["n"], job["prepared"], Path(job["work"]))))
         return ""
     small, large = args.sizes or ((500, 2_000) if args.quick else (5_000, 20_000))
+    if args.keep:
+        args.keep.mkdir(parents=True)
+        found_one = measure_size(small, prepare(args.keep, small), args.keep, repeat=1)
+        print(json.dumps(found_one))
+        return ""
     found: dict[int, dict[str, float]] = {}
     with tempfile.TemporaryDirectory() as tmp:
         prepared = prepare(Path(tmp), large)
@@ -299,7 +316,9 @@ def main(argv: list[str] | None = None) -> str:
     for title, key in ROWS:
         a, b = found[small][key], found[large][key]
         rows.append([title, float(a), float(b), float(b / a) if a else "-"])
-    rows.append(["CLI start-up, `heedmap --help` (s)", cli_start(), "", ""])
+    help_s, bare_s = cli_start()
+    rows.append(["CLI start-up, `heedmap --help` (s)", help_s, "", ""])
+    rows.append(["a bare `python -c pass`, for scale (s)", bare_s, "", ""])
     return _table([f"what ({small:,} / {large:,} images; ratio)", f"{small:,}", f"{large:,}", "ratio"], rows)
 
 

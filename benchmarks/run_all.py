@@ -25,6 +25,7 @@ BENCHMARKS = [
     ("rules_scale", "Per-class rules at scale against scripted mlxtend"),
     ("aggregation_scale", "Dawid-Skene aggregation at scale"),
     ("annotation_load", "50 annotators at once against the served app"),
+    ("product_scale", "The product at two sizes: pages, exports, labelling task, saliency job, disk and memory"),
 ]
 START, END = "<!-- benchmarks:start -->", "<!-- benchmarks:end -->"
 
