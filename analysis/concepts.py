@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import re
 import unicodedata
 from collections.abc import Iterable, Sequence
@@ -29,8 +30,12 @@ def singular(word: str) -> str:
     return word
 
 
+@functools.lru_cache(maxsize=65_536)
 def normalise_label(text: str) -> str:
-    """Canonical form of a label: NFKC, case-folded, single spaces, no edge punctuation, last word singular."""
+    """Canonical form of a label: NFKC, case-folded, single spaces, no edge punctuation, last word singular.
+
+    Kept for recent labels: a campaign repeats a few hundred words across all its judgments.
+    """
     s = unicodedata.normalize("NFKC", text).casefold()
     s = _INNER.sub(" ", s)
     s = _SPACE.sub(" ", s).strip()

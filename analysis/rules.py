@@ -310,11 +310,21 @@ def _cell(v: object) -> object:
     return v
 
 
+def _column_cells(col: pd.Series) -> list[object]:
+    """One column's cells as :func:`_cell` writes them, a whole column at a time where its type allows."""
+    kind = col.dtype.kind
+    if kind in "biu":
+        return col.astype(str).tolist()  # what csv writes for ints and bools: str(v)
+    if kind == "f":
+        return [f"{v:.6g}" if v == v else "" for v in col.to_numpy(dtype=np.float64).tolist()]
+    return [_cell(v) for v in col.tolist()]
+
+
 def to_csv(frame: pd.DataFrame) -> str:
-    """CSV text of a table with formula-like text cells escaped."""
+    """CSV text of a table with formula-like text cells escaped (built column by column: a 20,000-row
+    concept table is written in a fraction of the time a cell-by-cell loop takes)."""
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow([spreadsheet_safe(str(c)) for c in frame.columns])
-    for row in frame.itertuples(index=False):
-        writer.writerow([_cell(v) for v in row])
+    writer.writerows(zip(*(_column_cells(frame.iloc[:, i]) for i in range(frame.shape[1]))))
     return buf.getvalue()

@@ -6,19 +6,21 @@ import hashlib
 import json
 import sys
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+from PIL import Image
 from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.errors import ImageInputError
 from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, fit_to_aspect, mean_fill, read_rgb, to_model_input
-from analysis.model_io import LoadedModel
-from analysis.regions import ThresholdPolicy, crop_region, extract_regions, outline_region
-from analysis.saliency import compute_saliency, saliency_provenance
+from analysis.model_io import LoadedModel, Sidecar
+from analysis.regions import ThresholdPolicy, crop_region, extract_regions
+from analysis.saliency import SaliencyBatch, compute_saliency, saliency_provenance
 
 from .db import write_session
 from .layout import ProjectLayout
@@ -143,6 +145,39 @@ def _progress(done: int, total: int) -> None:
     sys.stderr.flush()
 
 
+def _store_batch(factory: sessionmaker[Session], layout: ProjectLayout, run_id: int, sc: Sidecar, params: RegionParams, ids: list[int],
+                 paths: dict[int, str], views: list[Image.Image], res: SaliencyBatch, report: JobReport) -> None:
+    """Write one batch's maps and crops, then its rows in one transaction.
+
+    The region's outline is not stored: the app draws it over the original image when asked.
+    """
+    with write_session(factory) as s:
+        for k, image_id in enumerate(ids):
+            sal = res.maps[k]
+            if not (np.isfinite(float(res.confidence[k])) and np.isfinite(sal).all()):
+                why = "the model gave NaN or infinite outputs for this image; nothing was stored for it (check the model and its input scaling)"
+                report.skipped.append((paths[image_id], why))
+                continue
+            map_rel = layout.saliency_map(run_id, image_id)
+            regions, labels = extract_regions(sal, policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
+            np.save(layout.path(map_rel), sal.astype(np.float16))
+            np.save(layout.path(layout.region_labels(run_id, image_id)), labels.astype(np.uint8))
+            pred = Prediction(run_id=run_id, image_id=image_id, predicted=sc.classes[int(res.predicted[k])], confidence=float(res.confidence[k]),
+                              empty_map=bool(res.empty[k]), map_path=map_rel)
+            s.add(pred)
+            s.flush()
+            report.empty_maps += int(res.empty[k])
+            if regions and regions[0].area >= 0.9 * sal.size:
+                report.whole_image_regions += 1
+            for r in regions:
+                crop_rel = layout.crop(run_id, image_id, r.rank)
+                crop_region(views[k], r, map_size=sc.input_size, margin=params.margin).save(layout.path(crop_rel))
+                s.add(RegionRow(prediction_id=pred.id, rank=r.rank, x0=r.x0, y0=r.y0, x1=r.x1, y1=r.y1, area=r.area, mass_share=r.mass_share,
+                                crop_path=crop_rel, outline_path=""))
+                report.regions += 1
+    report.processed += len(ids)
+
+
 def run_saliency(
     factory: sessionmaker[Session],
     project_dir: Path,
@@ -202,51 +237,41 @@ def run_saliency(
     layout.make_run_dirs(run_id)
     sc = model.sidecar
     total = len(todo)
-    for b, start in enumerate(range(0, total, batch_size)):
-        batch = todo[start : start + batch_size]
-        pictures, ids = [], []
-        for image_id, path in batch:
-            try:
-                pictures.append(read_rgb(Path(path)))
-                ids.append(image_id)
-            except ImageInputError as exc:
-                report.skipped.append((path, str(exc)))
-                with write_session(factory) as s:
-                    row = s.get(ImageRow, image_id)
-                    if row is not None:
-                        row.problem = str(exc)
-        if pictures:
-            fill = mean_fill(sc.mean, channel_order=sc.channel_order)
-            views = [fit_to_aspect(im, sc.input_size, resize=sc.resize, fill=fill) for im in pictures]
-            res = compute_saliency(model, to_model_input(pictures, **sc.input_options()))
-            with write_session(factory) as s:
-                for k, image_id in enumerate(ids):
-                    sal = res.maps[k]
-                    if not (np.isfinite(float(res.confidence[k])) and np.isfinite(sal).all()):
-                        why = "the model gave NaN or infinite outputs for this image; nothing was stored for it (check the model and its input scaling)"
-                        report.skipped.append((dict(batch)[image_id], why))
-                        continue
-                    map_rel = layout.saliency_map(run_id, image_id)
-                    regions, labels = extract_regions(sal, policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
-                    np.save(layout.path(map_rel), sal.astype(np.float16))
-                    np.save(layout.path(layout.region_labels(run_id, image_id)), labels.astype(np.uint8))
-                    pred = Prediction(run_id=run_id, image_id=image_id, predicted=sc.classes[int(res.predicted[k])], confidence=float(res.confidence[k]),
-                                      empty_map=bool(res.empty[k]), map_path=map_rel)
-                    s.add(pred)
-                    s.flush()
-                    report.empty_maps += int(res.empty[k])
-                    if regions and regions[0].area >= 0.9 * sal.size:
-                        report.whole_image_regions += 1
-                    for r in regions:
-                        crop_rel = layout.crop(run_id, image_id, r.rank)
-                        outline_rel = layout.outline(run_id, image_id, r.rank)
-                        crop_region(views[k], r, map_size=sc.input_size, margin=params.margin).save(layout.path(crop_rel))
-                        outline_region(views[k], r, map_size=sc.input_size).save(layout.path(outline_rel))
-                        s.add(RegionRow(prediction_id=pred.id, rank=r.rank, x0=r.x0, y0=r.y0, x1=r.x1, y1=r.y1, area=r.area, mass_share=r.mass_share, crop_path=crop_rel, outline_path=outline_rel))
-                        report.regions += 1
-            report.processed += len(ids)
-        if progress:
-            progress(start + len(batch), total)
-        if after_batch:
-            after_batch(b)
+    # Files are written and each batch committed on a writer thread while the next batch is computed:
+    # the PNG and array encoding no longer holds up the model. A batch's rows commit only after its
+    # files are on disk, so a stored prediction never points at a missing file.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-writer") as writer:
+        pending: Future[None] | None = None
+        for b, start in enumerate(range(0, total, batch_size)):
+            batch = todo[start : start + batch_size]
+            pictures, ids = [], []
+            for image_id, path in batch:
+                try:
+                    pictures.append(read_rgb(Path(path)))
+                    ids.append(image_id)
+                except ImageInputError as exc:
+                    report.skipped.append((path, str(exc)))
+                    if pending is not None:
+                        pending.result()
+                        pending = None
+                    with write_session(factory) as s:
+                        row = s.get(ImageRow, image_id)
+                        if row is not None:
+                            row.problem = str(exc)
+            if pictures:
+                fill = mean_fill(sc.mean, channel_order=sc.channel_order)
+                views = [fit_to_aspect(im, sc.input_size, resize=sc.resize, fill=fill) for im in pictures]
+                res = compute_saliency(model, to_model_input(pictures, **sc.input_options()))
+                if pending is not None:
+                    pending.result()  # the previous batch is stored before this one is handed over
+                pending = writer.submit(_store_batch, factory, layout, run_id, sc, params, ids, dict(batch), views, res, report)
+            if pending is not None and after_batch:
+                pending.result()  # what after_batch sees is stored
+                pending = None
+            if progress:
+                progress(start + len(batch), total)
+            if after_batch:
+                after_batch(b)
+        if pending is not None:
+            pending.result()
     return report

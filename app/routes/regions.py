@@ -7,18 +7,19 @@ from pathlib import Path
 
 import numpy as np
 from fastapi.responses import FileResponse, Response
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from analysis.errors import ImageInputError
-from analysis.images import read_rgb, thumbnail_png
-from analysis.regions import Region, saliency_overlay
+from analysis.images import fit_to_aspect, read_rgb, thumbnail_png
+from analysis.regions import Region, outline_region, saliency_overlay
 
 from .. import campaigns, store
 from ..deps import ReviewerDep, SessionDep, SettingsDep, ViewerDep, guarded_router, require_viewer
 from ..errors import InvalidRequestError, NotFoundError
 from ..jobs import MAX_ASPECT
 from ..layout import ProjectLayout
-from ..models import ImageRow
+from ..models import ImageRow, Prediction, RegionRow, SaliencyRun
 from ..people import Viewer
 
 router = guarded_router(require_viewer, prefix="/api")
@@ -45,10 +46,30 @@ def region_crop(region_id: int, s: SessionDep, settings: SettingsDep, viewer: Vi
     return FileResponse(_project_file(settings, _files(s, viewer, region_id).crop, region_id), media_type="image/png", headers=_CACHE)
 
 
-@router.get("/regions/{region_id}/outline.png")
-def region_outline(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse:
-    """The full image with the region outlined."""
-    return FileResponse(_project_file(settings, _files(s, viewer, region_id).outline, region_id), media_type="image/png", headers=_CACHE)
+@router.get("/regions/{region_id}/outline.png", response_model=None)
+def region_outline(region_id: int, s: SessionDep, settings: SettingsDep, viewer: ViewerDep) -> FileResponse | Response:
+    """The full image with the region outlined: drawn now over the original image (the saliency job
+    stores no outline file; projects made before that keep theirs)."""
+    files = _files(s, viewer, region_id)
+    if files.outline:
+        return FileResponse(_project_file(settings, files.outline, region_id), media_type="image/png", headers=_CACHE)
+    size = tuple(np.load(_project_file(settings, files.saliency_map, region_id), mmap_mode="r").shape)
+    try:
+        image = read_rgb(Path(files.image_path))
+    except ImageInputError as exc:
+        raise NotFoundError(f"the image of region {region_id} cannot be read: {exc}") from None
+    # The view the model saw (as the saliency job cut it), so the box lands where the map put it.
+    provenance = s.scalar(select(SaliencyRun.provenance).join(Prediction, Prediction.run_id == SaliencyRun.id)
+                          .join(RegionRow, RegionRow.prediction_id == Prediction.id).where(RegionRow.id == region_id)) or {}
+    sidecar = provenance.get("sidecar") or {}
+    mean = list(sidecar.get("mean") or (0.0, 0.0, 0.0))
+    fill = tuple(int(round(255 * float(m))) for m in (mean[::-1] if sidecar.get("channel_order") == "BGR" else mean))
+    view = fit_to_aspect(image, size, resize=str(sidecar.get("resize") or "resize"), fill=fill)  # type: ignore[arg-type]
+    x0, y0, x1, y1 = files.box
+    box = Region(rank=0, x0=x0, y0=y0, x1=x1, y1=y1, area=0, mass_share=0.0, peak_x=x0, peak_y=y0)
+    buf = io.BytesIO()
+    outline_region(view, box, map_size=size).save(buf, format="PNG")  # type: ignore[arg-type]
+    return Response(buf.getvalue(), media_type="image/png", headers=_CACHE)
 
 
 @router.get("/regions/{region_id}/overlay.png")

@@ -19,7 +19,7 @@ from analysis.plots import frequency_plot, lift_plot
 from analysis.questions import QuestionError, answer_question, rule_question
 from analysis.synonyms import suggest_merges
 
-from .. import campaigns
+from .. import campaigns, store
 from ..deps import (
     AnalystDep,
     ReviewerDep,
@@ -92,8 +92,11 @@ def export_rules(request: Request, campaign_id: int, fmt: str, s: SessionDep, se
 
 @router.get("/exports/concepts.{fmt}")
 def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep) -> Response:
-    """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet."""
-    return _file(concepts_export(results_for(request, s, campaign_id), fmt))
+    """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet.
+
+    The file is kept per state of the campaign's labels, like the results it is written from."""
+    key = ("concepts-export", fmt, *store.labels_version(s, campaign_id))
+    return _file(request.app.state.results_cache.get_or_make(key, lambda: concepts_export(results_for(request, s, campaign_id), fmt)))
 
 
 @router.get("/exports/main-labels.csv", response_class=PlainTextResponse)

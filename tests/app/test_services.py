@@ -46,3 +46,19 @@ def test_results_are_cached_per_state_of_the_labels(client: TestClient, campaign
         again = campaign_results(s, campaign_id, cache=cache)
         assert again.table is not first.table
         assert again.table.presence.equals(campaign_results(s, campaign_id).table.presence)  # the uncached path agrees
+
+
+def test_concepts_export_is_kept_until_a_new_label(client: TestClient, campaign_id: int) -> None:
+    from app.services.exports import concepts_export
+
+    _label(client, campaign_id, "p", 12)
+    join(client, "boss", "analyst")
+    url = f"/campaigns/{campaign_id}/exports/concepts.csv"
+    first = client.get(url)
+    assert first.status_code == 200 and client.get(url).content == first.content
+    _label(client, campaign_id, "q", 3)
+    join(client, "boss", "analyst")
+    again = client.get(url)
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        fresh = concepts_export(campaign_results(s, campaign_id), "csv").body
+    assert again.content == fresh and again.content != first.content
