@@ -33,7 +33,7 @@ def test_job_stores_crops_and_maps_but_no_outline(project: Path) -> None:
 
 
 def test_outline_is_drawn_over_the_original_image(client: TestClient, project: Path, campaign_id: int) -> None:
-    join(client, "ann")
+    join(client, "rev", "reviewer")
     engine = make_engine(project)
     with session_factory(engine)() as s:
         region, image_path, map_path = s.execute(select(RegionRow, ImageRow.path, Prediction.map_path).select_from(RegionRow)
