@@ -23,6 +23,7 @@ import argparse
 import contextlib
 import json
 import os
+import re
 import resource
 import statistics
 import subprocess
@@ -120,7 +121,7 @@ def _simulated_labels(factory, project: Path, data: Path, cid: int, *, seed: int
             .join(Prediction, RegionRow.prediction_id == Prediction.id).join(ImageRow, Prediction.image_id == ImageRow.id)
             .where(CampaignRegion.campaign_id == cid).order_by(RegionRow.id)
         ).all()
-        leave = max(2, len(rows) // 50)  # the first annotator leaves these for the end-of-campaign task
+        leave = max(10, len(rows) // 50)  # the first annotator leaves these for the end-of-campaign task
         out, counts = [], {}
         for i, (region_id, rank, image_id, path) in enumerate(rows):
             scene = scenes[Path(path).relative_to(data.resolve()).as_posix()]  # type: ignore[index]
@@ -178,15 +179,17 @@ def measure_size(n_images: int, prepared: dict[str, str], work: Path, *, repeat:
     with write_session(factory) as s:
         tokens = {
             "analyst": create_invite(s, name="bench analyst", role="analyst")[1],
-            "end": create_invite(s, name="sim-1", role="annotator")[1],
-            "start": create_invite(s, name="newcomer", role="annotator")[1],
+            "end": create_invite(s, name="sim-1", role="annotator", campaign_id=cid)[1],
+            "start": create_invite(s, name="newcomer", role="annotator", campaign_id=fresh)[1],
         }
     engine.dispose()
 
     @contextlib.contextmanager
     def signed_in(who: str) -> Iterator[TestClient]:
         with TestClient(create_app(Settings(project_dir=project))) as client:
-            r = client.get(f"/join/{tokens[who]}", follow_redirects=False)
+            page = client.get(f"/join/{tokens[who]}")  # the sign-in page's form carries a one-use token
+            found = re.search(r'name="join" value="([^"]+)"', page.text)
+            r = client.post(f"/join/{tokens[who]}", data={"join": found.group(1) if found else ""}, follow_redirects=False)
             if r.status_code != 303:
                 raise SystemExit(f"sign-in as {who} failed: {r.status_code} {r.text[:200]}")
             client.headers[CSRF_HEADER] = csrf_token(client.app.state.key, client.cookies[COOKIE])  # type: ignore[attr-defined]
@@ -212,11 +215,11 @@ def measure_size(n_images: int, prepared: dict[str, str], work: Path, *, repeat:
             costs: dict[str, list[float]] = {"next": [], "vocabulary": [], "submit": []}
             for i in range(repeat):
                 t = time.perf_counter()
-                r = client.get(f"/api/campaigns/{campaign}/tasks/next")
+                r = client.post(f"/api/campaigns/{campaign}/tasks/next")
                 costs["next"].append(time.perf_counter() - t)
-                task = r.json()["task"]
+                task = r.json().get("task") if r.status_code == 200 else None
                 if task is None:
-                    raise SystemExit(f"no task left for {who}")
+                    raise SystemExit(f"no task for {who}: {r.status_code} {r.text[:300]}")
                 costs["vocabulary"].append(get(client, f"/api/campaigns/{campaign}/vocabulary"))
                 t = time.perf_counter()
                 r = client.post(f"/api/campaigns/{campaign}/regions/{task['region_id']}/labels",
