@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import io
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from itertools import combinations
@@ -314,9 +315,9 @@ def _column_cells(col: pd.Series) -> list[object]:
     """One column's cells as :func:`_cell` writes them, a whole column at a time where its type allows."""
     kind = col.dtype.kind
     if kind in "biu":
-        return col.astype(str).tolist()  # what csv writes for ints and bools: str(v)
+        return list(col.astype(str).tolist())  # what csv writes for ints and bools: str(v)
     if kind == "f":
-        return [f"{v:.6g}" if v == v else "" for v in col.to_numpy(dtype=np.float64).tolist()]
+        return [f"{v:.6g}" if not math.isnan(v) else "" for v in col.to_numpy(dtype=np.float64).tolist()]
     return [_cell(v) for v in col.tolist()]
 
 

@@ -262,10 +262,8 @@ def _checks(args: argparse.Namespace) -> int:
 def _rules(args: argparse.Namespace) -> int:
     from analysis.exports import rules_document
     from analysis.rule_budget import check_rule_budget
-    from analysis.rules import mine_rules, to_csv
-
     from analysis.rule_tables import read_rule_table
-    from analysis.rules import support_count
+    from analysis.rules import mine_rules, support_count, to_csv
 
     frame = read_text_csv(args.table, ())
     try:

@@ -213,7 +213,7 @@ def measure_size(n_images: int, prepared: dict[str, str], work: Path, *, repeat:
     def task_costs(who: str, campaign: int) -> dict[str, float]:
         with signed_in(who) as client:
             costs: dict[str, list[float]] = {"next": [], "vocabulary": [], "submit": []}
-            for i in range(repeat):
+            for _ in range(repeat):
                 t = time.perf_counter()
                 r = client.post(f"/api/campaigns/{campaign}/tasks/next")
                 costs["next"].append(time.perf_counter() - t)

@@ -21,7 +21,6 @@ from .records import (
     run_classes,
     update_campaign,
 )
-from .vocabulary import label_counts, recount_words
 from .synonym_rules import (
     RuleRow,
     add_synonym_rule,
@@ -29,6 +28,7 @@ from .synonym_rules import (
     synonym_rule_rows,
     synonym_rules,
 )
+from .vocabulary import label_counts, recount_words
 
 __all__ = [
     "AnnotatorProgress",

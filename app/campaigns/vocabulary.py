@@ -27,7 +27,7 @@ def words_of(entities: Iterable[object] | None) -> Counter[tuple[str, str]]:
         name = normalise_label(str(e[0]))  # type: ignore[index]
         if name:
             found["entity", name] += 1
-        for a in e[1]:  # type: ignore[index, union-attr]
+        for a in e[1]:  # type: ignore[index]
             attr = normalise_label(str(a))
             if attr:
                 found["attribute", attr] += 1

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from fastapi.responses import FileResponse, Response
@@ -11,7 +12,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from analysis.errors import ImageInputError
-from analysis.images import fit_to_aspect, read_rgb, thumbnail_png
+from analysis.images import fit_to_aspect, mean_fill, read_rgb, thumbnail_png
 from analysis.regions import Region, outline_region, saliency_overlay
 
 from .. import campaigns, store
@@ -53,22 +54,24 @@ def region_outline(region_id: int, s: SessionDep, settings: SettingsDep, viewer:
     files = _files(s, viewer, region_id)
     if files.outline:
         return FileResponse(_project_file(settings, files.outline, region_id), media_type="image/png", headers=_CACHE)
-    size = tuple(np.load(_project_file(settings, files.saliency_map, region_id), mmap_mode="r").shape)
+    height, width = np.load(_project_file(settings, files.saliency_map, region_id), mmap_mode="r").shape[:2]
+    size = (int(height), int(width))
     try:
         image = read_rgb(Path(files.image_path))
     except ImageInputError as exc:
         raise NotFoundError(f"the image of region {region_id} cannot be read: {exc}") from None
     # The view the model saw (as the saliency job cut it), so the box lands where the map put it.
     provenance = s.scalar(select(SaliencyRun.provenance).join(Prediction, Prediction.run_id == SaliencyRun.id)
-                          .join(RegionRow, RegionRow.prediction_id == Prediction.id).where(RegionRow.id == region_id)) or {}
-    sidecar = provenance.get("sidecar") or {}
-    mean = list(sidecar.get("mean") or (0.0, 0.0, 0.0))
-    fill = tuple(int(round(255 * float(m))) for m in (mean[::-1] if sidecar.get("channel_order") == "BGR" else mean))
-    view = fit_to_aspect(image, size, resize=str(sidecar.get("resize") or "resize"), fill=fill)  # type: ignore[arg-type]
+                          .join(RegionRow, RegionRow.prediction_id == Prediction.id).where(RegionRow.id == region_id))
+    found = provenance.get("sidecar") if isinstance(provenance, dict) else None
+    sidecar: dict[str, Any] = found if isinstance(found, dict) else {}
+    mean = [float(m) for m in (sidecar.get("mean") or (0.0, 0.0, 0.0))]
+    fill = mean_fill((mean[0], mean[1], mean[2]), channel_order=str(sidecar.get("channel_order") or "RGB"))
+    view = fit_to_aspect(image, size, resize=str(sidecar.get("resize") or "resize"), fill=fill)
     x0, y0, x1, y1 = files.box
     box = Region(rank=0, x0=x0, y0=y0, x1=x1, y1=y1, area=0, mass_share=0.0, peak_x=x0, peak_y=y0)
     buf = io.BytesIO()
-    outline_region(view, box, map_size=size).save(buf, format="PNG")  # type: ignore[arg-type]
+    outline_region(view, box, map_size=size).save(buf, format="PNG")
     return Response(buf.getvalue(), media_type="image/png", headers=_CACHE)
 
 

@@ -8,8 +8,8 @@ import sys
 
 from analysis.exports import FORMATS
 from analysis.interventions import DEFAULT_FILLS, FILLS
-from analysis.reliance import CORRECTIONS, VerdictSettings
 from analysis.reliability import METHODS
+from analysis.reliance import CORRECTIONS, VerdictSettings
 from analysis.rule_budget import DEFAULT_MAX_CANDIDATES
 from app import cli_choices
 from app.models import ROLES
