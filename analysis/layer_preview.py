@@ -38,7 +38,7 @@ def layer_maps(model: LoadedModel, x: torch.Tensor, names: list[str]) -> dict[st
 
 def preview_sheet(image: Image.Image, sidecar: Sidecar, items: list[tuple[str, tuple[int, int] | None, npt.NDArray[np.float32]]]) -> Image.Image:
     """Tiles of the image with each layer's map over it, captioned with the layer and its map size."""
-    view = fit_to_aspect(image, sidecar.input_size, resize=sidecar.resize, fill=mean_fill(sidecar.mean)).convert("RGB")
+    view = fit_to_aspect(image, sidecar.input_size, resize=sidecar.resize, fill=mean_fill(sidecar.mean, channel_order=sidecar.channel_order)).convert("RGB")
     cols = max(1, min(6, len(items)))
     rows = max(1, -(-len(items) // cols))
     sheet = Image.new("RGB", (cols * TILE, rows * (TILE + CAPTION)), (255, 255, 255))

@@ -35,8 +35,7 @@ from .layer_taps import (
 from .sidecar import Sidecar, read_sidecar, sidecar_from_dict, write_sidecar
 
 __all__ = [
-    "LoadedModel", "Sidecar", "read_sidecar", "write_sidecar", "sidecar_from_dict", "prepare_model", "load_model",
-    "load_checkpoint", "import_factory", "check_finite_outputs", "EXPORT_HELP",
+    "EXPORT_HELP", "LoadedModel", "Sidecar", "check_finite_outputs", "import_factory", "load_checkpoint", "load_model", "prepare_model", "read_sidecar", "sidecar_from_dict", "write_sidecar",
 ]
 
 _INPLACE_ACTIVATIONS = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.ELU, nn.SELU, nn.Hardtanh, nn.SiLU, nn.Hardswish, nn.Mish, nn.Hardsigmoid)

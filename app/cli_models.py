@@ -207,4 +207,4 @@ def sidecar(args: argparse.Namespace) -> int:
     return 0
 
 
-__all__ = ["add_model_parsers", "saliency", "runs", "layers", "sidecar"]
+__all__ = ["add_model_parsers", "layers", "runs", "saliency", "sidecar"]

@@ -5,11 +5,16 @@ from pathlib import Path
 
 import pytest
 import torch
+from torch import nn
 
 from analysis.architectures import SorterCNN
 from analysis.errors import ModelInputError
 from analysis.images import find_images
-from analysis.model_io import Sidecar, load_model, write_sidecar
+from analysis.layer_taps import infer_token_grid
+from analysis.model_io import Sidecar, load_checkpoint, load_model, prepare_model, write_sidecar
+from analysis.sidecar import sidecar_from_dict
+
+from .model_zoo import DictOutput, TinyViT
 
 SC = Sidecar(classes=("bottle", "can", "carton"), input_size=(32, 32), mean=(0.5, 0.5, 0.5), std=(0.2, 0.2, 0.2), target_layer="features", stages=("features", "head"), architecture="sorter_cnn")
 
@@ -52,14 +57,6 @@ def test_image_sources(tmp_path: Path) -> None:
 
 
 # --- formats, checkpoints and sidecar checks ---------------------------------------------------
-
-from torch import nn  # noqa: E402
-
-from analysis.layer_taps import infer_token_grid  # noqa: E402
-from analysis.model_io import load_checkpoint, prepare_model  # noqa: E402
-from analysis.sidecar import sidecar_from_dict  # noqa: E402
-
-from .model_zoo import DictOutput, TinyViT  # noqa: E402
 
 FACTORY = "tests.analysis.model_zoo:residual_flatten"
 

@@ -91,7 +91,7 @@ def direct_gradcam(model: nn.Module, layer: str, x: torch.Tensor, *, output: str
     (grads,) = torch.autograd.grad(logits.gather(1, pred[:, None]).sum(), activation)
     if activation.ndim == 3:  # tokens: drop the class token, lay the patches out on their grid
         n, t, dim = activation.shape
-        side = int(round((t - (prefix or 0)) ** 0.5))
+        side = round((t - (prefix or 0)) ** 0.5)
         activation = activation[:, prefix:].reshape(n, side, side, dim).permute(0, 3, 1, 2)
         grads = grads[:, prefix:].reshape(n, side, side, dim).permute(0, 3, 1, 2)
     alpha = grads.mean(dim=(2, 3), keepdim=True)
