@@ -430,18 +430,19 @@ def choose_layer(graph: ModelGraph, infos: list[LayerInfo], probe: torch.Tensor,
             "state 'target_layer' in the sidecar, or 'token_grid' for a transformer whose tokens do not form the input's grid."
         )
     useful = [i for i in maps if i.map_size is not None and min(i.map_size) >= MIN_USEFUL_MAP]
-    for info in reversed(useful[-32:]):
-        tap, _ = graph.tap(info.name)
-        if layer_has_gradient(tap, probe, output, info.grid):
-            return info
     by_area = sorted(enumerate(maps), key=lambda im: (-(im[1].map_size or (0, 0))[0] * (im[1].map_size or (0, 0))[1], -im[0]))
-    for _, info in by_area[:8]:
+    failures: list[str] = []
+    for info in [*reversed(useful[-32:]), *(i for _, i in by_area[:8])]:
         tap, _ = graph.tap(info.name)
-        if layer_has_gradient(tap, probe, output, info.grid):
-            return info
+        try:
+            if layer_has_gradient(tap, probe, output, info.grid):
+                return info
+        except (RuntimeError, GradientUnavailableError) as exc:  # e.g. an in-place operation after this layer
+            failures.append(f"{info.name}: {str(exc).splitlines()[0][:160]}")
     raise GradientUnavailableError(
-        "the predicted class's gradient reaches none of the model's spatial layers; forward() may detach its features "
-        "or run under torch.no_grad(). State 'target_layer' in the sidecar if you know the layer."
+        "the predicted class's gradient reaches none of the model's spatial layers; forward() may detach its features, "
+        "run under torch.no_grad() or change a layer's output in place (x.relu_()). State 'target_layer' in the sidecar "
+        "if you know the layer." + (f" First failure: {failures[0]}" if failures else "")
     )
 
 
