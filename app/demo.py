@@ -87,7 +87,9 @@ def demo_expectations(cue_class: str, cue_concept: str | None) -> str:
     """What a team would write for the demo: the class relies on its body, and must not rely on the cue."""
     lines = ["# Verdicts are decided by covering each concept (see the README).", f"[classes.{cue_class}]", 'relies_on = ["body"]']
     if cue_concept:
-        lines.append(f"must_not_rely_on = [{cue_concept!r}]".replace("'", '"'))
+        # A multi-word concept is quoted inside the question ("green belt"); a TOML literal string keeps the quotes.
+        question = f'"{cue_concept}"' if " " in cue_concept else cue_concept
+        lines.append(f"must_not_rely_on = ['{question}']")
     return "\n".join(lines) + "\n"
 
 

@@ -234,3 +234,13 @@ def test_deletion_curve_falls_faster_in_saliency_order(demo_out: Path) -> None:
     by_map = deletion_curve(model, x, sal.maps, sal.predicted, steps=10)
     by_chance = deletion_curve(model, x, sal.maps, sal.predicted, steps=10, order="random")
     assert np.trapezoid(by_map) < np.trapezoid(by_chance) - 0.5
+
+
+@pytest.mark.parametrize("cue", ["tag", "belt", "object"])
+def test_the_demo_expectations_read_for_every_cue(cue: str) -> None:
+    from analysis.expectations import read_expectations
+    from app.demo import demo_expectations
+    from demo_data.scenes import CUE_CONCEPTS
+
+    found = read_expectations(demo_expectations("can", CUE_CONCEPTS[cue]))
+    assert [e.kind for e in found.items] == ["relies_on", "must_not_rely_on"]
