@@ -5,8 +5,10 @@ from __future__ import annotations
 
 import json
 import time
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -46,27 +48,32 @@ class DemoSize:
 SIZES = {"default": DemoSize(1200, 300, 300, 6), "small": DemoSize(600, 150, 150, 6)}
 
 
+def region_truths(s: Session, project_dir: Path, data_root: Path, campaign: campaigns.CampaignInfo) -> Iterator[tuple[int, list[str], dict[str, Any]]]:
+    """Each campaign region in id order with the parts it truly shows (from the scene's part mask) and its scene."""
+    scenes = load_scenes(data_root)["scenes"]
+    layout = ProjectLayout(project_dir)
+    rows = s.execute(
+        select(RegionRow.id, RegionRow.rank, Prediction.image_id, ImageRow.path)
+        .join(CampaignRegion, CampaignRegion.region_id == RegionRow.id)
+        .join(Prediction, RegionRow.prediction_id == Prediction.id).join(ImageRow, Prediction.image_id == ImageRow.id)
+        .where(CampaignRegion.campaign_id == campaign.id).order_by(RegionRow.id)
+    ).all()
+    for region_id, rank, image_id, path in rows:
+        scene = scenes[Path(path).relative_to(data_root.resolve()).as_posix()]
+        part_mask = np.asarray(Image.open(data_root / scene["mask"]))
+        labels = np.load(layout.path(layout.region_labels(campaign.run_id, image_id)))
+        yield region_id, visible_parts(labels == rank + 1, part_mask), scene
+
+
 def simulate_annotations(factory: sessionmaker[Session], project_dir: Path, data_root: Path, campaign_id: int, n_annotators: int, seed: int = 0) -> int:
     """Label every region of the campaign by ``n_annotators`` simulated people reading the part masks."""
-    scenes = load_scenes(data_root)["scenes"]
     crowd = demo_crowd(n_annotators, seed)
     rng = np.random.default_rng(seed)
     stored = 0
     with write_session(factory) as s:
         campaign = campaigns.get_campaign(s, campaign_id)
         ids = {a.name: ensure_person(s, a.name, "annotator") for a in crowd}
-        rows = s.execute(
-            select(RegionRow.id, RegionRow.rank, Prediction.image_id, ImageRow.path)
-            .join(CampaignRegion, CampaignRegion.region_id == RegionRow.id)
-            .join(Prediction, RegionRow.prediction_id == Prediction.id).join(ImageRow, Prediction.image_id == ImageRow.id)
-            .where(CampaignRegion.campaign_id == campaign_id).order_by(RegionRow.id)
-        ).all()
-        for region_id, rank, image_id, path in rows:
-            rel = Path(path).relative_to(data_root.resolve()).as_posix()
-            scene = scenes[rel]
-            part_mask = np.asarray(Image.open(data_root / scene["mask"]))
-            labels = np.load(ProjectLayout(project_dir).path(ProjectLayout.region_labels(campaign.run_id, image_id)))
-            truth = visible_parts(labels == rank + 1, part_mask)
+        for region_id, truth, scene in region_truths(s, project_dir, data_root, campaign):
             for a in crowd:
                 entities = simulate_label(a, truth, scene["parts"], rng)
                 try:

@@ -97,39 +97,26 @@ def _inference_rates(model, records, batch: int = 32) -> dict[str, float]:  # ty
 def _simulated_labels(factory, project: Path, data: Path, cid: int, *, seed: int = 0) -> tuple[dict[str, int], int]:  # type: ignore[no-untyped-def]
     """Three simulated labels per region, stored in bulk (with the counts the app keeps beside them)."""
     import numpy as np
-    from PIL import Image
-    from sqlalchemy import select, update
+    from sqlalchemy import update
 
     from app import campaigns
     from app.db import write_session
-    from app.layout import ProjectLayout
-    from app.models import CampaignRegion, ImageRow, Label, Prediction, RegionRow
+    from app.demo import region_truths
+    from app.models import CampaignRegion, Label
     from app.people import ensure_person
-    from demo_data.annotators import demo_crowd, simulate_label, visible_parts
-    from demo_data.scenes import load_scenes
+    from demo_data.annotators import demo_crowd, simulate_label
 
-    scenes = load_scenes(data)["scenes"]
     crowd = demo_crowd(3, seed)
     rng = np.random.default_rng(seed)
-    layout = ProjectLayout(project)
     with write_session(factory) as s:
         c = campaigns.get_campaign(s, cid)
         ids = {a.name: ensure_person(s, a.name, "annotator") for a in crowd}
-        rows = s.execute(
-            select(RegionRow.id, RegionRow.rank, Prediction.image_id, ImageRow.path)
-            .join(CampaignRegion, CampaignRegion.region_id == RegionRow.id)
-            .join(Prediction, RegionRow.prediction_id == Prediction.id).join(ImageRow, Prediction.image_id == ImageRow.id)
-            .where(CampaignRegion.campaign_id == cid).order_by(RegionRow.id)
-        ).all()
-        leave = max(10, len(rows) // 50)  # the first annotator leaves these for the end-of-campaign task
+        regions = list(region_truths(s, project, data, c))
+        leave = max(10, len(regions) // 50)  # the first annotator leaves these for the end-of-campaign task
         out, counts = [], {}
-        for i, (region_id, rank, image_id, path) in enumerate(rows):
-            scene = scenes[Path(path).relative_to(data.resolve()).as_posix()]  # type: ignore[index]
-            part_mask = np.asarray(Image.open(data / scene["mask"]))
-            labels = np.load(layout.path(layout.region_labels(c.run_id, image_id)))
-            truth = visible_parts(labels == rank + 1, part_mask)
+        for i, (region_id, truth, scene) in enumerate(regions):
             for k, a in enumerate(crowd):
-                if k == 0 and i >= len(rows) - leave:
+                if k == 0 and i >= len(regions) - leave:
                     continue
                 out.append({"client_id": uuid.uuid4().hex, "campaign_id": cid, "region_id": region_id, "person_id": ids[a.name],
                             "entities": [[e, attrs] for e, attrs in simulate_label(a, truth, scene["parts"], rng)], "unsure": False})
