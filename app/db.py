@@ -8,22 +8,23 @@ cost is measured by ``benchmarks/annotation_load.py``.
 
 from __future__ import annotations
 
+import functools
 import os
 import sqlite3
 import stat
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import create_engine, event, select, text
-from sqlalchemy.engine import Engine
+from sqlalchemy import create_engine, event, inspect, select, text
+from sqlalchemy.engine import Connection, Engine
 from sqlalchemy.exc import DBAPIError
 from sqlalchemy.orm import Session, sessionmaker
 
 from .errors import AppError, SchemaVersionError
 from .layout import DB_NAME, ProjectLayout
-from .models import SCHEMA_VERSION, Base, SchemaInfo
 
 # SQLite's durability levels; FULL syncs the write-ahead log at every commit.
 SYNCHRONOUS = "FULL"
@@ -236,30 +237,137 @@ def backup(project_dir: Path, out: Path) -> int:
     return pages
 
 
+MIGRATIONS = Path(__file__).resolve().parent / "migrations"
+LEGACY_VERSION = 3  # the last schema versioned by hand (schema_info); Alembic's baseline revision equals it
+_MIGRATION_LOCK = 0x6865_6564  # PostgreSQL advisory lock id taken while a database is being migrated
+
+
+@functools.cache
+def _scripts() -> Any:
+    """Alembic's view of ``app/migrations`` (read once per process)."""
+    from alembic.script import ScriptDirectory
+
+    return ScriptDirectory(str(MIGRATIONS))
+
+
+def head_revision() -> str:
+    """The newest revision this heedmap knows."""
+    head: str = _scripts().get_current_head()
+    return head
+
+
+@dataclass(frozen=True)
+class SchemaState:
+    """Where a database stands: its Alembic revision, or the hand-kept version of a project made before Alembic."""
+
+    revision: str | None
+    legacy_version: int | None
+    tables: frozenset[str]
+
+
+def schema_state(conn: Connection) -> SchemaState:
+    from alembic.runtime.migration import MigrationContext
+
+    tables = frozenset(inspect(conn).get_table_names())
+    revision = MigrationContext.configure(conn).get_current_revision() if "alembic_version" in tables else None
+    legacy = conn.execute(text("SELECT version FROM schema_info")).scalar() if revision is None and "schema_info" in tables else None
+    return SchemaState(revision, None if legacy is None else int(legacy), tables)
+
+
+def _known(revision: str) -> bool:
+    from alembic.util import CommandError
+
+    try:
+        return _scripts().get_revision(revision) is not None
+    except CommandError:
+        return False
+
+
+def _needs_upgrade(state: SchemaState) -> bool:
+    """Whether ``state`` is behind this heedmap; raises SchemaVersionError when it is ahead (made by a newer heedmap)."""
+    if state.revision is not None:
+        if not _known(state.revision):
+            raise SchemaVersionError(
+                f"this database is at schema revision {state.revision!r}, which this heedmap does not know: a newer heedmap made it. Upgrade heedmap."
+            )
+        return state.revision != head_revision()
+    if state.legacy_version is not None and state.legacy_version > LEGACY_VERSION:
+        raise SchemaVersionError(
+            f"this database has schema version {state.legacy_version}, newer than this heedmap's {LEGACY_VERSION}; upgrade heedmap."
+        )
+    return True
+
+
 def _ensure_schema(engine: Engine, *, readonly: bool = False) -> None:
-    """Create the tables of a new project, or bring an older project's schema up to date in one transaction."""
+    """Create the tables of a new project, or bring an older project's schema up to date, in one transaction.
+
+    Projects made before Alembic (``schema_info`` version 1 to 3) are brought to schema 3 by the
+    hand-written steps below, stamped at the baseline revision and upgraded from there.
+    """
     with engine.connect() as c:
-        has_info = c.exec_driver_sql("SELECT name FROM sqlite_master WHERE type='table' AND name='schema_info'").first()
-        found = c.exec_driver_sql("SELECT version FROM schema_info").scalar() if has_info else None
-    if found is not None and found > SCHEMA_VERSION:
-        raise SchemaVersionError(f"this database has schema version {found}, newer than this heedmap's {SCHEMA_VERSION}; upgrade heedmap.")
-    if readonly:
-        if found != SCHEMA_VERSION:
-            raise sqlite3.OperationalError(f"attempt to write a readonly database (schema version {found} needs an upgrade to {SCHEMA_VERSION})")
+        state = schema_state(c)
+        stale_key = "secrets" in state.tables and c.execute(text("SELECT 1 FROM secrets WHERE name = 'cookie_key'")).first() is not None
+        c.rollback()
+    if not _needs_upgrade(state):
+        if stale_key and not readonly:
+            with engine.connect().execution_options(immediate=True) as c, c.begin():
+                _drop_stale_key(c)
         return
-    if found == 1:
-        _migrate_v1(engine)
-    Base.metadata.create_all(engine)
-    with Session(engine) as s, s.begin():
-        row = s.scalar(select(SchemaInfo))
-        if row is None:
-            s.add(SchemaInfo(version=SCHEMA_VERSION))
-        elif row.version < 3:
-            _count_words(s)  # version 3 keeps each campaign's word counts beside its labels
-            row.version = SCHEMA_VERSION
-        # Older projects kept the cookie-signing key here, readable by anyone who can read the
-        # database; that key is dropped (it now lives in an owner-only file, see people.load_key).
-        s.execute(text("DELETE FROM secrets WHERE name = 'cookie_key'"))
+    if readonly:
+        where = state.revision or f"schema version {state.legacy_version}"
+        raise sqlite3.OperationalError(f"attempt to write a readonly database ({where} needs an upgrade to {head_revision()})")
+    with engine.connect().execution_options(immediate=True) as c, c.begin():
+        if c.dialect.name == "postgresql":  # several servers may start at once: one migrates, the others wait and find it done
+            c.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": _MIGRATION_LOCK})
+        state = schema_state(c)  # again, inside the lock
+        if not _needs_upgrade(state):
+            return
+        upgrade(c, state)
+
+
+def upgrade(c: Connection, state: SchemaState) -> None:
+    """Bring the database on ``c`` (in a transaction) from ``state`` to the head revision."""
+    from alembic import command
+
+    if state.revision is None and state.legacy_version is not None:
+        if state.legacy_version == 1:
+            _migrate_v1(c)
+        if state.legacy_version < LEGACY_VERSION:
+            _to_schema_3(c)
+        command.stamp(_alembic_config(c), "0001_schema_3")
+    elif state.revision is None and state.tables:
+        raise NotAProjectError(
+            "the database holds tables but no heedmap schema (" + ", ".join(sorted(state.tables))[:200] + "); give heedmap a database of its own."
+        )
+    command.upgrade(_alembic_config(c), "head")
+    _drop_stale_key(c)
+
+
+def _drop_stale_key(c: Connection) -> None:
+    """Older projects kept the cookie-signing key in the database, readable by anyone who can read
+    it; that key is dropped (it now lives in an owner-only file, see people.load_key)."""
+    c.execute(text("DELETE FROM secrets WHERE name = 'cookie_key'"))
+
+
+def _alembic_config(c: Connection) -> Any:
+    from alembic.config import Config
+
+    cfg = Config()
+    cfg.set_main_option("script_location", str(MIGRATIONS))
+    cfg.set_main_option("file_template", "%%(rev)s")  # revision ids are NNNN_slug already
+    cfg.attributes["connection"] = c
+    return cfg
+
+
+def _to_schema_3(c: Connection) -> None:
+    """Schema 2 to 3: the schema-3 tables a project lacks, and each campaign's word counts counted from its labels."""
+    from .migrations import schema_3
+
+    schema_3.metadata.create_all(c, checkfirst=True)
+    s = Session(bind=c)
+    _count_words(s)
+    s.flush()
+    c.execute(text("UPDATE schema_info SET version = 3"))
 
 
 def _count_words(s: Session) -> None:
@@ -270,45 +378,46 @@ def _count_words(s: Session) -> None:
         recount_words(s, campaign_id)
 
 
-def _migrate_v1(engine: Engine) -> None:
+def _migrate_v1(c: Connection) -> None:
     """Version 1 had annotators and annotations without campaigns: people keep their ids, and
     their labels move into a campaign over the run they belong to."""
-    with engine.begin() as c:
-        c.exec_driver_sql("ALTER TABLE saliency_runs ADD COLUMN model_path VARCHAR")
-        c.exec_driver_sql("ALTER TABLE saliency_runs ADD COLUMN sidecar_path VARCHAR")
-        Base.metadata.create_all(c)
-        c.exec_driver_sql("INSERT INTO people (id, name, role, created_at) SELECT id, name, 'annotator', created_at FROM annotators")
-        runs = [r[0] for r in c.exec_driver_sql(
-            "SELECT DISTINCT p.run_id FROM annotations a JOIN regions r ON r.id = a.region_id JOIN predictions p ON p.id = r.prediction_id ORDER BY p.run_id"
-        )]
-        for run_id in runs:
-            most = c.exec_driver_sql(
-                "SELECT COALESCE(MAX(n), 0) FROM (SELECT COUNT(*) AS n FROM annotations a JOIN regions r ON r.id = a.region_id "
-                "JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ? GROUP BY a.region_id)", (run_id,)
-            ).scalar()
-            cid = c.exec_driver_sql(
-                "INSERT INTO campaigns (name, run_id, classes, labels_per_region, instructions, lease_seconds, check_every, method, expectations, "
-                "n_regions, n_checks, created_at) VALUES (?, ?, '[]', ?, '', 600, 10, 'majority', '', 0, 0, CURRENT_TIMESTAMP)",
-                (f"labels of run {run_id} (from version 1)", run_id, max(3, int(most or 0))),
-            ).lastrowid
-            c.exec_driver_sql(
-                "INSERT INTO campaign_regions (campaign_id, region_id, n_labels) SELECT ?, r.id, 0 FROM regions r JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ?",
-                (cid, run_id),
-            )
-            c.exec_driver_sql(
-                "INSERT INTO labels (client_id, campaign_id, region_id, person_id, entities, unsure, submitted_at, seconds_spent) "
-                "SELECT a.client_id, ?, a.region_id, a.annotator_id, a.entities, 0, a.submitted_at, a.seconds_spent FROM annotations a "
-                "JOIN regions r ON r.id = a.region_id JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ?",
-                (cid, run_id),
-            )
-            c.exec_driver_sql("UPDATE campaigns SET n_regions = (SELECT COUNT(*) FROM campaign_regions WHERE campaign_id = ?) WHERE id = ?", (cid, cid))
-            c.exec_driver_sql(
-                "UPDATE campaign_regions SET n_labels = (SELECT COUNT(*) FROM labels l WHERE l.campaign_id = campaign_regions.campaign_id "
-                "AND l.region_id = campaign_regions.region_id) WHERE campaign_id = ?", (cid,)
-            )
-        c.exec_driver_sql("DROP TABLE annotations")
-        c.exec_driver_sql("DROP TABLE annotators")
-        c.exec_driver_sql("UPDATE schema_info SET version = 2")
+    from .migrations import schema_3
+
+    c.exec_driver_sql("ALTER TABLE saliency_runs ADD COLUMN model_path VARCHAR")
+    c.exec_driver_sql("ALTER TABLE saliency_runs ADD COLUMN sidecar_path VARCHAR")
+    schema_3.metadata.create_all(c, checkfirst=True)
+    c.exec_driver_sql("INSERT INTO people (id, name, role, created_at) SELECT id, name, 'annotator', created_at FROM annotators")
+    runs = [r[0] for r in c.exec_driver_sql(
+        "SELECT DISTINCT p.run_id FROM annotations a JOIN regions r ON r.id = a.region_id JOIN predictions p ON p.id = r.prediction_id ORDER BY p.run_id"
+    )]
+    for run_id in runs:
+        most = c.exec_driver_sql(
+            "SELECT COALESCE(MAX(n), 0) FROM (SELECT COUNT(*) AS n FROM annotations a JOIN regions r ON r.id = a.region_id "
+            "JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ? GROUP BY a.region_id)", (run_id,)
+        ).scalar()
+        cid = c.exec_driver_sql(
+            "INSERT INTO campaigns (name, run_id, classes, labels_per_region, instructions, lease_seconds, check_every, method, expectations, "
+            "n_regions, n_checks, created_at) VALUES (?, ?, '[]', ?, '', 600, 10, 'majority', '', 0, 0, CURRENT_TIMESTAMP)",
+            (f"labels of run {run_id} (from version 1)", run_id, max(3, int(most or 0))),
+        ).lastrowid
+        c.exec_driver_sql(
+            "INSERT INTO campaign_regions (campaign_id, region_id, n_labels) SELECT ?, r.id, 0 FROM regions r JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ?",
+            (cid, run_id),
+        )
+        c.exec_driver_sql(
+            "INSERT INTO labels (client_id, campaign_id, region_id, person_id, entities, unsure, submitted_at, seconds_spent) "
+            "SELECT a.client_id, ?, a.region_id, a.annotator_id, a.entities, 0, a.submitted_at, a.seconds_spent FROM annotations a "
+            "JOIN regions r ON r.id = a.region_id JOIN predictions p ON p.id = r.prediction_id WHERE p.run_id = ?",
+            (cid, run_id),
+        )
+        c.exec_driver_sql("UPDATE campaigns SET n_regions = (SELECT COUNT(*) FROM campaign_regions WHERE campaign_id = ?) WHERE id = ?", (cid, cid))
+        c.exec_driver_sql(
+            "UPDATE campaign_regions SET n_labels = (SELECT COUNT(*) FROM labels l WHERE l.campaign_id = campaign_regions.campaign_id "
+            "AND l.region_id = campaign_regions.region_id) WHERE campaign_id = ?", (cid,)
+        )
+    c.exec_driver_sql("DROP TABLE annotations")
+    c.exec_driver_sql("DROP TABLE annotators")
+    c.exec_driver_sql("UPDATE schema_info SET version = 2")
 
 
 def session_factory(engine: Engine) -> sessionmaker[Session]:

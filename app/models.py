@@ -7,7 +7,6 @@ from datetime import UTC, datetime
 from sqlalchemy import JSON, Boolean, DateTime, Float, ForeignKey, Index, Integer, String, Text, UniqueConstraint
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
-SCHEMA_VERSION = 3
 ROLES = ("annotator", "reviewer", "analyst", "admin")
 
 
@@ -24,6 +23,11 @@ class Base(DeclarativeBase):
 
 
 class SchemaInfo(Base):
+    """The hand-kept schema version of projects made before Alembic; now 4, so those heedmaps refuse newer projects.
+
+    Schema changes are Alembic revisions in ``app/migrations/versions`` (see DEVELOPERS.md).
+    """
+
     __tablename__ = "schema_info"
     id: Mapped[int] = mapped_column(primary_key=True)
     version: Mapped[int] = mapped_column(Integer)

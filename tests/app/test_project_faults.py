@@ -60,10 +60,10 @@ def _damage(path: Path, how: str) -> None:
         path.write_bytes(bytes(range(256)) * 64)
     elif how == "truncated":
         path.write_bytes(bytes(data[: len(data) // 3]))
-    else:  # pages in the middle overwritten
+    else:  # pages in the middle overwritten where their cells are (the end of a page; its start is often unused)
         page = 4096
         for at in range(2 * page, len(data) - page, 3 * page):
-            data[at + 100 : at + 400] = b"\xff" * 300
+            data[at + page - 400 : at + page - 100] = b"\xff" * 300
         path.write_bytes(bytes(data))
 
 
