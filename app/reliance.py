@@ -20,7 +20,7 @@ from sqlalchemy.orm import Session
 from analysis.errors import ImageInputError, InvalidInputError
 from analysis.expectations import Verdict, decide_expectations, read_expectations
 from analysis.images import read_rgb, to_model_input
-from analysis.interventions import DEFAULT_FILLS, Fill, InterventionResult, ablation_test, insertion_test
+from analysis.interventions import DEFAULT_FILLS, CoverPlan, Fill, InterventionResult, NotTestableError, ablation_test, insertion_test, plan_regions
 from analysis.model_io import LoadedModel, load_model
 from analysis.reliance import RelianceFinding, RuleTests, VerdictSettings, concepts_key, judge_family
 
@@ -48,28 +48,44 @@ def model_for_run(s: Session, run_id: int, model: Path | None = None, sidecar: P
     return loaded
 
 
-def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_ids: list[int], concepts: list[str]) -> tuple[torch.Tensor, np.ndarray]:
-    """Model inputs of the images and, per image, the mask of its regions carrying any of the concepts."""
+def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_ids: list[int], concepts: list[str]) -> tuple[torch.Tensor, np.ndarray, CoverPlan]:
+    """Model inputs of the images and, per image, the mask of the regions to cover for the concepts
+    (:func:`analysis.interventions.plan_regions`: the regions showing them alone when enough images
+    have one, else every region carrying any of them), and the plan that chose them."""
     table = res.table
     cols = [table.concepts.index(c) for c in concepts]
-    carries = np.asarray(table.regions.carries[:, cols].sum(axis=1)).ravel() > 0
+    carries = table.regions.carries.tocsr()
+    on = np.asarray(carries[:, cols].sum(axis=1)).ravel() > 0
     row_of = {int(i): k for k, i in enumerate(table.meta.index)}
+    image_of_row = {k: i for i, k in row_of.items()}
     wanted = {row_of[i] for i in image_ids}
-    region_ids = [int(table.regions.ids[r]) for r in np.nonzero(carries)[0] if table.regions.region_image[r] in wanted]  # type: ignore[index]
+    ids = table.regions.ids
+    if ids is None:  # a table made without region ids has nothing to cover
+        return torch.zeros((0, 3, *model.sidecar.input_size)), np.zeros((0, *model.sidecar.input_size), dtype=bool), CoverPlan((), False)
+    candidates = [r for r in np.nonzero(on)[0] if int(table.regions.region_image[r]) in wanted]
+    region_ids = [int(ids[r]) for r in candidates]
     found = s.execute(
         select(RegionRow.id, RegionRow.rank, Prediction.image_id).join(Prediction, Prediction.id == RegionRow.prediction_id)
         .where(RegionRow.id.in_(region_ids))
     ).all()
-    ranks: dict[int, list[int]] = {}
-    for _, rank, image_id in found:
-        ranks.setdefault(image_id, []).append(rank + 1)
+    rank_of = {int(rid): int(rank) + 1 for rid, rank, _ in found}
+    per_image: dict[int, list[tuple[int, frozenset[str]]]] = {i: [] for i in image_ids}
+    for r in candidates:
+        rid = int(ids[r])
+        if rid in rank_of:
+            shown = frozenset(table.concepts[c] for c in carries[r].indices)
+            per_image[image_of_row[int(table.regions.region_image[r])]].append((rank_of[rid], shown))
+    plan = plan_regions([[c for _, c in per_image[i]] for i in image_ids], concepts, families=table.families)
     masks: dict[int, np.ndarray] = {}
-    for image_id in image_ids:
-        mask = np.isin(np.load(ProjectLayout(project).path(ProjectLayout.region_labels(res.campaign.run_id, image_id))), ranks.get(image_id, []))
+    for image_id, chosen in zip(image_ids, plan.regions):
+        if not chosen:
+            continue
+        ranks = [per_image[image_id][k][0] for k in chosen]
+        mask = np.isin(np.load(ProjectLayout(project).path(ProjectLayout.region_labels(res.campaign.run_id, image_id))), ranks)
         if mask.any():
             masks[image_id] = mask
     x, kept = _read_inputs(s, model, list(masks))
-    return x, np.stack([masks[i] for i in kept]) if kept else np.zeros((0, *model.sidecar.input_size), dtype=bool)
+    return x, (np.stack([masks[i] for i in kept]) if kept else np.zeros((0, *model.sidecar.input_size), dtype=bool)), plan
 
 
 def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: int, max_images: int, seed: int) -> tuple[str, list[int], list[int]]:
@@ -82,7 +98,7 @@ def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: in
     targets = sorted(np.random.default_rng(seed).choice(others, size=min(max_images, len(others)), replace=False).tolist()) if others else []
     key = hashlib.sha256(json.dumps(
         {"model": model_sha, "run": res.campaign.run_id, "cls": cls, "concepts": sorted(concepts), "draws": draws, "seed": seed,
-         "images": image_ids, "targets": targets, "method": res.method, "version": 2}, sort_keys=True).encode()).hexdigest()[:20]
+         "images": image_ids, "targets": targets, "method": res.method, "version": 3}, sort_keys=True).encode()).hexdigest()[:20]
     return key, image_ids, targets
 
 
@@ -92,15 +108,17 @@ def _read_cached(path: Path) -> tuple[bool, InterventionResult | None]:
         return False, None
     try:
         raw = json.loads(path.read_text(encoding="utf-8"))
-        return True, (None if raw is None else _result(raw))
+        return True, (None if raw is None or "not_testable" in raw else _result(raw))
     except (OSError, ValueError, TypeError, KeyError):
         return False, None  # a damaged cache file is run again
 
 
-def _write_cached(path: Path, result: InterventionResult | None) -> None:
+def _write_cached(path: Path, result: InterventionResult | None, *, reason: str = "") -> None:
+    """Store a result, or None for "could not run" (with the reason when there is one)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(".tmp")
-    tmp.write_text(json.dumps(None if result is None else result.to_json()), encoding="utf-8")
+    stored: object = result.to_json() if result is not None else ({"not_testable": reason} if reason else None)
+    tmp.write_text(json.dumps(stored), encoding="utf-8")
     tmp.replace(path)  # never a half-written file under the real name
 
 
@@ -129,18 +147,27 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     if all(found for found, _ in stored.values()):
         coverings = tuple(r for f in fills if (r := stored[f][1]) is not None)
         return RuleTests(cls, name, coverings, stored["paste"][1]) if coverings else None
-    x, masks = _inputs(s, project, res, model, image_ids, concepts)
+    x, masks, plan = _inputs(s, project, res, model, image_ids, concepts)
     if len(x) < 2:
         for f in (*fills, "paste"):
             _write_cached(_cache_path(project, key, f), None)
         return None
     index = model.classes.index(cls)
+    label = f"{name} ({plan.note})" if plan.note else name
     coverings_run = []
     for f in fills:
         found, result = stored[f]
         if not found or result is None:
             bar = _bar(f"{cls} / {name} ({f})") if progress else None
-            result = ablation_test(model, x, masks, index, concept=name, fill=f, draws=draws, seed=seed, progress=bar)
+            try:
+                result = ablation_test(model, x, masks, index, concept=label, fill=f, draws=draws, seed=seed, progress=bar)
+            except NotTestableError as e:
+                # Not testable by covering (the regions cover most of each image): stored as such, read as "not tested".
+                for g in (*fills, "paste"):
+                    _write_cached(_cache_path(project, key, g), None, reason=str(e))
+                if progress:
+                    sys.stderr.write(f"{cls} / {name}: {e}\n")
+                return None
             _write_cached(_cache_path(project, key, f), result)
         coverings_run.append(result)
     found, pasting = stored["paste"]
@@ -150,7 +177,10 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
             tx, _ = _read_inputs(s, model, targets_ids)
             if len(tx) >= 2:
                 bar = _bar(f"{cls} / {name} (paste)") if progress else None
-                pasting = insertion_test(model, tx, x, masks, index, concept=name, draws=draws, seed=seed, progress=bar)
+                try:
+                    pasting = insertion_test(model, tx, x, masks, index, concept=label, draws=draws, seed=seed, progress=bar)
+                except NotTestableError:
+                    pasting = None
         _write_cached(_cache_path(project, key, "paste"), pasting)
     return RuleTests(cls, name, tuple(coverings_run), pasting)
 

@@ -3,8 +3,8 @@
 P(class | scene) - P(class | same scene without the cue). For each cue (tag, green belt, paper
 scrap, flat-colour patch) a model is trained with the cue injected, and every fill's covering
 estimate (effect beyond matched controls) is set beside the true mean effect, on two kinds of mask:
-the cue's exact pixels, and the saliency regions a careful annotator would name as the cue (what
-the app covers). Then a model trained without any cue: every cue concept in every class is tested
+the cue's exact pixels, and the saliency regions the app covers (a careful annotator names the parts
+of each region; analysis.interventions.plan_regions chooses among them as the app does). Then a model trained without any cue: every cue concept in every class is tested
 as one family, and a false confirmation is reliance confirmed where the true mean effect is below
 the minimum effect.
 
@@ -25,7 +25,7 @@ import torch
 from PIL import Image
 
 from analysis.images import to_model_input
-from analysis.interventions import DEFAULT_FILLS, FILLS, InterventionResult, ablation_test
+from analysis.interventions import DEFAULT_FILLS, FILLS, MAX_COVER_SHARE, CoverPlan, InterventionResult, NotTestableError, ablation_test, plan_regions
 from analysis.model_io import LoadedModel, load_model
 from analysis.regions import extract_regions
 from analysis.reliance import RuleTests, VerdictSettings, judge_family
@@ -76,18 +76,18 @@ def _probs(model: LoadedModel, x: torch.Tensor) -> npt.NDArray[np.float64]:
         return torch.softmax(model.module(x).float(), dim=1).numpy().astype(np.float64)
 
 
-def _region_masks(model: LoadedModel, x: torch.Tensor, part_masks: npt.NDArray[np.uint8], part: str) -> npt.NDArray[np.bool_]:
-    """Per image, the union of its saliency regions in which a careful annotator would name the cue
-    (an all-False mask where none would)."""
+def _region_masks(model: LoadedModel, x: torch.Tensor, part_masks: npt.NDArray[np.uint8], part: str) -> tuple[npt.NDArray[np.bool_], CoverPlan]:
+    """Per image, the saliency regions the product would cover for the cue: each region gets the parts
+    a careful annotator would name in it, and :func:`plan_regions` chooses among them as the app does
+    (an all-False mask where none is chosen)."""
     maps = compute_saliency(model, x).maps
+    labelled = [extract_regions(maps[i])[1] for i in range(len(x))]
+    named = [[visible_parts(labels == k, part_masks[i]) for k in range(1, int(labels.max()) + 1)] for i, labels in enumerate(labelled)]
+    plan = plan_regions(named, [part])
     out = np.zeros(part_masks.shape, dtype=bool)
-    for i in range(len(x)):
-        _, labels = extract_regions(maps[i])
-        for k in range(1, int(labels.max()) + 1):
-            region = labels == k
-            if part in visible_parts(region, part_masks[i]):
-                out[i] |= region
-    return out
+    for i, chosen in enumerate(plan.regions):
+        out[i] = np.isin(labelled[i], [k + 1 for k in chosen])
+    return out, plan
 
 
 def _cue_setting(cue: str, cls: str, seed: int) -> SceneConfig:
@@ -95,8 +95,19 @@ def _cue_setting(cue: str, cls: str, seed: int) -> SceneConfig:
     return SceneConfig(seed=seed, cue=cue, cue_class=cls, cue_rate=1.0, leak_rate=0.0)  # type: ignore[arg-type]
 
 
-def _estimate(model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_], cls: int, fill: str, seed: int) -> InterventionResult:
-    return ablation_test(model, x, masks, cls, concept="cue", fill=fill, draws=5, seed=seed, n_boot=2000, n_perm=5000)  # type: ignore[arg-type]
+def _estimate(model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_], cls: int, fill: str, seed: int) -> InterventionResult | None:
+    """The covering test, or None where it is not testable (masks over MAX_COVER_SHARE of the image)."""
+    try:
+        return ablation_test(model, x, masks, cls, concept="cue", fill=fill, draws=5, seed=seed, n_boot=2000, n_perm=5000)  # type: ignore[arg-type]
+    except NotTestableError:
+        return None
+
+
+def _cell(r: InterventionResult | None, true: float) -> str:
+    if r is None:
+        return "not testable"
+    left = f", {r.left_out} left out" if r.left_out else ""
+    return f"{r.effect:.3f} ({r.effect / true:.2f}{left})" if abs(true) > 1e-9 else f"{r.effect:.3f}"
 
 
 def main(argv: list[str] | None = None) -> str:
@@ -124,15 +135,20 @@ def main(argv: list[str] | None = None) -> str:
                 pairs = _pairs(_cue_setting(cue, cls, args.seed + 100), cls, n_images, model)
                 index = CLASSES.index(cls)
                 true = _probs(model, pairs.with_cue)[:, index] - _probs(model, pairs.without_cue)[:, index]
-                masks = {"exact": pairs.exact, "regions": _region_masks(model, pairs.with_cue, pairs.parts, CUE_PARTS[cue])}
+                regions, plan = _region_masks(model, pairs.with_cue, pairs.parts, CUE_PARTS[cue])
+                masks = {"exact": pairs.exact, "regions": regions}
                 for kind in MASKS:
                     keep = masks[kind].reshape(len(true), -1).any(axis=1)
+                    label = kind if kind == "exact" else f"regions ({'alone' if plan.alone else 'shared'})"
                     if keep.sum() < 2:
-                        rows.append([CUE_CONCEPTS[cue], kind, int(keep.sum()), "-", float("nan")] + [float("nan")] * len(FILLS))
+                        rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), "-", "-", *["-"] * len(FILLS)])
                         continue
-                    t = float(true[keep].mean())
-                    est = [_estimate(model, pairs.with_cue[torch.from_numpy(keep)], masks[kind][keep], index, f, args.seed).effect for f in FILLS]
-                    rows.append([CUE_CONCEPTS[cue], kind, int(keep.sum()), f"{t:.3f}", *[f"{e:.3f} ({e / t:.2f})" if abs(t) > 1e-9 else f"{e:.3f}" for e in est]])
+                    share = float(masks[kind][keep].reshape(int(keep.sum()), -1).mean())
+                    results = [_estimate(model, pairs.with_cue[torch.from_numpy(keep)], masks[kind][keep], index, f, args.seed) for f in FILLS]
+                    # The truth on the images each test used (those left out cover too much of the image).
+                    used = keep & (masks[kind].reshape(len(true), -1).mean(axis=1) <= MAX_COVER_SHARE)
+                    t = float(true[used].mean()) if used.sum() >= 2 else float(true[keep].mean())
+                    rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), f"{share:.0%}", f"{t:.3f}", *[_cell(r, t) for r in results]])
                     print(rows[-1], flush=True)
             else:
                 # The cue-less model: every cue in every class, one family, against the truth.
@@ -144,11 +160,11 @@ def main(argv: list[str] | None = None) -> str:
                         true = float((_probs(model, pairs.with_cue)[:, index] - _probs(model, pairs.without_cue)[:, index]).mean())
                         truth_rows.append((test_cue, cls, true))
                         results = {f: _estimate(model, pairs.with_cue, pairs.exact, index, f, args.seed) for f in FILLS}
-                        print(f"cue-less model, {test_cue} in {cls}: true {true:.3f}, " + ", ".join(f"{f} {r.effect:.3f}" for f, r in results.items()), flush=True)
+                        print(f"cue-less model, {test_cue} in {cls}: true {true:.3f}, " + ", ".join(f"{f} {_cell(r, 0.0)}" for f, r in results.items()), flush=True)
                         name = f"{CUE_CONCEPTS[test_cue]}"
                         for f in FILLS:
-                            family[f].append(RuleTests(cls, name, (results[f],)))
-                        family["default"].append(RuleTests(cls, name, tuple(results[f] for f in DEFAULT_FILLS)))
+                            family[f].append(RuleTests(cls, name, tuple(r for r in (results[f],) if r is not None)))
+                        family["default"].append(RuleTests(cls, name, tuple(r for f in DEFAULT_FILLS if (r := results[f]) is not None)))
                 true_of = {(k, CUE_CONCEPTS[c]): t for c, k, t in truth_rows}
                 for f, tests in family.items():
                     judged = judge_family(tests, settings)
@@ -156,21 +172,24 @@ def main(argv: list[str] | None = None) -> str:
                     false = [k for k in confirmed if true_of[k] < settings.min_effect]
                     missed = [k for k, v in judged.items() if not v.confirmed and true_of[k] >= settings.min_effect]
                     label = f"default ({' + '.join(DEFAULT_FILLS)})" if f == "default" else f
-                    lines.append([label, len(tests), len(confirmed), len(false), len(false) / len(tests), len(missed)])
+                    untestable = sum(1 for t in tests if not t.coverings)
+                    lines.append([label, len(tests), untestable, len(confirmed), len(false), f"{len(false) / len(tests):.3f}", len(missed)])
                     if f == "default":
                         for (cls, name), v in judged.items():
                             d = v.decided_by
                             null_rows.append([name, cls, f"{true_of[(cls, name)]:.3f}", f"{d.effect:.3f}" if d else "-",
-                                              f"[{d.interval[0]:.3f}, {d.interval[1]:.3f}]" if d else "-", f"{d.adjusted_p:.3g}" if d else "-", v.reliance])
-    header = ["cue", "mask", "images", "true effect", *[f"{f}{' (default)' if (f,) == DEFAULT_FILLS else ''} (x true)" for f in FILLS]]
+                                              f"[{d.interval[0]:.3f}, {d.interval[1]:.3f}]" if d else "-", f"{d.adjusted_p:.3g}" if d else "-", v.reliance if d else "not testable"])
+    header = ["cue", "mask", "images", "image covered", "true effect", *[f"{f}{' (default)' if (f,) == DEFAULT_FILLS else ''} (x true)" for f in FILLS]]
     table = print_table(header, rows)
     per_test = print_table(["cue-less model: cue", "class", "true effect", "estimate", "95% interval", "adjusted p", "verdict"], null_rows)
-    null = print_table(["cue-less model, fill", "tests (cue x class)", "confirmed", "false confirmations", "share false", "missed (true >= min effect)"], lines)
+    null = print_table(["cue-less model, fill", "tests (cue x class)", "not testable", "confirmed", "false confirmations", "share false", "missed (true >= min effect)"], lines)
     note = (f"Effects are falls in P(class) beyond matched controls, mean over images; the true effect comes from the same scenes drawn "
-            f"without the cue. \"exact\": the cue's own pixels; \"regions\": the saliency regions an annotator would name as the cue (what "
-            f"the app covers). Verdicts: default policy ({' + '.join(DEFAULT_FILLS)} fill), {settings.describe(len(null_rows))}. A false "
-            f"confirmation is reliance confirmed where the true effect is below the minimum effect ({settings.min_effect}); the stated level "
-            f"is alpha {settings.alpha}.")
+            f"without the cue, on the images each test used. \"exact\": the cue's own pixels; \"regions\": the saliency regions the app "
+            f"covers, chosen as it chooses them (regions naming the cue alone when enough images have one, else every region naming it). "
+            f"\"image covered\": mean share of the image under the mask; an image whose mask covers more than {MAX_COVER_SHARE:.0%} has no "
+            f"matched control and is left out, and a test left with fewer than two images is not testable. Verdicts: default policy "
+            f"({' + '.join(DEFAULT_FILLS)} fill), {settings.describe(len(null_rows))}. A false confirmation is reliance confirmed where the true "
+            f"effect is below the minimum effect ({settings.min_effect}); the stated level is alpha {settings.alpha}.")
     print(note)
     return f"{table}\n\n{per_test}\n\n{null}\n\n{note}\n"
 

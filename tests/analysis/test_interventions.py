@@ -8,7 +8,17 @@ import torch
 from torch import nn
 
 from analysis.errors import InvalidInputError
-from analysis.interventions import FILLS, ablation_test, deletion_curve, fill_images, insertion_test, matched_masks
+from analysis.interventions import (
+    FILLS,
+    NotTestableError,
+    ablation_test,
+    controllable,
+    deletion_curve,
+    fill_images,
+    insertion_test,
+    matched_masks,
+    plan_regions,
+)
 from analysis.model_io import Sidecar, prepare_model
 
 SIDECAR = Sidecar(classes=("corner", "other"), input_size=(32, 32), mean=(0.0, 0.0, 0.0), std=(1.0, 1.0, 1.0), target_layer="features")
@@ -106,3 +116,37 @@ def test_deletion_of_salient_pixels_first_drops_faster_than_random(model) -> Non
     by_map = deletion_curve(model, x, maps, np.zeros(20, dtype=int), steps=8)
     by_chance = deletion_curve(model, x, maps, np.zeros(20, dtype=int), steps=8, order="random")
     assert by_map[0] == pytest.approx(by_chance[0]) and np.trapezoid(by_map) < np.trapezoid(by_chance) - 0.5
+
+
+def test_a_mask_over_most_of_the_image_is_not_testable(model) -> None:  # type: ignore[no-untyped-def]
+    # A mask over three quarters of the image has no matched control: the same shape moved anywhere
+    # still covers most of it (and the corner). The test refuses, saying how much the mask covers.
+    x, corner, _ = _data()
+    most = np.ones_like(corner)
+    most[:, 16:, 16:] = False  # 75% of the image, the corner included
+    with pytest.raises(NotTestableError, match=r"covers 75% of the image.*under 50%"):
+        ablation_test(model, x, most, 0, concept="most", fill="mean", seed=3)
+    with pytest.raises(NotTestableError, match="pasting is not testable"):
+        insertion_test(model, x, x, most, 0, concept="most", seed=3)
+    # Images whose mask covers too much are left out and counted; the rest is tested as before.
+    mixed = np.where(np.arange(len(x))[:, None, None] % 2 == 0, most, corner)
+    found = ablation_test(model, x, mixed, 0, concept="corner", fill="mean", seed=3)
+    assert found.left_out == 20 and found.n_images == 20 and found.effect > 0.3 and "20 left out" in found.summary()
+    assert controllable(corner).all() and not controllable(mixed).all()
+
+
+def test_regions_showing_the_concept_alone_are_covered_when_enough_images_have_them() -> None:
+    # Invented region labels (an invariant, not a published figure): image i has regions with these concepts.
+    shared = [[{"paper scrap", "rim"}], [{"paper scrap", "body"}, {"cap"}]]
+    alone = [[{"paper scrap"}, {"body", "paper scrap"}], [{"paper scrap", "belt"}, {"paper scrap"}]]
+    plan = plan_regions(alone * 5 + shared * 5, ["paper scrap"])
+    assert plan.alone and plan.note == ""
+    assert plan.regions[:2] == ((0,), (1,)) and plan.regions[10:] == ((),) * 10 and plan.n_images == 10
+    # Too few images with a region of its own: every region showing it is covered, and the plan says so.
+    few = plan_regions(alone + shared * 5, ["paper scrap"])
+    assert not few.alone and few.note == "in regions shared with other concepts" and few.n_images == 12
+    assert few.regions[0] == (0, 1) and few.regions[3] == (0,)
+    # A refinement and its entity are one family: "yellow tag" beside "tag" is still the tag alone.
+    tags = [[{"tag", "yellow tag"}], [{"tag"}], [{"tag", "body"}]]
+    assert plan_regions(tags, ["tag"], families={"yellow tag": "tag"}, min_alone=2).regions == ((0,), (0,), ())
+    assert plan_regions(tags, ["yellow tag"], families={"yellow tag": "tag"}, min_alone=1).regions == ((0,), (), ())
