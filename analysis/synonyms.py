@@ -154,14 +154,20 @@ def suggest_merges(
     rules: SynonymRules | None = None,
     rejected: Iterable[tuple[str, str]] = (),
     max_labels: int = 1000,
+    attributes: Iterable[str] = (),
 ) -> list[Suggestion]:
     """Likely duplicates among labels in use: a typo (one edit in a word of 5+ letters, two in 9+),
-    the same letters without spaces, or one label's words inside the other's ("yellow tag", "tag").
+    the same letters without spaces, or one label's words inside the other's ("pull tab", "tab").
 
-    Labels already merged, and pairs the analyst rejected (either order), are left out. The
-    ``max_labels`` most frequent labels are compared, each pair once; most frequent pairs first.
+    A refinement is never proposed for merging into its own entity: when the longer label is the
+    shorter one with leading words that annotators use as attributes (``attributes``: the attribute
+    labels of the campaign, e.g. "yellow" from "tag: yellow"), "yellow tag" is already nested under
+    "tag" as one family (:func:`analysis.concepts.judgment_families`), and a merge would lose the
+    attribute. Labels already merged, and pairs the analyst rejected (either order), are left out.
+    The ``max_labels`` most frequent labels are compared, each pair once; most frequent pairs first.
     """
     rules = rules or SynonymRules()
+    attribute_words = {w for a in attributes for w in a.split()}
     merged = {m.source for m in rules.merges if m.kind == "entity"} | {s.source for s in rules.splits}
     no = {frozenset(p) for p in rejected}
     labels = sorted((lab for lab in counts if lab and lab not in merged), key=lambda lab: (-counts[lab], lab))[:max_labels]
@@ -180,9 +186,19 @@ def suggest_merges(
                     reason = f"{d} typing edit{'s' if d > 1 else ''} apart"
             if not reason:
                 wb = set(b.split())
+                if _refines(a, b, attribute_words) or _refines(b, a, attribute_words):
+                    continue
                 if wa < wb or wb < wa:
                     reason = f"shares the word{'s' if len(wa & wb) > 1 else ''} {' '.join(sorted(wa & wb))!r}"
             if reason:
                 # a is at least as frequent as b (the list is sorted), so b goes into a.
                 out.append(Suggestion(b, a, reason, counts[b], counts[a]))
     return sorted(out, key=lambda s: (-(s.source_count + s.into_count), s.into, s.source))
+
+
+def _refines(longer: str, shorter: str, attribute_words: set[str]) -> bool:
+    """``longer`` is ``shorter`` with leading attribute words: "yellow tag" refines "tag" when "yellow" is an attribute."""
+    if not longer.endswith(" " + shorter):
+        return False
+    lead = longer[: -len(shorter) - 1].split()
+    return bool(lead) and all(w in attribute_words for w in lead)

@@ -210,10 +210,10 @@ def synonyms(request: Request, campaign_id: int, s: SessionDep, viewer: Reviewer
     """The campaign's merges and splits, with suggested duplicates to accept or reject."""
     c = campaigns.get_campaign(s, campaign_id)
     rules, rejected = campaigns.synonym_rules(s, c.id)
-    raw_counts, _ = campaigns.label_counts(s, c.id)
-    merged_counts, _ = campaigns.label_counts(s, c.id, rules)
+    raw_counts, raw_attributes = campaigns.label_counts(s, c.id)
+    merged_counts, merged_attributes = campaigns.label_counts(s, c.id, rules)
     context = {
-        "campaign": c, "rules": campaigns.synonym_rule_rows(s, c.id), "suggestions": suggest_merges(raw_counts, rules=rules, rejected=rejected)[:30],
+        "campaign": c, "rules": campaigns.synonym_rule_rows(s, c.id), "suggestions": suggest_merges(raw_counts, rules=rules, rejected=rejected, attributes=[*raw_attributes, *merged_attributes])[:30],
         "counts": merged_counts.most_common(60), "classes": campaigns.run_classes(s, c.run_id), "error": error[:300],
     }
     return render(request, "synonyms.html", context, viewer=viewer)

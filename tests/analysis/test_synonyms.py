@@ -5,7 +5,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from nltk.metrics.distance import edit_distance as nltk_edit_distance
 
-from analysis.concepts import Judgment, judgment_concepts
+from analysis.concept_votes import presence_votes
+from analysis.concepts import Judgment, attribute_words, judgment_concepts
 from analysis.errors import InvalidInputError
 from analysis.synonyms import Merge, Split, build_rules, edit_distance, suggest_merges
 
@@ -56,3 +57,20 @@ def test_suggestions_find_typos_spacing_and_shared_words() -> None:
     assert ("can", "cap") not in found and ("lid", "cap") not in found  # short words and true synonyms need a person
     rejected = suggest_merges(counts, rejected=[("tag", "yellow tag")], rules=build_rules([Merge("tab", "pull tab")]))
     assert {(s.source, s.into) for s in rejected}.isdisjoint({("yellow tag", "tag"), ("tab", "pull tab")})
+
+
+def test_a_refinement_is_never_proposed_for_merging_into_its_own_entity() -> None:
+    # "yellow tag" where somebody also wrote "tag: yellow" is a refinement of "tag": families nest it
+    # under "tag" (an image showing it counts for "tag"), so merging it would only lose "yellow".
+    judgments = [Judgment(1, "a", (("tag", ("yellow",)),)), Judgment(1, "b", (("yellow tag", ()),)), Judgment(2, "a", (("pull tab", ()),)),
+                 Judgment(2, "b", (("tab", ()),)), Judgment(3, "a", (("tag", ()),)), Judgment(3, "b", (("big yellow tag", ()),))]
+    words = attribute_words(judgments)
+    counts = {"tag": 40, "yellow tag": 6, "big yellow tag": 1, "pull tab": 12, "tab": 4, "tagg": 2}
+    found = {(s.source, s.into) for s in suggest_merges(counts, attributes=["yellow"])}
+    assert ("yellow tag", "tag") not in found and ("tab", "pull tab") in found and ("tagg", "tag") not in found  # "tagg": 4 letters
+    assert ("yellow tag", "tag") in {(s.source, s.into) for s in suggest_merges(counts)}  # with no attribute typed, it is a plain duplicate
+    # The same judgments through the families: what is not suggested is nested instead.
+    assert presence_votes(judgments).families["yellow tag"] == "tag"
+    assert {(s.source, s.into) for s in suggest_merges(counts, attributes=words)}.isdisjoint({("yellow tag", "tag")})
+    # "big" was never typed as an attribute: "big yellow tag" is not a refinement of "yellow tag" and may still be suggested.
+    assert ("big yellow tag", "yellow tag") in {(s.source, s.into) for s in suggest_merges(counts, attributes=words)}
