@@ -39,12 +39,15 @@ def one_run(cue: str, seed: int, size: str, aggregation: str) -> dict[str, objec
     cue_rules = can[pd.Series(named, index=can.index, dtype=bool)]
     acc = summary["accuracy"]  # type: ignore[index]
     rule = summary.get("cue_rule") or {}
+    verdict = summary.get("cue_reliance") or {}
     return {
         "cue": cue, "seed": seed, "concept": CUE_CONCEPTS.get(cue, "(control)"),
         "test_accuracy": round(float(acc["test"]), 3), "counterfactual_accuracy": round(float(acc["counterfactual"]), 3),  # type: ignore[index]
         "learned_cue": bool(acc["test"] - acc["counterfactual"] > 0.2) if cue != "none" else None,  # type: ignore[index]
         "rank": rule.get("rank"), "rule": rule.get("concepts"), "lift": round(float(rule["lift"]), 2) if rule else None,  # type: ignore[union-attr]
         "n_can_rules": len(can), "cue_concept_rules_in_class": len(cue_rules), "cue_families_in_class": int(cue_rules["family"].nunique()),
+        "cue_verdict": (f"{verdict['reliance']} ({verdict['effect']:.2f})" if verdict.get("effect") is not None else str(verdict["reliance"])) if verdict  # type: ignore[index, union-attr, str-format]
+        else ("not testable or not tested" if cue != "none" else None),
         "pointing_game": round(game.hit_rate, 3), "pointing_chance": round(game.chance_rate, 3),
         "seconds": round(sum(summary["timings"].values()), 1),  # type: ignore[union-attr]
     }
@@ -68,10 +71,10 @@ def main(argv: list[str] | None = None) -> str:
     args.out.mkdir(parents=True, exist_ok=True)
     frame.to_csv(args.out / "bias_recovery.csv", index=False)
     (args.out / "bias_recovery.json").write_text(json.dumps({"size": size, "aggregation": args.aggregation, "runs": rows}, indent=1))
-    cols = ["cue", "seed", "concept", "test_accuracy", "counterfactual_accuracy", "rank", "rule", "lift", "cue_concept_rules_in_class", "cue_families_in_class", "pointing_game",
+    cols = ["cue", "seed", "concept", "test_accuracy", "counterfactual_accuracy", "rank", "rule", "lift", "cue_concept_rules_in_class", "cue_families_in_class", "cue_verdict", "pointing_game",
             "pointing_chance"]
     return print_table(["cue", "seed", "injected concept", "test acc", "counterfactual acc", "rank in class", "top cue rule", "lift", "cue rules in 'can'",
-                        "cue families in 'can'", "pointing game", "chance"],
+                        "cue families in 'can'", "cue rule's covering verdict (effect)", "pointing game", "chance"],
                        frame[cols].astype(object).where(frame[cols].notna(), "-").to_numpy().tolist())
 
 
