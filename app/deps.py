@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import hmac
 import re
-from collections.abc import AsyncIterator, Callable, Iterator
+from collections.abc import AsyncIterator, Awaitable, Callable, Iterator
 from typing import Annotated
 
+from anyio import to_thread
 from fastapi import APIRouter, Depends, Request
 from sqlalchemy.orm import Session
 
@@ -37,7 +38,9 @@ async def _write_session(request: Request) -> AsyncIterator[Session]:
         s = request.app.state.writers()
         try:
             yield s
-            s.commit()
+            # The commit waits for the disk (synchronous=FULL): in a worker thread, so the event loop
+            # keeps reading and checking the requests queued behind this one meanwhile.
+            await to_thread.run_sync(s.commit)
         except BaseException:
             s.rollback()
             raise
@@ -45,7 +48,7 @@ async def _write_session(request: Request) -> AsyncIterator[Session]:
             s.close()
 
 
-def _settings(request: Request) -> Settings:
+async def _settings(request: Request) -> Settings:
     settings: Settings = request.app.state.settings
     return settings
 
@@ -56,16 +59,18 @@ def optional_viewer(request: Request) -> Viewer | None:
         return viewer_from_cookie(s, request.app.state.key, request.cookies.get(COOKIE))
 
 
-def _viewer(viewer: Annotated[Viewer | None, Depends(optional_viewer)]) -> Viewer:
+# Dependencies that only look at what they are given are ``async def``: FastAPI runs those on the event
+# loop, where a plain ``def`` would cost a hop to a worker thread and back on every request.
+async def _viewer(viewer: Annotated[Viewer | None, Depends(optional_viewer)]) -> Viewer:
     if viewer is None:
         raise UnauthorizedError("sign in first: open the invite link the project's admin gave you.")
     return viewer
 
 
-def require(role: str) -> Callable[[Viewer], Viewer]:
+def require(role: str) -> Callable[[Viewer], Awaitable[Viewer]]:
     """A dependency that lets through people with ``role`` or a higher one."""
 
-    def check(viewer: Annotated[Viewer, Depends(_viewer)]) -> Viewer:
+    async def check(viewer: Annotated[Viewer, Depends(_viewer)]) -> Viewer:
         if not viewer.can(role):
             raise ForbiddenError(f"this needs the {role} role; {viewer.name} is signed in as {viewer.role}.")
         return viewer
@@ -121,7 +126,7 @@ CsrfDep = Depends(check_csrf)
 MAX_ID = 2**63 - 1  # SQLite's largest integer
 
 
-def check_path_ids(request: Request) -> None:
+async def check_path_ids(request: Request) -> None:
     """Refuse an id in the path that is not a whole number SQLite can hold, before any query sees it."""
     for name, value in request.path_params.items():
         # ASCII digits only: "²".isdigit() is true, and int() of it fails.
@@ -129,7 +134,7 @@ def check_path_ids(request: Request) -> None:
             raise InvalidRequestError(f"{name} must be a whole number from 0 to {MAX_ID}; got {str(value)[:40]!r}.")
 
 
-def guarded_router(role: Callable[..., Viewer] | None = None, *, prefix: str = "", tags: list[str] | None = None) -> APIRouter:
+def guarded_router(role: Callable[..., Awaitable[Viewer]] | None = None, *, prefix: str = "", tags: list[str] | None = None) -> APIRouter:
     """A router whose every route checks the anti-forgery token on writes and, given ``role``, who may call it."""
     dependencies = [Depends(check_path_ids), CsrfDep] + ([Depends(role)] if role is not None else [])
     return APIRouter(prefix=prefix, dependencies=dependencies, tags=list(tags or []))

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from pathlib import Path
 
-from sqlalchemy import func, select
+from sqlalchemy import bindparam, func, select
 from sqlalchemy.orm import Session
 
 from .errors import ConflictError, ForbiddenError, InvalidRequestError, NotFoundError
@@ -233,6 +233,10 @@ def session_cookie(key: bytes, invite_id: int) -> str:
     return f"{invite_id}.{hmac.new(key, f'session|{invite_id}'.encode(), 'sha256').hexdigest()}"
 
 
+_SESSION_VIEWER = (select(Invite.id, Invite.campaign_id, Invite.expires_at, Invite.revoked_at, Person.id, Person.name, Person.role)
+                   .join(Person, Person.id == Invite.person_id).where(Invite.id == bindparam("invite")))
+
+
 def viewer_from_cookie(s: Session, key: bytes, cookie: str | None, *, now: datetime | None = None) -> Viewer | None:
     """The viewer a session cookie stands for; None when there is none or it is not ours."""
     if not cookie or "." not in cookie:
@@ -241,11 +245,8 @@ def viewer_from_cookie(s: Session, key: bytes, cookie: str | None, *, now: datet
     # ASCII digits only, and short enough for SQLite's 64-bit integers ("²".isdigit() is true).
     if not _COOKIE_ID.fullmatch(raw_id) or not hmac.compare_digest(cookie, session_cookie(key, int(raw_id))):
         return None
-    # One query per request: the invite and its person together.
-    row = s.execute(
-        select(Invite.id, Invite.campaign_id, Invite.expires_at, Invite.revoked_at, Person.id, Person.name, Person.role)
-        .join(Person, Person.id == Invite.person_id).where(Invite.id == int(raw_id))
-    ).first()
+    # One query per request, prebuilt: the invite and its person together.
+    row = s.connection().execute(_SESSION_VIEWER, {"invite": int(raw_id)}).first()
     if row is None:
         return None
     invite_id, campaign_id, expires_at, revoked_at, person_id, name, role = row

@@ -4,6 +4,10 @@ requests per second, and labels lost or stored twice (must be 0).
     .venv/bin/python -m benchmarks.annotation_load             # 50 annotators, 30 s
     .venv/bin/python -m benchmarks.annotation_load --quick     # 50 annotators, 8 s
     .venv/bin/python -m benchmarks.annotation_load --compare-sync   # the cost of syncing each commit (NORMAL vs FULL)
+    .venv/bin/python -m benchmarks.annotation_load --against main   # this tree against a git revision, rounds taken in turn
+
+With ``--against REV`` the same load runs against a server from the revision's files and one from this
+tree, in alternating rounds (A B B A A B ...), so that other work on a shared machine weighs on both sides alike.
 
 Each annotator signs in through its own invite link, then loops: fetch the next task, submit a
 label (JSON API, with the anti-forgery header); one submit in twenty is sent twice, as a browser
@@ -15,11 +19,14 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import io
+import json
 import os
 import random
 import socket
 import subprocess
 import sys
+import tarfile
 import tempfile
 import time
 import uuid
@@ -39,6 +46,7 @@ from app.people import create_invite
 from .measure import print_table
 
 CLASSES = ("bottle", "can", "carton")
+ROOT = Path(__file__).resolve().parent.parent
 
 
 def make_project(root: Path, n_images: int, n_people: int, k: int) -> tuple[int, list[str]]:
@@ -118,16 +126,31 @@ async def run_load(base: str, tokens: list[str], cid: int, seconds: float, think
     return timings, outcome, time.perf_counter() - t0
 
 
-def run_once(args: argparse.Namespace, seconds: float, synchronous: str | None) -> tuple[dict[str, list[float]], Counter[str], float, int, int, int]:
-    """One served project under load; ``synchronous`` overrides SQLite's sync level in the server (for the side-by-side cost)."""
+def _make_project_in(tree: Path, project: Path, n_people: int, k: int) -> tuple[int, list[str]]:
+    """The benchmark's project made by the code in ``tree`` (another revision makes its own schema)."""
+    code = ("import json, sys; from pathlib import Path; from benchmarks.annotation_load import make_project; "
+            "print(json.dumps(make_project(Path(sys.argv[1]), 5000, int(sys.argv[2]), int(sys.argv[3]))))")
+    out = subprocess.run([sys.executable, "-c", code, str(project), str(n_people), str(k)], cwd=tree, check=True, capture_output=True, text=True).stdout
+    cid, tokens = json.loads(out.strip().splitlines()[-1])
+    return int(cid), [str(t) for t in tokens]
+
+
+def run_once(args: argparse.Namespace, seconds: float, synchronous: str | None,
+             tree: Path | None = None) -> tuple[dict[str, list[float]], Counter[str], float, int, int, int]:
+    """One served project under load; ``synchronous`` overrides SQLite's sync level in the server (for the side-by-side cost);
+    ``tree`` serves the code of another checkout (its own project schema too)."""
     with tempfile.TemporaryDirectory() as tmp:
         project = Path(tmp) / "project"
-        cid, tokens = make_project(project, 5000, args.annotators, args.per_region)
+        if tree is None:
+            cid, tokens = make_project(project, 5000, args.annotators, args.per_region)
+        else:
+            cid, tokens = _make_project_in(tree, project, args.annotators, args.per_region)
         port = free_port()
         serve = ["serve", str(project), "--port", str(port)]
         code = "import sys, app.db, app.cli; " + (f"app.db.SYNCHRONOUS = {synchronous!r}; " if synchronous else "") + "sys.exit(app.cli.main(sys.argv[1:]))"
+        # The server imports ``app`` from its working folder: this tree's, or the other revision's.
         server = subprocess.Popen([sys.executable, "-c", code, *serve], stdout=open(os.environ.get("HEEDMAP_BENCH_LOG", os.devnull), "w"),
-                                  stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1"})
+                                  stderr=subprocess.STDOUT, env={**os.environ, "PYTHONUNBUFFERED": "1"}, cwd=tree or ROOT)
         base = f"http://127.0.0.1:{port}"
         try:
             for _ in range(200):
@@ -157,10 +180,14 @@ def main(argv: list[str] | None = None) -> str:
     p.add_argument("--per-region", type=int, default=3)
     p.add_argument("--think", type=float, default=2.0, help="mean seconds an annotator spends on a region (0 = hammer the server)")
     p.add_argument("--compare-sync", action="store_true", help="run once with SQLite synchronous=NORMAL and once with FULL (what heedmap uses), side by side")
+    p.add_argument("--against", metavar="REV", help="also serve the files of git revision REV (e.g. main, HEAD~3) and compare, in alternating rounds")
+    p.add_argument("--rounds", type=int, default=4, help="rounds per side with --against")
     args = p.parse_args(argv)
     seconds = 8.0 if args.quick else 30.0
     if args.compare_sync:
         return _compare_sync(args, seconds)
+    if args.against:
+        return _compare_revision(args, seconds)
     timings, outcome, wall, in_db, worst, repeats = run_once(args, seconds, None)
     requests = sum(len(v) for v in timings.values())
     head = (f"{args.annotators} annotators, {args.think:g} s per region on average, for {wall:.1f} s on loopback, one uvicorn process; "
@@ -194,6 +221,50 @@ def _compare_sync(args: argparse.Namespace, seconds: float) -> str:
         print(f"{mode}: outcomes {dict(outcome)}; {in_db} labels in the database; lost {outcome['stored'] - in_db}; stored twice {repeats}")
     rows.append(["lost (acknowledged, not stored)", found["NORMAL"][1]["stored"] - found["NORMAL"][3], found["FULL"][1]["stored"] - found["FULL"][3], float("nan")])
     table = print_table(["measure", "NORMAL", "FULL", "FULL / NORMAL"], rows)
+    return head + "\n\n" + table
+
+
+def _revision_tree(rev: str, into: Path) -> Path:
+    """The files of git revision ``rev`` of this repository, unpacked under ``into``."""
+    got = subprocess.run(["git", "archive", "--format=tar", rev], cwd=ROOT, check=True, capture_output=True).stdout
+    with tarfile.open(fileobj=io.BytesIO(got)) as tar:
+        tar.extractall(into, filter="data")
+    return into
+
+
+def _compare_revision(args: argparse.Namespace, seconds: float) -> str:
+    """The same load against REV's server and this tree's, in alternating rounds; latencies pooled per side."""
+    sides = (args.against, "this tree")
+    pooled: dict[str, dict[str, list[float]]] = {side: {"next task": [], "submit": []} for side in sides}
+    stored: Counter[str] = Counter()
+    lost: Counter[str] = Counter()
+    twice: Counter[str] = Counter()
+    loads = []
+    with tempfile.TemporaryDirectory() as tmp:
+        trees = {args.against: _revision_tree(args.against, Path(tmp) / "rev"), "this tree": None}
+        order = [sides[(r // 2 + r) % 2] for r in range(2 * args.rounds)]  # A B B A A B B A: neither side always goes first
+        for side in order:
+            loads.append(os.getloadavg()[0])
+            timings, outcome, _, in_db, _, repeats = run_once(args, seconds, None, trees[side])
+            for name, values in timings.items():
+                pooled[side][name].extend(values)
+            stored[side] += outcome["stored"]
+            lost[side] += outcome["stored"] - in_db
+            twice[side] += repeats
+            print(f"{side}: {dict(outcome)}", flush=True)
+    head = (f"{args.annotators} annotators, {args.think:g} s per region on average, {args.rounds} rounds of {seconds:g} s per side taken in turn "
+            f"({' '.join('A' if s == sides[0] else 'B' for s in order)}; A = {args.against}, B = this tree); load average at the rounds' "
+            f"start {min(loads):.1f}-{max(loads):.1f} on {os.cpu_count()} CPUs.")
+    print(head)
+    rows: list[list[object]] = []
+    for name in ("next task", "submit"):
+        for q in (50, 95, 99):
+            a, b = (1000 * float(np.percentile(pooled[s][name], q)) for s in sides)
+            rows.append([f"{name} p{q} ms", a, b, b / a])
+    rows += [["labels stored", stored[sides[0]], stored[sides[1]], stored[sides[1]] / max(stored[sides[0]], 1)],
+             ["lost (acknowledged, not stored)", lost[sides[0]], lost[sides[1]], float("nan")],
+             ["stored twice (same person and region)", twice[sides[0]], twice[sides[1]], float("nan")]]
+    table = print_table(["measure", f"A: {args.against}", "B: this tree", "B / A"], rows)
     return head + "\n\n" + table
 
 

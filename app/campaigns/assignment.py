@@ -11,7 +11,7 @@ import random
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
-from sqlalchemy import and_, delete, exists, func, insert, select, update
+from sqlalchemy import and_, bindparam, delete, exists, func, insert, select, update
 from sqlalchemy.orm import Session
 
 from ..models import CampaignRegion, Label, Lease, Prediction, RegionRow, Skip, utcnow
@@ -75,6 +75,18 @@ def _pick_check(s: Session, c: CampaignInfo, person_id: int, now: datetime, done
     return random.Random(person_id * 1_000_003 + done).choice(options) if options else None
 
 
+# The next-task path's statements, built once (building and hashing a statement costs more than running it).
+_P = bindparam
+_MINE = (Lease.campaign_id == _P("campaign"), Lease.person_id == _P("person"))
+_DROP_ENDED = delete(Lease).where(*_MINE, Lease.expires_at <= _P("now"))
+_HELD = select(Lease.region_id).where(*_MINE).order_by(Lease.id)
+_RENEW = update(Lease).where(*_MINE).values(expires_at=_P("expires"))
+_DONE = select(func.count()).select_from(Label).where(Label.campaign_id == _P("campaign"), Label.person_id == _P("person"))
+_TAKE = insert(Lease)
+_TASK_ROWS = (select(RegionRow.id, Prediction.image_id, Prediction.predicted, Prediction.confidence)
+              .join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(_P("regions", expanding=True))))
+
+
 def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: datetime | None = None, want: int = 2) -> list[Task]:
     """The person's current task first, then the one after (for preloading); leases what is needed.
 
@@ -86,33 +98,27 @@ def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
     if campaign.closed_at is not None:
         return []
     expires = now + timedelta(seconds=campaign.lease_seconds)
-    mine = (Lease.campaign_id == campaign.id, Lease.person_id == person_id)
-    conn.execute(delete(Lease).where(*mine, Lease.expires_at <= now))
-    held = list(conn.scalars(select(Lease.region_id).where(*mine).order_by(Lease.id)))
+    mine = {"campaign": campaign.id, "person": person_id}
+    conn.execute(_DROP_ENDED, {**mine, "now": now})
+    held = list(conn.scalars(_HELD, mine))
     if held:
-        conn.execute(update(Lease).where(*mine).values(expires_at=expires))
+        conn.execute(_RENEW, {**mine, "expires": expires})
     picks: list[int] = []
     need = want - len(held)
     if need > 0:
-        done = conn.scalar(select(func.count()).select_from(Label).where(Label.campaign_id == campaign.id, Label.person_id == person_id)) or 0
+        done = conn.scalar(_DONE, mine) or 0
         check = _pick_check(s, campaign, person_id, now, done + len(held))
         if check is not None:
             picks.append(check)
         picks += _pick_regular(s, campaign, person_id, now, need - len(picks))
         if picks:
-            conn.execute(insert(Lease), [
+            conn.execute(_TAKE, [
                 {"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires} for r in picks
             ])
     order = held + picks
     if not order:
         return []
-    rows = {
-        r[0]: r
-        for r in conn.execute(
-            select(RegionRow.id, Prediction.image_id, Prediction.predicted, Prediction.confidence)
-            .join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(order))
-        )
-    }
+    rows = {r[0]: r for r in conn.execute(_TASK_ROWS, {"regions": order})}
     return [Task(r, rows[r][1], rows[r][2], float(rows[r][3]), expires) for r in order]
 
 

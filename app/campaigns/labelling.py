@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from datetime import datetime, timedelta
 
-from sqlalchemy import delete, func, insert, select, update
+from sqlalchemy import bindparam, delete, func, insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -41,6 +41,22 @@ def _as_stored(entities: Entities) -> tuple[tuple[str, tuple[str, ...]], ...]:
     return tuple((str(e[0]), tuple(str(a) for a in e[1])) for e in entities)
 
 
+# The submit path's statements, built once: building and hashing a statement costs more than SQLite's
+# answer to it, and a prebuilt one is found in the compiled cache by identity.
+_P = bindparam
+_BY_CLIENT = select(Label.person_id, Label.region_id, Label.entities, Label.unsure).where(Label.client_id == _P("client_id"))
+_WITHDRAWN = select(WithdrawnLabel.id).where(WithdrawnLabel.client_id == _P("client_id"))
+_REGION_HERE = (select(CampaignRegion.id, CampaignRegion.n_labels, CampaignRegion.check_answer.is_not(None))
+                .where(CampaignRegion.campaign_id == _P("campaign"), CampaignRegion.region_id == _P("region")))
+_LABELLED = select(Label.id).where(Label.campaign_id == _P("campaign"), Label.region_id == _P("region"), Label.person_id == _P("person"))
+_MY_LEASE = select(Lease.expires_at).where(Lease.campaign_id == _P("campaign"), Lease.region_id == _P("region"), Lease.person_id == _P("person"))
+_HELD_BY_OTHERS = (select(func.count()).select_from(Lease)
+                   .where(Lease.campaign_id == _P("campaign"), Lease.region_id == _P("region"), Lease.person_id != _P("person"), Lease.expires_at > _P("now")))
+_INSERT_LABEL = insert(Label)
+_COUNT_LABEL = update(CampaignRegion).where(CampaignRegion.id == _P("cr_id")).values(n_labels=CampaignRegion.n_labels + 1)
+_DROP_MY_LEASE = delete(Lease).where(Lease.campaign_id == _P("campaign"), Lease.region_id == _P("region"), Lease.person_id == _P("person"))
+
+
 def save_label(
     s: Session, *, campaign: CampaignInfo, region_id: int, person_id: int, entities: Entities, unsure: bool, client_id: str,
     seconds_spent: float | None, now: datetime | None = None, require_lease: bool = False,
@@ -52,7 +68,7 @@ def save_label(
     """
     conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
     now = now or utcnow()
-    found = conn.execute(select(Label.person_id, Label.region_id, Label.entities, Label.unsure).where(Label.client_id == client_id)).first()
+    found = conn.execute(_BY_CLIENT, {"client_id": client_id}).first()
     if found is not None:
         if (found.person_id, found.region_id) != (person_id, region_id):
             raise ConflictError("this submission id was used for another label; reload the page to get a fresh form.")
@@ -62,19 +78,18 @@ def save_label(
             raise ConflictError(f"this submission was stored already with other content: region {region_id}: {text!r}"
                                 f"{' (not sure)' if found.unsure else ''}. To change it, undo it and label again.")
         return False  # the same submit again (a retry): stored once
-    if conn.scalar(select(WithdrawnLabel.id).where(WithdrawnLabel.client_id == client_id)) is not None:
+    if conn.scalar(_WITHDRAWN, {"client_id": client_id}) is not None:
         raise ConflictError("this submission was undone, and a submission id stays used; reload the page to label the region again.")
     if campaign.closed_at is not None:
         raise ConflictError(f"campaign {campaign.name!r} is closed; labels are no longer taken.")
-    here = (CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
-    cr = conn.execute(select(CampaignRegion.id, CampaignRegion.n_labels, CampaignRegion.check_answer.is_not(None)).where(*here)).first()
+    here = {"campaign": campaign.id, "region": region_id, "person": person_id}
+    cr = conn.execute(_REGION_HERE, here).first()
     if cr is None:
         raise NotFoundError(f"region {region_id} is not part of campaign {campaign.id}.")
     cr_id, n_labels, is_check = cr
-    if conn.scalar(select(Label.id).where(Label.campaign_id == campaign.id, Label.region_id == region_id, Label.person_id == person_id)) is not None:
+    if conn.scalar(_LABELLED, here) is not None:
         raise ConflictError(f"you have labelled region {region_id} already; undo your last label to change it.")
-    lease_here = (Lease.campaign_id == campaign.id, Lease.region_id == region_id)
-    mine = conn.scalar(select(Lease.expires_at).where(*lease_here, Lease.person_id == person_id))
+    mine = conn.scalar(_MY_LEASE, here)
     if require_lease and mine is None:
         # An annotator labels what was handed to them; an ended hold still counts while its place is free (below).
         raise ForbiddenError(f"region {region_id} was not handed to you in campaign {campaign.name!r}; label the region your page shows.")
@@ -83,20 +98,20 @@ def save_label(
         if n_labels >= k:
             raise ConflictError(f"region {region_id} has its {k} labels already; your next region is ready.")
         if mine is None or mine <= now:
-            held = conn.scalar(select(func.count()).select_from(Lease).where(*lease_here, Lease.person_id != person_id, Lease.expires_at > now)) or 0
+            held = conn.scalar(_HELD_BY_OTHERS, {**here, "now": now}) or 0
             if n_labels + held >= k:
                 raise ConflictError(f"your hold on region {region_id} ran out and other annotators have its last places; your next region is ready.")
     try:
-        conn.execute(insert(Label).values(
-            client_id=client_id, campaign_id=campaign.id, region_id=region_id, person_id=person_id, entities=[[e, a] for e, a in entities],
-            unsure=unsure, submitted_at=now, seconds_spent=seconds_spent,
-        ))
+        conn.execute(_INSERT_LABEL, {
+            "client_id": client_id, "campaign_id": campaign.id, "region_id": region_id, "person_id": person_id,
+            "entities": [[e, a] for e, a in entities], "unsure": unsure, "submitted_at": now, "seconds_spent": seconds_spent,
+        })
     except IntegrityError:
         raise ConflictError(f"region {region_id} was labelled twice at once; reload the page.") from None
-    conn.execute(update(CampaignRegion).where(CampaignRegion.id == cr_id).values(n_labels=CampaignRegion.n_labels + 1))
+    conn.execute(_COUNT_LABEL, {"cr_id": cr_id})
     add_words(s, campaign.id, words_of(entities))
     if mine is not None:
-        conn.execute(delete(Lease).where(*lease_here, Lease.person_id == person_id))
+        conn.execute(_DROP_MY_LEASE, here)
     return True
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import statistics
 from dataclasses import dataclass
 
-from sqlalchemy import case, func, select
+from sqlalchemy import bindparam, case, func, select
 from sqlalchemy.orm import Session
 
 from analysis.concepts import Judgment, entity_overlap
@@ -16,10 +16,12 @@ from .judgments import entities_of, region_classes
 from .records import CampaignInfo
 from .synonym_rules import synonym_rules
 
+_DONE = select(func.count()).select_from(Label).where(Label.campaign_id == bindparam("campaign"), Label.person_id == bindparam("person"))
+
 
 def person_progress(s: Session, campaign: CampaignInfo, person_id: int) -> tuple[int, int]:
     """(labels this person gave in the campaign, regions in the campaign)."""
-    done = s.scalar(select(func.count()).where(Label.campaign_id == campaign.id, Label.person_id == person_id)) or 0
+    done = s.connection().scalar(_DONE, {"campaign": campaign.id, "person": person_id}) or 0  # on every next task: Core, prebuilt
     return int(done), campaign.n_regions
 
 
