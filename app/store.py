@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import pandas as pd
@@ -9,7 +11,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from .errors import NotFoundError
-from .models import Campaign, CampaignRegion, ImageRow, Label, Prediction, RegionRow, SaliencyRun, SynonymRule
+from .models import Campaign, CampaignRegion, ImageRow, Label, Prediction, RegionRow, SaliencyRun, SynonymRule, WithdrawnLabel
 
 
 def latest_run_id(s: Session) -> int | None:
@@ -58,9 +60,25 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
 
 
 def labels_version(s: Session, campaign_id: int) -> tuple[object, ...]:
-    """Changes whenever anything the results depend on changes (labels, synonym rules, check items, method)."""
+    """A key that changes whenever anything a campaign's results depend on changes: a label stored or undone,
+    a synonym rule added or removed, a check item set, cleared or given another answer, the method, labels per region.
+
+    Labels are only ever stored or undone (an undone one moves to the withdrawn table): storing adds one to
+    the labels' count, undoing takes one away and adds one to the withdrawn count, so the pair never repeats
+    (labels + 2 x withdrawn grows with every change). The highest id alone would not do: SQLite hands out a
+    deleted highest id again, so an undo and a new label with another answer could give the same pair as
+    before. Synonym rules and check answers are few; their content itself goes into the key (hashed).
+    """
     n, last = s.execute(select(func.count(Label.id), func.max(Label.id)).where(Label.campaign_id == campaign_id)).one()
-    rn, rlast = s.execute(select(func.count(SynonymRule.id), func.max(SynonymRule.id)).where(SynonymRule.campaign_id == campaign_id)).one()
+    wn, wlast = s.execute(select(func.count(WithdrawnLabel.id), func.max(WithdrawnLabel.id)).where(WithdrawnLabel.campaign_id == campaign_id)).one()
+    rules = s.execute(select(SynonymRule.id, SynonymRule.kind, SynonymRule.source, SynonymRule.target, SynonymRule.targets)
+                      .where(SynonymRule.campaign_id == campaign_id).order_by(SynonymRule.id)).all()
+    checks = s.execute(select(CampaignRegion.region_id, CampaignRegion.check_answer)
+                       .where(CampaignRegion.campaign_id == campaign_id, CampaignRegion.check_answer.is_not(None)).order_by(CampaignRegion.region_id)).all()
     c = s.get(Campaign, campaign_id)
-    checks = s.scalar(select(func.count(CampaignRegion.check_answer)).where(CampaignRegion.campaign_id == campaign_id))
-    return (campaign_id, n, last, rn, rlast, checks, c.method if c else None, c.labels_per_region if c else None)
+    return (campaign_id, n, last, wn, wlast, _digest(rules), _digest(checks), c.method if c else None, c.labels_per_region if c else None)
+
+
+def _digest(rows: Sequence[Sequence[object]]) -> str:
+    """A short fingerprint of some rows' content (their repr: ids, words and JSON values as read)."""
+    return hashlib.sha256(repr([tuple(r) for r in rows]).encode()).hexdigest()[:32]

@@ -11,6 +11,7 @@ from .progress import (
     ClassProgress,
     campaign_progress,
     person_progress,
+    skips_version,
 )
 from .records import (
     CampaignInfo,
@@ -59,6 +60,7 @@ __all__ = [
     "set_check_answer",
     "set_example",
     "skip_region",
+    "skips_version",
     "synonym_rule_rows",
     "synonym_rules",
     "undo_last",

@@ -25,6 +25,12 @@ def person_progress(s: Session, campaign: CampaignInfo, person_id: int) -> tuple
     return int(done), campaign.n_regions
 
 
+def skips_version(s: Session, campaign_id: int) -> tuple[int, int | None]:
+    """Changes with every skip (skips are only ever added): with store.labels_version, the key of cached progress."""
+    n, last = s.execute(select(func.count(Skip.id), func.max(Skip.id)).where(Skip.campaign_id == campaign_id)).one()
+    return int(n), last
+
+
 @dataclass(frozen=True)
 class AnnotatorProgress:
     name: str

@@ -24,6 +24,7 @@ from ..deps import (
 )
 from ..errors import AppError, InvalidRequestError
 from ..models import ROLES, CampaignRegion, Prediction, RegionRow, SaliencyRun, utcnow
+from ..services.campaign_analysis import campaign_progress
 from ..services.exports import raw_labels_export
 from .common import render
 from .labelling import parse_entities
@@ -114,7 +115,7 @@ def revoke_invite(invite_id: int, s: WriteSessionDep) -> Response:
 def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: AdminDep, settings: SettingsDep) -> Response:
     """Progress per annotator and class, check-item scores, settings and check items."""
     c = campaigns.get_campaign(s, campaign_id)
-    annotators, classes = campaigns.campaign_progress(s, c)
+    annotators, classes = campaign_progress(s, c, cache=request.app.state.results_cache)
     answers = {r: format_label_text([(e, list(a)) for e, a in j.entities]) for r, j in campaigns.check_answers(s, campaign_id).items()}
     # A sample of regions to pick check items from: a spread over the campaign, not only its start.
     ids = list(s.scalars(select(CampaignRegion.region_id).where(CampaignRegion.campaign_id == campaign_id, CampaignRegion.check_answer.is_(None),

@@ -35,6 +35,7 @@ from ..report import build_report
 from ..services.campaign_analysis import (
     Results,
     agreement_summary,
+    campaign_progress,
     campaign_results,
     campaign_rules,
     target_of,
@@ -199,7 +200,7 @@ def agreement(request: Request, campaign_id: int, s: SessionDep, viewer: Reviewe
     """Agreement on the main entity and on each concept, per annotator, and the most disputed regions."""
     c = campaigns.get_campaign(s, campaign_id)
     found = agreement_summary(s, c, cache=request.app.state.results_cache)
-    progress = {p.name: p for p in campaigns.campaign_progress(s, c)[0]}
+    progress = {p.name: p for p in campaign_progress(s, c, cache=request.app.state.results_cache)[0]}
     context = {"campaign": c, "report": found.report, "concepts": found.concepts, "reliability": found.reliability, "progress": progress,
                "reliability_note": found.reliability_note}
     return render(request, "agreement.html", context, viewer=viewer)

@@ -167,6 +167,15 @@ def _agreement(s: Session, c: CampaignInfo, *, top_concepts: int) -> AgreementSu
     return AgreementSummary(report, concepts, reliability, note)
 
 
+def campaign_progress(s: Session, campaign: CampaignInfo | int, *, cache: ResultsCache | None = None
+                      ) -> tuple[list[campaigns.AnnotatorProgress], list[campaigns.ClassProgress]]:
+    """Progress per annotator (labels, skips, time, check-item score) and per class, once per state of the labels and skips."""
+    c = _campaign(s, campaign)
+    if cache is None:
+        return campaigns.campaign_progress(s, c)
+    return cache.get_or_make(("progress", *store.labels_version(s, c.id), *campaigns.skips_version(s, c.id)), lambda: campaigns.campaign_progress(s, c))
+
+
 def agreement_summary(s: Session, campaign: CampaignInfo | int, *, cache: ResultsCache | None = None, top_concepts: int = 40) -> AgreementSummary:
     """Agreement on the main entity and on the ``top_concepts`` most named concepts, and each annotator's reliability."""
     c = _campaign(s, campaign)

@@ -62,3 +62,85 @@ def test_concepts_export_is_kept_until_a_new_label(client: TestClient, campaign_
     with client.app.state.sessions() as s:  # type: ignore[attr-defined]
         fresh = concepts_export(campaign_results(s, campaign_id), "csv").body
     assert again.content == fresh and again.content != first.content
+
+
+def _results_agree_with_a_fresh_computation(client: TestClient, campaign_id: int, cache: ResultsCache) -> object:
+    """The cached results now, after checking they equal results computed afresh without the cache."""
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        cached = campaign_results(s, campaign_id, cache=cache)
+        fresh = campaign_results(s, campaign_id)
+        assert cached.table.concepts == fresh.table.concepts
+        assert cached.table.presence.equals(fresh.table.presence)
+        return cached.table
+
+
+def test_an_undone_label_stored_again_with_another_answer_changes_the_results(client: TestClient, campaign_id: int) -> None:
+    # Undoing the newest label frees the highest id, which SQLite hands to the next label: the count and the
+    # highest id come back as they were, the answer does not.
+    _label(client, campaign_id, "p", 6)
+    csrf = join(client, "q")
+    task = next_task(client, campaign_id).json()["task"]
+    url = f"/api/campaigns/{campaign_id}/regions/{task['region_id']}/labels"
+    assert client.post(url, json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap"}]}, headers={"X-CSRF-Token": csrf}).status_code == 201
+    cache = ResultsCache()
+    before = _results_agree_with_a_fresh_computation(client, campaign_id, cache)
+    assert "hinge" not in before.concepts  # type: ignore[attr-defined]
+    assert client.post(f"/api/campaigns/{campaign_id}/undo", headers={"X-CSRF-Token": csrf}).json()["region_id"] == task["region_id"]
+    assert client.post(url, json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "hinge"}]}, headers={"X-CSRF-Token": csrf}).status_code == 201
+    after = _results_agree_with_a_fresh_computation(client, campaign_id, cache)
+    assert "hinge" in after.concepts  # type: ignore[attr-defined]
+
+
+def test_a_synonym_rule_replaced_by_another_changes_the_results(client: TestClient, campaign_id: int) -> None:
+    from app.campaigns import add_synonym_rule, delete_synonym_rule
+    from app.db import write_session
+
+    _label(client, campaign_id, "p", 12)
+    cache = ResultsCache()
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        rule = add_synonym_rule(s, campaign_id=campaign_id, kind="merge", source="tag", target="cap")
+    merged = _results_agree_with_a_fresh_computation(client, campaign_id, cache)
+    assert "tag" not in merged.concepts  # type: ignore[attr-defined]
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        delete_synonym_rule(s, campaign_id=campaign_id, rule_id=rule)
+        s.flush()
+        add_synonym_rule(s, campaign_id=campaign_id, kind="merge", source="cap", target="tag")  # the freed id again, another rule
+    swapped = _results_agree_with_a_fresh_computation(client, campaign_id, cache)
+    assert "cap" not in swapped.concepts and "tag" in swapped.concepts  # type: ignore[attr-defined]
+
+
+def test_a_check_item_given_another_answer_changes_the_results_key(client: TestClient, campaign_id: int) -> None:
+    from app.campaigns import set_check_answer
+    from app.db import write_session
+    from app.store import labels_version
+
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        set_check_answer(s, campaign_id=campaign_id, region_id=1, entities=[("cap", ["red"])])
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        first = labels_version(s, campaign_id)
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        set_check_answer(s, campaign_id=campaign_id, region_id=1, entities=[("tag", [])])
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        assert labels_version(s, campaign_id) != first
+
+
+def test_progress_is_cached_until_a_label_or_a_skip(client: TestClient, campaign_id: int) -> None:
+    from app.services.campaign_analysis import campaign_progress
+
+    _label(client, campaign_id, "p", 3)
+    cache = ResultsCache()
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        first = campaign_progress(s, campaign_id, cache=cache)
+        assert campaign_progress(s, campaign_id, cache=cache) is first
+        assert {a.name: (a.labels, a.skips) for a in first[0]} == {"p": (3, 0)}
+    csrf = join(client, "p")
+    task = next_task(client, campaign_id).json()["task"]
+    assert client.post(f"/api/campaigns/{campaign_id}/regions/{task['region_id']}/skip", headers={"X-CSRF-Token": csrf}).status_code == 204
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        skipped = campaign_progress(s, campaign_id, cache=cache)
+        assert {a.name: (a.labels, a.skips) for a in skipped[0]} == {"p": (3, 1)}
+    _label(client, campaign_id, "q", 1)
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        labelled = campaign_progress(s, campaign_id, cache=cache)
+        assert {a.name: (a.labels, a.skips) for a in labelled[0]} == {"p": (3, 1), "q": (1, 0)}
+        assert labelled == campaign_progress(s, campaign_id)  # the uncached path agrees
