@@ -10,6 +10,7 @@ from .progress import (
     AnnotatorProgress,
     ClassProgress,
     campaign_progress,
+    labels_done,
     person_progress,
     skips_version,
 )
@@ -49,6 +50,7 @@ __all__ = [
     "get_campaign",
     "judgments",
     "label_counts",
+    "labels_done",
     "lease_tasks",
     "list_campaigns",
     "person_progress",

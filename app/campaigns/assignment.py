@@ -15,6 +15,7 @@ from sqlalchemy import and_, bindparam, delete, exists, func, insert, select, up
 from sqlalchemy.orm import Session
 
 from ..models import CampaignRegion, Label, Lease, Prediction, RegionRow, Skip, utcnow
+from .progress import labels_done
 from .records import CampaignInfo
 
 
@@ -81,7 +82,6 @@ _MINE = (Lease.campaign_id == _P("campaign"), Lease.person_id == _P("person"))
 _DROP_ENDED = delete(Lease).where(*_MINE, Lease.expires_at <= _P("now"))
 _HELD = select(Lease.region_id).where(*_MINE).order_by(Lease.id)
 _RENEW = update(Lease).where(*_MINE).values(expires_at=_P("expires"))
-_DONE = select(func.count()).select_from(Label).where(Label.campaign_id == _P("campaign"), Label.person_id == _P("person"))
 _TAKE = insert(Lease)
 _TASK_ROWS = (select(RegionRow.id, Prediction.image_id, Prediction.predicted, Prediction.confidence)
               .join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(_P("regions", expanding=True))))
@@ -106,8 +106,8 @@ def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
     picks: list[int] = []
     need = want - len(held)
     if need > 0:
-        done = conn.scalar(_DONE, mine) or 0
-        check = _pick_check(s, campaign, person_id, now, done + len(held))
+        # How many labels the person gave decides when a check item comes; only asked when there are check items.
+        check = _pick_check(s, campaign, person_id, now, labels_done(s, campaign.id, person_id) + len(held)) if campaign.n_checks else None
         if check is not None:
             picks.append(check)
         picks += _pick_regular(s, campaign, person_id, now, need - len(picks))

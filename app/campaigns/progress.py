@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import statistics
+import threading
 from dataclasses import dataclass
 
 from sqlalchemy import bindparam, case, func, select
@@ -10,19 +11,63 @@ from sqlalchemy.orm import Session
 
 from analysis.concepts import Judgment, entity_overlap
 
-from ..models import CampaignRegion, Label, Person, Prediction, RegionRow, Skip
+from ..models import CampaignRegion, Label, Person, Prediction, RegionRow, Skip, WithdrawnLabel
 from .checks import check_answers
 from .judgments import entities_of, region_classes
 from .records import CampaignInfo
 from .synonym_rules import synonym_rules
 
-_DONE = select(func.count()).select_from(Label).where(Label.campaign_id == bindparam("campaign"), Label.person_id == bindparam("person"))
+_P = bindparam
+_PERSON_LABELS = (Label.campaign_id == _P("campaign"), Label.person_id == _P("person"))
+_PERSON_LAST = select(func.max(Label.id)).where(*_PERSON_LABELS)
+_PERSON_SINCE = select(func.count()).select_from(Label).where(*_PERSON_LABELS, Label.id > _P("since"))
+_PERSON_ALL = select(func.count()).select_from(Label).where(*_PERSON_LABELS)
+_LAST_WITHDRAWN = select(func.max(WithdrawnLabel.id))
+
+
+@dataclass(frozen=True)
+class _Counted:
+    last_label: int
+    last_withdrawn: int | None
+    n: int
+
+
+_counted: dict[tuple[str, int, int], _Counted] = {}
+_counted_lock = threading.Lock()
+
+
+def labels_done(s: Session, campaign_id: int, person_id: int) -> int:
+    """How many labels the person has in the campaign, at a cost that does not grow with that number.
+
+    Counting a person's labels walks all of them in the (campaign, person) index; asked on every task,
+    that grows as they work. This process keeps the last count with the person's highest label id and
+    the project's highest withdrawn-label id, both one index probe to read again. Labels are only
+    stored or undone: a new label raises the person's highest id (only the labels above the old one are
+    counted); an undo adds a withdrawn row (counted afresh). Each process checks against the database,
+    so several workers agree.
+    """
+    conn = s.connection()
+    who = {"campaign": campaign_id, "person": person_id}
+    last = conn.scalar(_PERSON_LAST, who)
+    if last is None:
+        return 0
+    withdrawn = conn.scalar(_LAST_WITHDRAWN)
+    key = (str(conn.engine.url), campaign_id, person_id)
+    seen = _counted.get(key)
+    if seen is not None and seen.last_withdrawn == withdrawn and seen.last_label <= last:
+        n = seen.n + (int(conn.scalar(_PERSON_SINCE, {**who, "since": seen.last_label}) or 0) if last > seen.last_label else 0)
+    else:
+        n = int(conn.scalar(_PERSON_ALL, who) or 0)
+    with _counted_lock:
+        if len(_counted) > 100_000:
+            _counted.clear()
+        _counted[key] = _Counted(int(last), withdrawn, n)
+    return n
 
 
 def person_progress(s: Session, campaign: CampaignInfo, person_id: int) -> tuple[int, int]:
     """(labels this person gave in the campaign, regions in the campaign)."""
-    done = s.connection().scalar(_DONE, {"campaign": campaign.id, "person": person_id}) or 0  # on every next task: Core, prebuilt
-    return int(done), campaign.n_regions
+    return labels_done(s, campaign.id, person_id), campaign.n_regions
 
 
 def skips_version(s: Session, campaign_id: int) -> tuple[int, int | None]:

@@ -139,3 +139,52 @@ def test_examples_are_shown_not_handed_out(factory) -> None:  # type: ignore[no-
             campaigns.set_check_answer(s, campaign_id=c.id, region_id=3, entities=[("tag", [])])
     done = _work(factory, c, _person(factory, "ann"))
     assert 3 not in done and len(done) == c.n_regions - 1
+
+
+def test_a_persons_label_count_follows_stores_and_undos(factory) -> None:  # type: ignore[no-untyped-def]
+    # The count kept between requests must equal counting the rows after every kind of change: labels by
+    # this person and by another, an undo of the newest label (whose id SQLite hands out again), a rolled-back store.
+    c = _campaign(factory, k=3)
+    ann, bob = _person(factory, "ann"), _person(factory, "bob")
+
+    def counted(pid: int) -> int:
+        with factory() as s:
+            n = campaigns.labels_done(s, c.id, pid)
+            assert n == len(list(s.scalars(select(Label.id).where(Label.campaign_id == c.id, Label.person_id == pid))))
+            return n
+
+    assert counted(ann) == 0
+    _work(factory, c, ann, limit=3)
+    assert counted(ann) == 3
+    _work(factory, c, bob, limit=2)
+    _work(factory, c, ann, limit=2)
+    assert (counted(ann), counted(bob)) == (5, 2)
+    with write_session(factory) as s:
+        assert campaigns.undo_last(s, campaign=c, person_id=ann) is not None
+    assert counted(ann) == 4
+    with write_session(factory) as s:  # the region undone comes back first, stored under the freed id
+        task = campaigns.lease_tasks(s, campaign=c, person_id=ann)[0]
+        campaigns.save_label(s, campaign=c, region_id=task.region_id, person_id=ann, entities=[("tag", [])], unsure=False, client_id="again-1",
+                             seconds_spent=None)
+    assert counted(ann) == 5
+    with write_session(factory) as s:
+        assert campaigns.undo_last(s, campaign=c, person_id=bob) is not None
+    assert (counted(ann), counted(bob)) == (5, 1)
+    with pytest.raises(RuntimeError), write_session(factory) as s:  # counted inside a transaction that is then rolled back
+        task = campaigns.lease_tasks(s, campaign=c, person_id=bob)[0]
+        campaigns.save_label(s, campaign=c, region_id=task.region_id, person_id=bob, entities=[("cap", [])], unsure=False, client_id="gone-1",
+                             seconds_spent=None)
+        assert campaigns.labels_done(s, c.id, bob) == 2
+        raise RuntimeError("rolled back")
+    assert counted(bob) == 1
+    _work(factory, c, ann, limit=1)
+    assert (counted(ann), counted(bob)) == (6, 1)
+    # An undo, another person's label under the freed id, then a new label: nothing counted in between.
+    with write_session(factory) as s:
+        assert campaigns.undo_last(s, campaign=c, person_id=ann) is not None
+    for pid in (bob, ann):
+        with write_session(factory) as s:
+            task = campaigns.lease_tasks(s, campaign=c, person_id=pid)[0]
+            campaigns.save_label(s, campaign=c, region_id=task.region_id, person_id=pid, entities=[("rim", [])], unsure=False,
+                                 client_id=f"later-{pid}", seconds_spent=None)
+    assert (counted(ann), counted(bob)) == (6, 2)
