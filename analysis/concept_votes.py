@@ -105,17 +105,23 @@ def presence_votes(
         known_sets[int(r)] = found
     named: dict[tuple[int, str], set[str]] = {}
     entity: dict[tuple[int, str], str] = {}
+    # Reading a label depends only on what was typed and the region's class (the rules and attribute words are
+    # fixed here), and the same few labels come back thousands of times: read each distinct one once.
+    read: dict[tuple[object, str | None], tuple[dict[str, str], frozenset[str], str]] = {}
     for j in judgments:
         key = (int(j.region_id), j.annotator)
         if key in named:
             raise InvalidInputError(f"annotator {j.annotator!r} judged region {j.region_id} twice; keep one judgment per region and annotator.")
         cls = region_class.get(j.region_id)
-        fam = judgment_families(j, rules=rules, cls=cls, attributes=words)
-        for concept, e in fam.items():
-            if concept != e:
-                families.setdefault(concept, e)
-        named[key] = set(fam)
-        entity[key] = main_entity(j, rules=rules, cls=cls, attributes=words)
+        seen = read.get((j.entities, cls))
+        if seen is None:
+            fam = judgment_families(j, rules=rules, cls=cls, attributes=words)
+            seen = read[(j.entities, cls)] = (fam, frozenset(fam), main_entity(j, rules=rules, cls=cls, attributes=words))
+            for concept, e in fam.items():
+                if concept != e:
+                    families.setdefault(concept, e)
+        named[key] = set(seen[1])
+        entity[key] = seen[2]
     if not named:
         raise InvalidInputError("no judgments to aggregate (none given, or all marked not sure); collect labels first.")
     regions = tuple(sorted({r for r, _ in named}))

@@ -70,11 +70,10 @@ def attribute_words(judgments: Iterable[Judgment], *, rules: SynonymRules | None
     "tag: yellow") is read as its last words' entity with those words as an attribute.
     """
     rules = rules or SynonymRules()
+    typed = {a for j in judgments for _, attributes in j.entities for a in attributes}  # each distinct word read once
     out: set[str] = set()
-    for j in judgments:
-        for _, attributes in j.entities:
-            for a in attributes:
-                out.update(rules.attribute(normalise_label(a)).split())
+    for a in typed:
+        out.update(rules.attribute(normalise_label(a)).split())
     out.discard("")
     return frozenset(out)
 

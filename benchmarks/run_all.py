@@ -24,6 +24,7 @@ BENCHMARKS = [
     ("intervention_truth", "Covering estimates against the true effect of removing the cue"),
     ("rules_scale", "Per-class rules at scale against scripted mlxtend"),
     ("aggregation_scale", "Dawid-Skene aggregation at scale"),
+    ("agreement_page", "The agreement page on a large campaign: only what is shown, and cached"),
     ("annotation_load", "50 annotators at once against the served app"),
     ("product_scale", "The product at two sizes: pages, exports, labelling task, saliency job, disk and memory"),
 ]

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import json
+
 import pandas as pd
-from sqlalchemy import select
+from sqlalchemy import String, select, type_coerce
 from sqlalchemy.orm import Session
 
 from analysis.concepts import Judgment
@@ -27,11 +29,24 @@ def entities_of(raw: StoredEntities | None) -> tuple[tuple[str, tuple[str, ...]]
 
 
 def judgments(s: Session, campaign_id: int) -> list[Judgment]:
-    rows = s.execute(
-        select(Label.region_id, Person.name, Label.entities, Label.unsure).join(Person, Person.id == Label.person_id)
+    """The campaign's labels as judgments, oldest first.
+
+    The entities are read as stored text and each distinct text is decoded once: most labels repeat
+    a few texts, and decoding every row's JSON was most of the time at tens of thousands of labels.
+    """
+    rows = s.connection().execute(
+        select(Label.region_id, Person.name, type_coerce(Label.entities, String), Label.unsure).join(Person, Person.id == Label.person_id)
         .where(Label.campaign_id == campaign_id).order_by(Label.id)
     )
-    return [Judgment(r, name, entities_of(ents), bool(unsure)) for r, name, ents, unsure in rows]
+    decoded: dict[object, tuple[tuple[str, tuple[str, ...]], ...]] = {}
+    out = []
+    for r, name, raw, unsure in rows:
+        key = raw if isinstance(raw, str) else json.dumps(raw)  # a database driver that decodes JSON itself gives lists
+        ents = decoded.get(key)
+        if ents is None:
+            ents = decoded[key] = entities_of(json.loads(raw) if isinstance(raw, str) else raw)
+        out.append(Judgment(r, name, ents, bool(unsure)))
+    return out
 
 
 def raw_labels(s: Session, campaign_id: int) -> pd.DataFrame:
