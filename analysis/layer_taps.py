@@ -24,6 +24,7 @@ from typing import Any
 
 import torch
 from torch import nn
+from torch.overrides import TorchFunctionMode
 
 from .errors import GradientUnavailableError, ModelInputError
 
@@ -60,7 +61,7 @@ class LayerInfo:
         return f"{self.name} ({self.module_type}) output {list(self.shape)}, map {size}{extra}"
 
 
-Tap = Callable[[torch.Tensor], tuple[object, torch.Tensor]]
+Tap = Callable[[torch.Tensor], "Tapped"]
 
 
 def infer_token_grid(n_tokens: int, input_size: tuple[int, int], *, grid: tuple[int, int] | None = None, prefix: int | None = None) -> TokenGrid | None:
@@ -99,14 +100,104 @@ def _info(name: str, module_type: str, value: object, input_size: tuple[int, int
     return LayerInfo(name, module_type, shape, (tokens.rows, tokens.cols) if tokens else None, tokens)
 
 
+# A global spatial pooling and the sum over the map of d(pooled)/d(activation) for one channel:
+# 1 for a mean or a maximum (ties share it), h*w for a sum.
+_GLOBAL_POOLS = {"mean": "one", "amax": "one", "sum": "area", "adaptive_avg_pool2d": "one", "_adaptive_avg_pool2d": "one"}
+
+
+def _op_name(func: object) -> str:
+    name = str(getattr(func, "__name__", ""))
+    return name.split(".", 1)[0]  # an exported graph's aten overloads are named like "amax.default"
+
+
+def _spatial_pool_scale(func: object, args: tuple[object, ...], kwargs: dict[str, object], activation: torch.Tensor) -> str | None:
+    """For a global spatial pooling of ``activation`` (mean, amax, sum over h and w, adaptive average
+    pooling to 1x1), the sum over the map of d(pooled)/d(activation) per channel: "one", or "area"
+    (h*w) for a sum. None for anything else (which is then differentiated the ordinary way)."""
+    name = _op_name(func)
+    if name not in _GLOBAL_POOLS or not args or args[0] is not activation or activation.ndim != 4:
+        return None
+    if name in ("adaptive_avg_pool2d", "_adaptive_avg_pool2d"):
+        size = args[1] if len(args) > 1 else kwargs.get("output_size")
+        return "one" if size in (1, (1, 1), [1, 1]) else None
+    dims = args[1] if len(args) > 1 else kwargs.get("dim")
+    if isinstance(dims, int):
+        return None
+    if not isinstance(dims, (tuple, list)) or not all(isinstance(d, int) for d in dims):
+        return None
+    if sorted(d % 4 for d in dims) != [2, 3]:
+        return None
+    return _GLOBAL_POOLS[name]
+
+
+class _PoolLeaves(TorchFunctionMode):
+    """Active after the tapped layer: a global spatial pooling of the activation becomes a leaf of its own.
+
+    Grad-CAM needs only the spatial sum of d logit / d activation per channel; through a global
+    pooling that sum is d logit / d pooled (times h*w for a sum, whatever positions an amax ties on),
+    so the backward pass stops at the pooled N x C values and never makes a gradient map.
+    Other uses of the activation are differentiated as usual and the two parts add up.
+    """
+
+    def __init__(self, activation: torch.Tensor) -> None:
+        super().__init__()
+        self.activation = activation
+        self.pooled: list[tuple[torch.Tensor, str]] = []
+
+    def __torch_function__(self, func: Any, types: Any, args: tuple[object, ...] = (), kwargs: dict[str, object] | None = None) -> Any:
+        kwargs = kwargs or {}
+        scale = _spatial_pool_scale(func, args, kwargs, self.activation)
+        if scale is None:
+            return func(*args, **kwargs)
+        with torch.no_grad():
+            value = func(self.activation.detach(), *args[1:], **kwargs)
+        leaf = value.requires_grad_(True)
+        self.pooled.append((leaf, scale))
+        return leaf
+
+
+@dataclass(frozen=True)
+class Tapped:
+    """One forward through a tap: the model's raw output, the layer's activation (a leaf that requires
+    grad) and leaves made by global poolings of it, with their scale (see :func:`channel_gradient`)."""
+
+    out: object
+    activation: torch.Tensor
+    pooled: tuple[tuple[torch.Tensor, str], ...] = ()
+
+    def leaves(self) -> list[torch.Tensor]:
+        return [self.activation, *(leaf for leaf, _ in self.pooled)]
+
+
+def channel_gradient(tapped: Tapped, target: torch.Tensor, grid: TokenGrid | None) -> tuple[torch.Tensor | None, torch.Tensor | None]:
+    """(alpha, full gradient) for ``target`` (a scalar): alpha is the Grad-CAM weight per channel, the
+    spatial mean of d target / d activation (N x C; patch tokens only for a token grid). The full
+    gradient map is None when every path from the layer went through a global pooling.
+    Both None when the target does not depend on the layer."""
+    grads = torch.autograd.grad(target, tapped.leaves(), allow_unused=True)
+    full = grads[0]
+    alpha: torch.Tensor | None = None
+    if full is not None:
+        alpha = full[:, grid.prefix :, :].mean(dim=1) if grid is not None else full.mean(dim=(2, 3))
+    if tapped.pooled:
+        h, w = tapped.activation.shape[2], tapped.activation.shape[3]
+        for (_leaf, scale), g in zip(tapped.pooled, grads[1:]):
+            if g is None:
+                continue
+            part = g.reshape(g.shape[0], -1) if scale == "area" else g.reshape(g.shape[0], -1) / (h * w)
+            alpha = part if alpha is None else alpha + part
+    return alpha, full
+
+
 class HookTap:
     """Tap by a forward hook on ``layer``: gradients off before it, on from its (detached) output."""
 
     def __init__(self, module: nn.Module, layer: nn.Module, name: str) -> None:
         self.module, self.layer, self.name = module, layer, name
 
-    def __call__(self, x: torch.Tensor) -> tuple[object, torch.Tensor]:
+    def __call__(self, x: torch.Tensor) -> Tapped:
         captured: list[torch.Tensor] = []
+        modes: list[_PoolLeaves] = []
         name = self.name
 
         def hook(_module: nn.Module, _inputs: object, output: object) -> torch.Tensor:
@@ -121,6 +212,10 @@ class HookTap:
             activation = output.detach().requires_grad_(True)
             captured.append(activation)
             torch.set_grad_enabled(True)  # record the graph from here on, for this forward only
+            if activation.ndim == 4:
+                mode = _PoolLeaves(activation)
+                mode.__enter__()  # type: ignore[no-untyped-call]  # untyped in torch
+                modes.append(mode)
             return activation
 
         handle = self.layer.register_forward_hook(hook)
@@ -129,11 +224,13 @@ class HookTap:
             torch.set_grad_enabled(False)
             out = self.module(x)
         finally:
+            for mode in modes:
+                mode.__exit__(None, None, None)  # type: ignore[no-untyped-call]  # untyped in torch
             handle.remove()
             torch.set_grad_enabled(previous)
         if not captured:
             raise GradientUnavailableError(f"layer {name!r} did not run in the forward pass; check 'target_layer'.")
-        return out, captured[0]
+        return Tapped(out, captured[0], tuple(modes[0].pooled) if modes else ())
 
 
 class EagerGraph:
@@ -277,13 +374,53 @@ def _ts_parts(node: torch._C.Node) -> list[tuple[str, str]]:
 class ScriptTap:
     """Runs a TorchScript graph edited to detach the layer's output into a leaf and return it too."""
 
-    def __init__(self, fn: torch._C.ScriptFunction[..., Any], owner: torch._C.ScriptModule, name: str) -> None:
-        self.fn, self.owner, self.name = fn, owner, name
+    def __init__(self, fn: torch._C.ScriptFunction[..., Any], owner: torch._C.ScriptModule, name: str, scales: tuple[str, ...] = ()) -> None:
+        self.fn, self.owner, self.name, self.scales = fn, owner, name, scales
 
-    def __call__(self, x: torch.Tensor) -> tuple[object, torch.Tensor]:
-        with torch.enable_grad():  # nothing before the leaf requires grad (parameters are frozen)
-            out, activation = self.fn(self.owner, x)
-        return out, activation
+    def __call__(self, x: torch.Tensor) -> Tapped:
+        # Nothing before the leaf requires grad (parameters are frozen). Without the graph executor's
+        # optimisation the layers after the tap are differentiated by eager autograd's kernels, not by
+        # TorchScript's symbolic derivatives (several elementwise operations each, e.g. for SiLU).
+        with torch.enable_grad(), torch.jit.optimized_execution(False):  # type: ignore[attr-defined]  # not re-exported in torch's stubs
+            out, activation, *pooled = self.fn(self.owner, x)
+        return Tapped(out, activation, tuple(zip(pooled, self.scales)))
+
+
+def _ts_constant(value: torch._C.Value) -> object:
+    node = value.node()
+    if node.kind() == "prim::Constant":
+        return value.toIValue()
+    if node.kind() == "prim::ListConstruct" and all(i.node().kind() == "prim::Constant" for i in node.inputs()):
+        return [i.toIValue() for i in node.inputs()]
+    return None
+
+
+def _ts_pool_scale(node: torch._C.Node) -> str | None:
+    """The scale of a global spatial pooling node of a 4-d map (see :func:`_spatial_pool_scale`), else None."""
+    kind = node.kind().split("::", 1)[-1]
+    inputs = list(node.inputs())
+    if kind not in _GLOBAL_POOLS or len(inputs) < 2:
+        return None
+    arg = _ts_constant(inputs[1])
+    if kind == "adaptive_avg_pool2d":
+        return "one" if arg in (1, [1, 1]) else None
+    if not isinstance(arg, list) or not all(isinstance(d, int) for d in arg) or sorted(d % 4 for d in arg) != [2, 3]:
+        return None
+    return _GLOBAL_POOLS[kind]
+
+
+def _ts_leaf_after(graph: torch._C.Graph, value: torch._C.Value) -> torch._C.Value:
+    """Detach ``value`` into a leaf that requires grad, used wherever ``value`` was."""
+    det = graph.create("aten::detach", [value], 1)
+    det.insertAfter(value.node())
+    flag = graph.insertConstant(True)  # type: ignore[attr-defined]  # missing from torch's stubs
+    flag.node().moveAfter(det)
+    leaf = graph.create("aten::requires_grad_", [det.output(), flag], 1)
+    leaf.insertAfter(flag.node())
+    leaf.output().setType(value.type())
+    value.replaceAllUsesWith(leaf.output())
+    det.replaceInput(0, value)  # the line above also redirected the detach itself
+    return leaf.output()
 
 
 class ScriptGraph:
@@ -293,6 +430,7 @@ class ScriptGraph:
 
     def __init__(self, scripted: torch.jit.ScriptModule) -> None:
         self.module = scripted
+        self._ranks: dict[str, int] = {}
         for p in scripted.parameters():
             p.requires_grad_(False)
 
@@ -343,6 +481,9 @@ class ScriptGraph:
         by_value = dict(zip(values, result[1:]))
         infos = []
         for path, (value, mtype, _, _) in ranked:
+            got = by_value[value]
+            if isinstance(got, torch.Tensor):
+                self._ranks[path] = got.ndim
             info = _info(path, mtype, by_value[value], input_size, grid, prefix)
             if info is not None:
                 infos.append(info)
@@ -352,18 +493,17 @@ class ScriptGraph:
         graph, outputs = self._graph_outputs()
         if name not in outputs:
             raise ModelInputError(f"target layer {name!r} is not a module of the TorchScript model, or its output is not one tensor.")
-        value = outputs[name][0]
-        det = graph.create("aten::detach", [value], 1)
-        det.insertAfter(value.node())
-        flag = graph.insertConstant(True)  # type: ignore[attr-defined]  # missing from torch's stubs
-        flag.node().moveAfter(det)
-        leaf = graph.create("aten::requires_grad_", [det.output(), flag], 1)
-        leaf.insertAfter(flag.node())
-        leaf.output().setType(value.type())
-        value.replaceAllUsesWith(leaf.output())
-        det.replaceInput(0, value)  # the line above also redirected the detach itself
-        fn = self._function(graph, [leaf.output()])
-        return ScriptTap(fn, self.module._c, name), None
+        leaf = _ts_leaf_after(graph, outputs[name][0])
+        pooled: list[torch._C.Value] = []
+        scales: list[str] = []
+        if self._ranks.get(name) == 4:  # global poolings of the map become leaves of their own (see _PoolLeaves)
+            for use in list(leaf.uses()):
+                scale = _ts_pool_scale(use.user) if use.offset == 0 else None
+                if scale is not None and use.user.outputsSize() == 1:
+                    pooled.append(_ts_leaf_after(graph, use.user.output()))
+                    scales.append(scale)
+        fn = self._function(graph, [leaf, *pooled])
+        return ScriptTap(fn, self.module._c, name, tuple(scales)), None
 
 
 ModelGraph = EagerGraph | FxGraph | ScriptGraph
@@ -408,16 +548,17 @@ def cam_inputs(activation: torch.Tensor, grads: torch.Tensor, grid: TokenGrid | 
 
 def layer_has_gradient(tap: Tap, probe: torch.Tensor, output: str | int | None, grid: TokenGrid | None) -> bool:
     """Whether the top class's logit has a non-zero gradient on the layer's map for the probe batch."""
-    out, activation = tap(probe)
-    logits = select_logits(out, output)
+    tapped = tap(probe)
+    logits = select_logits(tapped.out, output)
     if not logits.requires_grad:
         return False
     pred = logits.detach().argmax(dim=1)
-    (grads,) = torch.autograd.grad(logits.gather(1, pred[:, None]).sum(), activation, allow_unused=True)
-    if grads is None:
-        return False
-    _, g = cam_inputs(activation.detach(), grads, grid)
-    return bool(torch.count_nonzero(g) > 0)
+    alpha, full = channel_gradient(tapped, logits.gather(1, pred[:, None]).sum(), grid)
+    if full is not None:
+        _, g = cam_inputs(tapped.activation.detach(), full, grid)
+        if bool(torch.count_nonzero(g) > 0):
+            return True
+    return alpha is not None and bool(torch.count_nonzero(alpha) > 0)
 
 
 def choose_layer(graph: ModelGraph, infos: list[LayerInfo], probe: torch.Tensor, output: str | int | None) -> LayerInfo:

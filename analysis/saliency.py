@@ -25,7 +25,7 @@ import torch.nn.functional as F
 from captum.attr import LayerAttribution, LayerGradCam
 
 from .errors import GradientUnavailableError, InvalidInputError
-from .layer_taps import TokenGrid
+from .layer_taps import TokenGrid, channel_gradient
 from .model_io import LoadedModel, batch_chunks
 
 METHOD = "grad-cam"
@@ -133,11 +133,13 @@ def _compute(model: LoadedModel, x: torch.Tensor, implementation: Implementation
 
 def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """One forward: no graph before the target layer, a graph from its output on; then the gradient
-    of each image's predicted-class logit with respect to that output only."""
+    of each image's predicted-class logit with respect to that output only (or, where the output
+    goes straight into a global pooling, with respect to the pooled values: the same channel weights
+    without a gradient map)."""
     if model.tap is None:
         raise InvalidInputError("this LoadedModel has no tap; make it with analysis.model_io.prepare_model or load_model.")
-    out, activation = model.tap(x)
-    logits = model.logits(out)
+    tapped = model.tap(x)
+    logits = model.logits(tapped.out)
     if not logits.requires_grad:
         raise GradientUnavailableError(
             "no gradient reaches the target layer: forward() runs part of the model under torch.no_grad() "
@@ -146,14 +148,18 @@ def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, tor
     probs = torch.softmax(logits.detach().float(), dim=1)
     predicted = probs.argmax(dim=1)
     with torch.enable_grad():
-        (grads,) = torch.autograd.grad(logits.gather(1, predicted[:, None]).sum(), activation)
-    coarse = torch.relu(weighted_sum(activation.detach(), grads, model.grid))
+        alpha, _ = channel_gradient(tapped, logits.gather(1, predicted[:, None]).sum(), model.grid)
+    if alpha is None:
+        raise GradientUnavailableError(
+            f"the predicted class's logit does not depend on layer {model.sidecar.target_layer!r}; choose a layer before the output ('heedmap layers' lists them)."
+        )
+    coarse = torch.relu(weighted_sum(tapped.activation.detach(), alpha, model.grid))
     h, w = model.sidecar.input_size
     return probs, F.interpolate(coarse.float(), size=(h, w), mode="bilinear", align_corners=False)
 
 
-def weighted_sum(activation: torch.Tensor, grads: torch.Tensor, grid: TokenGrid | None) -> torch.Tensor:
-    """sum_k alpha_k A^k as N x 1 x h x w, alpha_k the spatial mean of the gradient on channel k.
+def weighted_sum(activation: torch.Tensor, alpha: torch.Tensor, grid: TokenGrid | None) -> torch.Tensor:
+    """sum_k alpha_k A^k as N x 1 x h x w, alpha (N x C) the spatial mean of the gradient on channel k.
 
     A batched matrix product, so no activation-sized temporary is made (large temporaries cost
     page faults on every batch with the default allocator).
@@ -161,11 +167,9 @@ def weighted_sum(activation: torch.Tensor, grads: torch.Tensor, grid: TokenGrid 
     n = activation.shape[0]
     if grid is None:
         _, c, h, w = activation.shape
-        alpha = grads.mean(dim=(2, 3))  # N x C
-        return torch.bmm(alpha.unsqueeze(1), activation.reshape(n, c, h * w)).view(n, 1, h, w)
+        return torch.bmm(alpha.unsqueeze(1).to(activation.dtype), activation.reshape(n, c, h * w)).view(n, 1, h, w)
     patches = activation[:, grid.prefix :, :]  # N x (rows*cols) x D
-    alpha = grads[:, grid.prefix :, :].mean(dim=1)  # N x D
-    return torch.bmm(patches, alpha.unsqueeze(2)).view(n, 1, grid.rows, grid.cols)
+    return torch.bmm(patches, alpha.unsqueeze(2).to(activation.dtype)).view(n, 1, grid.rows, grid.cols)
 
 
 def _captum(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
