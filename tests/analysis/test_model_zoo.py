@@ -160,3 +160,50 @@ def test_torchscript_predicting_in_inference_mode_does_not_break_later_gradcam(n
             before = loaded.module(x)
         after = compute_saliency(loaded, x)
     torch.testing.assert_close(torch.from_numpy(after.probabilities), torch.softmax(before, 1))
+
+
+class _DeadChannel(nn.Module):
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return x * torch.tensor([0.0, 1.0, 1.0, 1.0, 1.0, 1.0]).view(1, 6, 1, 1)
+
+
+class _PooledHeads(nn.Module):
+    """The map goes straight into a sum, an amax (with a dead channel: every position ties), a 1x1
+    adaptive pool and, in ``mixed``, also into a branch that is no pooling, so both parts count."""
+
+    def __init__(self, mixed: bool) -> None:
+        super().__init__()
+        self.features = nn.Sequential(nn.Conv2d(3, 6, 3, padding=1), nn.ReLU(), _DeadChannel())
+        self.fc = nn.Linear(18, 3)
+        self.corner = nn.Linear(6, 3)
+        self.mixed = mixed
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        a = self.features(x)
+        pooled = torch.cat([a.sum(dim=(2, 3)) / 100, a.amax(dim=(-1, -2)), F.adaptive_avg_pool2d(a, 1).flatten(1)], dim=1)
+        out = self.fc(pooled)
+        if self.mixed:
+            out = out + self.corner(a[:, :, 0, 0])
+        return out
+
+
+@pytest.mark.parametrize("fmt", FORMATS)
+@pytest.mark.parametrize("mixed", [False, True])
+def test_gradient_stopped_at_global_pooling_equals_the_formula(fmt: str, mixed: bool, tmp_path: Path) -> None:
+    torch.manual_seed(5)
+    model = _PooledHeads(mixed).eval()
+    sidecar = Sidecar(classes=("bottle", "can", "carton"), input_size=(SIZE, SIZE), mean=(0.5,) * 3, std=(0.25,) * 3, target_layer="features")
+    if fmt == "exported":
+        module: nn.Module = torch.export.export(model, (torch.randn(2, 3, SIZE, SIZE),), dynamic_shapes=({0: torch.export.Dim("batch")},)).module()
+    elif fmt == "torchscript":
+        module = torch.jit.script(copy.deepcopy(model))  # heedmap freezes the scripted parameters
+    else:
+        module = model
+    loaded = prepare_model(module, sidecar)
+    x = torch.randn(4, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(3))
+    assert len(loaded.tap(x).pooled) == 3  # the gradient stops at each pooling (so this checks that path)
+    ours = compute_saliency(loaded, x)
+    ref, pred = direct_gradcam(model, "features", x, output=None, prefix=None)
+    assert ours.predicted.tolist() == pred.tolist()
+    assert float(ref.max()) > 0
+    torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
