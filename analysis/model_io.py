@@ -35,7 +35,8 @@ from .layer_taps import (
 from .sidecar import Sidecar, read_sidecar, sidecar_from_dict, write_sidecar
 
 __all__ = [
-    "EXPORT_HELP", "LoadedModel", "Sidecar", "check_finite_outputs", "import_factory", "load_checkpoint", "load_model", "prepare_model", "read_sidecar", "sidecar_from_dict", "write_sidecar",
+    "EXPORT_HELP", "LoadedModel", "Sidecar", "check_finite_outputs", "factory_folder", "import_factory", "load_checkpoint", "load_model",
+    "prepare_model", "read_sidecar", "sidecar_from_dict", "write_sidecar",
 ]
 
 _INPLACE_ACTIVATIONS = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.ELU, nn.SELU, nn.Hardtanh, nn.SiLU, nn.Hardswish, nn.Mish, nn.Hardsigmoid)
@@ -71,6 +72,8 @@ class LoadedModel:
     device: str = "cpu"
     max_batch: int | None = None  # an exported program fixed to one batch size
     graph: ModelGraph | None = None  # taps other layers (layer previews)
+    factory: str | None = None  # package.module:function that built it (a factory model)
+    factory_folder: str | None = None  # the folder that function's package was imported from
 
     @property
     def classes(self) -> tuple[str, ...]:
@@ -331,22 +334,35 @@ def _prepare_staged(model: torch.jit.ScriptModule, sidecar: Sidecar, *, kind: st
     return replace(loaded, sidecar=sidecar, notes=(*notes, "TorchScript run through its 'stages'", *loaded.notes))
 
 
-def import_factory(spec: str) -> Callable[[], nn.Module]:
-    """The function named by ``package.module:function``, imported from the working folder or sys.path."""
+def import_factory(spec: str, *, folder: str | Path | None = None) -> Callable[[], nn.Module]:
+    """The function named by ``package.module:function``, imported from ``folder`` (where a run
+    recorded it), the working folder or sys.path."""
     if spec.count(":") != 1 or not all(spec.split(":")):
         raise ModelInputError(f"--model-factory must look like package.module:function; got {spec!r}.")
     mod_name, fn_name = spec.split(":")
-    cwd = str(Path.cwd())
-    if cwd not in sys.path:
-        sys.path.insert(0, cwd)
+    for place in ([str(folder)] if folder else []) + [str(Path.cwd())]:
+        if place not in sys.path:
+            sys.path.insert(0, place)
     try:
         mod = importlib.import_module(mod_name)
     except Exception as exc:  # noqa: BLE001 - the user's module may fail in any way on import
-        raise ModelInputError(f"cannot import {mod_name!r} for --model-factory ({type(exc).__name__}: {exc}); run heedmap from the folder that holds it or install it.") from None
+        where = f" (the run recorded the folder {folder})" if folder else ""
+        raise ModelInputError(f"cannot import {mod_name!r} for --model-factory{where} ({type(exc).__name__}: {exc}); run heedmap from the folder that holds it or install it.") from None
     fn = getattr(mod, fn_name, None)
     if not callable(fn):
         raise ModelInputError(f"{mod_name!r} has no function {fn_name!r} for --model-factory.")
     return fn  # type: ignore[no-any-return]
+
+
+def factory_folder(spec: str) -> str | None:
+    """The folder to import ``package.module`` of an imported factory from (None if unknown)."""
+    mod_name = spec.split(":", 1)[0]
+    mod = sys.modules.get(mod_name)
+    file = getattr(mod, "__file__", None)
+    if not file:
+        return None
+    up = mod_name.count(".") + (1 if Path(file).name == "__init__.py" else 0)
+    return str(Path(file).resolve().parents[up])
 
 
 def load_checkpoint(path: Path) -> dict[str, torch.Tensor]:
@@ -397,13 +413,14 @@ def fit_state_dict(module: nn.Module, state: dict[str, torch.Tensor], *, source:
     return notes
 
 
-def load_model(model_path: Path | None, sidecar_path: Path, *, factory: str | None = None, device: str = "cpu") -> LoadedModel:
+def load_model(model_path: Path | None, sidecar_path: Path, *, factory: str | None = None, device: str = "cpu", folder: str | Path | None = None) -> LoadedModel:
     """Load an exported program (.pt2), TorchScript, a factory's model (+ optional checkpoint), or a
-    state_dict whose sidecar names an ``architecture``."""
+    state_dict whose sidecar names an ``architecture``. ``folder`` is where to import the factory
+    from (what a run recorded), before the working folder."""
     sidecar = read_sidecar(Path(sidecar_path))
     device = check_device(device)
     if factory is not None:
-        build = import_factory(factory)
+        build = import_factory(factory, folder=folder)
         try:
             module = build()
         except Exception as exc:  # noqa: BLE001 - the user's factory may fail in any way
@@ -417,7 +434,7 @@ def load_model(model_path: Path | None, sidecar_path: Path, *, factory: str | No
             notes = fit_state_dict(module, load_checkpoint(model_path), source=str(model_path))
             sha = _file_sha256(Path(model_path))
         loaded = prepare_model(module, sidecar, kind="factory", sha256=sha, device=device)
-        return replace(loaded, notes=(*notes, *loaded.notes))
+        return replace(loaded, notes=(*notes, *loaded.notes), factory=factory, factory_folder=factory_folder(factory))
     if model_path is None:
         raise ModelInputError("give --model FILE (an exported .pt2, TorchScript or a state_dict), or --model-factory package.module:function.")
     model_path = Path(model_path)

@@ -46,7 +46,9 @@ Implementation = Literal["single-pass", "captum"]
 
 
 def saliency_provenance(model: LoadedModel, implementation: Implementation = "single-pass") -> dict[str, object]:
-    """What a saliency run records about how its maps were made."""
+    """What a saliency run records about how its maps were made (and, for a factory model, the
+    function that builds it and the folder it was imported from, so later steps can build it again)."""
+    factory: dict[str, object] = {} if model.factory is None else {"model_factory": model.factory, "model_factory_folder": model.factory_folder}
     return {
         "method": METHOD,
         "implementation": "captum.attr.LayerGradCam" if implementation == "captum" else "heedmap single pass (checked against captum.attr.LayerGradCam)",
@@ -63,6 +65,7 @@ def saliency_provenance(model: LoadedModel, implementation: Implementation = "si
         "model_sha256": model.sha256,
         "model_kind": model.kind,
         "model_notes": list(model.notes),
+        **factory,
     }
 
 

@@ -16,10 +16,10 @@ if TYPE_CHECKING:
     from analysis.model_io import LoadedModel
 
 
-def _model_options(p: argparse.ArgumentParser, *, model_flag: bool = True) -> None:
+def _model_options(p: argparse.ArgumentParser, *, model_flag: bool = True, sidecar_required: bool = True) -> None:
     if model_flag:
         p.add_argument("--model", type=Path, default=None, help="exported program (.pt2), TorchScript, or a checkpoint for --model-factory/'architecture'")
-    p.add_argument("--sidecar", type=Path, required=True, help="JSON describing the model (write one with 'heedmap sidecar')")
+    p.add_argument("--sidecar", type=Path, required=sidecar_required, help="JSON describing the model (write one with 'heedmap sidecar')")
     p.add_argument("--model-factory", default=None, metavar="PACKAGE.MODULE:FUNCTION", help="a function of your own code that builds the nn.Module")
     p.add_argument("--device", default="cpu", help="cpu (default) or cuda")
 
@@ -35,7 +35,9 @@ def add_model_parsers(sub: argparse._SubParsersAction[argparse.ArgumentParser]) 
     r.add_argument("project", type=Path)
     y = sub.add_parser("layers", help="list a model's candidate Grad-CAM layers with their map sizes; preview one image's map per layer")
     y.add_argument("model", type=Path, nargs="?", default=None, help="the model file (or the checkpoint, with --model-factory)")
-    _model_options(y, model_flag=False)
+    _model_options(y, model_flag=False, sidecar_required=False)
+    y.add_argument("--project", type=Path, default=None, help="use the model a saliency run of this project recorded (no model flags needed)")
+    y.add_argument("--run", default=None, help="with --project: the run's id or name (default: the latest run)")
     y.add_argument("--image", type=Path, default=None, help="an image for the preview (default: none, no preview)")
     y.add_argument("--preview", type=Path, default=None, help="PNG to write the per-layer maps to (default: layers.png beside --image)")
     y.add_argument("--all", action="store_true", help="list and preview nested layers too, not only blocks and stages")
@@ -100,7 +102,9 @@ def saliency(args: argparse.Namespace) -> int:
     name = args.name or _default_name(args.images)
     factory = session_factory(open_project(args.project, create=True))
     problems = register_images(factory, records)
-    model_files = (args.model, args.sidecar) if args.model is not None and args.model_factory is None else None
+    # Recorded so interventions and 'heedmap layers --project' load the same model again (a factory's
+    # function and import folder go into the run's provenance).
+    model_files = (args.model, args.sidecar)
     rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=model_files, images=records, name=name, source=args.images)
     for _path, why in problems + rep.skipped:
         print(f"skipped: {why}", file=sys.stderr)
@@ -136,7 +140,11 @@ def layers(args: argparse.Namespace) -> int:
     from analysis.images import read_rgb, to_model_input
     from analysis.layer_preview import layer_maps, preview_sheet
 
-    model = _load(args.model, args.sidecar, args.model_factory, args.device)
+    model = _run_model(args) if args.project is not None else None
+    if model is None:
+        if args.sidecar is None:
+            raise AppError("give --sidecar with the model (or --project to use the model a saliency run recorded).")
+        model = _load(args.model, args.sidecar, args.model_factory, args.device)
     infos = [i for i in model.layers if i.map_size is not None]
     if not args.all and infos:
         depth = min(i.name.count(".") for i in infos)
@@ -158,6 +166,26 @@ def layers(args: argparse.Namespace) -> int:
     preview_sheet(image, model.sidecar, [(i.name, i.map_size, maps[i.name]) for i in shown]).save(out)
     print(f"wrote {out} ({len(shown)} layers)", file=sys.stderr)
     return 0
+
+
+def _run_model(args: argparse.Namespace) -> LoadedModel:
+    """The model a saliency run recorded (its file or factory, checkpoint and sidecar)."""
+    from analysis.layer_taps import DegenerateMapWarning
+
+    from .db import open_project, session_factory
+    from .jobs import find_run
+    from .reliance import model_for_run
+
+    if args.model_factory is not None:
+        raise AppError("--project uses the model its run recorded; leave out --model-factory (or leave out --project).")
+    factory = session_factory(open_project(args.project))
+    with factory() as s:
+        run_id = find_run(s, args.run)
+        if run_id is None:
+            raise AppError(f"{args.project} has no saliency run {args.run!r}; 'heedmap runs {args.project}' lists them." if args.run else f"{args.project} has no saliency runs yet.")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", DegenerateMapWarning)
+            return model_for_run(s, run_id, args.model, args.sidecar)
 
 
 def _numbers(text: str, flag: str, count: int) -> list[float]:

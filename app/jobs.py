@@ -75,7 +75,7 @@ def image_set_key(records: list[ImageRecord]) -> dict[str, object]:
 def run_key(provenance: dict[str, object]) -> str:
     """The run key: a hash of everything that changes a run's results (model hash, sidecar, layer,
     method, region parameters and the image set); the run's name is a label, not part of it."""
-    keyed = {k: v for k, v in provenance.items() if k not in ("run_name", "image_source", "model_notes")}
+    keyed = {k: v for k, v in provenance.items() if k not in ("run_name", "image_source", "model_notes", "model_factory_folder")}
     return hashlib.sha256(json.dumps(keyed, sort_keys=True, default=str).encode()).hexdigest()[:16]
 
 
@@ -187,7 +187,7 @@ def run_saliency(
     batch_size: int = 32,
     progress: Callable[[int, int], None] | None = _progress,
     after_batch: Callable[[int], None] | None = None,
-    model_files: tuple[Path, Path] | None = None,
+    model_files: tuple[Path | None, Path] | None = None,
     images: list[ImageRecord] | None = None,
     name: str = "default",
     source: Path | None = None,
@@ -225,7 +225,8 @@ def run_saliency(
             s.add(run)
             s.flush()
         if model_files is not None:
-            run.model_path, run.sidecar_path = (str(Path(p).resolve()) for p in model_files)
+            run.model_path = str(Path(model_files[0]).resolve()) if model_files[0] is not None else None  # None: a factory without checkpoint
+            run.sidecar_path = str(Path(model_files[1]).resolve())
         run_id = run.id
         run_name = str((run.provenance or {}).get("run_name") or name)
     with factory() as s:

@@ -33,18 +33,23 @@ Lookup = Callable[[str, list[str]], RuleTests | None]
 
 
 def model_for_run(s: Session, run_id: int, model: Path | None = None, sidecar: Path | None = None) -> LoadedModel:
-    """The run's model, from the paths it recorded unless others are given; checked against the run's hash."""
+    """The run's model, from what it recorded (model file or checkpoint, sidecar, and for a factory
+    model the function that builds it) unless other files are given; checked against the run's hash."""
     run = s.get(SaliencyRun, run_id)
     if run is None:
         raise AppError(f"saliency run {run_id} does not exist.")
+    provenance = run.provenance or {}
+    factory = provenance.get("model_factory")
+    folder = provenance.get("model_factory_folder")
     model = model or (Path(run.model_path) if run.model_path else None)
     sidecar = sidecar or (Path(run.sidecar_path) if run.sidecar_path else None)
-    if model is None or sidecar is None:
+    if sidecar is None or (model is None and not factory):
         raise AppError("this run did not record where its model is; give --model and --sidecar.")
-    loaded = load_model(model, sidecar)
-    expected = run.provenance.get("model_sha256")
+    loaded = load_model(model, sidecar, factory=str(factory) if factory else None, folder=str(folder) if folder else None)
+    expected = provenance.get("model_sha256")
     if expected and loaded.sha256 != expected:
-        raise AppError(f"{model} is not the model this run was made with (its sha256 differs); give the same file, or run saliency again.")
+        what = f"{model}" if model is not None else f"the model built by {factory}"
+        raise AppError(f"{what} is not the model this run was made with (its sha256 differs); give the same file, or run saliency again.")
     return loaded
 
 
