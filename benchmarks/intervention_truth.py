@@ -188,7 +188,7 @@ def main(argv: list[str] | None = None) -> str:
             f"covers, chosen as it chooses them (regions naming the cue alone when enough images have one, else every region naming it). "
             f"\"image covered\": mean share of the image under the mask; an image whose mask covers more than {MAX_COVER_SHARE:.0%} has no "
             f"matched control and is left out, and a test left with fewer than two images is not testable. Verdicts: default policy "
-            f"({' + '.join(DEFAULT_FILLS)} fill), {settings.describe(len(null_rows))}. A false confirmation is reliance confirmed where the true "
+            f"({' + '.join(DEFAULT_FILLS)} fill), {settings.describe(sum(1 for r in null_rows if r[-1] != 'not testable'))}. A false confirmation is reliance confirmed where the true "
             f"effect is below the minimum effect ({settings.min_effect}); the stated level is alpha {settings.alpha}.")
     print(note)
     return f"{table}\n\n{per_test}\n\n{null}\n\n{note}\n"
