@@ -17,7 +17,7 @@ from analysis.rules import top_rules
 from . import campaigns
 from .db import open_project, session_factory
 from .errors import AppError
-from .reliance import model_for_run
+from .reliance import model_for_run, untested_reason
 from .services.campaign_analysis import Results, campaign_results
 from .services.exports import concepts_export, rules_export
 from .services.reliance import expectation_verdicts, run_interventions, running_lookup
@@ -137,7 +137,9 @@ def interventions(args: argparse.Namespace) -> int:
     print(f"Reliance is decided by covering; pasting ('can be steered by it') is shown beside it. {settings.describe(n_tests)}.")
     for cls, name, r in found:
         if r is None:
-            print(f"{cls} / {name}: not tested (fewer than two images of the class show it with a region to cover)")
+            why = untested_reason(Path(args.project), res, model.sha256, cls, name.split(" & "), fills=args.fill, draws=args.draws,
+                                  max_images=args.max_images, seed=args.seed)
+            print(f"{cls} / {name}: not tested ({why or 'fewer than two images of the class show it with a region to cover'})")
             continue
         f = judged[(cls, name)]
         print(f"{cls} / {name}: {f.reliance}; pasting: {f.steering}")

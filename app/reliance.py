@@ -190,6 +190,18 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     return RuleTests(cls, name, tuple(coverings_run), pasting)
 
 
+def untested_reason(project: Path, res: Results, model_sha: str, cls: str, concepts: list[str], *, fills: Sequence[str] = DEFAULT_FILLS,
+                    draws: int = 5, max_images: int = 200, seed: int = 0) -> str:
+    """Why a rule's covering test did not run, as stored ("not testable: ..."), or "" when no reason was stored."""
+    key, _, _ = _plan(res, model_sha, cls, concepts, draws, max_images, seed)
+    path = _cache_path(project, key, fills[0]) if fills else None
+    try:
+        raw = json.loads(path.read_text(encoding="utf-8")) if path is not None and path.is_file() else None
+    except (OSError, ValueError):
+        return ""
+    return str(raw.get("not_testable", "")) if isinstance(raw, dict) else ""
+
+
 def _read_inputs(s: Session, model: LoadedModel, image_ids: list[int]) -> tuple[torch.Tensor, list[int]]:
     """Model inputs of the images that can be read, and their ids (unreadable ones are left out)."""
     paths = dict(s.execute(select(ImageRow.id, ImageRow.path).where(ImageRow.id.in_(image_ids))).all())

@@ -30,3 +30,20 @@ def test_rules_show_the_covering_verdict_pasting_beside_it_and_not_tested_elsewh
     assert rim["reliance"] == "no reliance" and rim["steering"] == "not tested" and math.isnan(rim["pasting_effect"])
     assert cap["reliance"] == "not tested" and cap["decided_by"] == "none" and math.isnan(cap["covering_effect"])
     assert (out["min_effect"] == 0.1).all() and "Holm correction over the 3 intervention tests" in tag["family"]
+
+
+def test_a_not_testable_covering_is_stored_with_its_reason_and_read_as_not_run(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    from app.reliance import _read_cached, _write_cached
+
+    path = tmp_path / "x-ring.json"
+    _write_cached(path, None, reason="covering is not testable: the region covers 72% of the image")
+    assert _read_cached(path) == (True, None)
+    assert "72% of the image" in path.read_text()
+    _write_cached(path, _result("ablation", 0.3, (0.2, 0.4), 0.01))
+    found, result = _read_cached(path)
+    assert found and result is not None and result.left_out == 0 and result.effect == 0.3
+    # A result stored before images could be left out reads back with none left out.
+    raw = result.to_json()
+    del raw["left_out"]
+    path.write_text(__import__("json").dumps(raw))
+    assert _read_cached(path)[1] == result
