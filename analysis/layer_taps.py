@@ -240,6 +240,7 @@ class EagerGraph:
 
     def __init__(self, module: nn.Module) -> None:
         self.module = module
+        self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
 
     def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
         calls: dict[str, int] = {}
@@ -255,11 +256,12 @@ class EagerGraph:
 
             handles.append(mod.register_forward_hook(hook))
         try:
-            with torch.no_grad():
-                self.module(probe)
+            with torch.enable_grad():  # recorded, so the default layer's search differentiates this same pass
+                result = self.module(_grad_probe(probe))
         finally:
             for h in handles:
                 h.remove()
+        self.captured = (result, {name: out for name, _, out in seen if calls[name] == 1})
         infos = []
         for name, mtype, out in seen:
             if calls[name] != 1:
@@ -271,6 +273,20 @@ class EagerGraph:
 
     def names(self) -> list[str]:
         return [n for n, _ in self.module.named_modules() if n]
+
+    def capture(self, probe: torch.Tensor, names: set[str]) -> tuple[object, dict[str, object]]:
+        """The model's output and the named layers' outputs, in one forward (as the caller's grad mode records it)."""
+        values: dict[str, object] = {}
+        handles = []
+        for name, mod in self.module.named_modules():
+            if name in names:
+                handles.append(mod.register_forward_hook(lambda _m, _i, out, name=name: values.setdefault(name, out)))
+        try:
+            out = self.module(probe)
+        finally:
+            for h in handles:
+                h.remove()
+        return out, values
 
     def tap(self, name: str) -> tuple[Tap, nn.Module | None]:
         try:
@@ -297,6 +313,7 @@ class FxGraph:
 
     def __init__(self, gm: torch.fx.GraphModule) -> None:
         self.module = gm
+        self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
         self._taps: dict[str, str] = {}
         self._outputs = self._layer_outputs()
 
@@ -320,6 +337,20 @@ class FxGraph:
     def names(self) -> list[str]:
         return list(self._outputs)
 
+    def capture(self, probe: torch.Tensor, names: set[str]) -> tuple[object, dict[str, object]]:
+        wanted = {node for path, (node, _, _) in self._outputs.items() if path in names}
+        values: dict[torch.fx.Node, object] = {}
+
+        class Recorder(torch.fx.Interpreter):
+            def run_node(self, n: torch.fx.Node) -> object:
+                result = super().run_node(n)
+                if n in wanted:
+                    values[n] = result
+                return result
+
+        out = Recorder(self.module).run(probe)
+        return out, {path: values[node] for path, (node, _, _) in self._outputs.items() if path in names and node in values}
+
     def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
         wanted = {node: path for path, (node, _, _) in self._outputs.items()}
         values: dict[torch.fx.Node, object] = {}
@@ -331,8 +362,9 @@ class FxGraph:
                     values[n] = result
                 return result
 
-        with torch.no_grad():
-            Recorder(self.module).run(probe)
+        with torch.enable_grad():  # recorded, so the default layer's search differentiates this same pass
+            out = Recorder(self.module).run(_grad_probe(probe))
+        self.captured = (out, {path: values[node] for path, (node, _, _) in self._outputs.items() if node in values})
         order = {n: i for i, n in enumerate(self.module.graph.nodes)}
         # Execution order; a module ending on the same node as its child comes after it (outermost last).
         ranked = sorted(self._outputs.items(), key=lambda kv: (order[kv[1][0]], -kv[1][2]))
@@ -430,7 +462,9 @@ class ScriptGraph:
 
     def __init__(self, scripted: torch.jit.ScriptModule) -> None:
         self.module = scripted
+        self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
         self._ranks: dict[str, int] = {}
+        self._taps: dict[str, tuple[Tap, nn.Module | None]] = {}
         for p in scripted.parameters():
             p.requires_grad_(False)
 
@@ -468,17 +502,27 @@ class ScriptGraph:
         tup.insertBefore(ret)
         tup.output().setType(torch._C.TupleType([original.type(), *[v.type() for v in extra]]))
         ret.replaceInput(0, tup.output())
-        graph.lint()
         return torch._C._create_function_from_graph("heedmap_tapped", graph)
+
+    def capture(self, probe: torch.Tensor, names: set[str]) -> tuple[object, dict[str, object]]:
+        graph, outputs = self._graph_outputs()
+        paths = [p for p in outputs if p in names]
+        values = list(dict.fromkeys(outputs[p][0] for p in paths))
+        fn = self._function(graph, values)
+        with torch.jit.optimized_execution(False):  # type: ignore[attr-defined]  # not re-exported in torch's stubs
+            result = fn(self.module._c, probe)
+        by_value = dict(zip(values, result[1:]))
+        return result[0], {p: by_value[outputs[p][0]] for p in paths}
 
     def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
         graph, outputs = self._graph_outputs()
         ranked = sorted(outputs.items(), key=lambda kv: (kv[1][2], -kv[1][3]))
         values = list(dict.fromkeys(v for _, (v, _, _, _) in ranked))
         fn = self._function(graph, values)
-        with torch.no_grad():
-            result = fn(self.module._c, probe)
+        with torch.enable_grad(), torch.jit.optimized_execution(False):  # type: ignore[attr-defined]  # not re-exported in torch's stubs
+            result = fn(self.module._c, _grad_probe(probe))  # recorded, so the default layer's search differentiates this same pass
         by_value = dict(zip(values, result[1:]))
+        self.captured = (result[0], {path: by_value[v] for path, (v, _, _, _) in ranked})
         infos = []
         for path, (value, mtype, _, _) in ranked:
             got = by_value[value]
@@ -490,6 +534,11 @@ class ScriptGraph:
         return infos
 
     def tap(self, name: str) -> tuple[Tap, nn.Module | None]:
+        if name not in self._taps:
+            self._taps[name] = self._make_tap(name)
+        return self._taps[name]
+
+    def _make_tap(self, name: str) -> tuple[Tap, nn.Module | None]:
         graph, outputs = self._graph_outputs()
         if name not in outputs:
             raise ModelInputError(f"target layer {name!r} is not a module of the TorchScript model, or its output is not one tensor.")
@@ -507,6 +556,12 @@ class ScriptGraph:
 
 
 ModelGraph = EagerGraph | FxGraph | ScriptGraph
+
+
+def _grad_probe(probe: torch.Tensor) -> torch.Tensor:
+    """The probe as an input that requires grad, so a forward records every layer's output (even
+    TorchScript's, whose parameters are frozen) and the default layer's search can differentiate it."""
+    return probe.detach().requires_grad_(True).clone()  # not a leaf: forward() may change its input in place
 
 
 def select_logits(out: object, output: str | int | None) -> torch.Tensor:
@@ -561,6 +616,32 @@ def layer_has_gradient(tap: Tap, probe: torch.Tensor, output: str | int | None, 
     return alpha is not None and bool(torch.count_nonzero(alpha) > 0)
 
 
+def layers_reached(graph: ModelGraph, infos: list[LayerInfo], probe: torch.Tensor, output: str | int | None) -> set[str] | None:
+    """Which of the layers the top class's logit has a non-zero gradient on, from one forward that
+    records every layer's output and one backward pass; None when that pass fails (e.g. an in-place
+    change of a layer's output), and the caller then tries layers one by one."""
+    names = {i.name for i in infos}
+    try:
+        with torch.enable_grad():
+            captured, graph.captured = graph.captured, None
+            out, values = captured if captured is not None else graph.capture(_grad_probe(probe), names)
+            logits = select_logits(out, output)
+            if not logits.requires_grad:
+                return None
+            found = [(i, v) for i in infos if isinstance(v := values.get(i.name), torch.Tensor) and v.requires_grad]
+            if not found:
+                return set()
+            pred = logits.detach().argmax(dim=1)
+            grads = torch.autograd.grad(logits.gather(1, pred[:, None]).sum(), [v for _, v in found], allow_unused=True)
+    except (RuntimeError, GradientUnavailableError, ModelInputError):
+        return None
+    reached = set()
+    for (info, value), g in zip(found, grads):
+        if g is not None and bool(torch.count_nonzero(cam_inputs(value.detach(), g, info.grid)[1]) > 0):
+            reached.add(info.name)
+    return reached
+
+
 def choose_layer(graph: ModelGraph, infos: list[LayerInfo], probe: torch.Tensor, output: str | int | None) -> LayerInfo:
     """The default Grad-CAM layer: the last layer (before global pooling) whose map is at least 4x4 and
     that the predicted class's gradient reaches; failing that, the largest map that gradient reaches."""
@@ -573,7 +654,13 @@ def choose_layer(graph: ModelGraph, infos: list[LayerInfo], probe: torch.Tensor,
     useful = [i for i in maps if i.map_size is not None and min(i.map_size) >= MIN_USEFUL_MAP]
     by_area = sorted(enumerate(maps), key=lambda im: (-(im[1].map_size or (0, 0))[0] * (im[1].map_size or (0, 0))[1], -im[0]))
     failures: list[str] = []
-    for info in [*reversed(useful[-32:]), *(i for _, i in by_area[:8])]:
+    order = list({i.name: i for i in [*reversed(useful), *(i for _, i in by_area)]}.values())
+    reached = layers_reached(graph, maps, probe, output)
+    if reached:  # the first layer the gradient reaches is checked through its own tap (the path saliency takes)
+        order = [i for i in order if i.name in reached]
+    else:
+        order = [*reversed(useful[-32:]), *(i for _, i in by_area[:8])]
+    for info in order:
         tap, _ = graph.tap(info.name)
         try:
             if layer_has_gradient(tap, probe, output, info.grid):
