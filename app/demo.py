@@ -31,6 +31,7 @@ from .db import make_engine, session_factory, write_session
 from .errors import ConflictError
 from .jobs import register_images, run_saliency
 from .layout import ProjectLayout
+from .maps import read_region_labels, read_saliency
 from .models import Campaign, CampaignRegion, ImageRow, Prediction, RegionRow
 from .people import ensure_person
 from .reliance import rule_reliance
@@ -53,15 +54,15 @@ def region_truths(s: Session, project_dir: Path, data_root: Path, campaign: camp
     scenes = load_scenes(data_root)["scenes"]
     layout = ProjectLayout(project_dir)
     rows = s.execute(
-        select(RegionRow.id, RegionRow.rank, Prediction.image_id, ImageRow.path)
+        select(RegionRow.id, RegionRow.rank, Prediction.image_id, ImageRow.path, Prediction.map_path)
         .join(CampaignRegion, CampaignRegion.region_id == RegionRow.id)
         .join(Prediction, RegionRow.prediction_id == Prediction.id).join(ImageRow, Prediction.image_id == ImageRow.id)
         .where(CampaignRegion.campaign_id == campaign.id).order_by(RegionRow.id)
     ).all()
-    for region_id, rank, image_id, path in rows:
+    for region_id, rank, _image_id, path, map_ref in rows:
         scene = scenes[Path(path).relative_to(data_root.resolve()).as_posix()]
         part_mask = np.asarray(Image.open(data_root / scene["mask"]))
-        labels = np.load(layout.path(layout.region_labels(campaign.run_id, image_id)))
+        labels = read_region_labels(layout, map_ref)
         yield region_id, visible_parts(labels == rank + 1, part_mask), scene
 
 
@@ -221,6 +222,6 @@ def demo_pointing_game(out: Path, *, tolerance: int = 2) -> PointingGame:
     maps, masks = [], []
     for map_path, path in rows:
         scene = scenes[Path(path).relative_to(data_root.resolve()).as_posix()]
-        maps.append(np.load(ProjectLayout(out / "project").path(map_path)).astype(np.float32))
+        maps.append(read_saliency(ProjectLayout(out / "project"), map_path))
         masks.append(np.asarray(Image.open(data_root / scene["mask"])) != PARTS.index("belt"))
     return pointing_game(np.stack(maps), np.stack(masks), tolerance=tolerance)

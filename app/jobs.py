@@ -1,9 +1,10 @@
-"""The saliency job: register images, predict, Grad-CAM, regions and crops, resumable batch by batch."""
+"""The saliency job: register images, predict, Grad-CAM and regions, stored one shard per batch, resumable batch by batch."""
 
 from __future__ import annotations
 
 import hashlib
 import json
+import secrets
 import sys
 from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -12,18 +13,20 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from PIL import Image
-from sqlalchemy import select
+import numpy.typing as npt
+import torch
+from sqlalchemy import insert, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.errors import ImageInputError
-from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, fit_to_aspect, mean_fill, read_rgb, to_model_input
+from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, read_rgb, to_model_input
 from analysis.model_io import LoadedModel, Sidecar
-from analysis.regions import ThresholdPolicy, crop_region, extract_regions
+from analysis.regions import Region, ThresholdPolicy, extract_regions
 from analysis.saliency import SaliencyBatch, compute_saliency, saliency_provenance
 
 from .db import write_session
 from .layout import ProjectLayout
+from .maps import sync_folder, write_array
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 
 
@@ -136,7 +139,7 @@ def register_images(factory: sessionmaker[Session], records: list[ImageRecord], 
     return problems
 
 
-def _progress(done: int, total: int) -> None:
+def show_progress(done: int, total: int) -> None:
     width = 30
     filled = int(width * done / max(1, total))
     sys.stderr.write(f"\rsaliency [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
@@ -145,62 +148,146 @@ def _progress(done: int, total: int) -> None:
     sys.stderr.flush()
 
 
-def _store_batch(factory: sessionmaker[Session], layout: ProjectLayout, run_id: int, sc: Sidecar, params: RegionParams, ids: list[int],
-                 paths: dict[int, str], views: list[Image.Image], res: SaliencyBatch, report: JobReport) -> None:
-    """Write one batch's maps and crops, then its rows in one transaction.
+@dataclass(frozen=True)
+class BatchResult:
+    """One batch computed: what the writer stores. Plain data, so a worker process can send it back.
 
-    The region's outline is not stored: the app draws it over the original image when asked.
+    ``ids`` are the images with results, in batch order; row k of ``maps`` (N x H x W float16) and
+    ``labels`` (N x H x W uint8, r + 1 where region rank r is) belongs to ``ids[k]``.
     """
+
+    ids: tuple[int, ...]
+    predicted: tuple[int, ...]  # class index
+    confidence: tuple[float, ...]
+    empty: tuple[bool, ...]
+    regions: tuple[tuple[Region, ...], ...]
+    maps: npt.NDArray[np.float16]
+    labels: npt.NDArray[np.uint8]
+    unreadable: tuple[tuple[int, str, str], ...] = ()  # (image id, path, why): the image could not be read
+    nonfinite: tuple[tuple[int, str], ...] = ()  # (image id, path): the model gave NaN or inf
+
+    @property
+    def size(self) -> int:
+        """Images of the batch, stored or not."""
+        return len(self.ids) + len(self.unreadable) + len(self.nonfinite)
+
+
+@dataclass(frozen=True)
+class BatchInput:
+    """A batch read from disk: the images read, their model input, and what could not be read."""
+
+    ids: tuple[int, ...]
+    paths: tuple[str, ...]
+    inputs: torch.Tensor | None  # N x 3 x H x W, None when no image could be read
+    unreadable: tuple[tuple[int, str, str], ...]
+
+
+def read_batch(sidecar: Sidecar, batch: list[tuple[int, str]]) -> BatchInput:
+    """Read a batch's images and make the model's input; an unreadable image is listed, not raised."""
+    pictures, ids, paths, unreadable = [], [], [], []
+    for image_id, path in batch:
+        try:
+            pictures.append(read_rgb(Path(path)))
+            ids.append(image_id)
+            paths.append(path)
+        except ImageInputError as exc:
+            unreadable.append((image_id, path, str(exc)))
+    inputs = to_model_input(pictures, **sidecar.input_options()) if pictures else None
+    return BatchInput(tuple(ids), tuple(paths), inputs, tuple(unreadable))
+
+
+def finish_batch(read: BatchInput, res: SaliencyBatch | None, params: RegionParams) -> BatchResult:
+    """Regions of each map; images whose output is not finite are set aside. Maps are kept as float16."""
+    if res is None:  # no image of the batch could be read
+        empty = np.zeros((0, 0, 0), np.float16)
+        return BatchResult(ids=(), predicted=(), confidence=(), empty=(), regions=(), maps=empty, labels=empty.astype(np.uint8), unreadable=read.unreadable)
+    keep, nonfinite = [], []
+    for k, (image_id, path) in enumerate(zip(read.ids, read.paths)):
+        if np.isfinite(float(res.confidence[k])) and np.isfinite(res.maps[k]).all():
+            keep.append(k)
+        else:
+            nonfinite.append((image_id, path))
+    regions, labels = [], []
+    for k in keep:
+        found, lab = extract_regions(res.maps[k], policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
+        regions.append(tuple(found))
+        labels.append(lab.astype(np.uint8))
+    shape = (0, *res.maps.shape[1:])
+    return BatchResult(
+        ids=tuple(read.ids[k] for k in keep),
+        predicted=tuple(int(res.predicted[k]) for k in keep),
+        confidence=tuple(float(res.confidence[k]) for k in keep),
+        empty=tuple(bool(res.empty[k]) for k in keep),
+        regions=tuple(regions),
+        maps=res.maps[keep].astype(np.float16) if keep else np.zeros(shape, np.float16),
+        labels=np.stack(labels) if labels else np.zeros(shape, np.uint8),
+        unreadable=read.unreadable,
+        nonfinite=tuple(nonfinite),
+    )
+
+
+def compute_batch(model: LoadedModel, batch: list[tuple[int, str]], params: RegionParams) -> BatchResult:
+    """Read, predict, Grad-CAM and regions of one batch: everything but storing (what a worker runs)."""
+    read = read_batch(model.sidecar, batch)
+    res = compute_saliency(model, read.inputs) if read.inputs is not None else None
+    return finish_batch(read, res, params)
+
+
+def store_batch(factory: sessionmaker[Session], layout: ProjectLayout, run_id: int, classes: tuple[str, ...], result: BatchResult, report: JobReport) -> None:
+    """Write one batch's maps as one shard (maps and region labels), then its rows and problems in one transaction.
+
+    The files are on disk (fsynced, renamed into place) before the rows commit, so a stored
+    prediction never points at a missing file. No crop or outline is stored: the app cuts and draws
+    them from the original image when asked.
+    """
+    shard_rel = ""
+    if result.ids:
+        shard_rel = layout.map_shard(run_id, f"b{result.ids[0]:08d}-{secrets.token_hex(4)}")
+        shard = layout.path(shard_rel)
+        write_array(shard, result.maps)
+        write_array(layout.path(layout.region_labels_of(shard_rel)), result.labels)
+        sync_folder(shard.parent)
     with write_session(factory) as s:
-        for k, image_id in enumerate(ids):
-            sal = res.maps[k]
-            if not (np.isfinite(float(res.confidence[k])) and np.isfinite(sal).all()):
-                why = "the model gave NaN or infinite outputs for this image; nothing was stored for it (check the model and its input scaling)"
-                report.skipped.append((paths[image_id], why))
-                continue
-            map_rel = layout.saliency_map(run_id, image_id)
-            regions, labels = extract_regions(sal, policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
-            np.save(layout.path(map_rel), sal.astype(np.float16))
-            np.save(layout.path(layout.region_labels(run_id, image_id)), labels.astype(np.uint8))
-            pred = Prediction(run_id=run_id, image_id=image_id, predicted=sc.classes[int(res.predicted[k])], confidence=float(res.confidence[k]),
-                              empty_map=bool(res.empty[k]), map_path=map_rel)
-            s.add(pred)
-            s.flush()
-            report.empty_maps += int(res.empty[k])
-            if regions and regions[0].area >= 0.9 * sal.size:
+        for image_id, path, why in result.unreadable:
+            report.skipped.append((path, why))
+            row = s.get(ImageRow, image_id)
+            if row is not None:
+                row.problem = why
+        for _, path in result.nonfinite:
+            report.skipped.append((path, "the model gave NaN or infinite outputs for this image; nothing was stored for it (check the model and its input scaling)"))
+        if result.ids:  # bulk inserts: a batch's rows cost a few statements, not one flush per image
+            s.execute(insert(Prediction), [
+                {"run_id": run_id, "image_id": image_id, "predicted": classes[result.predicted[k]], "confidence": result.confidence[k],
+                 "empty_map": result.empty[k], "map_path": layout.map_ref(shard_rel, k)} for k, image_id in enumerate(result.ids)])
+            pred_of = dict(s.execute(select(Prediction.image_id, Prediction.id).where(Prediction.run_id == run_id, Prediction.image_id.in_(result.ids))).all())
+            rows = [{"prediction_id": pred_of[image_id], "rank": r.rank, "x0": r.x0, "y0": r.y0, "x1": r.x1, "y1": r.y1, "area": r.area,
+                     "mass_share": r.mass_share, "crop_path": "", "outline_path": ""}
+                    for image_id, regions in zip(result.ids, result.regions) for r in regions]
+            if rows:
+                s.execute(insert(RegionRow), rows)
+        pixels = int(np.prod(result.maps.shape[1:])) if result.maps.ndim == 3 else 0
+        for k in range(len(result.ids)):
+            regions = result.regions[k]
+            report.empty_maps += int(result.empty[k])
+            report.regions += len(regions)
+            if regions and regions[0].area >= 0.9 * pixels:
                 report.whole_image_regions += 1
-            for r in regions:
-                crop_rel = layout.crop(run_id, image_id, r.rank)
-                crop_region(views[k], r, map_size=sc.input_size, margin=params.margin).save(layout.path(crop_rel))
-                s.add(RegionRow(prediction_id=pred.id, rank=r.rank, x0=r.x0, y0=r.y0, x1=r.x1, y1=r.y1, area=r.area, mass_share=r.mass_share,
-                                crop_path=crop_rel, outline_path=""))
-                report.regions += 1
-    report.processed += len(ids)
+    report.processed += len(result.ids)
 
 
-def run_saliency(
-    factory: sessionmaker[Session],
-    project_dir: Path,
-    model: LoadedModel,
-    *,
-    params: RegionParams = RegionParams(),
-    batch_size: int = 32,
-    progress: Callable[[int, int], None] | None = _progress,
-    after_batch: Callable[[int], None] | None = None,
-    model_files: tuple[Path | None, Path] | None = None,
-    images: list[ImageRecord] | None = None,
-    name: str = "default",
-    source: Path | None = None,
-) -> JobReport:
-    """Process every image of the run's image set that it has not done yet; each batch commits once.
+@dataclass(frozen=True)
+class PreparedRun:
+    """A run found or made for a job, and the images it has still to do."""
 
-    ``images`` is the run's image set (registered first with :func:`register_images`); None means
-    every registered image. The run is keyed by :func:`run_key` (model hash, sidecar, layer,
-    method, region parameters, image set): the same again continues the run, so an interrupted job
-    resumes without duplicates, while a changed sidecar or another image folder starts a new run.
-    ``name`` labels the run ("test", "counterfactual"); ``model_files`` (model, sidecar) are
-    recorded so later steps can load the same model again.
-    """
+    run_id: int
+    todo: list[tuple[int, str]]  # (image id, path), in id order
+    report: JobReport
+    layout: ProjectLayout
+
+
+def prepare_run(factory: sessionmaker[Session], project_dir: Path, model: LoadedModel, *, params: RegionParams, model_files: tuple[Path | None, Path] | None,
+                images: list[ImageRecord] | None, name: str, source: Path | None) -> PreparedRun:
+    """Find the run this job continues (same key) or make it, and list the images it has not done."""
     with factory() as s:
         rows = list(s.scalars(select(ImageRow).order_by(ImageRow.id)))
     if images is not None:
@@ -233,46 +320,71 @@ def run_saliency(
         done = set(s.scalars(select(Prediction.image_id).where(Prediction.run_id == run_id)))
     todo = [(r.id, r.path) for r in rows if r.problem is None]
     report = JobReport(run_id=run_id, name=run_name, already_done=sum(1 for i, _ in todo if i in done), new_run=new_run)
-    todo = [t for t in todo if t[0] not in done]
     layout = ProjectLayout(Path(project_dir))
     layout.make_run_dirs(run_id)
-    sc = model.sidecar
+    return PreparedRun(run_id=run_id, todo=[t for t in todo if t[0] not in done], report=report, layout=layout)
+
+
+def run_saliency(
+    factory: sessionmaker[Session],
+    project_dir: Path,
+    model: LoadedModel,
+    *,
+    params: RegionParams = RegionParams(),
+    batch_size: int = 32,
+    progress: Callable[[int, int], None] | None = show_progress,
+    after_batch: Callable[[int], None] | None = None,
+    model_files: tuple[Path | None, Path] | None = None,
+    images: list[ImageRecord] | None = None,
+    name: str = "default",
+    source: Path | None = None,
+) -> JobReport:
+    """Process every image of the run's image set that it has not done yet; each batch commits once.
+
+    ``images`` is the run's image set (registered first with :func:`register_images`); None means
+    every registered image. The run is keyed by :func:`run_key` (model hash, sidecar, layer,
+    method, region parameters, image set): the same again continues the run, so an interrupted job
+    resumes without duplicates, while a changed sidecar or another image folder starts a new run.
+    ``name`` labels the run ("test", "counterfactual"); ``model_files`` (model, sidecar) are
+    recorded so later steps can load the same model again.
+
+    Three threads share the work: a reader decodes and resizes the next batch's images, this thread
+    runs the model, and a writer finds each batch's regions and stores it, so neither reading nor
+    writing holds up the model.
+    """
+    prep = prepare_run(factory, project_dir, model, params=params, model_files=model_files, images=images, name=name, source=source)
+    todo, sc = prep.todo, model.sidecar
     total = len(todo)
-    # Files are written and each batch committed on a writer thread while the next batch is computed:
-    # the PNG and array encoding no longer holds up the model. A batch's rows commit only after its
-    # files are on disk, so a stored prediction never points at a missing file.
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-writer") as writer:
+    batches = [todo[start : start + batch_size] for start in range(0, total, batch_size)]
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-reader") as reader, \
+            ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-writer") as writer:
+        reads = [reader.submit(read_batch, sc, batches[0])] if batches else []
         pending: Future[None] | None = None
-        for b, start in enumerate(range(0, total, batch_size)):
-            batch = todo[start : start + batch_size]
-            pictures, ids = [], []
-            for image_id, path in batch:
-                try:
-                    pictures.append(read_rgb(Path(path)))
-                    ids.append(image_id)
-                except ImageInputError as exc:
-                    report.skipped.append((path, str(exc)))
-                    if pending is not None:
-                        pending.result()
-                        pending = None
-                    with write_session(factory) as s:
-                        row = s.get(ImageRow, image_id)
-                        if row is not None:
-                            row.problem = str(exc)
-            if pictures:
-                fill = mean_fill(sc.mean, channel_order=sc.channel_order)
-                views = [fit_to_aspect(im, sc.input_size, resize=sc.resize, fill=fill) for im in pictures]
-                res = compute_saliency(model, to_model_input(pictures, **sc.input_options()))
-                if pending is not None:
-                    pending.result()  # the previous batch is stored before this one is handed over
-                pending = writer.submit(_store_batch, factory, layout, run_id, sc, params, ids, dict(batch), views, res, report)
-            if pending is not None and after_batch:
+        done = 0
+        for b, batch in enumerate(batches):
+            read = reads[b].result()
+            reads[b] = Future()  # let the batch's pixels go
+            if b + 1 < len(batches):
+                reads.append(reader.submit(read_batch, sc, batches[b + 1]))  # decoded while this batch computes
+            res = compute_saliency(model, read.inputs) if read.inputs is not None else None
+            if pending is not None:
+                pending.result()  # the previous batch is stored before this one is handed over
+            pending = writer.submit(_finish_and_store, factory, prep, sc.classes, read, res, params)
+            done += len(batch)
+            if after_batch:
                 pending.result()  # what after_batch sees is stored
                 pending = None
             if progress:
-                progress(start + len(batch), total)
+                progress(done, total)
             if after_batch:
                 after_batch(b)
         if pending is not None:
             pending.result()
-    return report
+        for f in reads:
+            f.cancel()
+    return prep.report
+
+
+def _finish_and_store(factory: sessionmaker[Session], prep: PreparedRun, classes: tuple[str, ...], read: BatchInput, res: SaliencyBatch | None,
+                      params: RegionParams) -> None:
+    store_batch(factory, prep.layout, prep.run_id, classes, finish_batch(read, res, params), prep.report)

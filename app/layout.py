@@ -1,7 +1,13 @@
 """Where a project keeps its files: every on-disk path of a project is spelled here and nowhere else.
 
-The database stores paths relative to the project folder (``runs/3/crops/17_0.png``), so a
+The database stores paths relative to the project folder (``runs/3/maps/b00000017-1f2e3d4c.npy#5``), so a
 project can move; ``path`` turns one back into a file under the folder.
+
+A saliency run writes one shard per batch: ``maps/<shard>.npy`` (N x H x W float16 maps) and
+``maps/<shard>_regions.npy`` (N x H x W uint8, pixel value r + 1 marks region rank r). A prediction's
+``map_path`` names its row as ``<file>#<row>``. Region crops are not stored: they are cut from the original
+image when asked. Projects made before keep one ``maps/<image>.npy`` (and ``_regions.npy``) per image and
+one crop PNG per region; both are still read.
 """
 
 from __future__ import annotations
@@ -12,7 +18,7 @@ from pathlib import Path
 from .errors import NotFoundError
 
 DB_NAME = "heedmap.db"
-RUN_SUBFOLDERS = ("crops", "outlines", "maps")
+RUN_SUBFOLDERS = ("maps",)
 
 
 @dataclass(frozen=True)
@@ -42,22 +48,35 @@ class ProjectLayout:
 
     # Relative paths, as the database stores them.
     @staticmethod
-    def saliency_map(run_id: int, image_id: int) -> str:
-        """The image's saliency map (.npy, model-input pixels)."""
+    def map_shard(run_id: int, shard: str) -> str:
+        """One batch's saliency maps (.npy, N x H x W float16, model-input pixels)."""
+        return f"runs/{run_id}/maps/{shard}.npy"
+
+    @staticmethod
+    def map_ref(shard_rel: str, row: int) -> str:
+        """What a prediction stores: its shard and its row in it."""
+        return f"{shard_rel}#{row}"
+
+    @staticmethod
+    def split_map_ref(ref: str) -> tuple[str, int | None]:
+        """(file, row) of a stored map reference; row None for a one-image file (projects made before shards)."""
+        rel, sep, row = ref.rpartition("#")
+        if not sep:
+            return ref, None
+        if not row.isdigit() or len(row) > 9:
+            raise NotFoundError(f"the stored map reference {ref[:200]!r} is damaged (its row is not a number).")
+        return rel, int(row)
+
+    @staticmethod
+    def region_labels_of(map_file: str) -> str:
+        """The region-label file beside a map file: per pixel, the rank + 1 of the region it belongs to (0: none)."""
+        stem = map_file[: -len(".npy")] if map_file.endswith(".npy") else map_file
+        return f"{stem}_regions.npy"
+
+    @staticmethod
+    def legacy_map(run_id: int, image_id: int) -> str:
+        """One image's map as projects made before shards stored it."""
         return f"runs/{run_id}/maps/{image_id}.npy"
-
-    @staticmethod
-    def region_labels(run_id: int, image_id: int) -> str:
-        """Per pixel of the map, the rank of the region it belongs to (0: none)."""
-        return f"runs/{run_id}/maps/{image_id}_regions.npy"
-
-    @staticmethod
-    def crop(run_id: int, image_id: int, rank: int) -> str:
-        return f"runs/{run_id}/crops/{image_id}_{rank}.png"
-
-    @staticmethod
-    def outline(run_id: int, image_id: int, rank: int) -> str:
-        return f"runs/{run_id}/outlines/{image_id}_{rank}.png"
 
     def path(self, rel: str) -> Path:
         """The file a stored relative path names, resolved; a path that leads outside the folder (absolute,

@@ -26,6 +26,7 @@ from analysis.reliance import RelianceFinding, RuleTests, VerdictSettings, conce
 
 from .errors import AppError
 from .layout import ProjectLayout
+from .maps import region_labels_for
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 from .services.campaign_analysis import Results
 
@@ -82,11 +83,12 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
             per_image[image_of_row[int(table.regions.region_image[r])]].append((rank_of[rid], shown))
     plan = plan_regions([[c for _, c in per_image[i]] for i in image_ids], concepts, families=table.families)
     masks: dict[int, np.ndarray] = {}
+    labels = region_labels_for(s, ProjectLayout(project), res.campaign.run_id, [i for i, chosen in zip(image_ids, plan.regions) if chosen])
     for image_id, chosen in zip(image_ids, plan.regions):
-        if not chosen:
+        if not chosen or image_id not in labels:
             continue
         ranks = [per_image[image_id][k][0] for k in chosen]
-        mask = np.isin(np.load(ProjectLayout(project).path(ProjectLayout.region_labels(res.campaign.run_id, image_id))), ranks)
+        mask = np.isin(labels[image_id], ranks)
         if mask.any():
             masks[image_id] = mask
     x, kept = _read_inputs(s, model, list(masks))

@@ -16,8 +16,10 @@ from analysis.expectations import Verdict
 from analysis.images import thumbnail_png
 from analysis.plots import frequency_plot, lift_plot
 
+from . import region_images, store
+from .errors import AppError
 from .layout import ProjectLayout
-from .models import ImageRow, RegionRow, SaliencyRun
+from .models import ImageRow, SaliencyRun
 from .routes.common import CAUTION
 from .services.campaign_analysis import Results
 from .services.reliance import audit
@@ -29,9 +31,11 @@ def _data_uri(png: bytes) -> str:
 
 
 def _crop(s: Session, settings: Settings, region_id: int) -> str | None:
-    rel = s.scalar(select(RegionRow.crop_path).where(RegionRow.id == region_id))
-    path = ProjectLayout(Path(settings.project_dir)).path(rel) if rel else None
-    return _data_uri(path.read_bytes()) if path and path.is_file() else None
+    """The region's crop inline (cut from the original image, or an older project's stored file); None when it cannot be made."""
+    try:
+        return _data_uri(region_images.crop_png(s, ProjectLayout(Path(settings.project_dir)), store.region_files(s, region_id), region_id))
+    except AppError:
+        return None
 
 
 def build_report(templates: Jinja2Templates, s: Session, settings: Settings, res: Results, *, threshold: float = 0.8) -> str:

@@ -20,9 +20,9 @@ def latest_run_id(s: Session) -> int | None:
 
 @dataclass(frozen=True)
 class RegionFiles:
-    crop: str
-    outline: str
-    saliency_map: str  # the image's map (.npy), model-input pixels
+    crop: str  # a stored crop (projects made before crops were cut on demand), else ""
+    outline: str  # a stored outline (older projects still), else ""
+    saliency_map: str  # the image's map reference (``<file>.npy#<row>``, or one file per image in older projects)
     box: tuple[int, int, int, int]  # x0, y0, x1, y1 in map pixels
     image_path: str
 
