@@ -31,6 +31,9 @@ def add_model_parsers(sub: argparse._SubParsersAction[argparse.ArgumentParser]) 
     s.add_argument("--images", type=Path, required=True, help="folder with a subfolder per class, or a CSV with path,label")
     s.add_argument("--name", default=None, help="name of the run, e.g. test or counterfactual (default: the image folder's name)")
     s.add_argument("--batch-size", type=int, default=32)
+    s.add_argument("--workers", type=int, default=None, metavar="N", help="compute on a local Dask cluster of N worker processes (needs the cluster extra)")
+    s.add_argument("--cluster", default=None, metavar="ADDRESS", help="compute on the running Dask scheduler at ADDRESS, e.g. tcp://10.0.0.5:8786; "
+                   "every worker must reach the model and image paths")
     r = sub.add_parser("runs", help="list a project's saliency runs")
     r.add_argument("project", type=Path)
     y = sub.add_parser("layers", help="list a model's candidate Grad-CAM layers with their map sizes; preview one image's map per layer")
@@ -80,9 +83,11 @@ def saliency(args: argparse.Namespace) -> int:
     from analysis.images import find_images, read_rgb, to_model_input
     from analysis.model_io import check_finite_outputs
 
+    from .cluster import ClusterOptions
     from .db import open_project, session_factory
-    from .jobs import register_images, run_saliency
+    from .jobs import register_images, run_saliency, show_progress
 
+    options = ClusterOptions(workers=args.workers, address=args.cluster) if args.workers is not None or args.cluster is not None else None
     model = _load(args.model, args.sidecar, args.model_factory, args.device)
     _print_model(model)
     records = find_images(args.images)
@@ -105,7 +110,15 @@ def saliency(args: argparse.Namespace) -> int:
     # Recorded so interventions and 'heedmap layers --project' load the same model again (a factory's
     # function and import folder go into the run's provenance).
     model_files = (args.model, args.sidecar)
-    rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=model_files, images=records, name=name, source=args.images)
+    if options is not None:
+        from .cluster import ModelSpec, run_saliency_on_cluster
+
+        spec = ModelSpec(model=str(Path(args.model).resolve()) if args.model is not None else None, sidecar=str(Path(args.sidecar).resolve()),
+                         factory=args.model_factory, sha256=model.sha256, device=args.device)
+        rep = run_saliency_on_cluster(factory, args.project, model, spec, options, batch_size=args.batch_size, progress=show_progress, model_files=model_files,
+                                      images=records, name=name, source=args.images)
+    else:
+        rep = run_saliency(factory, args.project, model, batch_size=args.batch_size, model_files=model_files, images=records, name=name, source=args.images)
     for _path, why in problems + rep.skipped:
         print(f"skipped: {why}", file=sys.stderr)
     state = "new run" if rep.new_run else "continued"
