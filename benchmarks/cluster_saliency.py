@@ -86,11 +86,65 @@ def main(argv: list[str] | None = None) -> str:
             t = time.perf_counter()
             run_saliency(factory, project, model, batch_size=BATCH, images=records, progress=None)
             rates["single process (2 threads)"].append(n / (time.perf_counter() - t))
+        writer = writer_rates(work, records)
     load_end = os.getloadavg()[0]
     base = max(rates["1 worker"])
     rows = [[label, max(r), max(r) / base, f"{starts[label]:.1f}" if label in starts else "-"] for label, r in rates.items()]
     print(f"{args.arch} {args.size}px, {n} images, batch {BATCH}; {os.cpu_count()} CPUs; load average {load_start:.1f} at the start, {load_end:.1f} at the end")
-    return print_table(["saliency job", "img/s", "x 1 worker", "cluster start-up (s)"], rows)
+    main_table = print_table(["saliency job", "img/s", "x 1 worker", "cluster start-up (s)"], rows)
+    writer_table = print_table(["the one writer alone (store_batch), map size", "img/s", "bytes on disk per image"], writer)
+    return main_table + "\n\n" + writer_table
+
+
+def writer_rates(work: Path, records: list) -> list[list[object]]:  # type: ignore[type-arg]
+    """How many images a second the one writer stores (shard files fsynced, rows committed) when batches arrive
+    ready-made, at 64 and 224 px maps with three regions each: the ceiling on workers one writer can serve."""
+    import numpy as np
+    from sqlalchemy import select
+
+    from analysis.regions import Region
+    from app.db import make_engine, session_factory, write_session
+    from app.jobs import BatchResult, JobReport, register_images, store_batch
+    from app.layout import ProjectLayout
+    from app.models import ImageRow, SaliencyRun
+
+    out: list[list[object]] = []
+    rng = np.random.default_rng(0)
+    for px in (64, 224):
+        project = work / f"writer{px}"
+        shutil.rmtree(project, ignore_errors=True)
+        engine = make_engine(project)
+        factory = session_factory(engine)
+        register_images(factory, records)
+        with write_session(factory) as s:
+            run = SaliencyRun(config_key=f"writer{px}", provenance={})
+            s.add(run)
+            s.flush()
+            run_id = run.id
+        layout = ProjectLayout(project)
+        layout.make_run_dirs(run_id)
+        with factory() as s:
+            ids = list(s.scalars(select(ImageRow.id).order_by(ImageRow.id)))
+        maps = rng.random((BATCH, px, px)).astype(np.float16)
+        labels = (rng.random((BATCH, px, px)) * 4).astype(np.uint8)
+        regions = tuple(tuple(Region(rank=r, x0=0, y0=0, x1=8, y1=8, area=40, mass_share=0.2, peak_x=1, peak_y=1) for r in range(3)) for _ in range(BATCH))
+        report = JobReport(run_id=run_id)
+        before = _disk_bytes(project)
+        t = time.perf_counter()
+        stored = 0
+        for start in range(0, len(ids) - BATCH + 1, BATCH):
+            batch = tuple(ids[start : start + BATCH])
+            store_batch(factory, layout, run_id, ("bottle", "can", "carton"), BatchResult(
+                ids=batch, predicted=(0,) * BATCH, confidence=(0.5,) * BATCH, empty=(False,) * BATCH, regions=regions, maps=maps, labels=labels), report)
+            stored += BATCH
+        rate = stored / (time.perf_counter() - t)
+        engine.dispose()
+        out.append([f"{px} x {px}", rate, (_disk_bytes(project) - before) / max(1, stored)])
+    return out
+
+
+def _disk_bytes(root: Path) -> int:
+    return sum(p.stat().st_size for p in root.rglob("*") if p.is_file())
 
 
 if __name__ == "__main__":

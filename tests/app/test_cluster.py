@@ -61,6 +61,7 @@ class Killed(Exception):
     pass
 
 
+@pytest.mark.slow
 def test_two_local_workers_store_what_the_single_process_job_stores_and_resume(tmp_path: Path, small_scenes: Path) -> None:
     model_path, sidecar = _model_files(tmp_path)
     model = load_model(model_path, sidecar)
