@@ -114,7 +114,7 @@ def saliency(args: argparse.Namespace) -> int:
         from .cluster import ModelSpec, run_saliency_on_cluster
 
         spec = ModelSpec(model=str(Path(args.model).resolve()) if args.model is not None else None, sidecar=str(Path(args.sidecar).resolve()),
-                         factory=args.model_factory, sha256=model.sha256, device=args.device)
+                         factory=args.model_factory, sha256=model.sha256, device=args.device, folder=model.factory_folder)
         rep = run_saliency_on_cluster(factory, args.project, model, spec, options, batch_size=args.batch_size, progress=show_progress, model_files=model_files,
                                       images=records, name=name, source=args.images)
     else:

@@ -41,6 +41,7 @@ class ModelSpec:
     factory: str | None
     sha256: str
     device: str = "cpu"
+    folder: str | None = None  # where the factory's package was imported from (workers import it from there first)
 
 
 @dataclass(frozen=True)
@@ -68,7 +69,7 @@ def _worker_model(spec: ModelSpec) -> LoadedModel:
     if model is None:
         from analysis.model_io import load_model
 
-        model = load_model(Path(spec.model) if spec.model else None, Path(spec.sidecar), factory=spec.factory, device=spec.device)
+        model = load_model(Path(spec.model) if spec.model else None, Path(spec.sidecar), factory=spec.factory, device=spec.device, folder=spec.folder)
         if model.sha256 != spec.sha256:
             import socket
 
