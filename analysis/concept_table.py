@@ -13,6 +13,8 @@ from scipy import sparse
 
 from .errors import InvalidInputError
 from .rules import RegionMass, RuleTable, mine_rules
+from .sampling import Design
+from .weighted_rules import weighted_rules
 
 Target = Literal["predicted", "true", "errors"]
 TARGETS: tuple[Target, ...] = ("predicted", "true", "errors")
@@ -38,6 +40,17 @@ class ConceptTable:
     method: str
     threshold: float
     families: Mapping[str, str] = field(default_factory=dict)
+    # A sampled campaign's design (each row's stratum, each stratum's images); None = every image was labelled.
+    design: Design | None = None
+
+    @property
+    def sampled(self) -> bool:
+        return self.design is not None
+
+    @property
+    def stands_for(self) -> int:
+        """Images the estimates stand for: the table's rows, or for a sample the images of the strata it covers."""
+        return int(round(self.design.represented)) if self.design is not None else len(self.meta)
 
     @property
     def concepts(self) -> list[str]:
@@ -59,9 +72,16 @@ class ConceptTable:
 
     def rules(self, *, target: Target = "predicted", min_support: float = 0.02, max_len: int = 2, min_lift: float = 1.0,
               min_count: int = 1, prune: bool = True) -> RuleTable:
-        """Concept rules for the chosen target, with each rule's saliency share; "correct" is not a target class."""
-        rules = mine_rules(self.presence, self.targets(target), min_support=min_support, max_len=max_len, min_lift=min_lift,
-                           min_count=min_count, prune=prune, saliency=self.regions, families=self.families)
+        """Concept rules for the chosen target, with each rule's saliency share; "correct" is not a target class.
+
+        A sampled table's rates are weighted estimates with design-based intervals (analysis.weighted_rules).
+        """
+        if self.design is not None:
+            rules = weighted_rules(self.presence, self.targets(target), self.design, min_support=min_support, max_len=max_len, min_lift=min_lift,
+                                   min_count=min_count, prune=prune, saliency=self.regions, families=dict(self.families))
+        else:
+            rules = mine_rules(self.presence, self.targets(target), min_support=min_support, max_len=max_len, min_lift=min_lift,
+                               min_count=min_count, prune=prune, saliency=self.regions, families=self.families)
         if target == "errors":
             kept = rules.rules[rules.rules["class"] != CORRECT].reset_index(drop=True)
             return replace(rules, rules=kept)
@@ -82,6 +102,8 @@ class ConceptTable:
         """A flat export: meta, then "concept: X" (0/1) and "saliency share: X" per concept, and the method."""
         out = self.meta.copy()
         out.insert(0, "aggregation", self.method)
+        if self.design is not None:
+            out.insert(1, "sampling weight", self.design.weights)
         presence = self.presence.astype(int).add_prefix("concept: ")
         share = self.share.round(4).add_prefix("saliency share: ")
         return pd.concat([out, presence, share], axis=1)

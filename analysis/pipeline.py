@@ -10,7 +10,7 @@ application's campaign-analysis service.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -20,6 +20,7 @@ from .concept_votes import PresenceVotes, estimate_concepts, presence_votes
 from .concepts import Judgment, judgment_concepts
 from .errors import InvalidInputError, NotEnoughLabelsError
 from .reliability import METHODS, Method
+from .sampling import Design
 from .synonyms import SynonymRules
 
 PREDICTION_COLUMNS = ("label", "predicted", "confidence", "split", "regions", "mass_shares")
@@ -66,6 +67,8 @@ def campaign_table(
     classes: Sequence[str] = (),
     method: Method = "majority",
     threshold: float = 0.5,
+    sample: Mapping[int, str] | None = None,
+    population: Mapping[str, int] | None = None,
 ) -> CampaignTable:
     """The image-by-concept table of a campaign's labels.
 
@@ -86,6 +89,11 @@ def campaign_table(
         Predicted classes the campaign covers (empty: all).
     method, threshold
         How votes become concepts: a pair is present when its probability exceeds ``threshold``.
+    sample, population
+        A sampled campaign's design: each sampled image's stratum, and the images of each stratum in
+        the population. Only sampled images count, and the table carries the design, so its rates are
+        weighted estimates. Each stratum's weight is its images over its complete sampled images (a
+        sampled image not yet complete is left out of its stratum as if it had not been drawn).
 
     Returns
     -------
@@ -109,6 +117,8 @@ def campaign_table(
     region_concepts = estimate_concepts(votes, method=method, threshold=threshold).region_concepts()
     labelled = set(region_concepts)
     preds = predictions[predictions["predicted"].isin(list(classes))].copy() if classes else predictions.copy()
+    if sample is not None:
+        preds = preds[preds.index.isin(list(sample))]
     mass = {r: m for rs, ms in zip(preds["regions"], preds["mass_shares"]) for r, m in zip(rs, ms)}
     preds["regions"] = preds["regions"].map(lambda rs: [r for r in rs if r in region_class])
     complete = preds[preds["regions"].map(lambda rs: all(r in labelled for r in rs))]
@@ -117,4 +127,16 @@ def campaign_table(
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
     image_regions = {int(i): list(r) for i, r in zip(complete.index.to_numpy(dtype=np.int64), complete["regions"])}
     table = build_concept_table(meta, image_regions, mass, region_concepts, method=str(method), threshold=threshold, families=votes.families)
+    if sample is not None:
+        table = replace(table, design=sample_design([sample[int(i)] for i in table.meta.index], population or {}))
     return CampaignTable(table, len(labelled))
+
+
+def sample_design(strata: Sequence[str], population: Mapping[str, int]) -> Design:
+    """The design of a sample from each unit's stratum name and each stratum's size in the population."""
+    names = sorted(population)
+    code = {n: i for i, n in enumerate(names)}
+    unknown = sorted({s for s in strata if s not in code})
+    if unknown:
+        raise InvalidInputError(f"sampled images in strata {unknown[:5]} that have no population size; give every stratum's images.")
+    return Design(np.array([code[s] for s in strata], dtype=np.int64), np.array([float(population[n]) for n in names]))

@@ -57,6 +57,13 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--check-every", type=int, default=10, help="mix in a check item about once in this many tasks")
     c.add_argument("--lease-minutes", type=float, default=10.0, help="how long a handed-out region is held for its annotator")
     c.add_argument("--method", choices=list(METHODS), default="majority", help="label aggregation for the results")
+    c.add_argument("--budget", type=int, default=None, metavar="JUDGMENTS",
+                   help="label a stratified sample of images sized for this many judgments instead of every region")
+    c.add_argument("--regions-per-class", type=int, default=None, help="label a stratified sample of about this many regions per predicted class")
+    c.add_argument("--adaptive", action="store_true", help="two people per region, more (up to --per-region) only where the first two disagree")
+    c.add_argument("--confident-at", type=float, default=0.8, help="a prediction at or above this confidence is confident (sample strata)")
+    c.add_argument("--seed", type=int, default=0, help="seed of the sample's draw")
+    c.add_argument("--settle-window", type=int, default=60, help="judgments over which a class's top rules must stay put to count as settled")
     i = sub.add_parser("invite", help="make, list or revoke invite links")
     i.add_argument("project", type=Path)
     i.add_argument("--name", help="the person's name")
@@ -177,7 +184,7 @@ def _serve(project: Path, port: int | None) -> None:
 
 
 def _campaign(args: argparse.Namespace) -> int:
-    from .campaigns import create_campaign
+    from .campaigns import create_campaign, get_campaign
     from .db import write_session
     from .jobs import find_run
 
@@ -198,8 +205,11 @@ def _campaign(args: argparse.Namespace) -> int:
             raise AppError(f"--lease-minutes must be a number of minutes, e.g. 10; got {args.lease_minutes}.")
         classes = [c.strip() for c in args.classes.split(",") if c.strip()]
         cid = create_campaign(s, name=args.name, run_id=run_id, classes=classes, labels_per_region=args.per_region, instructions=instructions,
-                              lease_seconds=int(args.lease_minutes * 60), check_every=args.check_every, method=args.method)
-    print(f"campaign {cid} ({args.name}) over run {run_id}")
+                              lease_seconds=int(args.lease_minutes * 60), check_every=args.check_every, method=args.method,
+                              budget=args.budget, regions_per_class=args.regions_per_class, adaptive=args.adaptive,
+                              confident_at=args.confident_at, seed=args.seed, settle_window=args.settle_window)
+        n_regions = get_campaign(s, cid).n_regions
+    print(f"campaign {cid} ({args.name}) over run {run_id}: {n_regions} regions")
     return 0
 
 

@@ -149,6 +149,52 @@ class CampaignRegion(Base):
     # An example shown with the instructions, with its answer; examples are never handed out as tasks.
     example_answer: Mapped[StoredEntities | None] = mapped_column(JSON(none_as_null=True), nullable=True)
     n_labels: Mapped[int] = mapped_column(Integer, default=0)  # kept with every label stored or undone
+    # Labels this region wants now, where it differs from the campaign's labels_per_region: 2 in an adaptive
+    # campaign until its first two disagree, 0 once its class is closed; NULL = the campaign's number.
+    quota: Mapped[int | None] = mapped_column(Integer, nullable=True)
+
+
+class CampaignPlan(Base):
+    """How a campaign chose its regions and how many labels each gets (a campaign without one labels all, k each)."""
+
+    __tablename__ = "campaign_plans"
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"), primary_key=True)
+    sampled: Mapped[bool] = mapped_column(Boolean, default=False)  # a stratified sample of the images (campaign_samples)
+    budget: Mapped[int | None] = mapped_column(Integer, nullable=True)  # judgments the sample was sized for
+    regions_per_class: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    confident_at: Mapped[float] = mapped_column(Float, default=0.8)
+    seed: Mapped[int] = mapped_column(Integer, default=0)
+    adaptive: Mapped[bool] = mapped_column(Boolean, default=False)  # base_labels first, up to labels_per_region on disagreement
+    base_labels: Mapped[int] = mapped_column(Integer, default=2)
+    settle_window: Mapped[int] = mapped_column(Integer, default=60)  # judgments over which a class's top rules must hold still
+    closed_classes: Mapped[list[str]] = mapped_column(JSON, default=list)
+
+
+class CampaignStratum(Base):
+    """One stratum of a sampled campaign: its images in the run (population) and how many were drawn."""
+
+    __tablename__ = "campaign_strata"
+    __table_args__ = (UniqueConstraint("campaign_id", "name"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    name: Mapped[str] = mapped_column(String)
+    cls: Mapped[str] = mapped_column(String)  # predicted class
+    kind: Mapped[str] = mapped_column(String)  # confident error | confident correct | other
+    images: Mapped[int] = mapped_column(Integer)
+    regions: Mapped[int] = mapped_column(Integer)
+    drawn: Mapped[int] = mapped_column(Integer)
+
+
+class CampaignSample(Base):
+    """An image drawn into a sampled campaign, with its stratum and inclusion probability (all its regions are labelled)."""
+
+    __tablename__ = "campaign_samples"
+    __table_args__ = (UniqueConstraint("campaign_id", "image_id"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    image_id: Mapped[int] = mapped_column(ForeignKey("images.id"))
+    stratum_id: Mapped[int] = mapped_column(ForeignKey("campaign_strata.id"))
+    inclusion_probability: Mapped[float] = mapped_column(Float)
 
 
 class Lease(Base):

@@ -6,6 +6,7 @@ from .assignment import Task, held_tasks, lease_tasks
 from .checks import check_answers, examples, set_check_answer, set_example
 from .judgments import judgments, raw_labels, region_classes
 from .labelling import region_visible_to, save_label, skip_region, undo_last
+from .plans import PlanInfo, StratumInfo, plan_of, sample_of, strata_of
 from .progress import (
     AnnotatorProgress,
     ClassProgress,
@@ -23,6 +24,7 @@ from .records import (
     run_classes,
     update_campaign,
 )
+from .redundancy import RedundancyCounts, close_class, redundancy_counts, refresh_quotas
 from .synonym_rules import (
     RuleRow,
     add_synonym_rule,
@@ -33,6 +35,15 @@ from .synonym_rules import (
 from .vocabulary import label_counts, recount_words
 
 __all__ = [
+    "PlanInfo",
+    "RedundancyCounts",
+    "StratumInfo",
+    "close_class",
+    "plan_of",
+    "redundancy_counts",
+    "refresh_quotas",
+    "sample_of",
+    "strata_of",
     "AnnotatorProgress",
     "CampaignInfo",
     "ClassProgress",

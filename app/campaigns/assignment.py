@@ -44,11 +44,13 @@ def _unseen(campaign_id: int, person_id: int, now: datetime, region):  # type: i
 
 
 def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n: int) -> list[int]:
-    """The least-labelled regions this person has not seen, whose places are not all held by others' leases.
+    """The least-labelled regions this person has not seen, still short of their quota, whose places are not all held by others' leases.
 
     Walks the (campaign, n_labels, region) index in order and stops at ``n``: no sort of the campaign.
     """
     conn = s.connection()  # Core statements on the session's connection: the hot path skips the ORM layer
+    # A region's own quota where it has one (adaptive labelling: 2, more on disagreement; 0 in a class closed early).
+    wants = func.coalesce(CampaignRegion.quota, c.labels_per_region)
     held_by_others = (
         select(func.count()).where(Lease.campaign_id == c.id, Lease.region_id == CampaignRegion.region_id, Lease.expires_at > now, Lease.person_id != person_id)
         .scalar_subquery()
@@ -56,8 +58,8 @@ def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n:
     q = (
         select(CampaignRegion.region_id)
         .where(CampaignRegion.campaign_id == c.id, CampaignRegion.n_labels < c.labels_per_region, CampaignRegion.check_answer.is_(None),
-               CampaignRegion.example_answer.is_(None),
-               _unseen(c.id, person_id, now, CampaignRegion.region_id), CampaignRegion.n_labels + held_by_others < c.labels_per_region)
+               CampaignRegion.example_answer.is_(None), CampaignRegion.n_labels < wants,
+               _unseen(c.id, person_id, now, CampaignRegion.region_id), CampaignRegion.n_labels + held_by_others < wants)
         .order_by(CampaignRegion.n_labels, CampaignRegion.region_id)
         .limit(n)
     )

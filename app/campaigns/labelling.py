@@ -13,6 +13,7 @@ from analysis.concepts import format_label_text
 from ..errors import ConflictError, ForbiddenError, NotFoundError
 from ..models import CampaignRegion, Label, Lease, Skip, WithdrawnLabel, utcnow
 from .records import CampaignInfo, Entities
+from .redundancy import refresh_quota
 from .vocabulary import add_words, words_of
 
 
@@ -46,7 +47,7 @@ def _as_stored(entities: Entities) -> tuple[tuple[str, tuple[str, ...]], ...]:
 _P = bindparam
 _BY_CLIENT = select(Label.person_id, Label.region_id, Label.entities, Label.unsure).where(Label.client_id == _P("client_id"))
 _WITHDRAWN = select(WithdrawnLabel.id).where(WithdrawnLabel.client_id == _P("client_id"))
-_REGION_HERE = (select(CampaignRegion.id, CampaignRegion.n_labels, CampaignRegion.check_answer.is_not(None))
+_REGION_HERE = (select(CampaignRegion.id, CampaignRegion.n_labels, CampaignRegion.check_answer.is_not(None), CampaignRegion.quota)
                 .where(CampaignRegion.campaign_id == _P("campaign"), CampaignRegion.region_id == _P("region")))
 _LABELLED = select(Label.id).where(Label.campaign_id == _P("campaign"), Label.region_id == _P("region"), Label.person_id == _P("person"))
 _MY_LEASE = select(Lease.expires_at).where(Lease.campaign_id == _P("campaign"), Lease.region_id == _P("region"), Lease.person_id == _P("person"))
@@ -86,7 +87,7 @@ def save_label(
     cr = conn.execute(_REGION_HERE, here).first()
     if cr is None:
         raise NotFoundError(f"region {region_id} is not part of campaign {campaign.id}.")
-    cr_id, n_labels, is_check = cr
+    cr_id, n_labels, is_check, quota = cr
     if conn.scalar(_LABELLED, here) is not None:
         raise ConflictError(f"you have labelled region {region_id} already; undo your last label to change it.")
     mine = conn.scalar(_MY_LEASE, here)
@@ -94,7 +95,9 @@ def save_label(
         # An annotator labels what was handed to them; an ended hold still counts while its place is free (below).
         raise ForbiddenError(f"region {region_id} was not handed to you in campaign {campaign.name!r}; label the region your page shows.")
     if not is_check:
-        k = campaign.labels_per_region
+        k = campaign.labels_per_region if quota is None else quota
+        if k == 0:
+            raise ConflictError(f"region {region_id} belongs to a class closed early in campaign {campaign.name!r}; your next region is ready.")
         if n_labels >= k:
             raise ConflictError(f"region {region_id} has its {k} labels already; your next region is ready.")
         if mine is None or mine <= now:
@@ -112,6 +115,8 @@ def save_label(
     add_words(s, campaign.id, words_of(entities))
     if mine is not None:
         conn.execute(_DROP_MY_LEASE, here)
+    if quota is not None and not is_check:  # an adaptive campaign: the first labels may ask for more
+        refresh_quota(s, campaign_id=campaign.id, region_id=region_id)
     return True
 
 
@@ -141,6 +146,7 @@ def undo_last(s: Session, *, campaign: CampaignInfo, person_id: int, now: dateti
     s.execute(update(CampaignRegion).where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
               .values(n_labels=CampaignRegion.n_labels - 1))
     s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id == person_id))
+    refresh_quota(s, campaign_id=campaign.id, region_id=region_id)
     # Lease it back first in line: the undone region is what the person sees next.
     held = list(s.scalars(select(Lease).where(Lease.campaign_id == campaign.id, Lease.person_id == person_id)))
     for lease in held:

@@ -126,7 +126,7 @@ def campaign_progress(s: Session, campaign: CampaignInfo) -> tuple[list[Annotato
     ]
     by_class = s.execute(
         select(Prediction.predicted, func.count(), func.sum(CampaignRegion.n_labels),
-               func.sum(case((CampaignRegion.n_labels >= campaign.labels_per_region, 1), else_=0)))
+               func.sum(case((CampaignRegion.n_labels >= func.coalesce(CampaignRegion.quota, campaign.labels_per_region), 1), else_=0)))
         .join(RegionRow, RegionRow.id == CampaignRegion.region_id).join(Prediction, Prediction.id == RegionRow.prediction_id)
         .where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.check_answer.is_(None)).group_by(Prediction.predicted)
     ).all()

@@ -13,12 +13,15 @@ from analysis.reliability import METHODS
 from ..errors import ConflictError, InvalidRequestError, NotFoundError
 from ..models import (
     Campaign,
+    CampaignPlan,
     CampaignRegion,
     Prediction,
     RegionRow,
     SaliencyRun,
     utcnow,
 )
+from .plans import check_plan_options, draw_regions
+from .redundancy import refresh_quotas
 
 Entities = list[tuple[str, list[str]]]
 
@@ -86,8 +89,19 @@ def create_campaign(
     lease_seconds: int = 600,
     check_every: int = 10,
     method: str = "majority",
+    budget: int | None = None,
+    regions_per_class: int | None = None,
+    adaptive: bool = False,
+    confident_at: float = 0.8,
+    seed: int = 0,
+    settle_window: int = 60,
 ) -> int:
-    """A campaign over the regions of ``run_id`` whose image was predicted as one of ``classes`` (all if empty)."""
+    """A campaign over the regions of ``run_id`` whose image was predicted as one of ``classes`` (all if empty).
+
+    With a judgment ``budget`` or ``regions_per_class``, a stratified sample of the images is labelled
+    instead of all (see campaigns.plans); with ``adaptive``, each region gets 2 labels and up to
+    ``labels_per_region`` only where the first two disagree (see campaigns.redundancy).
+    """
     name = " ".join(name.split())
     if not 1 <= len(name) <= 80:
         raise InvalidRequestError("a campaign needs a name of 1-80 characters.")
@@ -96,6 +110,8 @@ def create_campaign(
     if s.get(SaliencyRun, run_id) is None:
         raise NotFoundError(f"saliency run {run_id} does not exist.")
     _check_settings(labels_per_region, lease_seconds, check_every, method)
+    check_plan_options(budget=budget, regions_per_class=regions_per_class, labels_per_region=labels_per_region, adaptive=adaptive,
+                       confident_at=confident_at, settle_window=settle_window)
     available = run_classes(s, run_id)
     classes = sorted(set(classes or []))
     unknown = [c for c in classes if c not in available]
@@ -107,13 +123,22 @@ def create_campaign(
                  lease_seconds=lease_seconds, check_every=check_every, method=method)
     s.add(c)
     s.flush()
-    regions = select(RegionRow.id).join(Prediction, Prediction.id == RegionRow.prediction_id).where(Prediction.run_id == run_id)
-    if classes:
-        regions = regions.where(Prediction.predicted.in_(classes))
-    ids = list(s.scalars(regions.order_by(RegionRow.id)))
+    sampled = budget is not None or regions_per_class is not None
+    if sampled or adaptive:
+        s.add(CampaignPlan(campaign_id=c.id, sampled=sampled, budget=budget, regions_per_class=regions_per_class, confident_at=confident_at, seed=seed,
+                           adaptive=adaptive, base_labels=2, settle_window=settle_window, closed_classes=[]))
+    if sampled:
+        ids = draw_regions(s, campaign_id=c.id, run_id=run_id, classes=classes, budget=budget, regions_per_class=regions_per_class,
+                           labels_per_region=labels_per_region, adaptive=adaptive, confident_at=confident_at, seed=seed)
+    else:
+        regions = select(RegionRow.id).join(Prediction, Prediction.id == RegionRow.prediction_id).where(Prediction.run_id == run_id)
+        if classes:
+            regions = regions.where(Prediction.predicted.in_(classes))
+        ids = list(s.scalars(regions.order_by(RegionRow.id)))
     if not ids:
         raise InvalidRequestError(f"run {run_id} has no region in the chosen classes; nothing to label.")
-    s.execute(insert(CampaignRegion), [{"campaign_id": c.id, "region_id": r, "n_labels": 0} for r in ids])
+    quota = 2 if adaptive else None
+    s.execute(insert(CampaignRegion), [{"campaign_id": c.id, "region_id": r, "n_labels": 0, "quota": quota} for r in ids])
     c.n_regions = len(ids)
     return c.id
 
@@ -130,8 +155,14 @@ def update_campaign(s: Session, campaign_id: int, *, instructions: str | None = 
         raise InvalidRequestError("instructions are limited to 20,000 characters.")
     if instructions is not None:
         c.instructions = instructions
-    if labels_per_region is not None:
+    if labels_per_region is not None and labels_per_region != c.labels_per_region:
+        plan = s.get(CampaignPlan, campaign_id)
+        if plan is not None and plan.adaptive and labels_per_region < 3:
+            raise InvalidRequestError(f"an adaptive campaign asks 2 people and more on disagreement: labels per region must be 3 or more; got {labels_per_region}.")
         c.labels_per_region = labels_per_region
+        if plan is not None:
+            s.flush()
+            refresh_quotas(s, campaign_id)
     if method is not None:
         c.method = method
     if expectations is not None:

@@ -12,7 +12,7 @@ from analysis.concepts import normalise_label
 from analysis.synonyms import Merge, Split, SynonymRules, build_rules
 
 from ..errors import InvalidRequestError, NotFoundError
-from ..models import SynonymRule
+from ..models import CampaignPlan, SynonymRule
 
 
 def synonym_rules(s: Session, campaign_id: int) -> tuple[SynonymRules, list[tuple[str, str]]]:
@@ -45,7 +45,16 @@ def add_synonym_rule(s: Session, *, campaign_id: int, kind: str, source: str, ta
         synonym_rules(s, campaign_id)
     except Exception as exc:
         raise InvalidRequestError(str(exc)) from None
+    _rules_changed(s, campaign_id)
     return row.id
+
+
+def _rules_changed(s: Session, campaign_id: int) -> None:
+    """An adaptive campaign's regions may agree or disagree differently under the new rules."""
+    from .redundancy import refresh_quotas  # redundancy reads the rules from here
+
+    if s.get(CampaignPlan, campaign_id) is not None:
+        refresh_quotas(s, campaign_id)
 
 
 @dataclass(frozen=True)
@@ -70,3 +79,5 @@ def delete_synonym_rule(s: Session, *, campaign_id: int, rule_id: int) -> None:
     if row is None or row.campaign_id != campaign_id:
         raise NotFoundError(f"rule {rule_id} does not exist in campaign {campaign_id}.")
     s.delete(row)
+    s.flush()
+    _rules_changed(s, campaign_id)

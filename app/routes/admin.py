@@ -56,16 +56,32 @@ def create_campaign(
     name: Annotated[str, Form()], run_id: Annotated[int, Form(ge=0, le=MAX_ID)], labels_per_region: Annotated[int, Form(ge=0, le=MAX_ID)] = 3,
     classes: Annotated[list[str] | None, Form()] = None, instructions: Annotated[str, Form()] = "",
     lease_minutes: Annotated[float, Form(allow_inf_nan=False)] = 10, check_every: Annotated[int, Form(ge=0, le=MAX_ID)] = 10, method: Annotated[str, Form()] = "majority",
+    budget: Annotated[str, Form(max_length=20)] = "", regions_per_class: Annotated[str, Form(max_length=20)] = "",
+    confident_at: Annotated[float, Form(allow_inf_nan=False)] = 0.8, adaptive: Annotated[str, Form(max_length=10)] = "",
 ) -> Response:
-    """Create a campaign over a run's regions."""
+    """Create a campaign over a run's regions, or over a stratified sample of its images sized by a budget."""
     try:
         cid = campaigns.create_campaign(s, name=name, run_id=run_id, classes=classes or [], labels_per_region=labels_per_region,
-                                        instructions=instructions, lease_seconds=int(lease_minutes * 60), check_every=check_every, method=method)
+                                        instructions=instructions, lease_seconds=int(lease_minutes * 60), check_every=check_every, method=method,
+                                        budget=_optional_count(budget, "the judgment budget"),
+                                        regions_per_class=_optional_count(regions_per_class, "regions per class"),
+                                        adaptive=bool(adaptive), confident_at=confident_at)
     except AppError as exc:
         s.rollback()
-        form = {"name": name, "instructions": instructions, "labels_per_region": str(labels_per_region)}
+        form = {"name": name, "instructions": instructions, "labels_per_region": str(labels_per_region), "budget": budget,
+                "regions_per_class": regions_per_class, "adaptive": adaptive}
         return _admin_page(request, s, viewer, error=exc.message, form=form, status_code=exc.status_code)
     return RedirectResponse(f"/admin/campaigns/{cid}", status_code=303)
+
+
+def _optional_count(raw: str, what: str) -> int | None:
+    """A whole number typed in a form field, or None when left empty."""
+    raw = raw.strip().replace(",", "")
+    if not raw:
+        return None
+    if not re.fullmatch(r"[0-9]{1,9}", raw):
+        raise InvalidRequestError(f"{what} must be a whole number of at most 9 digits, e.g. 3000; got {raw[:20]!r}.")
+    return int(raw)
 
 
 @router.post("/invites")
@@ -125,7 +141,9 @@ def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: Ad
     preds = dict(s.execute(select(RegionRow.id, Prediction.predicted).join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(sample + list(answers)))).all())
     context = {"campaign": c, "annotators": annotators, "classes": classes, "answers": answers, "sample": sample, "predicted": preds,
                "examples": campaigns.examples(s, campaign_id),
-               "methods": METHODS, "careless_seconds": settings.careless_seconds}
+               "methods": METHODS, "careless_seconds": settings.careless_seconds,
+               "plan": campaigns.plan_of(s, campaign_id), "strata": campaigns.strata_of(s, campaign_id),
+               "redundancy": campaigns.redundancy_counts(s, campaign_id), "judgments_spent": sum(a.labels for a in annotators)}
     return render(request, "campaign_admin.html", context, viewer=viewer)
 
 

@@ -87,10 +87,12 @@ def compute_results(s: Session, campaign: CampaignInfo, *, threshold: float = 0.
     found = campaigns.judgments(s, campaign.id)
     if not found:
         raise NotFoundError(f"campaign {campaign.name!r} has no labels yet; label some regions first.")
+    design = campaigns.sample_of(s, campaign.id)
     made = campaign_table(
         found, store.prediction_frame(s, campaign.run_id), rules=campaigns.synonym_rules(s, campaign.id)[0],
         region_class=campaigns.region_classes(s, campaign.id), check_answers=campaigns.check_answers(s, campaign.id),
         classes=campaign.classes, method=_method(campaign), threshold=threshold,
+        sample=design[0] if design else None, population=design[1] if design else None,
     )
     run = s.get(SaliencyRun, campaign.run_id)
     return Results(campaign, made.table, made.n_labelled_regions, str((run.provenance or {}).get("model_sha256", "")) if run else "")

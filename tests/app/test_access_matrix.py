@@ -57,6 +57,8 @@ MATRIX: dict[tuple[str, str], str] = {
     ("GET", "/campaigns/{campaign_id}/synonyms"): "reviewer",
     ("POST", "/campaigns/{campaign_id}/synonyms"): "analyst",
     ("POST", "/campaigns/{campaign_id}/synonyms/{rule_id}/delete"): "analyst",
+    ("GET", "/campaigns/{campaign_id}/stopping"): "reviewer",
+    ("POST", "/campaigns/{campaign_id}/classes/close"): "analyst",
 }
 LEVEL = {"public": -1, "viewer": 0, "anonymous": -1, "annotator": 1, "reviewer": 2, "analyst": 3, "admin": 4}
 

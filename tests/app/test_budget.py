@@ -1,0 +1,193 @@
+"""Campaigns within a labelling budget: the stored sample, adaptive redundancy, closing a class, weighted results, the pages."""
+
+from __future__ import annotations
+
+from collections import Counter
+from pathlib import Path
+
+import pytest
+from fastapi.testclient import TestClient
+from sqlalchemy import select
+
+from app import campaigns
+from app.cli import main
+from app.db import make_engine, session_factory, write_session
+from app.errors import ConflictError, InvalidRequestError
+from app.main import create_app
+from app.models import CampaignRegion, CampaignSample, CampaignStratum, Label, Prediction, RegionRow
+from app.people import ensure_person
+from app.services.campaign_analysis import campaign_results, compute_results
+from app.settings import Settings
+
+from .conftest import join
+
+
+@pytest.fixture()
+def factory(project: Path):  # type: ignore[no-untyped-def]
+    engine = make_engine(project)
+    yield session_factory(engine)
+    engine.dispose()
+
+
+def _campaign(factory, name: str = "c", k: int = 3, **kw: object) -> campaigns.CampaignInfo:  # type: ignore[no-untyped-def]
+    with write_session(factory) as s:
+        cid = campaigns.create_campaign(s, name=name, run_id=1, labels_per_region=k, **kw)  # type: ignore[arg-type]
+        return campaigns.get_campaign(s, cid)
+
+
+def _person(factory, name: str) -> int:  # type: ignore[no-untyped-def]
+    with write_session(factory) as s:
+        return ensure_person(s, name, "annotator")
+
+
+def _work(factory, c, pid: int, says) -> list[int]:  # type: ignore[no-untyped-def]
+    """Label until nothing is left for this person, naming ``says(region)``; the regions labelled, in order."""
+    done = []
+    while len(done) < 1000:
+        with write_session(factory) as s:
+            tasks = campaigns.lease_tasks(s, campaign=c, person_id=pid)
+            if not tasks:
+                return done
+            rid = tasks[0].region_id
+            campaigns.save_label(s, campaign=c, region_id=rid, person_id=pid, entities=says(rid), unsure=False, client_id=f"{pid}-{rid}",
+                                 seconds_spent=1.0)
+            done.append(rid)
+    return done
+
+
+def test_a_sampled_campaign_stores_its_strata_and_inclusion_probabilities(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, regions_per_class=2, seed=5)
+    with factory() as s:
+        strata = {st.id: st for st in s.scalars(select(CampaignStratum).where(CampaignStratum.campaign_id == c.id))}
+        drawn = list(s.scalars(select(CampaignSample).where(CampaignSample.campaign_id == c.id)))
+        images_in_run = len(list(s.scalars(select(Prediction.id).where(Prediction.run_id == 1))))
+        regions = set(s.scalars(select(CampaignRegion.region_id).where(CampaignRegion.campaign_id == c.id)))
+        drawn_images = {d.image_id for d in drawn}
+        of_drawn = set(s.scalars(select(RegionRow.id).join(Prediction, Prediction.id == RegionRow.prediction_id)
+                                 .where(Prediction.run_id == 1, Prediction.image_id.in_(drawn_images))))
+    assert sum(st.images for st in strata.values()) == images_in_run  # every image of the run belongs to one stratum
+    assert regions == of_drawn  # all the regions of the drawn images, and no others
+    per = Counter(d.stratum_id for d in drawn)
+    for d in drawn:
+        st = strata[d.stratum_id]
+        assert d.inclusion_probability == pytest.approx(per[d.stratum_id] / st.images)
+        assert st.drawn == per[d.stratum_id]
+    assert len(drawn) < images_in_run  # a sample, not everything
+    with write_session(factory) as s:  # the same seed draws the same sample
+        again = campaigns.create_campaign(s, name="again", run_id=1, labels_per_region=3, regions_per_class=2, seed=5)
+        assert set(s.scalars(select(CampaignSample.image_id).where(CampaignSample.campaign_id == again))) == drawn_images
+
+
+def test_plan_options_are_checked(factory) -> None:  # type: ignore[no-untyped-def]
+    with write_session(factory) as s:
+        with pytest.raises(InvalidRequestError, match="not both"):
+            campaigns.create_campaign(s, name="x", run_id=1, budget=100, regions_per_class=3)
+    with write_session(factory) as s:
+        with pytest.raises(InvalidRequestError, match="labels per region to 3"):
+            campaigns.create_campaign(s, name="x", run_id=1, labels_per_region=2, adaptive=True)
+    with write_session(factory) as s:
+        with pytest.raises(InvalidRequestError, match="between 0 and 1"):
+            campaigns.create_campaign(s, name="x", run_id=1, budget=100, confident_at=1.5)
+
+
+def test_a_third_person_is_asked_only_where_the_first_two_disagree(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, adaptive=True)
+    with factory() as s:
+        regions = sorted(s.scalars(select(CampaignRegion.region_id).where(CampaignRegion.campaign_id == c.id)))
+    disputed = set(regions[::3])
+    # "Cap" and "caps" normalise to the same entity: agreement after normalisation, not on the raw text.
+    _work(factory, c, _person(factory, "ann"), lambda r: [("cap", ["red"])])
+    _work(factory, c, _person(factory, "bob"), lambda r: [("tag", [])] if r in disputed else [("Caps", [])])
+    third = _work(factory, c, _person(factory, "cy"), lambda r: [("cap", [])])
+    assert set(third) == disputed
+    assert _work(factory, c, _person(factory, "dee"), lambda r: [("cap", [])]) == []  # all quotas met
+    with factory() as s:
+        per_region = Counter(s.scalars(select(Label.region_id).where(Label.campaign_id == c.id)))
+        counts = campaigns.redundancy_counts(s, c.id)
+    assert {r: n for r, n in per_region.items() if n == 3}.keys() == disputed
+    assert all(per_region[r] == 2 for r in regions if r not in disputed)
+    assert counts is not None and counts.extra_wanted == len(disputed) and counts.extra_done == len(disputed) and counts.extra_waiting == 0
+
+
+def test_a_synonym_rule_that_makes_two_labels_agree_withdraws_the_third_place(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, adaptive=True)
+    _work(factory, c, _person(factory, "ann"), lambda r: [("cap", [])])
+    _work(factory, c, _person(factory, "bob"), lambda r: [("lid", [])])
+    with factory() as s:
+        assert campaigns.redundancy_counts(s, c.id).extra_waiting == c.n_regions  # type: ignore[union-attr]
+    with write_session(factory) as s:
+        campaigns.add_synonym_rule(s, campaign_id=c.id, kind="merge", source="lid", target="cap")
+    assert _work(factory, c, _person(factory, "cy"), lambda r: [("cap", [])]) == []
+
+
+def test_a_closed_class_hands_out_no_more_tasks(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, k=2)
+    region_class = campaigns.region_classes(factory(), c.id)
+    assert len(set(region_class.values())) > 1
+    pid = _person(factory, "ann")
+    with write_session(factory) as s:
+        held = campaigns.lease_tasks(s, campaign=c, person_id=pid)
+        closed = region_class[held[0].region_id]
+        campaigns.close_class(s, campaign_id=c.id, cls=closed)
+    done = _work(factory, c, pid, lambda r: [("cap", [])])
+    assert done and all(region_class[r] != closed for r in done)
+    with write_session(factory) as s:  # a region of the closed class held before closing is refused at submit
+        with pytest.raises(ConflictError, match="closed early"):
+            campaigns.save_label(s, campaign=c, region_id=held[0].region_id, person_id=pid, entities=[("cap", [])], unsure=False, client_id="late",
+                                 seconds_spent=1.0)
+    with write_session(factory) as s:
+        campaigns.close_class(s, campaign_id=c.id, cls=closed, closed=False)
+    again = _work(factory, c, pid, lambda r: [("cap", [])])
+    assert again and all(region_class[r] == closed for r in again)
+    with write_session(factory) as s:
+        with pytest.raises(InvalidRequestError, match="no region of class"):
+            campaigns.close_class(s, campaign_id=c.id, cls="no such class")
+
+
+def test_results_of_a_sampled_campaign_are_weighted_and_say_what_they_stand_for(factory) -> None:  # type: ignore[no-untyped-def]
+    c = _campaign(factory, k=2, regions_per_class=2, seed=1)
+    for name in ("ann", "bob"):
+        _work(factory, c, _person(factory, name), lambda r: [("cap", [])] if r % 2 else [("tag", [])])
+    full = _campaign(factory, name="full", k=2)
+    for name in ("ann", "bob"):
+        _work(factory, full, _person(factory, name), lambda r: [("cap", [])] if r % 2 else [("tag", [])])
+    with factory() as s:
+        res = compute_results(s, c)
+        plain = campaign_results(s, full.id)
+        strata = list(s.scalars(select(CampaignStratum).where(CampaignStratum.campaign_id == c.id)))
+    assert res.table.sampled and not plain.table.sampled
+    assert res.table.stands_for == sum(st.images for st in strata if st.drawn > 0)
+    assert len(res.table) == sum(st.drawn for st in strata)
+    rules = res.table.rules(min_support=0.01).rules
+    assert {"images_estimated", "confidence_high", "lift_low"} <= set(rules.columns)
+    assert plain.table.stands_for == len(plain.table)
+    assert "images_estimated" not in plain.table.rules(min_support=0.01).rules.columns
+    assert "sampling weight" in res.table.frame().columns
+
+
+def test_pages_budget_form_stopping_and_closing(project: Path) -> None:
+    with TestClient(create_app(Settings(project_dir=project))) as client:
+        csrf = join(client, "root", "admin")
+        r = client.post("/admin/campaigns", data={"csrf": csrf, "name": "sampled", "run_id": "1", "labels_per_region": "3", "budget": "12",
+                                                  "adaptive": "1"}, follow_redirects=False)
+        assert r.status_code == 303, r.text
+        cid = int(r.headers["location"].rsplit("/", 1)[1])
+        page = client.get(f"/admin/campaigns/{cid}")
+        assert page.status_code == 200
+        assert "sized for a budget of 12 judgments" in page.text and "data-strata" in page.text and "data-extra-waiting" in page.text
+        bad = client.post("/admin/campaigns", data={"csrf": csrf, "name": "bad", "run_id": "1", "budget": "lots"})
+        assert bad.status_code == 422 and "whole number" in bad.text
+        stop = client.get(f"/campaigns/{cid}/stopping")
+        assert stop.status_code == 200 and "no labels yet" in stop.text
+        cls = stop.context["status"].classes[0].cls  # type: ignore[attr-defined]
+        r = client.post(f"/campaigns/{cid}/classes/close", data={"csrf": csrf, "cls": cls}, follow_redirects=False)
+        assert r.status_code == 303
+        assert "data-closed" in client.get(f"/campaigns/{cid}/stopping").text
+        assert client.post(f"/campaigns/{cid}/classes/close", data={"csrf": csrf, "cls": "nope"}).status_code == 422
+
+
+def test_cli_makes_a_campaign_with_a_budget(project: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["campaign", str(project), "--name", "sampled", "--budget", "10", "--adaptive"]) == 0
+    assert "regions" in capsys.readouterr().out
+    assert main(["campaign", str(project), "--name", "bad", "--budget", "10", "--regions-per-class", "3"]) == 1
+    assert "not both" in capsys.readouterr().err
