@@ -36,6 +36,12 @@ def _heatmap(values: pd.DataFrame, *, title: str, fmt: str, cmap: str, vmin: flo
 def concept_rates(table: ConceptTable, target: Target = "predicted", top: int = 20) -> pd.DataFrame:
     """Share of each class's images showing each of the ``top`` most common concepts (concepts x classes)."""
     classes = table.targets(target)
+    if table.design is not None:  # a sample: each image counts for its weight
+        w = pd.Series(table.design.weights, index=table.presence.index)
+        weighted = table.presence.astype(float).mul(w, axis=0)
+        rates = weighted.groupby(classes.to_numpy()).sum().div(w.groupby(classes.to_numpy()).sum(), axis=0).T
+        order = weighted.sum().sort_values(ascending=False).index[:top]
+        return rates.loc[order]
     rates = table.presence.groupby(classes.to_numpy()).mean().T
     order = table.presence.sum().sort_values(ascending=False).index[:top]
     return rates.loc[order]
@@ -49,7 +55,9 @@ def lift_plot(table: ConceptTable, target: Target = "predicted", top: int = 20) 
     """Lift of "concept => class" (share of the concept's images in the class / the class's share of all images)."""
     classes = table.targets(target)
     rates = concept_rates(table, target, top)
-    prior = classes.value_counts(normalize=True)
-    in_class = table.presence.loc[:, rates.index].astype(float).groupby(classes.to_numpy()).sum().T
-    lift = in_class.div(table.presence.loc[:, rates.index].sum(), axis=0).div(prior.reindex(in_class.columns), axis=1)
+    w = pd.Series(table.design.weights if table.design is not None else 1.0, index=table.presence.index)  # a sample's weights, else 1
+    prior = w.groupby(classes.to_numpy()).sum() / w.sum()
+    present = table.presence.loc[:, rates.index].astype(float).mul(w, axis=0)
+    in_class = present.groupby(classes.to_numpy()).sum().T
+    lift = in_class.div(present.sum(), axis=0).div(prior.reindex(in_class.columns), axis=1)
     return _heatmap(lift, title=f"Lift of concept => {target} class (1 = no association)", fmt=".1f", cmap="PuOr_r", vmin=0, vmax=2)
