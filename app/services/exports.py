@@ -41,7 +41,9 @@ def rules_export(res: Results, fmt: str, *, target: str = "predicted", max_len: 
     rules = campaign_rules(res, target=target, max_len=max_len, min_support=min_support, prune=prune)
     if project is not None:
         rules = replace(rules, rules=rules_with_reliance(project, res, rules.rules))
-    about = {"campaign": res.campaign.name, "target": target, "aggregation": res.method}
+    about: dict[str, object] = {"campaign": res.campaign.name, "target": target, "aggregation": res.method}
+    if res.table.sampled:  # the rates are weighted estimates for this many images
+        about["sample_stands_for_images"] = res.table.stands_for
     body = json.dumps(rules_document(rules, **about), indent=1).encode() if fmt == "json" else export_frame(rules.rules, fmt, about=about)
     return Export(body, f"rules-campaign-{res.campaign.id}-{target}.{fmt}", MEDIA[fmt])
 

@@ -191,3 +191,25 @@ def test_cli_makes_a_campaign_with_a_budget(project: Path, capsys: pytest.Captur
     assert "regions" in capsys.readouterr().out
     assert main(["campaign", str(project), "--name", "bad", "--budget", "10", "--regions-per-class", "3"]) == 1
     assert "not both" in capsys.readouterr().err
+
+
+def test_results_page_and_exports_of_a_sampled_campaign(project: Path) -> None:
+    engine = make_engine(project)
+    f = session_factory(engine)
+    c = _campaign(f, k=2, regions_per_class=2, seed=2)
+    for name in ("ann", "bob"):
+        _work(f, c, _person(f, name), lambda r: [("cap", [])] if r % 3 else [("tag", ["yellow"])])
+    with f() as s:
+        stands_for = compute_results(s, c).table.stands_for
+    engine.dispose()
+    with TestClient(create_app(Settings(project_dir=project))) as client:
+        join(client, "rev", "reviewer")
+        page = client.get(f"/campaigns/{c.id}/results?min_support=0.01")
+        assert page.status_code == 200
+        assert f'<strong data-stands-for>{stands_for:,} images</strong>' in page.text
+        doc = client.get(f"/campaigns/{c.id}/exports/rules.json?min_support=0.01").json()
+        assert doc["sample_stands_for_images"] == stands_for
+        assert all("images_estimated" in r for r in doc["rules"])
+        assert "sampling weight" in client.get(f"/campaigns/{c.id}/exports/concepts.csv").text.splitlines()[0]
+        assert client.get(f"/campaigns/{c.id}/plots/frequency.png").status_code == 200
+        assert client.get(f"/campaigns/{c.id}/stopping").status_code == 200
