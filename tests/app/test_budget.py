@@ -213,3 +213,25 @@ def test_results_page_and_exports_of_a_sampled_campaign(project: Path) -> None:
         assert "sampling weight" in client.get(f"/campaigns/{c.id}/exports/concepts.csv").text.splitlines()[0]
         assert client.get(f"/campaigns/{c.id}/plots/frequency.png").status_code == 200
         assert client.get(f"/campaigns/{c.id}/stopping").status_code == 200
+
+
+def test_the_budget_revision_leaves_existing_campaigns_as_they_were(tmp_path: Path) -> None:
+    """A project made before campaign plans: every region keeps the campaign's k (quota NULL), and a sample can be drawn there."""
+    import shutil
+    import sqlite3
+
+    project = tmp_path / "old"
+    project.mkdir()
+    shutil.copyfile(Path(__file__).parent / "data" / "schema3_project" / "heedmap.db", project / "heedmap.db")
+    engine = make_engine(project)
+    conn = sqlite3.connect(project / "heedmap.db")
+    assert {r[0] for r in conn.execute("SELECT quota FROM campaign_regions")} == {None}
+    assert conn.execute("SELECT COUNT(*) FROM campaign_plans").fetchone() == (0,)
+    conn.close()
+    f = session_factory(engine)
+    with write_session(f) as s:
+        (c,) = campaigns.list_campaigns(s)
+        assert campaigns.plan_of(s, c.id) is None and campaigns.sample_of(s, c.id) is None
+        cid = campaigns.create_campaign(s, name="sampled after upgrade", run_id=c.run_id, labels_per_region=3, regions_per_class=1, adaptive=True)
+        assert campaigns.plan_of(s, cid) is not None
+    engine.dispose()
