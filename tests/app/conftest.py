@@ -1,5 +1,6 @@
 from __future__ import annotations
 
+import sqlite3
 import uuid
 from collections.abc import Iterator
 from datetime import datetime
@@ -82,3 +83,19 @@ def label_some(project: Path, campaign_id: int) -> None:
                 campaigns.save_label(s, campaign=c, region_id=task.region_id, person_id=person, entities=[("cap", ["red"])], unsure=False,
                                      client_id=uuid.uuid4().hex, seconds_spent=None)
     engine.dispose()
+
+
+def as_schema_3(db: sqlite3.Connection) -> None:
+    """Take off a project's database what later revisions added (tables and columns schema 3 did not have), so a
+    test can make a project of an older schema from a fresh one."""
+    from app.migrations import schema_3
+
+    tables = [r[0] for r in db.execute("SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%'")]
+    for name in tables:
+        table = schema_3.metadata.tables.get(name)
+        if table is None:
+            db.execute(f'DROP TABLE "{name}"')
+            continue
+        for (column,) in db.execute(f'SELECT name FROM pragma_table_info("{name}")').fetchall():
+            if column not in table.columns:
+                db.execute(f'ALTER TABLE "{name}" DROP COLUMN "{column}"')

@@ -11,6 +11,8 @@ from app import campaigns
 from app.db import make_engine, session_factory
 from app.models import Label, Person
 
+from .conftest import as_schema_3
+
 # The schema 1 tables that held people and labels, as that version created them.
 V1_TABLES = """
 CREATE TABLE annotators (id INTEGER NOT NULL, name VARCHAR NOT NULL, created_at DATETIME NOT NULL, PRIMARY KEY (id), UNIQUE (name));
@@ -25,7 +27,8 @@ CREATE TABLE annotations (
 def _make_v1(project: Path) -> None:
     """Turn a fresh project into what schema 1 looked like, with two people's labels."""
     db = sqlite3.connect(project / "heedmap.db")
-    for table in ("alembic_version", "word_counts", "withdrawn_labels", "labels", "skips", "leases", "campaign_regions", "synonym_rules", "invites", "campaigns", "people", "secrets"):
+    as_schema_3(db)
+    for table in ("word_counts", "withdrawn_labels", "labels", "skips", "leases", "campaign_regions", "synonym_rules", "invites", "campaigns", "people", "secrets"):
         db.execute(f"DROP TABLE IF EXISTS {table}")
     for column in ("model_path", "sidecar_path"):
         db.execute(f"ALTER TABLE saliency_runs DROP COLUMN {column}")
