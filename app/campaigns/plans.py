@@ -18,6 +18,7 @@ from ..models import CampaignPlan, CampaignSample, CampaignStratum, ImageRow, Pr
 # the admin page shows the judgments actually spent.
 ASSUMED_DISAGREEMENT = 0.5
 MAX_BUDGET = 10_000_000
+SETTLE_WINDOW = 60  # judgments a class's top rules must hold still by default
 
 
 @dataclass(frozen=True)

@@ -20,7 +20,7 @@ from ..models import (
     SaliencyRun,
     utcnow,
 )
-from .plans import check_plan_options, draw_regions
+from .plans import SETTLE_WINDOW, check_plan_options, draw_regions
 from .redundancy import refresh_quotas
 
 Entities = list[tuple[str, list[str]]]
@@ -94,7 +94,7 @@ def create_campaign(
     adaptive: bool = False,
     confident_at: float = 0.8,
     seed: int = 0,
-    settle_window: int = 60,
+    settle_window: int = SETTLE_WINDOW,
 ) -> int:
     """A campaign over the regions of ``run_id`` whose image was predicted as one of ``classes`` (all if empty).
 
@@ -124,7 +124,7 @@ def create_campaign(
     s.add(c)
     s.flush()
     sampled = budget is not None or regions_per_class is not None
-    if sampled or adaptive:
+    if sampled or adaptive or settle_window != SETTLE_WINDOW:
         s.add(CampaignPlan(campaign_id=c.id, sampled=sampled, budget=budget, regions_per_class=regions_per_class, confident_at=confident_at, seed=seed,
                            adaptive=adaptive, base_labels=2, settle_window=settle_window, closed_classes=[]))
     if sampled:

@@ -22,6 +22,7 @@ from analysis.synonyms import SynonymRules
 from ..errors import InvalidRequestError, NotFoundError
 from ..models import Campaign, CampaignPlan, CampaignRegion, Label, Lease, Person, Prediction, RegionRow
 from .judgments import entities_of
+from .plans import SETTLE_WINDOW
 from .synonym_rules import synonym_rules
 
 
@@ -117,7 +118,7 @@ def close_class(s: Session, *, campaign_id: int, cls: str, closed: bool = True) 
         raise InvalidRequestError(f"campaign {campaign.name!r} has no region of class {cls!r}; its classes are {sorted(present)}.")
     plan = _plan(s, campaign_id)
     if plan is None:
-        plan = CampaignPlan(campaign_id=campaign_id, sampled=False, adaptive=False, base_labels=2, settle_window=60, confident_at=0.8, seed=0,
+        plan = CampaignPlan(campaign_id=campaign_id, sampled=False, adaptive=False, base_labels=2, settle_window=SETTLE_WINDOW, confident_at=0.8, seed=0,
                             closed_classes=[])
         s.add(plan)
     now = set(plan.closed_classes or [])

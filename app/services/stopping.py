@@ -13,6 +13,7 @@ from analysis.stopping import ClassSettling, settling
 
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
+from ..campaigns.plans import SETTLE_WINDOW
 from .campaign_analysis import ResultsCache, _method
 
 TOP_RULES = 3
@@ -40,7 +41,7 @@ def _rules_at(s: Session, c: CampaignInfo, n: int, *, min_support: float, max_le
 
 def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int) -> StoppingStatus:
     plan = campaigns.plan_of(s, c.id)
-    window = plan.settle_window if plan else 60
+    window = plan.settle_window if plan else SETTLE_WINDOW
     closed = plan.closed_classes if plan else ()
     n = len(campaigns.judgments(s, c.id))
     classes = sorted(set(campaigns.region_classes(s, c.id).values()))

@@ -213,6 +213,8 @@ def test_results_page_and_exports_of_a_sampled_campaign(project: Path) -> None:
         assert "sampling weight" in client.get(f"/campaigns/{c.id}/exports/concepts.csv").text.splitlines()[0]
         assert client.get(f"/campaigns/{c.id}/plots/frequency.png").status_code == 200
         assert client.get(f"/campaigns/{c.id}/stopping").status_code == 200
+        for page in ("ask", "errors", "compare", "expectations"):  # pages that count the sample itself say so
+            assert "data-sample-note" in client.get(f"/campaigns/{c.id}/{page}").text, page
 
 
 def test_the_budget_revision_leaves_existing_campaigns_as_they_were(tmp_path: Path) -> None:
@@ -235,3 +237,28 @@ def test_the_budget_revision_leaves_existing_campaigns_as_they_were(tmp_path: Pa
         cid = campaigns.create_campaign(s, name="sampled after upgrade", run_id=c.run_id, labels_per_region=3, regions_per_class=1, adaptive=True)
         assert campaigns.plan_of(s, cid) is not None
     engine.dispose()
+
+
+def test_consistent_labels_settle_each_class_and_a_short_campaign_does_not(factory) -> None:  # type: ignore[no-untyped-def]
+    from app.services.stopping import stopping_status
+
+    c = _campaign(factory, k=2, settle_window=10)
+    region_class = campaigns.region_classes(factory(), c.id)
+    says = lambda r: [(f"mark of {region_class[r]}", [])]  # noqa: E731  every region of a class shows its own mark
+    _work(factory, c, _person(factory, "ann"), says)
+    with factory() as s:
+        early = stopping_status(s, c, min_support=0.01)
+    _work(factory, c, _person(factory, "bob"), says)
+    with factory() as s:
+        late = stopping_status(s, c, min_support=0.01)
+    assert late.judgments == 2 * len(region_class) >= 2 * late.window
+    assert len(late.checkpoints) == 2
+    for st in late.classes:  # one rule per class, confidence 1, the same at every checkpoint
+        assert st.top == (f"mark of {st.cls}",) and st.settled, st
+    assert early.judgments == len(region_class)
+    # a window longer than the campaign: nothing to compare with yet
+    d = _campaign(factory, name="d", k=2, settle_window=10_000)
+    _work(factory, d, _person(factory, "cy"), says)
+    with factory() as s:
+        short = stopping_status(s, d, min_support=0.01)
+    assert short.checkpoints == () and all(not st.settled and "too few judgments" in st.reason for st in short.classes)
