@@ -80,8 +80,7 @@ def _resample_weights(u: int, n_boot: int, seed: int) -> tuple[npt.NDArray[np.fl
 
     Each resample draws ``u`` unit indices uniformly with replacement and counts them: the same
     multinomial distribution as ``rng.multinomial(u, [1/u] * u)``, several times cheaper to draw.
-    Kept for the last few sizes: per-concept alphas over the same regions resample the same
-    units with the same seed, and drawing the weights is most of a bootstrap's time.
+    Kept for the last few sizes: alphas over the same units resample them with the same seed.
     """
     rng = np.random.default_rng(seed)
     chunks = []
@@ -94,21 +93,49 @@ def _resample_weights(u: int, n_boot: int, seed: int) -> tuple[npt.NDArray[np.fl
     return tuple(chunks)
 
 
+def _distinct_rows(table: npt.NDArray[np.float64]) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.int64]] | None:
+    """The distinct rows of a narrow table of whole counts and how many times each occurs; None for a wide one.
+
+    Each row becomes one integer, its counts as digits, and the integers are grouped (``np.unique(axis=0)``
+    sorts the rows as records instead, a hundred times slower). A table too wide for that gives None.
+    """
+    whole = table.astype(np.int64)
+    if whole.size == 0 or not np.array_equal(whole, table) or whole.shape[1] * np.log2(int(whole.max()) + 2) >= 62:
+        return None
+    mix = (int(whole.max()) + 1) ** np.arange(whole.shape[1], dtype=np.int64)  # each row's counts as the digits of one integer
+    _, first, share = np.unique(whole @ mix, return_index=True, return_counts=True)
+    return table[first], share
+
+
 def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float = 0.95, seed: int = 0) -> tuple[float, float]:
     """Percentile bootstrap interval for nominal alpha, resampling units with replacement.
 
     Resampling whole units is common practice for agreement coefficients (Krippendorff's own
     bootstrap resamples pairable values instead); resamples without variation are skipped.
+
+    Units with the same row of counts are interchangeable in alpha, and there are few such rows
+    (with three raters and yes/no, at most ten) however many units there are. Drawing ``u`` units
+    uniformly with replacement puts a multinomial number of draws on each distinct row, with
+    probabilities its share of the units; that is what is drawn when the distinct rows are few, so a
+    resample costs the number of distinct rows, not of units, and the interval is the units'
+    bootstrap interval all the same. With many distinct rows every unit gets a weight per resample.
     """
     pairable = _pairable(np.asarray(counts, dtype=float))
     if len(pairable) < 2:
         raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
     u = len(pairable)
-    m = pairable.sum(axis=1)
-    d = (m**2 - (pairable**2).sum(axis=1)) / (m - 1)
+    grouped = _distinct_rows(pairable)
+    if grouped is not None and len(grouped[0]) <= max(64, u // 8):
+        rows, share = grouped
+        drawn = np.random.default_rng(seed).multinomial(u, share / u, size=n_boot).astype(float)  # (n_boot, distinct rows)
+        batches: tuple[tuple[npt.NDArray[np.float64], npt.NDArray[np.float64]], ...] = ((drawn, rows),)
+    else:  # many distinct rows: a weight for every unit in every resample
+        batches = tuple((w, pairable) for w in _resample_weights(u, n_boot, seed))
     stats = []
-    for w in _resample_weights(u, n_boot, seed):
-        n_c = w @ pairable
+    for w, x in batches:
+        m = x.sum(axis=1)
+        d = (m**2 - (x**2).sum(axis=1)) / (m - 1)
+        n_c = w @ x
         n = n_c.sum(axis=1)
         expected = n * n - (n_c**2).sum(axis=1)
         ok = expected > 0

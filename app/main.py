@@ -27,6 +27,9 @@ def create_app(settings: Settings) -> FastAPI:
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         engine = open_project(settings.project_dir)
+        # What the results and agreement pages need but import lazily (scipy.stats: a second or more): loaded with the
+        # server, so that the first page after start-up does not pay for it.
+        import scipy.stats  # noqa: F401
         app.state.sessions = session_factory(engine)
         app.state.writers = lazy_write_factory(engine)
         app.state.write_lock = asyncio.Lock()

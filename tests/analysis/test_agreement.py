@@ -112,6 +112,23 @@ def test_bootstrap_by_indices_matches_scipy_percentile_interval() -> None:
     assert ours[1] == pytest.approx(ref.high, abs=0.05 * width + 0.005)
 
 
+def test_bootstrap_matches_scipy_when_every_unit_differs() -> None:
+    """Draws are grouped by distinct rows of counts; with no two rows alike (many values, many raters per unit)
+    the interval is still scipy.stats.bootstrap's percentile interval over units, within Monte Carlo error."""
+    from scipy.stats import bootstrap
+
+    rng = np.random.default_rng(11)
+    counts = rng.integers(0, 6, size=(120, 8)).astype(float)
+    counts[:, 0] += 10 * rng.integers(0, 2, size=120)  # some agreement to measure
+    assert len(np.unique(counts, axis=0)) == len(counts)
+    ours = alpha_bootstrap(counts, n_boot=4000, seed=0)
+    ref = bootstrap((np.arange(len(counts)),), lambda idx: alpha_from_counts(counts[idx]), vectorized=False, n_resamples=4000,
+                    method="percentile", random_state=np.random.default_rng(2)).confidence_interval
+    width = ref.high - ref.low
+    assert ours[0] == pytest.approx(ref.low, abs=0.05 * width + 0.005)
+    assert ours[1] == pytest.approx(ref.high, abs=0.05 * width + 0.005)
+
+
 def test_resample_weights_are_multinomial_counts() -> None:
     """Each resample's weights count u draws (they sum to u) and every unit is equally likely (mean 1)."""
     from analysis.agreement import _resample_weights
