@@ -6,6 +6,7 @@ import functools
 
 import numpy as np
 import numpy.typing as npt
+from scipy import sparse
 
 from .errors import InvalidInputError
 
@@ -94,16 +95,41 @@ def _resample_weights(u: int, n_boot: int, seed: int) -> tuple[npt.NDArray[np.fl
 
 
 def _distinct_rows(table: npt.NDArray[np.float64]) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.int64]] | None:
-    """The distinct rows of a narrow table of whole counts and how many times each occurs; None for a wide one.
+    """The distinct rows of a table of whole counts and how many times each occurs (None when it is not whole counts).
 
-    Each row becomes one integer, its counts as digits, and the integers are grouped (``np.unique(axis=0)``
-    sorts the rows as records instead, a hundred times slower). A table too wide for that gives None.
+    Each row becomes one integer and the integers are grouped (``np.unique(axis=0)`` sorts the rows as
+    records instead, a hundred times slower): a narrow row's counts are the digits of its integer; a wide
+    row (one column per value, few values used per unit) is first cut to its used columns and their counts.
     """
     whole = table.astype(np.int64)
-    if whole.size == 0 or not np.array_equal(whole, table) or whole.shape[1] * np.log2(int(whole.max()) + 2) >= 62:
+    if whole.size == 0 or whole.min() < 0 or not np.array_equal(whole, table):
         return None
-    mix = (int(whole.max()) + 1) ** np.arange(whole.shape[1], dtype=np.int64)  # each row's counts as the digits of one integer
-    _, first, share = np.unique(whole @ mix, return_index=True, return_counts=True)
+    top = int(whole.max()) + 1
+    if whole.shape[1] * np.log2(top + 1) < 62:
+        digits = whole
+    else:  # the used (column, count) pairs of each row, padded with 0, as the row's digits
+        rows_at, cols_at = np.nonzero(whole)
+        used = np.bincount(rows_at, minlength=len(whole))
+        width = int(used.max())
+        slot = np.arange(len(rows_at)) - np.repeat(np.cumsum(used) - used, used)
+        digits = np.zeros((len(whole), width), dtype=np.int64)
+        digits[rows_at, slot] = cols_at * top + whole[rows_at, cols_at]
+        top = whole.shape[1] * top
+    base = top + 1
+    if digits.shape[1] * np.log2(base) < 62:
+        keys = digits @ (base ** np.arange(digits.shape[1], dtype=np.int64))
+        _, first, share = np.unique(keys, return_index=True, return_counts=True)
+    else:  # too many digits for one integer: group the rows' bytes
+        seen: dict[bytes, int] = {}
+        firsts: list[int] = []
+        counts: list[int] = []
+        for i, row in enumerate(digits):
+            k = seen.setdefault(row.tobytes(), len(firsts))
+            if k == len(firsts):
+                firsts.append(i)
+                counts.append(0)
+            counts[k] += 1
+        first, share = np.asarray(firsts), np.asarray(counts, dtype=np.int64)
     return table[first], share
 
 
@@ -125,17 +151,21 @@ def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float =
         raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
     u = len(pairable)
     grouped = _distinct_rows(pairable)
-    if grouped is not None and len(grouped[0]) <= max(64, u // 8):
+    if grouped is not None and len(grouped[0]) <= max(64, u // 4):
         rows, share = grouped
         drawn = np.random.default_rng(seed).multinomial(u, share / u, size=n_boot).astype(float)  # (n_boot, distinct rows)
-        batches: tuple[tuple[npt.NDArray[np.float64], npt.NDArray[np.float64]], ...] = ((drawn, rows),)
+        weights: tuple[npt.NDArray[np.float64], ...] = (drawn,)
+        x = rows
     else:  # many distinct rows: a weight for every unit in every resample
-        batches = tuple((w, pairable) for w in _resample_weights(u, n_boot, seed))
+        weights = _resample_weights(u, n_boot, seed)
+        x = pairable
+    m = x.sum(axis=1)
+    d = (m**2 - (x**2).sum(axis=1)) / (m - 1)
+    # A wide table (a column per value, a few used per unit) is multiplied as a sparse one: only its used cells count.
+    wide = sparse.csr_array(x) if x.shape[1] > 16 and np.count_nonzero(x) < 0.1 * x.size else None
     stats = []
-    for w, x in batches:
-        m = x.sum(axis=1)
-        d = (m**2 - (x**2).sum(axis=1)) / (m - 1)
-        n_c = w @ x
+    for w in weights:
+        n_c = (wide.T @ w.T).T if wide is not None else w @ x
         n = n_c.sum(axis=1)
         expected = n * n - (n_c**2).sum(axis=1)
         ok = expected > 0

@@ -138,3 +138,25 @@ def test_resample_weights_are_multinomial_counts() -> None:
     assert w.mean() == pytest.approx(1.0) and abs(w.mean(axis=0) - 1).max() < 0.25
     # The variance of a multinomial count with p = 1/u is u * p * (1 - p) = 0.98.
     assert w.var() == pytest.approx(1 - 1 / 50, rel=0.1)
+
+
+@pytest.mark.parametrize("distinct", [False, True])
+def test_bootstrap_of_a_wide_table_matches_scipy(distinct: bool) -> None:
+    """A table with a column per value (40 values, three raters per unit), read as its used cells: with few
+    distinct rows (draws per row) and with many (a weight per unit), scipy's percentile interval within Monte Carlo error."""
+    from scipy.stats import bootstrap
+
+    rng = np.random.default_rng(5)
+    n_units, n_values = 160, 40
+    truth = rng.integers(0, 4 if not distinct else n_values, n_units)
+    ratings = np.where(rng.random((3, n_units)) < 0.7, truth, rng.integers(0, 4 if not distinct else n_values, (3, n_units)))
+    counts = np.zeros((n_units, n_values))
+    for r in ratings:
+        np.add.at(counts, (np.arange(n_units), r), 1)
+    assert (len(np.unique(counts, axis=0)) > n_units // 4) == distinct
+    ours = alpha_bootstrap(counts, n_boot=4000, seed=0)
+    ref = bootstrap((np.arange(n_units),), lambda idx: alpha_from_counts(counts[idx]), vectorized=False, n_resamples=4000,
+                    method="percentile", random_state=np.random.default_rng(3)).confidence_interval
+    width = ref.high - ref.low
+    assert ours[0] == pytest.approx(ref.low, abs=0.05 * width + 0.005)
+    assert ours[1] == pytest.approx(ref.high, abs=0.05 * width + 0.005)
