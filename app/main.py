@@ -11,12 +11,12 @@ from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 
-from .db import lazy_write_factory, open_project, session_factory
+from .db import is_postgres, lazy_write_factory, open_project, session_factory
 from .errors import install_error_handlers
 from .people import load_key
 from .security import install
 from .services.campaign_analysis import ResultsCache
-from .settings import Settings
+from .settings import Settings, get_settings
 
 UI_DIR = Path(__file__).resolve().parent.parent / "annotator_ui"
 
@@ -26,13 +26,15 @@ def create_app(settings: Settings) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        engine = open_project(settings.project_dir)
+        engine = open_project(settings.project_dir, database_url=settings.database_url)
         # What the results and agreement pages need but import lazily (scipy.stats: a second or more): loaded with the
         # server, so that the first page after start-up does not pay for it.
         import scipy.stats  # noqa: F401
         app.state.sessions = session_factory(engine)
         app.state.writers = lazy_write_factory(engine)
-        app.state.write_lock = asyncio.Lock()
+        # SQLite has one writer: write requests queue on the event loop (deps._write_session). PostgreSQL
+        # takes concurrent writes, kept correct by row locks (campaigns.assignment), across worker processes too.
+        app.state.write_lock = None if is_postgres(engine) else asyncio.Lock()
         app.state.results_cache = ResultsCache()
         app.state.key = load_key(settings.project_dir)
         yield
@@ -53,3 +55,8 @@ def create_app(settings: Settings) -> FastAPI:
             app.include_router(router)
     install_error_handlers(app, debug=settings.debug)
     return app
+
+
+def app_from_environment() -> FastAPI:
+    """The app of one server worker (``heedmap serve --workers N``): settings from HEEDMAP_PROJECT and HEEDMAP_DATABASE_URL."""
+    return create_app(get_settings())

@@ -82,8 +82,12 @@ def key_path(project_dir: Path) -> Path:
     return Path(project_dir) / KEY_FILE
 
 
-def _write_key(path: Path) -> bytes:
-    """A new random key written owner-only and swapped in whole (no reader sees half a key)."""
+def _write_key(path: Path, *, replace: bool = True) -> bytes:
+    """A new random key written owner-only and swapped in whole (no reader sees half a key).
+
+    ``replace=False`` puts it in place only if no key is there yet (a hard link fails on an existing
+    name): several server processes starting at once all end up with the one key that won.
+    """
     key = secrets.token_bytes(32)
     tmp = path.with_name(f".{KEY_FILE}.{os.getpid()}.{secrets.token_hex(4)}")
     fd = os.open(tmp, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600)
@@ -92,7 +96,15 @@ def _write_key(path: Path) -> bytes:
         os.fsync(fd)
     finally:
         os.close(fd)
-    os.replace(tmp, path)
+    if replace:
+        os.replace(tmp, path)
+        return key
+    try:
+        os.link(tmp, path)
+    except FileExistsError:
+        return load_key(path.parent, create=False)  # another process made it first: use theirs
+    finally:
+        os.unlink(tmp)
     return key
 
 
@@ -114,7 +126,7 @@ def load_key(project_dir: Path, *, create: bool = True) -> bytes:
     except (OSError, ValueError, UnicodeDecodeError) as exc:
         raise KeyFileError(f"cannot read the signing key {path} ({exc}); make a new one with 'heedmap keys --rotate' (everyone signs in again).") from None
     try:
-        return _write_key(path)
+        return _write_key(path, replace=False)
     except OSError as exc:
         raise KeyFileError(f"cannot write the signing key {path}: {exc.strerror or exc}. The project folder must be writable by you.") from None
 

@@ -22,6 +22,8 @@ class Settings:
     careless_seconds: float = 2.0  # median seconds per label below which an annotator is flagged
     debug: bool = False
     api_docs: bool = False  # serve /docs and /openapi.json (off: they map every route for anyone who can reach the port)
+    database_url: str | None = None  # a PostgreSQL database for this run; None: the project's own (database.url or heedmap.db)
+    workers: int = 1  # server processes; more than one needs PostgreSQL
 
     def __post_init__(self) -> None:
         if not 1 <= self.port <= 65535:
@@ -32,12 +34,14 @@ class Settings:
             raise SettingsError(f"session_days must be 1..365; got {self.session_days}.")
         if not 0 <= self.careless_seconds <= 600:
             raise SettingsError(f"careless_seconds must be 0..600; got {self.careless_seconds}.")
+        if not 1 <= self.workers <= 64:
+            raise SettingsError(f"workers must be 1..64; got {self.workers}.")
         if not 0 < self.min_support <= 1:
             raise SettingsError(f"min_support must be in (0, 1]; got {self.min_support}.")
 
 
 def get_settings(**overrides: object) -> Settings:
-    """Defaults, then HEEDMAP_PROJECT / HEEDMAP_PORT / HEEDMAP_LABELS_PER_REGION, then ``overrides``."""
+    """Defaults, then HEEDMAP_PROJECT / HEEDMAP_PORT / HEEDMAP_DATABASE_URL / HEEDMAP_LABELS_PER_REGION, then ``overrides``."""
     s = Settings()
     env = os.environ
     try:
@@ -45,6 +49,8 @@ def get_settings(**overrides: object) -> Settings:
             s = replace(s, project_dir=Path(env["HEEDMAP_PROJECT"]))
         if "HEEDMAP_PORT" in env:
             s = replace(s, port=int(env["HEEDMAP_PORT"]))
+        if env.get("HEEDMAP_DATABASE_URL"):
+            s = replace(s, database_url=env["HEEDMAP_DATABASE_URL"])
         if "HEEDMAP_LABELS_PER_REGION" in env:
             s = replace(s, labels_per_region=int(env["HEEDMAP_LABELS_PER_REGION"]))
     except ValueError as exc:

@@ -1,19 +1,26 @@
 """Which region goes to whom: k-way assignment with leases, check items mixed in unannounced.
 
-Every function that writes runs inside a write session (BEGIN IMMEDIATE), so the checks
+Every function that writes runs inside a write session. On SQLite (BEGIN IMMEDIATE) the checks
 "fewer than k labels" and "nobody else holds the last slot" and the insert that follows are one
-step for SQLite's single writer: concurrent requests cannot both take the last place.
+step for the single writer: concurrent requests cannot both take the last place. On PostgreSQL
+many requests write at once: the regions picked are locked (FOR UPDATE SKIP LOCKED: a region
+another request is handing out right now is passed over, not waited for), and once locked they
+are checked again in a new statement, which sees every lease committed before the lock was taken.
+Whoever leases or labels a region locks its campaign_regions row first, so nothing changes its
+places between that check and the commit.
 """
 
 from __future__ import annotations
 
 import random
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
-from sqlalchemy import and_, bindparam, delete, exists, func, insert, select, update
+from sqlalchemy import and_, bindparam, delete, exists, func, select, update
 from sqlalchemy.orm import Session
 
+from ..db import dialect_insert, is_postgres
 from ..models import CampaignRegion, Label, Lease, Prediction, RegionRow, Skip, utcnow
 from .progress import labels_done
 from .records import CampaignInfo
@@ -43,7 +50,7 @@ def _unseen(campaign_id: int, person_id: int, now: datetime, region):  # type: i
     )
 
 
-def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n: int) -> list[int]:
+def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n: int, exclude: Sequence[int] = ()) -> list[int]:
     """The least-labelled regions this person has not seen, still short of their quota, whose places are not all held by others' leases.
 
     Walks the (campaign, n_labels, region) index in order and stops at ``n``: no sort of the campaign.
@@ -60,10 +67,31 @@ def _pick_regular(s: Session, c: CampaignInfo, person_id: int, now: datetime, n:
         .where(CampaignRegion.campaign_id == c.id, CampaignRegion.n_labels < c.labels_per_region, CampaignRegion.check_answer.is_(None),
                CampaignRegion.example_answer.is_(None), CampaignRegion.n_labels < wants,
                _unseen(c.id, person_id, now, CampaignRegion.region_id), CampaignRegion.n_labels + held_by_others < wants)
+        .where(*([CampaignRegion.region_id.not_in(exclude)] if exclude else []))
         .order_by(CampaignRegion.n_labels, CampaignRegion.region_id)
         .limit(n)
+        .with_for_update(skip_locked=True, of=CampaignRegion)  # PostgreSQL only; SQLite holds its one write lock already
     )
     return list(conn.scalars(q))
+
+
+def _still_free(s: Session, c: CampaignInfo, person_id: int, now: datetime, picks: list[int]) -> list[int]:
+    """The picks whose places are still free, read in a new statement after their rows were locked (PostgreSQL).
+
+    The statement that locked them saw the database as it was when it began; a lease committed
+    between then and the lock is visible only now.
+    """
+    held_by_others = (
+        select(func.count()).where(Lease.campaign_id == c.id, Lease.region_id == CampaignRegion.region_id, Lease.expires_at > now, Lease.person_id != person_id)
+        .scalar_subquery()
+    )
+    wants = func.coalesce(CampaignRegion.quota, c.labels_per_region)
+    q = select(CampaignRegion.region_id).where(
+        CampaignRegion.campaign_id == c.id, CampaignRegion.region_id.in_(picks), _unseen(c.id, person_id, now, CampaignRegion.region_id),
+        CampaignRegion.n_labels + held_by_others < wants,
+    )
+    free = set(s.connection().scalars(q))
+    return [r for r in picks if r in free]
 
 
 def _pick_check(s: Session, c: CampaignInfo, person_id: int, now: datetime, done: int) -> int | None:
@@ -78,13 +106,32 @@ def _pick_check(s: Session, c: CampaignInfo, person_id: int, now: datetime, done
     return random.Random(person_id * 1_000_003 + done).choice(options) if options else None
 
 
+def _pick_free(s: Session, c: CampaignInfo, person_id: int, now: datetime, n: int) -> list[int]:
+    """Up to ``n`` regular regions for the person, locked and checked again on PostgreSQL."""
+    if n <= 0:
+        return []
+    if not is_postgres(s.connection()):
+        return _pick_regular(s, c, person_id, now, n)
+    picks: list[int] = []
+    for _ in range(3):  # a region that filled up while we locked it is not picked again: the next statement sees it full
+        found = _pick_regular(s, c, person_id, now, n - len(picks), exclude=picks)
+        if not found:
+            break
+        picks += _still_free(s, c, person_id, now, found)
+        if len(picks) >= n:
+            break
+    return picks
+
+
 # The next-task path's statements, built once (building and hashing a statement costs more than running it).
 _P = bindparam
 _MINE = (Lease.campaign_id == _P("campaign"), Lease.person_id == _P("person"))
 _DROP_ENDED = delete(Lease).where(*_MINE, Lease.expires_at <= _P("now"))
 _HELD = select(Lease.region_id).where(*_MINE).order_by(Lease.id)
 _RENEW = update(Lease).where(*_MINE).values(expires_at=_P("expires"))
-_TAKE = insert(Lease)
+# DO NOTHING on a lease this person got from a request of theirs running at the same moment (two tabs); one per dialect.
+_TAKE = {name: dialect_insert(name, Lease).on_conflict_do_nothing(index_elements=["campaign_id", "region_id", "person_id"])
+         for name in ("sqlite", "postgresql")}
 _TASK_ROWS = (select(RegionRow.id, Prediction.image_id, Prediction.predicted, Prediction.confidence)
               .join(Prediction, Prediction.id == RegionRow.prediction_id).where(RegionRow.id.in_(_P("regions", expanding=True))))
 
@@ -112,9 +159,9 @@ def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
         check = _pick_check(s, campaign, person_id, now, labels_done(s, campaign.id, person_id) + len(held)) if campaign.n_checks else None
         if check is not None:
             picks.append(check)
-        picks += _pick_regular(s, campaign, person_id, now, need - len(picks))
+        picks += _pick_free(s, campaign, person_id, now, need - len(picks))
         if picks:
-            conn.execute(_TAKE, [
+            conn.execute(_TAKE[conn.dialect.name], [
                 {"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires} for r in picks
             ])
     order = held + picks

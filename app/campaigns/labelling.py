@@ -10,6 +10,7 @@ from sqlalchemy.orm import Session
 
 from analysis.concepts import format_label_text
 
+from ..db import upsert_insert
 from ..errors import ConflictError, ForbiddenError, NotFoundError
 from ..models import CampaignRegion, Label, Lease, Skip, WithdrawnLabel, utcnow
 from .records import CampaignInfo, Entities
@@ -47,8 +48,10 @@ def _as_stored(entities: Entities) -> tuple[tuple[str, tuple[str, ...]], ...]:
 _P = bindparam
 _BY_CLIENT = select(Label.person_id, Label.region_id, Label.entities, Label.unsure).where(Label.client_id == _P("client_id"))
 _WITHDRAWN = select(WithdrawnLabel.id).where(WithdrawnLabel.client_id == _P("client_id"))
+# FOR UPDATE: on PostgreSQL the region's row stays locked until commit, so two people cannot both take its last place
+# (SQLite's BEGIN IMMEDIATE holds the one write lock already; SQLAlchemy leaves the clause out there).
 _REGION_HERE = (select(CampaignRegion.id, CampaignRegion.n_labels, CampaignRegion.check_answer.is_not(None), CampaignRegion.quota)
-                .where(CampaignRegion.campaign_id == _P("campaign"), CampaignRegion.region_id == _P("region")))
+                .where(CampaignRegion.campaign_id == _P("campaign"), CampaignRegion.region_id == _P("region")).with_for_update())
 _LABELLED = select(Label.id).where(Label.campaign_id == _P("campaign"), Label.region_id == _P("region"), Label.person_id == _P("person"))
 _MY_LEASE = select(Lease.expires_at).where(Lease.campaign_id == _P("campaign"), Lease.region_id == _P("region"), Lease.person_id == _P("person"))
 _HELD_BY_OTHERS = (select(func.count()).select_from(Lease)
@@ -123,8 +126,9 @@ def save_label(
 def skip_region(s: Session, *, campaign: CampaignInfo, region_id: int, person_id: int) -> None:
     """Pass over a region: it is not offered to this person again, and its place goes back to the pool."""
     campaign_region(s, campaign.id, region_id)
-    if s.scalar(select(Skip.id).where(Skip.campaign_id == campaign.id, Skip.region_id == region_id, Skip.person_id == person_id)) is None:
-        s.add(Skip(campaign_id=campaign.id, region_id=region_id, person_id=person_id))
+    # A second skip of the same region (two tabs, a retried request) stores nothing, on either database.
+    s.execute(upsert_insert(s, Skip).values(campaign_id=campaign.id, region_id=region_id, person_id=person_id, created_at=utcnow())
+              .on_conflict_do_nothing(index_elements=["campaign_id", "region_id", "person_id"]))
     s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id == person_id))
 
 
@@ -139,12 +143,13 @@ def undo_last(s: Session, *, campaign: CampaignInfo, person_id: int, now: dateti
         return None
     text = format_label_text([(str(e[0]), [str(a) for a in e[1]]) for e in last.entities])
     region_id = last.region_id
+    # The region's row first, as save_label locks it: then the word counts, in the same order as there (no deadlock).
+    s.execute(update(CampaignRegion).where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
+              .values(n_labels=CampaignRegion.n_labels - 1))
     s.add(WithdrawnLabel(client_id=last.client_id, campaign_id=last.campaign_id, region_id=region_id, person_id=person_id, entities=last.entities,
                          withdrawn_at=now))
     add_words(s, campaign.id, words_of(last.entities), sign=-1)
     s.delete(last)
-    s.execute(update(CampaignRegion).where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
-              .values(n_labels=CampaignRegion.n_labels - 1))
     s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id == person_id))
     refresh_quota(s, campaign_id=campaign.id, region_id=region_id)
     # Lease it back first in line: the undone region is what the person sees next.

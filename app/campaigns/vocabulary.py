@@ -9,14 +9,15 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Iterable
+from typing import Any
 
 from sqlalchemy import delete, select
-from sqlalchemy.dialects.sqlite import Insert, insert
 from sqlalchemy.orm import Session
 
 from analysis.concepts import normalise_label
 from analysis.synonyms import SynonymRules
 
+from ..db import dialect_insert
 from ..models import Label, WordCount
 
 
@@ -34,20 +35,22 @@ def words_of(entities: Iterable[object] | None) -> Counter[tuple[str, str]]:
     return found
 
 
-def _upsert() -> Insert:
-    stmt = insert(WordCount)
+def _upsert(dialect: str) -> Any:
+    stmt = dialect_insert(dialect, WordCount)
     return stmt.on_conflict_do_update(index_elements=["campaign_id", "kind", "word"], set_={"n": WordCount.n + stmt.excluded.n})
 
 
-# Built once: it runs on every label stored, and building it (its "excluded" columns above all) cost more than running it.
-_ADD = _upsert()
+# Built once per database kind: it runs on every label stored, and building it (its "excluded" columns above all) cost more than running it.
+_ADD = {name: _upsert(name) for name in ("sqlite", "postgresql")}
 
 
 def add_words(s: Session, campaign_id: int, counts: Counter[tuple[str, str]], *, sign: int = 1) -> None:
     """Add (``sign`` 1) or take away (-1) one label's words from the campaign's counts."""
     if not counts:
         return
-    s.connection().execute(_ADD, [{"campaign_id": campaign_id, "kind": k, "word": w, "n": sign * n} for (k, w), n in counts.items()])
+    conn = s.connection()
+    # Rows in one order everywhere: two transactions counting the same words lock them in the same order (no deadlock on PostgreSQL).
+    conn.execute(_ADD[conn.dialect.name], [{"campaign_id": campaign_id, "kind": k, "word": w, "n": sign * n} for (k, w), n in sorted(counts.items())])
 
 
 def recount_words(s: Session, campaign_id: int) -> None:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import threading
+import uuid
 from collections import Counter
 from datetime import timedelta
 from pathlib import Path
@@ -15,6 +16,8 @@ from app.db import make_engine, session_factory, write_session
 from app.errors import ConflictError
 from app.models import CampaignRegion, Label, utcnow
 from app.people import ensure_person
+
+pytestmark = pytest.mark.both_databases
 
 
 @pytest.fixture()
@@ -36,7 +39,10 @@ def _person(factory, name: str) -> int:  # type: ignore[no-untyped-def]
 
 
 def _work(factory, c: campaigns.CampaignInfo, pid: int, *, now=None, limit: int = 10_000) -> list[int]:  # type: ignore[no-untyped-def]
-    """Label until nothing is left for this person; returns the regions labelled, in order."""
+    """Label until nothing is left for this person; returns the regions labelled, in order.
+
+    As the app does it: one request hands out the next region, the next one stores its label.
+    """
     done = []
     while len(done) < limit:
         with write_session(factory) as s:
@@ -44,6 +50,7 @@ def _work(factory, c: campaigns.CampaignInfo, pid: int, *, now=None, limit: int 
             if not tasks:
                 return done
             rid = tasks[0].region_id
+        with write_session(factory) as s:
             campaigns.save_label(s, campaign=c, region_id=rid, person_id=pid, entities=[("cap", [])], unsure=False, client_id=f"{pid}-{rid}-x", seconds_spent=1.0, now=now)
             done.append(rid)
     return done
@@ -188,3 +195,40 @@ def test_a_persons_label_count_follows_stores_and_undos(factory) -> None:  # typ
             campaigns.save_label(s, campaign=c, region_id=task.region_id, person_id=pid, entities=[("rim", [])], unsure=False,
                                  client_id=f"later-{pid}", seconds_spent=None)
     assert (counted(ann), counted(bob)) == (6, 2)
+
+
+def test_people_asking_at_the_same_moment_never_hold_more_than_k_places(factory) -> None:  # type: ignore[no-untyped-def]
+    """Twelve people ask for work at once, in rounds, on a campaign with one place per region: no region is ever
+    held by two of them, nor labelled twice (on PostgreSQL this rests on the row locks, not on one writer)."""
+    c = _campaign(factory, k=1)
+    people = [_person(factory, f"q{i}") for i in range(12)]
+    errors: list[BaseException] = []
+    stored: list[tuple[int, int]] = []
+
+    def ask(pid: int, gate: threading.Barrier, held: dict[int, list[int]]) -> None:
+        try:
+            gate.wait()
+            with write_session(factory) as s:
+                held[pid] = [t.region_id for t in campaigns.lease_tasks(s, campaign=c, person_id=pid)]
+        except BaseException as exc:  # pragma: no cover - reported below
+            errors.append(exc)
+
+    for _ in range(2):
+        gate = threading.Barrier(len(people), timeout=120)
+        held: dict[int, list[int]] = {}
+        threads = [threading.Thread(target=ask, args=(p, gate, held)) for p in people]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        assert not errors
+        everyone = [r for regions in held.values() for r in regions]
+        assert len(everyone) == len(set(everyone)) and everyone  # every place held once
+        for pid, regions in held.items():
+            with write_session(factory) as s:
+                campaigns.save_label(s, campaign=c, region_id=regions[0], person_id=pid, entities=[("cap", [])], unsure=False,
+                                     client_id=uuid.uuid4().hex, seconds_spent=None)
+            stored.append((regions[0], pid))
+    with factory() as s:
+        per_region = Counter(s.scalars(select(Label.region_id).where(Label.campaign_id == c.id)))
+    assert max(per_region.values()) == 1 and sum(per_region.values()) == len(stored) == 24

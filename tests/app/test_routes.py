@@ -5,6 +5,7 @@ import uuid
 from datetime import timedelta
 from typing import Any
 
+import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import func, select
 
@@ -14,6 +15,8 @@ from app.models import Invite, Label, utcnow
 from app.people import revoke_invite
 
 from .conftest import invite, join, next_task, start
+
+pytestmark = pytest.mark.both_databases
 
 
 def _label_count(client: TestClient) -> int:

@@ -16,6 +16,8 @@ from app.cli import main
 from app.db import make_engine, session_factory
 from app.models import Campaign, Prediction
 
+pytestmark = pytest.mark.both_databases
+
 
 def _split_manifests(scenes: Path, out: Path) -> dict[str, Path]:
     lines = (scenes / "manifest.csv").read_text().splitlines()

@@ -20,7 +20,7 @@ from alembic.runtime.migration import MigrationContext
 from sqlalchemy import select
 
 from app import campaigns
-from app.db import _alembic_config, head_revision, make_engine, open_project, session_factory, write_session
+from app.db import NotAProjectError, ReadOnlyProjectError, _alembic_config, head_revision, make_engine, open_project, session_factory, write_session
 from app.errors import SchemaVersionError
 from app.migrations import schema_3
 from app.models import Base, Label, WordCount
@@ -143,7 +143,7 @@ def test_a_newer_hand_kept_version_is_refused(schema3_project: Path) -> None:
 def test_a_read_only_schema_3_project_is_not_written(schema3_project: Path) -> None:
     db = schema3_project / "heedmap.db"
     raw = db.read_bytes()
-    with pytest.raises(Exception, match="needs an upgrade"):
+    with pytest.raises(ReadOnlyProjectError, match="needs an upgrade"):
         make_engine(schema3_project, readonly=True)
     assert db.read_bytes() == raw
     wal = db.with_name("heedmap.db-wal")  # SQLite's reader of a WAL database may make an empty log beside it
@@ -151,6 +151,6 @@ def test_a_read_only_schema_3_project_is_not_written(schema3_project: Path) -> N
 
 
 def test_open_project_refuses_a_missing_project(tmp_path: Path) -> None:
-    with pytest.raises(Exception, match="is not a heedmap project"):
+    with pytest.raises(NotAProjectError, match="is not a heedmap project"):
         open_project(tmp_path / "nothing")
     assert not (tmp_path / "nothing").exists()

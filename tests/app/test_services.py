@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import uuid
 
+import pytest
 from fastapi.testclient import TestClient
 
 from analysis.concept_votes import presence_agreement
@@ -11,6 +12,8 @@ from app.campaigns import get_campaign
 from app.services.campaign_analysis import ResultsCache, agreement_summary, campaign_results, votes
 
 from .conftest import join, next_task
+
+pytestmark = pytest.mark.both_databases
 
 
 def _label(client: TestClient, campaign_id: int, who: str, n: int) -> None:

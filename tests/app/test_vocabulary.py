@@ -7,6 +7,7 @@ import uuid
 from collections import Counter
 from pathlib import Path
 
+import pytest
 from sqlalchemy import select
 
 from analysis.concepts import normalise_label
@@ -17,6 +18,8 @@ from app.models import Label, WordCount
 from app.people import ensure_person
 
 from .conftest import as_schema_3
+
+pytestmark = pytest.mark.both_databases
 
 
 def recount(s, campaign_id: int, rules: SynonymRules | None = None) -> tuple[Counter[str], Counter[str]]:  # type: ignore[no-untyped-def]
@@ -68,6 +71,7 @@ def test_counts_after_submit_and_undo_equal_a_recount(project: Path, campaign_id
     engine.dispose()
 
 
+@pytest.mark.sqlite_only
 def test_an_older_project_gets_its_counts_when_opened(project: Path, campaign_id: int) -> None:
     engine = make_engine(project)
     with write_session(session_factory(engine)) as s:
