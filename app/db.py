@@ -309,6 +309,10 @@ POSTGRES_OPTIONS = "-c synchronous_commit=on -c lock_timeout=30s -c idle_in_tran
 
 def _postgres_engine(project_dir: Path, url: URL, *, readonly: bool, create: bool) -> Engine:
     """An engine over a PostgreSQL database; the project folder beside it keeps the files (crops, maps, the signing key)."""
+    try:
+        import psycopg  # noqa: F401
+    except ImportError:
+        raise ProjectError("a PostgreSQL database needs the psycopg driver: pip install 'heedmap[postgres]' (psycopg 3).") from None
     if not readonly and create:
         _make_folder(project_dir)
     options = POSTGRES_OPTIONS + (" -c default_transaction_read_only=on" if readonly else "")

@@ -5,6 +5,7 @@ requests per second, and labels lost or stored twice (must be 0).
     .venv/bin/python -m benchmarks.annotation_load --quick     # 50 annotators, 8 s
     .venv/bin/python -m benchmarks.annotation_load --compare-sync   # the cost of syncing each commit (NORMAL vs FULL)
     .venv/bin/python -m benchmarks.annotation_load --against main   # this tree against a git revision, rounds taken in turn
+    .venv/bin/python -m benchmarks.annotation_load --quick --db "$HEEDMAP_TEST_POSTGRES_URL"   # SQLite and PostgreSQL side by side
 
 With ``--against REV`` the same load runs against a server from the revision's files and one from this
 tree, in alternating rounds (A B B A A B ...), so that other work on a shared machine weighs on both sides alike.
@@ -31,6 +32,8 @@ import tempfile
 import time
 import uuid
 from collections import Counter
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
@@ -38,7 +41,7 @@ import numpy as np
 from sqlalchemy import func, select
 
 from app.campaigns import create_campaign
-from app.db import make_engine, session_factory, write_session
+from app.db import dispose_engines, make_engine, session_factory, set_project_database, write_session
 from app.deps import COOKIE
 from app.models import ImageRow, Label, Prediction, RegionRow, SaliencyRun
 from app.people import create_invite
@@ -49,8 +52,11 @@ CLASSES = ("bottle", "can", "carton")
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def make_project(root: Path, n_images: int, n_people: int, k: int) -> tuple[int, list[str]]:
-    """A project with one run of ``n_images`` images x 2 regions, a campaign, and invite tokens."""
+def make_project(root: Path, n_images: int, n_people: int, k: int, database_url: str | None = None) -> tuple[int, list[str]]:
+    """A project with one run of ``n_images`` images x 2 regions, a campaign, and invite tokens (in PostgreSQL given ``database_url``)."""
+    if database_url is not None:
+        root.mkdir(mode=0o700)
+        set_project_database(root, database_url)
     engine = make_engine(root)
     with write_session(session_factory(engine)) as s:
         run = SaliencyRun(config_key="bench", provenance={"method": "synthetic"})
@@ -144,18 +150,40 @@ def _make_project_in(tree: Path, project: Path, n_people: int, k: int) -> tuple[
     return int(cid), [str(t) for t in tokens]
 
 
-def run_once(args: argparse.Namespace, seconds: float, synchronous: str | None,
-             tree: Path | None = None) -> tuple[dict[str, list[float]], Counter[str], float, int, int, int]:
+@contextmanager
+def fresh_database(server: str | None) -> Iterator[str | None]:
+    """A new empty database on the PostgreSQL server ``server`` (dropped afterwards); None for SQLite."""
+    if server is None:
+        yield None
+        return
+    import psycopg
+    from sqlalchemy.engine import make_url
+
+    name = f"heedmap_bench_{uuid.uuid4().hex[:12]}"
+    admin_url = make_url(server).set(drivername="postgresql").render_as_string(hide_password=False)
+    with psycopg.connect(admin_url, autocommit=True) as admin:
+        admin.execute(f'CREATE DATABASE "{name}"')
+    try:
+        yield make_url(server).set(database=name).render_as_string(hide_password=False)
+    finally:
+        dispose_engines()
+        with psycopg.connect(admin_url, autocommit=True) as admin:
+            admin.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+def run_once(args: argparse.Namespace, seconds: float, synchronous: str | None, tree: Path | None = None, *, server: str | None = None,
+             workers: int = 1) -> tuple[dict[str, list[float]], Counter[str], float, int, int, int]:
     """One served project under load; ``synchronous`` overrides SQLite's sync level in the server (for the side-by-side cost);
-    ``tree`` serves the code of another checkout (its own project schema too)."""
-    with tempfile.TemporaryDirectory() as tmp:
+    ``tree`` serves the code of another checkout (its own project schema too); ``server`` (a PostgreSQL URL) puts the
+    project's data in a fresh database there, served by ``workers`` processes."""
+    with tempfile.TemporaryDirectory() as tmp, fresh_database(server) as database_url:
         project = Path(tmp) / "project"
         if tree is None:
-            cid, tokens = make_project(project, 5000, args.annotators, args.per_region)
+            cid, tokens = make_project(project, 5000, args.annotators, args.per_region, database_url)
         else:
             cid, tokens = _make_project_in(tree, project, args.annotators, args.per_region)
         port = free_port()
-        serve = ["serve", str(project), "--port", str(port)]
+        serve = ["serve", str(project), "--port", str(port)] + (["--workers", str(workers)] if workers > 1 else [])
         code = "import sys, app.db, app.cli; " + (f"app.db.SYNCHRONOUS = {synchronous!r}; " if synchronous else "") + "sys.exit(app.cli.main(sys.argv[1:]))"
         # The server imports ``app`` from its working folder: this tree's, or the other revision's.
         server = subprocess.Popen([sys.executable, "-c", code, *serve], stdout=open(os.environ.get("HEEDMAP_BENCH_LOG", os.devnull), "w"),
@@ -194,15 +222,25 @@ def main(argv: list[str] | None = None) -> str:
     p.add_argument("--compare-sync", action="store_true", help="run once with SQLite synchronous=NORMAL and once with FULL (what heedmap uses), side by side")
     p.add_argument("--against", metavar="REV", help="also serve the files of git revision REV (e.g. main, HEAD~3) and compare, in alternating rounds")
     p.add_argument("--rounds", type=int, default=4, help="rounds per side with --against")
+    p.add_argument("--db", default=None, metavar="URL",
+                   help="a PostgreSQL server (postgresql://USER@HOST/ANY_DB): run SQLite and PostgreSQL (1 process and --workers) side by side")
+    p.add_argument("--workers", type=int, default=2, help="server processes on the PostgreSQL side with --db")
     args = p.parse_args(argv)
     seconds = 8.0 if args.quick else 30.0
     if args.compare_sync:
         return _compare_sync(args, seconds)
     if args.against:
         return _compare_revision(args, seconds)
-    timings, outcome, wall, in_db, worst, repeats = run_once(args, seconds, None)
+    if args.db:
+        return _compare_databases(args, seconds)
+    return _one_table(args, run_once(args, seconds, None), "one uvicorn process")
+
+
+def _one_table(args: argparse.Namespace, found: tuple[dict[str, list[float]], Counter[str], float, int, int, int], setup: str) -> str:
+    """The latency table and the checks of one run."""
+    timings, outcome, wall, in_db, worst, repeats = found
     requests = sum(len(v) for v in timings.values())
-    head = (f"{args.annotators} annotators, {args.think:g} s per region on average, for {wall:.1f} s on loopback, one uvicorn process; "
+    head = (f"{args.annotators} annotators, {args.think:g} s per region on average, for {wall:.1f} s on loopback, {setup}; "
             f"{requests} requests, {requests / wall:.0f} per second.")
     print(head)
     print(f"outcomes: {dict(outcome)}")
@@ -216,6 +254,25 @@ def main(argv: list[str] | None = None) -> str:
          ["most labels on one region (limit)", f"{worst} ({args.per_region})"]],
     )
     return head + "\n\n" + table + "\n\n" + checks
+
+
+def _compare_databases(args: argparse.Namespace, seconds: float) -> str:
+    """The same load on SQLite (one process) and on PostgreSQL (one process, then ``--workers``), one after the other."""
+    sides = {"SQLite, 1 process": run_once(args, seconds, None), "PostgreSQL, 1 process": run_once(args, seconds, None, server=args.db)}
+    if args.workers > 1:
+        sides[f"PostgreSQL, {args.workers} workers"] = run_once(args, seconds, None, server=args.db, workers=args.workers)
+    parts = [f"#### {name}\n\n" + _one_table(args, found, name) for name, found in sides.items()]
+    names = list(sides)
+    rows: list[list[object]] = []
+    for request in ("next task", "submit"):
+        for q in (50, 95):
+            values = [1000 * float(np.percentile(sides[n][0][request], q)) for n in names]
+            rows.append([f"{request} p{q} ms", *values, *(v / values[0] for v in values[1:])])
+    rates = [sum(len(v) for v in sides[n][0].values()) / sides[n][2] for n in names]
+    rows.append(["requests per second", *rates, *(r / rates[0] for r in rates[1:])])
+    rows.append(["lost + stored twice", *(sides[n][1]["stored"] - sides[n][3] + sides[n][5] for n in names), *([float("nan")] * (len(names) - 1))])
+    table = print_table(["measure", *names, *(f"{n} / SQLite" for n in names[1:])], rows)
+    return "\n\n".join(parts) + "\n\n#### side by side\n\n" + table
 
 
 def _compare_sync(args: argparse.Namespace, seconds: float) -> str:

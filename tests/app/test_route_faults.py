@@ -18,6 +18,8 @@ from app.people import session_cookie
 
 from .conftest import csrf_of, invite, join, next_task, start
 
+pytestmark = pytest.mark.both_databases
+
 
 def _count(client: TestClient, table: type) -> int:
     with client.app.state.sessions() as s:  # type: ignore[attr-defined]
