@@ -100,7 +100,7 @@ def draw_regions(s: Session, *, campaign_id: int, run_id: int, classes: list[str
     """Draw the campaign's stratified sample of images, store its strata and inclusion probabilities; the drawn images' regions."""
     q = (select(Prediction.image_id, Prediction.predicted, Prediction.confidence, ImageRow.label, func.count(RegionRow.id))
          .join(ImageRow, ImageRow.id == Prediction.image_id).outerjoin(RegionRow, RegionRow.prediction_id == Prediction.id)
-         .where(Prediction.run_id == run_id).group_by(Prediction.id).order_by(Prediction.image_id))
+         .where(Prediction.run_id == run_id).group_by(Prediction.id, ImageRow.id).order_by(Prediction.image_id))
     if classes:
         q = q.where(Prediction.predicted.in_(classes))
     rows = s.execute(q).all()

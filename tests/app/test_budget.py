@@ -21,6 +21,8 @@ from app.settings import Settings
 
 from .conftest import join
 
+pytestmark = pytest.mark.both_databases
+
 
 @pytest.fixture()
 def factory(project: Path):  # type: ignore[no-untyped-def]
