@@ -110,6 +110,26 @@ def _cell(r: InterventionResult | None, true: float) -> str:
     return f"{r.effect:.3f} ({r.effect / true:.2f}{left})" if abs(true) > 1e-9 else f"{r.effect:.3f}"
 
 
+def _plain_belt_colour(model: LoadedModel, seed: int, n: int = 30) -> torch.Tensor:
+    """The belt's mean colour (model input space) where it lacks the attribute: belt pixels of scenes drawn without any cue."""
+    scenes = [render_scene(SceneConfig(seed=seed, cue="none"), "test", i) for i in range(n)]
+    sc = model.sidecar
+    x = to_model_input([sc_.image for sc_ in scenes], size=sc.input_size, mean=sc.mean, std=sc.std)
+    m = torch.from_numpy(np.stack([sc_.mask == PART_IDS["belt"] for sc_ in scenes]))
+    return x.permute(1, 0, 2, 3)[:, m].mean(dim=1)
+
+
+def _recolour_effect(model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_], cls: int, colour: torch.Tensor) -> float:
+    """Mean fall in P(class) when the masked pixels' mean colour is moved to ``colour`` (texture kept): the
+    attribute swapped for the entity's usual look. Not a product test yet: it has no control and no p-value."""
+    out = x.clone()
+    for i in range(len(x)):
+        m = torch.from_numpy(masks[i])
+        if m.any():
+            out[i][:, m] += (colour - x[i][:, m].mean(dim=1))[:, None]
+    return float((_probs(model, x)[:, cls] - _probs(model, out)[:, cls]).mean())
+
+
 def main(argv: list[str] | None = None) -> str:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true")
@@ -120,7 +140,7 @@ def main(argv: list[str] | None = None) -> str:
     n_train, n_images = (600, 60) if args.quick else (1200, 120)
     torch.set_num_threads(2)
     settings = VerdictSettings()
-    rows, lines, truth_rows, null_rows = [], [], [], []  # type: ignore[var-annotated]
+    rows, lines, truth_rows, null_rows, recolour_rows = [], [], [], [], []  # type: ignore[var-annotated]
     with tempfile.TemporaryDirectory() as tmp:
         for cue in args.cues or (*CUES, "none"):
             root = (args.workdir or Path(tmp)) / f"{cue}-{n_train}-{args.seed}"
@@ -150,6 +170,10 @@ def main(argv: list[str] | None = None) -> str:
                     t = float(true[used].mean()) if used.sum() >= 2 else float(true[keep].mean())
                     rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), f"{share:.0%}", f"{t:.3f}", *[_cell(r, t) for r in results]])
                     print(rows[-1], flush=True)
+                    if cue == "belt":
+                        sel = torch.from_numpy(keep)
+                        e = _recolour_effect(model, pairs.with_cue[sel], masks[kind][keep], index, _plain_belt_colour(model, args.seed + 300))
+                        recolour_rows.append([CUE_CONCEPTS[cue], cls, label, int(keep.sum()), f"{float(true[keep].mean()):.3f}", f"{e:.3f} ({e / float(true[keep].mean()):.2f})"])
             else:
                 # The cue-less model: every cue in every class, one family, against the truth.
                 family: dict[str, list[RuleTests]] = {f: [] for f in (*FILLS, "default")}
@@ -159,6 +183,9 @@ def main(argv: list[str] | None = None) -> str:
                         index = CLASSES.index(cls)
                         true = float((_probs(model, pairs.with_cue)[:, index] - _probs(model, pairs.without_cue)[:, index]).mean())
                         truth_rows.append((test_cue, cls, true))
+                        if test_cue == "belt":
+                            e = _recolour_effect(model, pairs.with_cue, pairs.exact, index, _plain_belt_colour(model, args.seed + 300))
+                            recolour_rows.append(["green belt (cue-less model)", cls, "exact", len(pairs.exact), f"{true:.3f}", f"{e:.3f} ({e / true:.2f})"])
                         results = {f: _estimate(model, pairs.with_cue, pairs.exact, index, f, args.seed) for f in FILLS}
                         print(f"cue-less model, {test_cue} in {cls}: true {true:.3f}, " + ", ".join(f"{f} {_cell(r, 0.0)}" for f, r in results.items()), flush=True)
                         name = f"{CUE_CONCEPTS[test_cue]}"
@@ -182,6 +209,7 @@ def main(argv: list[str] | None = None) -> str:
     header = ["cue", "mask", "images", "image covered", "true effect", *[f"{f}{' (default)' if (f,) == DEFAULT_FILLS else ''} (x true)" for f in FILLS]]
     table = print_table(header, rows)
     per_test = print_table(["cue-less model: cue", "class", "true effect", "estimate", "95% interval", "adjusted p", "verdict"], null_rows)
+    recolour = print_table(["background cue, recoloured", "class", "mask", "images", "true effect", "recolour estimate (x true)"], recolour_rows)
     null = print_table(["cue-less model, fill", "tests (cue x class)", "not testable", "confirmed", "false confirmations", "share false", "missed (true >= min effect)"], lines)
     note = (f"Effects are falls in P(class) beyond matched controls, mean over images; the true effect comes from the same scenes drawn "
             f"without the cue, on the images each test used. \"exact\": the cue's own pixels; \"regions\": the saliency regions the app "
@@ -191,7 +219,9 @@ def main(argv: list[str] | None = None) -> str:
             f"({' + '.join(DEFAULT_FILLS)} fill), {settings.describe(sum(1 for r in null_rows if r[-1] != 'not testable'))}. A false confirmation is reliance confirmed where the true "
             f"effect is below the minimum effect ({settings.min_effect}); the stated level is alpha {settings.alpha}.")
     print(note)
-    return f"{table}\n\n{per_test}\n\n{null}\n\n{note}\n"
+    recolour_note = ("Recolour (measured here only, not a product test: no control, no p-value): the masked pixels' mean colour moved to the "
+                     "belt's colour in scenes without any cue, texture kept, i.e. the attribute \"green\" swapped for the entity's usual look.")
+    return f"{table}\n\n{per_test}\n\n{null}\n\n{note}\n\n{recolour}\n\n{recolour_note}\n"
 
 
 if __name__ == "__main__":
