@@ -109,6 +109,9 @@ def _parser() -> argparse.ArgumentParser:
     from .cli_analysis_args import add_parsers
 
     add_parsers(sub)
+    from .cli_groups import add_group_parsers
+
+    add_group_parsers(sub)
     g = sub.add_parser("agreement", help="agreement among annotators from a LABELS.csv (item,annotator,label)")
     g.add_argument("labels", type=Path)
     g.add_argument("--bootstrap", type=int, default=1000, metavar="N", help="resamples for alpha's 95%% interval (0 = none)")
@@ -436,6 +439,10 @@ def _dispatch(args: argparse.Namespace) -> int:
         return int(getattr(cli_models, args.command)(args))
     elif args.command == "serve":
         _serve(args.project, args.port, database_url=args.db, workers=args.workers)
+    elif args.command in ("embed", "groups"):
+        from . import cli_groups
+
+        return int(getattr(cli_groups, args.command)(args))
     elif args.command in ("ask", "check", "export", "report", "interventions"):
         from . import cli_analysis
 

@@ -78,6 +78,11 @@ class ProjectLayout:
         """One image's map as projects made before shards stored it."""
         return f"runs/{run_id}/maps/{image_id}.npy"
 
+    @staticmethod
+    def region_embeddings(run_id: int) -> str:
+        """Every region's embedding of the run in one array file (.npz: region ids, vectors; `heedmap embed`)."""
+        return f"runs/{run_id}/region_embeddings.npz"
+
     def path(self, rel: str) -> Path:
         """The file a stored relative path names, resolved; a path that leads outside the folder (absolute,
         '..', a link) is refused, so a tampered row cannot make the app serve /etc/passwd."""

@@ -48,9 +48,9 @@ def create_app(settings: Settings) -> FastAPI:
     app.state.templates = Jinja2Templates(directory=str(UI_DIR / "templates"))
     app.mount("/static", StaticFiles(directory=str(UI_DIR / "static")), name="static")
 
-    from .routes import admin, auth, labelling, pages, regions, results, stopping
+    from .routes import admin, auth, groups, labelling, pages, regions, results, stopping
 
-    for module in (pages, auth, labelling, regions, admin, results, stopping):
+    for module in (pages, auth, labelling, groups, regions, admin, results, stopping):
         for router in module.routers:
             app.include_router(router)
     install_error_handlers(app, debug=settings.debug)

@@ -224,6 +224,8 @@ class Label(Base):
     unsure: Mapped[bool] = mapped_column(Boolean, default=False)
     submitted_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
     seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)
+    # Given as part of a group: the group judgment it came from (provenance); None for a single crop.
+    group_label_id: Mapped[int | None] = mapped_column(ForeignKey("group_labels.id"), nullable=True)
 
 
 class WithdrawnLabel(Base):
@@ -280,3 +282,56 @@ class WordCount(Base):
     kind: Mapped[str] = mapped_column(String)  # entity | attribute
     word: Mapped[str] = mapped_column(String)
     n: Mapped[int] = mapped_column(Integer, default=0)
+
+
+class RegionGroup(Base):
+    """Similar regions of a campaign shown together on the group labelling page; ``position`` is the labelling order."""
+
+    __tablename__ = "region_groups"
+    __table_args__ = (UniqueConstraint("campaign_id", "position"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    position: Mapped[int] = mapped_column(Integer)
+    created_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+
+
+class RegionGroupMember(Base):
+    """A region in a group; a region is in at most one group of a campaign."""
+
+    __tablename__ = "region_group_members"
+    __table_args__ = (UniqueConstraint("campaign_id", "region_id"), Index("ix_region_group_members_group", "group_id", "region_id"))
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    group_id: Mapped[int] = mapped_column(ForeignKey("region_groups.id"))
+    region_id: Mapped[int] = mapped_column(ForeignKey("regions.id"))
+
+
+class GroupLease(Base):
+    """The group a person is labelling now; its crops are held by ordinary leases."""
+
+    __tablename__ = "group_leases"
+    __table_args__ = (UniqueConstraint("campaign_id", "person_id"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
+    group_id: Mapped[int] = mapped_column(ForeignKey("region_groups.id"))
+    expires_at: Mapped[datetime] = mapped_column(DateTime())
+
+
+class GroupLabel(Base):
+    """One person's judgment of a group: what the ticked crops share. Each ticked crop gets its own label
+    (``labels.group_label_id`` points here); unticked crops get none from this person."""
+
+    __tablename__ = "group_labels"
+    __table_args__ = (UniqueConstraint("campaign_id", "group_id", "person_id"),)
+    id: Mapped[int] = mapped_column(primary_key=True)
+    client_id: Mapped[str] = mapped_column(String, unique=True)
+    campaign_id: Mapped[int] = mapped_column(ForeignKey("campaigns.id"))
+    group_id: Mapped[int] = mapped_column(ForeignKey("region_groups.id"))
+    person_id: Mapped[int] = mapped_column(ForeignKey("people.id"))
+    entities: Mapped[StoredEntities] = mapped_column(JSON)
+    unsure: Mapped[bool] = mapped_column(Boolean, default=False)
+    ticked: Mapped[list[int]] = mapped_column(JSON, default=list)  # region ids given the label
+    unticked: Mapped[list[int]] = mapped_column(JSON, default=list)  # region ids shown and left out
+    submitted_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
+    seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from .assignment import Task, held_tasks, lease_tasks
 from .checks import check_answers, examples, set_check_answer, set_example
+from .groups import GroupingSummary, GroupResult, GroupTask, held_group, lease_group, make_groups, save_group_label, skip_group
 from .judgments import judgments, raw_labels, region_classes
 from .labelling import region_visible_to, save_label, skip_region, undo_last
 from .plans import PlanInfo, StratumInfo, plan_of, sample_of, strata_of
@@ -47,11 +48,19 @@ __all__ = [
     "AnnotatorProgress",
     "CampaignInfo",
     "ClassProgress",
+    "GroupResult",
+    "GroupTask",
+    "GroupingSummary",
     "Entities",
     "RuleRow",
     "Task",
     "add_synonym_rule",
+    "held_group",
     "held_tasks",
+    "lease_group",
+    "make_groups",
+    "save_group_label",
+    "skip_group",
     "region_visible_to",
     "campaign_progress",
     "check_answers",

@@ -63,9 +63,11 @@ _DROP_MY_LEASE = delete(Lease).where(Lease.campaign_id == _P("campaign"), Lease.
 
 def save_label(
     s: Session, *, campaign: CampaignInfo, region_id: int, person_id: int, entities: Entities, unsure: bool, client_id: str,
-    seconds_spent: float | None, now: datetime | None = None, require_lease: bool = False,
+    seconds_spent: float | None, now: datetime | None = None, require_lease: bool = False, group_label_id: int | None = None,
 ) -> bool:
     """Store one label; False when this ``client_id`` was stored before (a retry), storing nothing.
+
+    ``group_label_id``: the group judgment this label is part of (its provenance), None for a single crop.
 
     Raises ConflictError when the person labelled the region already, or when its k places are
     taken (by labels, or by other people's live leases while this person holds none).
@@ -111,6 +113,7 @@ def save_label(
         conn.execute(_INSERT_LABEL, {
             "client_id": client_id, "campaign_id": campaign.id, "region_id": region_id, "person_id": person_id,
             "entities": [[e, a] for e, a in entities], "unsure": unsure, "submitted_at": now, "seconds_spent": seconds_spent,
+            "group_label_id": group_label_id,
         })
     except IntegrityError:
         raise ConflictError(f"region {region_id} was labelled twice at once; reload the page.") from None

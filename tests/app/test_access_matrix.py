@@ -29,6 +29,12 @@ MATRIX: dict[tuple[str, str], str] = {
     ("POST", "/api/campaigns/{campaign_id}/regions/{region_id}/skip"): "annotator",
     ("POST", "/api/campaigns/{campaign_id}/undo"): "annotator",
     ("GET", "/api/campaigns/{campaign_id}/vocabulary"): "annotator",
+    ("GET", "/campaigns/{campaign_id}/groups"): "annotator",
+    ("POST", "/campaigns/{campaign_id}/groups/next"): "annotator",
+    ("POST", "/campaigns/{campaign_id}/groups/label"): "annotator",
+    ("POST", "/campaigns/{campaign_id}/groups/skip"): "annotator",
+    ("POST", "/api/campaigns/{campaign_id}/groups/next"): "annotator",
+    ("POST", "/api/campaigns/{campaign_id}/groups/{group_id}/labels"): "annotator",
     ("GET", "/api/regions/{region_id}/crop.png"): "viewer",
     ("GET", "/api/regions/{region_id}/outline.png"): "viewer",
     ("GET", "/api/regions/{region_id}/overlay.png"): "viewer",
@@ -76,7 +82,7 @@ def test_every_route_has_an_access_rule(client: TestClient) -> None:
 
 
 def _fill(path: str, campaign_id: int) -> str:
-    values = {"campaign_id": campaign_id, "region_id": 1, "image_id": 1, "invite_id": 999999, "rule_id": 999999, "kind": "frequency",
+    values = {"campaign_id": campaign_id, "region_id": 1, "image_id": 1, "invite_id": 999999, "group_id": 999999, "rule_id": 999999, "kind": "frequency",
               "fmt": "csv", "token": "not-a-real-token"}
     return re.sub(r"\{(\w+)\}", lambda m: str(values[m.group(1)]), path)
 

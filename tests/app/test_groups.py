@@ -1,0 +1,202 @@
+"""Grouped labelling: each ticked crop keeps its own label with the group as provenance, and every
+guarantee of single-crop labelling holds (k per region, no repeats, leases, retries, roles)."""
+
+from __future__ import annotations
+
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+import pytest
+from fastapi.testclient import TestClient
+from sqlalchemy import func, select
+
+from analysis.model_io import LoadedModel
+from app import campaigns
+from app.cli import main
+from app.db import make_engine, session_factory, write_session
+from app.embeddings import embed_run, load_embeddings
+from app.errors import ConflictError, ForbiddenError, InvalidRequestError
+from app.models import CampaignRegion, GroupLabel, Label, Lease, RegionGroupMember, RegionRow
+from app.people import ensure_person
+
+from .conftest import csrf_of, join
+
+
+@pytest.fixture()
+def factory(project: Path):  # type: ignore[no-untyped-def]
+    engine = make_engine(project)
+    yield session_factory(engine)
+    engine.dispose()
+
+
+@pytest.fixture()
+def grouped(project: Path, factory, varied_model: LoadedModel) -> campaigns.CampaignInfo:  # type: ignore[no-untyped-def]
+    """A campaign (two people per region) whose regions are embedded with the run's model and grouped in eights."""
+    embed_run(factory, project, 1, varied_model)
+    emb = load_embeddings(project, 1)
+    with write_session(factory) as s:
+        cid = campaigns.create_campaign(s, name="grouped", run_id=1, labels_per_region=2)
+        c = campaigns.get_campaign(s, cid)
+        campaigns.make_groups(s, campaign=c, region_ids=list(emb.region_ids), vectors=emb.vectors, size=8, max_class_share=0.5)
+    return c
+
+
+def _person(factory, name: str) -> int:  # type: ignore[no-untyped-def]
+    with write_session(factory) as s:
+        return ensure_person(s, name, "annotator")
+
+
+def test_embeddings_cover_every_region_of_the_run_in_one_file(project: Path, factory, varied_model: LoadedModel) -> None:  # type: ignore[no-untyped-def]
+    got = embed_run(factory, project, 1, varied_model)
+    emb = load_embeddings(project, 1)
+    with factory() as s:
+        regions = sorted(s.scalars(select(RegionRow.id)))
+    assert sorted(emb.region_ids.tolist()) == regions and got.regions == len(regions)
+    assert emb.vectors.shape == (len(regions), got.dimensions) and np.isfinite(emb.vectors).all()
+    assert [p.name for p in (project / "runs" / "1").iterdir() if p.name.startswith("region_embeddings")] == ["region_embeddings.npz"]
+
+
+def test_group_label_gives_each_ticked_crop_its_own_label_with_the_group_as_provenance(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    ann = _person(factory, "ann")
+    with write_session(factory) as s:
+        task = campaigns.lease_group(s, campaign=grouped, person_id=ann)
+        assert task is not None and len(task.crops) >= 4
+        shown = [t.region_id for t in task.crops]
+        ticked, misfit = shown[1:], shown[0]
+        got = campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=ticked,
+                                         entities=[("cap", ["red"])], unsure=False, client_id="g-ann-1", seconds_spent=12.0)
+    assert got.stored and sorted(got.labelled) == sorted(ticked) and got.returned == (misfit,) and got.lost == ()
+    with factory() as s:
+        gl = s.scalar(select(GroupLabel))
+        rows = s.execute(select(Label.region_id, Label.entities, Label.group_label_id, Label.seconds_spent).where(Label.person_id == ann)).all()
+        assert sorted(r[0] for r in rows) == sorted(ticked)
+        assert all(r[1] == [["cap", ["red"]]] and r[2] == gl.id for r in rows)
+        assert sum(r[3] for r in rows) == pytest.approx(12.0)  # the group's time shared over its crops
+        assert s.scalar(select(func.count()).select_from(Lease).where(Lease.person_id == ann)) == 0  # the misfit's place is back
+        # Aggregation reads them as ordinary judgments, one per crop.
+        judged = campaigns.judgments(s, grouped.id)
+        assert sorted(j.region_id for j in judged) == sorted(ticked)
+        assert {j.entities for j in judged} == {(("cap", ("red",)),)}
+    # Undoing the last label withdraws one crop's label; the others keep theirs.
+    with write_session(factory) as s:
+        undone = campaigns.undo_last(s, campaign=grouped, person_id=ann)
+    assert undone is not None
+    with factory() as s:
+        assert sorted(s.scalars(select(Label.region_id).where(Label.person_id == ann))) == sorted(r for r in ticked if r != undone[0])
+    # The misfit is not skipped: it goes back to the queue (here: offered to ann one at a time, never in that group again).
+    with write_session(factory) as s:
+        again = campaigns.lease_group(s, campaign=grouped, person_id=ann)
+        assert again is None or again.group_id != task.group_id
+        singles = [t.region_id for t in campaigns.lease_tasks(s, campaign=grouped, person_id=ann, want=200)]
+    assert misfit in singles or again is not None
+
+
+def test_groups_keep_k_per_region_and_no_repeats(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    people = [_person(factory, n) for n in ("p1", "p2", "p3", "p4")]
+    rounds = 0
+    while rounds < 200:
+        worked = False
+        for pid in people:
+            with write_session(factory) as s:
+                task = campaigns.lease_group(s, campaign=grouped, person_id=pid)
+                if task is None:
+                    continue
+                worked = True
+                crops = [t.region_id for t in task.crops]
+                ticked = crops[: max(1, len(crops) - 1)]  # one misfit each time
+                campaigns.save_group_label(s, campaign=grouped, person_id=pid, group_id=task.group_id, ticked=ticked, entities=[("body", [])],
+                                           unsure=False, client_id=f"g{pid}-{task.group_id}", seconds_spent=None)
+        rounds += 1
+        if not worked:
+            break
+    with factory() as s:
+        per_region = Counter(s.scalars(select(Label.region_id)))
+        pairs = Counter(s.execute(select(Label.region_id, Label.person_id)).all())
+        stored_n = dict(s.execute(select(CampaignRegion.region_id, CampaignRegion.n_labels).where(CampaignRegion.campaign_id == grouped.id)).all())
+        n_groups = s.scalar(select(func.count(func.distinct(RegionGroupMember.group_id))))
+        judged = s.scalar(select(func.count()).select_from(GroupLabel))
+    assert max(per_region.values()) <= 2 and max(pairs.values()) == 1
+    assert all(stored_n[r] == n for r, n in per_region.items())
+    assert judged <= 4 * n_groups  # no person judges a group twice
+    assert sum(per_region.values()) >= len(stored_n)  # most places are filled by groups alone
+
+
+def test_a_held_group_holds_its_crops_places(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    a, b, c = (_person(factory, n) for n in ("a", "b", "c"))
+    with write_session(factory) as s:
+        ta = campaigns.lease_group(s, campaign=grouped, person_id=a)
+        tb = campaigns.lease_group(s, campaign=grouped, person_id=b)
+        tc = campaigns.lease_group(s, campaign=grouped, person_id=c)
+    assert ta is not None and tb is not None
+    held_twice = {t.region_id for t in ta.crops} & {t.region_id for t in tb.crops}
+    assert tc is None or not held_twice & {t.region_id for t in tc.crops}  # two people hold both places of those crops
+    with write_session(factory) as s:  # asking again returns the same group, not a new one
+        again = campaigns.lease_group(s, campaign=grouped, person_id=a)
+    assert again is not None and again.group_id == ta.group_id and [t.region_id for t in again.crops] == [t.region_id for t in ta.crops]
+
+
+def test_group_submit_is_idempotent_and_checks_what_was_handed_out(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    a, b = _person(factory, "a"), _person(factory, "b")
+    with write_session(factory) as s:
+        ta = campaigns.lease_group(s, campaign=grouped, person_id=a)
+        assert ta is not None
+        crops = [t.region_id for t in ta.crops]
+        with pytest.raises(InvalidRequestError, match="tick at least one"):
+            campaigns.save_group_label(s, campaign=grouped, person_id=a, group_id=ta.group_id, ticked=[], entities=[("cap", [])], unsure=False,
+                                       client_id="x1", seconds_spent=None)
+        with pytest.raises(ForbiddenError, match="not handed to you"):
+            campaigns.save_group_label(s, campaign=grouped, person_id=b, group_id=ta.group_id, ticked=crops[:1], entities=[("cap", [])],
+                                       unsure=False, client_id="x2", seconds_spent=None)
+    for _ in range(2):
+        with write_session(factory) as s:
+            got = campaigns.save_group_label(s, campaign=grouped, person_id=a, group_id=ta.group_id, ticked=crops, entities=[("cap", [])],
+                                             unsure=False, client_id="x3", seconds_spent=None)
+    assert not got.stored and sorted(got.labelled) == sorted(crops)  # the retry stored nothing and answers as before
+    with factory() as s:
+        assert s.scalar(select(func.count()).select_from(Label)) == len(crops)
+    with write_session(factory) as s, pytest.raises(ConflictError, match="other content"):
+        campaigns.save_group_label(s, campaign=grouped, person_id=a, group_id=ta.group_id, ticked=crops, entities=[("rim", [])],
+                                   unsure=False, client_id="x3", seconds_spent=None)
+
+
+def test_group_pages_and_api_store_one_label_per_ticked_crop(client: TestClient, project: Path, varied_model: LoadedModel) -> None:
+    engine = make_engine(project)
+    factory = session_factory(engine)
+    embed_run(factory, project, 1, varied_model)
+    engine.dispose()
+    assert main(["groups", str(project), "--campaign", "belt audit", "--size", "8"]) == 0
+    csrf = join(client, "gina")
+    page = client.get("/campaigns/1/groups")
+    assert page.status_code == 200 and page.template.name == "annotate_group.html" and page.context["group"] is None  # type: ignore[attr-defined]
+    r = client.post("/campaigns/1/groups/next", data={"csrf": csrf}, follow_redirects=True)
+    group = r.context["group"]  # type: ignore[attr-defined]
+    assert group is not None and 'data-tick' in r.text
+    ids = [c.region_id for c in group.crops]
+    r = client.post("/campaigns/1/groups/label", data={"csrf": csrf, "group_id": group.group_id, "client_id": "form-group-1", "labels": "cap: red",
+                                                       "tick": ids[:-1]}, follow_redirects=False)
+    assert r.status_code == 303, r.text
+    bad = client.post("/campaigns/1/groups/label", data={"csrf": csrf, "group_id": 999, "client_id": "form-group-2", "labels": ";;", "tick": [1]})
+    assert bad.status_code in (303, 422) and "Traceback" not in bad.text
+    api = client.post("/api/campaigns/1/groups/next", headers={"X-CSRF-Token": csrf}).json()
+    if api["group"] is not None:
+        g = api["group"]
+        body = {"client_id": "api-group-1", "entities": [{"entity": "body", "attributes": ["blue"]}], "ticked": [c["region_id"] for c in g["crops"]]}
+        first = client.post(f"/api/campaigns/1/groups/{g['group_id']}/labels", json=body, headers={"X-CSRF-Token": csrf})
+        again = client.post(f"/api/campaigns/1/groups/{g['group_id']}/labels", json=body, headers={"X-CSRF-Token": csrf})
+        assert first.status_code == 201 and first.json()["stored"] and again.status_code == 201 and not again.json()["stored"]
+        too_many = client.post(f"/api/campaigns/1/groups/{g['group_id']}/labels", json={**body, "client_id": "api-group-2", "ticked": list(range(40))},
+                               headers={"X-CSRF-Token": csrf})
+        assert too_many.status_code == 422
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        assert s.scalar(select(func.count()).select_from(Label).where(Label.group_label_id.is_not(None))) >= len(ids) - 1
+    no_token = client.post("/campaigns/1/groups/next", data={})
+    assert no_token.status_code == 403 and "anti-forgery" in no_token.text
+    assert csrf_of(client)
+
+
+def test_groups_command_needs_embeddings_first(project: Path, campaign_id: int, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["groups", str(project), "--campaign", "belt audit"]) == 1
+    assert "heedmap embed" in capsys.readouterr().err
+    assert main(["embed", str(project)]) == 1  # the fixture's run did not record its model file
+    assert "give --model and --sidecar" in capsys.readouterr().err
