@@ -200,3 +200,37 @@ def test_groups_command_needs_embeddings_first(project: Path, campaign_id: int, 
     assert "heedmap embed" in capsys.readouterr().err
     assert main(["embed", str(project)]) == 1  # the fixture's run did not record its model file
     assert "give --model and --sidecar" in capsys.readouterr().err
+
+
+def test_simulated_group_annotators_fill_every_place_through_the_app(project: Path, factory, grouped: campaigns.CampaignInfo,  # type: ignore[no-untyped-def]
+                                                                    small_scenes: Path) -> None:
+    from app.demo_groups import simulate_group_annotations
+
+    got = simulate_group_annotations(factory, project, small_scenes, grouped.id, 3, seed=1)
+    with factory() as s:
+        per_region = Counter(s.scalars(select(Label.region_id).where(Label.campaign_id == grouped.id)))
+        n_regions = s.scalar(select(func.count()).select_from(CampaignRegion).where(CampaignRegion.campaign_id == grouped.id))
+        provenance = s.scalar(select(func.count()).select_from(Label).where(Label.group_label_id.is_not(None)))
+    assert got.group_judgments > 0 and got.labels_from_groups == provenance > 0
+    assert len(per_region) == n_regions and set(per_region.values()) == {2}  # every region has its k labels, none more
+    assert got.labels_from_groups + got.single_labels == sum(per_region.values())
+
+
+def test_group_error_model_misses_misfits_at_its_rate() -> None:
+    """Invented data (an invariant of the simulation): a crop that does not fit stays ticked at about ``miss_misfit``."""
+    import numpy as np
+
+    from demo_data.annotators import SimulatedAnnotator
+    from demo_data.group_annotators import GroupErrors, judge_group
+
+    rng = np.random.default_rng(0)
+    perfect = SimulatedAnnotator("p", accuracy=1.0, synonym_rate=0.0, typo_rate=0.0)
+    truths = [["cap"]] * 9 + [["rim"]] * 3
+    left = fitted = 0
+    for _ in range(400):
+        got = judge_group(perfect, truths, [{"cap": ["red"]}] * 12, rng, GroupErrors(miss_misfit=0.2, drop_fit=0.0))
+        assert got is not None and got.entities[0][0] == "cap"
+        left += sum(got.ticked[9:])
+        fitted += sum(got.ticked[:9])
+    assert fitted == 9 * 400
+    assert abs(left / 1200 - 0.2) < 0.04  # binomial sd about 0.012

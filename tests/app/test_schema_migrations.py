@@ -154,3 +154,27 @@ def test_open_project_refuses_a_missing_project(tmp_path: Path) -> None:
     with pytest.raises(NotAProjectError, match="is not a heedmap project"):
         open_project(tmp_path / "nothing")
     assert not (tmp_path / "nothing").exists()
+
+
+def test_revision_0003_gives_old_labels_no_group_and_lets_the_campaign_be_grouped(schema3_project: Path) -> None:
+    """Labels given before groups existed keep their content and name no group; a group judgment can then be stored."""
+    import numpy as np
+
+    from app.models import GroupLabel
+
+    engine = make_engine(schema3_project)
+    with write_session(session_factory(engine)) as s:
+        assert {r for r in s.scalars(select(Label.group_label_id))} == {None}
+        (c,) = campaigns.list_campaigns(s)
+        regions = sorted(campaigns.region_classes(s, c.id))
+        vectors = np.random.default_rng(0).normal(size=(len(regions), 4)).astype(np.float32)
+        got = campaigns.make_groups(s, campaign=c, region_ids=regions, vectors=vectors, size=8)
+        assert got.regions >= 1
+        person = s.scalar(select(Label.person_id).order_by(Label.id.desc())) or 0
+        task = campaigns.lease_group(s, campaign=c, person_id=person)
+        if task is not None:
+            ticked = [t.region_id for t in task.crops]
+            campaigns.save_group_label(s, campaign=c, person_id=person, group_id=task.group_id, ticked=ticked, entities=[("cap", [])], unsure=False,
+                                       client_id=uuid.uuid4().hex, seconds_spent=None)
+            assert s.scalar(select(GroupLabel.id)) is not None
+    engine.dispose()

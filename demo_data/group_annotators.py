@@ -1,0 +1,65 @@
+"""Simulated annotators labelling a group of crops (demo and benchmarks only).
+
+Each reads only the part masks under the crops shown to them (never other people's answers): they
+see each crop's parts with their own accuracy, name the part most of the crops show (with the same
+synonyms and typos as on single crops), and untick the crops that do not show it, with a per-crop
+error model: a crop that does not fit stays ticked with probability ``miss_misfit`` (overlooked in a
+grid), and one that fits is unticked with probability ``drop_fit``.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from .annotators import SYNONYMS, SimulatedAnnotator
+from .scenes import PARTS
+
+
+@dataclass(frozen=True)
+class GroupErrors:
+    miss_misfit: float = 0.15  # a crop that does not show the named part is left ticked
+    drop_fit: float = 0.03  # a crop that shows it is unticked anyway
+
+
+@dataclass(frozen=True)
+class GroupJudgment:
+    entities: list[tuple[str, list[str]]]
+    ticked: list[bool]  # per crop shown, in order
+
+
+def _word(part: str, annotator: SimulatedAnnotator, rng: np.random.Generator) -> str:
+    word = part
+    if rng.random() < annotator.synonym_rate and part in SYNONYMS:
+        options = SYNONYMS[part]
+        word = options[int(rng.integers(len(options)))]
+    if rng.random() < annotator.typo_rate and len(word) >= 4:
+        i = int(rng.integers(1, len(word) - 1))
+        word = word[:i] + word[i + 1] + word[i] + word[i + 2 :]
+    return word
+
+
+def judge_group(annotator: SimulatedAnnotator, truths: Sequence[Sequence[str]], attributes: Sequence[dict[str, list[str]]],
+                rng: np.random.Generator, errors: GroupErrors = GroupErrors()) -> GroupJudgment | None:
+    """What this annotator does with a group whose crops truly show ``truths`` (one list of parts per crop);
+    ``attributes`` per crop: its scene's attributes of each part. None: they skip the group (nothing ticked)."""
+    seen = [[p for p in parts if rng.random() < annotator.accuracy] for parts in truths]
+    counts = Counter(p for parts in seen for p in set(parts))
+    if not counts:
+        return None
+    part = min(counts, key=lambda p: (-counts[p], PARTS.index(p) if p in PARTS else len(PARTS)))
+    fits = [part in parts for parts in truths]
+    ticked = [bool(rng.random() >= errors.drop_fit) if fit else bool(rng.random() < errors.miss_misfit) for fit in fits]
+    if not any(ticked):
+        return None
+    # Attributes every fitting ticked crop shares (colours differ between scenes, so usually few).
+    shared: set[str] | None = None
+    for fit, tick, attrs in zip(fits, ticked, attributes):
+        if fit and tick:
+            mine = set(attrs.get(part, []))
+            shared = mine if shared is None else shared & mine
+    attrs_named = sorted(a for a in (shared or set()) if rng.random() < 0.8)
+    return GroupJudgment([(_word(part, annotator, rng), attrs_named)], ticked)

@@ -1,0 +1,125 @@
+"""The group flow in a real browser, keyboard only: name what a grid of crops shares, untick a misfit, save.
+
+It also times one group and one single crop through the pages (keys typed at a stated pace) and prints
+seconds per judgment: a rough figure for people-hours in benchmarks/label_budget.py, not a measurement
+of people (they also look, think and move their eyes across the grid). Nothing here asserts on time.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import time
+import urllib.request
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from sqlalchemy import create_engine, text
+
+from analysis.model_io import LoadedModel
+from app import campaigns
+from app.db import make_engine, session_factory, write_session
+from app.embeddings import embed_run, load_embeddings
+from app.people import create_invite
+
+from .test_label_flow import CHROMIUM, _free_port
+
+pytestmark = [
+    pytest.mark.browser,
+    pytest.mark.skipif(not Path(CHROMIUM).exists(), reason="Debian's chromium is not installed (./dev test installs it as root)"),
+]
+KEY_DELAY_MS = 120  # a steady typist's pace between keys, stated so the timing below can be read
+
+
+@pytest.fixture()
+def served_groups(project: Path, varied_model: LoadedModel) -> Iterator[tuple[str, str, int]]:
+    """The app served over a project whose campaign is grouped in eights; yields (url, invite token, campaign id)."""
+    engine = make_engine(project)
+    factory = session_factory(engine)
+    embed_run(factory, project, 1, varied_model)
+    emb = load_embeddings(project, 1)
+    with write_session(factory) as s:
+        cid = campaigns.create_campaign(s, name="browser groups", run_id=1, labels_per_region=2)
+        campaigns.make_groups(s, campaign=campaigns.get_campaign(s, cid), region_ids=list(emb.region_ids), vectors=emb.vectors, size=8)
+        _, token = create_invite(s, name="gus", role="annotator", campaign_id=cid)
+    engine.dispose()
+    port = _free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=subprocess.PIPE,
+                            stderr=subprocess.STDOUT, text=True, env={**os.environ, "PYTHONUNBUFFERED": "1"})
+    url = f"http://127.0.0.1:{port}"
+    deadline = time.monotonic() + 60
+    while True:
+        try:
+            with urllib.request.urlopen(url + "/", timeout=1):
+                break
+        except OSError:
+            if proc.poll() is not None or time.monotonic() > deadline:
+                proc.kill()
+                output = proc.stdout.read() if proc.stdout else ""
+                if proc.stdout:
+                    proc.stdout.close()
+                raise RuntimeError("server did not start:\n" + output) from None
+            time.sleep(0.2)
+    yield url, token, cid
+    proc.terminate()
+    proc.wait(timeout=10)
+    if proc.stdout:
+        proc.stdout.close()
+
+
+def test_group_flow_keyboard_only_with_rough_timing(served_groups: tuple[str, str, int], project: Path) -> None:
+    from playwright.sync_api import sync_playwright
+
+    url, token, cid = served_groups
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True,
+                                    args=["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--disable-sync", "--no-first-run"])
+        page = browser.new_page()
+        page.goto(f"{url}/join/{token}")
+        page.wait_for_selector("[data-join-confirm]:focus")
+        with page.expect_navigation():
+            page.keyboard.press("Enter")  # the sign-in button has the focus
+        page.goto(f"{url}/campaigns/{cid}/groups")
+        page.wait_for_selector("[data-start]")
+        page.keyboard.press("Enter")  # "Next group" has the focus
+        page.wait_for_selector("[data-group-form]")
+        page.wait_for_selector("body[data-ready]")
+        started = time.perf_counter()
+        crops = page.locator("[data-tick]").count()
+        assert 2 <= crops <= 16
+        assert page.locator("[data-crop]").first.evaluate("img => img.naturalWidth") > 0
+        page.keyboard.type("body: blue", delay=KEY_DELAY_MS)
+        page.keyboard.press("Escape")  # to the grid: each crop's key ticks or unticks it
+        page.keyboard.press("2")
+        assert page.get_attribute("[data-crop-cell]:nth-of-type(2)", "data-unticked") == "1"
+        page.keyboard.press("3")
+        page.keyboard.press("3")  # ticked again
+        page.keyboard.press("/")  # back to the text box
+        page.keyboard.type(", shiny", delay=KEY_DELAY_MS)
+        page.keyboard.press("Enter")
+        page.wait_for_selector(f"[data-progress]:has-text('{crops - 1} of')")
+        group_seconds = time.perf_counter() - started
+
+        page.goto(f"{url}/campaigns/{cid}/label")  # the next group's crops are held for gus: the single page shows the first
+        page.wait_for_selector("[data-label-form]")
+        page.wait_for_selector("body[data-ready]")
+        started = time.perf_counter()
+        page.keyboard.type("cap: red", delay=KEY_DELAY_MS)
+        page.keyboard.press("Enter")
+        page.wait_for_selector(f"[data-progress]:has-text('{crops} of')")
+        single_seconds = time.perf_counter() - started
+        browser.close()
+    engine = create_engine(f"sqlite:///{project / 'heedmap.db'}")
+    with engine.connect() as c:
+        rows = c.execute(text("select l.region_id, l.entities, l.group_label_id from labels l join people p on p.id = l.person_id "
+                              "where p.name = 'gus' order by l.id")).all()
+        group = c.execute(text("select ticked, unticked from group_labels")).one()
+    engine.dispose()
+    grouped = [r for r in rows if r[2] is not None]
+    assert len(grouped) == crops - 1 and all(r[1] == '[["body", ["blue", "shiny"]]]' for r in grouped)
+    assert len(rows) == crops and rows[-1][2] is None and rows[-1][1] == '[["cap", ["red"]]]'
+    assert len(eval(group[1])) == 1  # noqa: S307 - a JSON list of one region id from our own database
+    print(f"\nrough timing (machine, keys every {KEY_DELAY_MS} ms, no looking time): group of {crops} crops {group_seconds:.1f} s "
+          f"= {group_seconds / (crops - 1):.2f} s per crop labelled; single crop {single_seconds:.1f} s per judgment")
