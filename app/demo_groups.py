@@ -16,7 +16,7 @@ import numpy as np
 from sqlalchemy.orm import Session, sessionmaker
 
 from demo_data.annotators import demo_crowd, simulate_label
-from demo_data.group_annotators import GroupErrors, judge_group
+from demo_data.group_annotators import DEFAULT_ERRORS, GroupErrors, judge_group
 
 from . import campaigns
 from .db import write_session
@@ -45,7 +45,7 @@ def group_campaign(factory: sessionmaker[Session], project_dir: Path, campaign_i
 
 
 def simulate_group_annotations(factory: sessionmaker[Session], project_dir: Path, data_root: Path, campaign_id: int, n_annotators: int, *,
-                               seed: int = 0, errors: GroupErrors = GroupErrors()) -> GroupSimulation:
+                               seed: int = 0, errors: GroupErrors = DEFAULT_ERRORS) -> GroupSimulation:
     """``n_annotators`` simulated people label the grouped campaign group by group, then what is left one crop at a time."""
     crowd = demo_crowd(n_annotators, seed)
     rng = np.random.default_rng(seed)

@@ -25,6 +25,9 @@ class GroupErrors:
     drop_fit: float = 0.03  # a crop that shows it is unticked anyway
 
 
+DEFAULT_ERRORS = GroupErrors()
+
+
 @dataclass(frozen=True)
 class GroupJudgment:
     entities: list[tuple[str, list[str]]]
@@ -43,9 +46,10 @@ def _word(part: str, annotator: SimulatedAnnotator, rng: np.random.Generator) ->
 
 
 def judge_group(annotator: SimulatedAnnotator, truths: Sequence[Sequence[str]], attributes: Sequence[dict[str, list[str]]],
-                rng: np.random.Generator, errors: GroupErrors = GroupErrors()) -> GroupJudgment | None:
+                rng: np.random.Generator, errors: GroupErrors | None = None) -> GroupJudgment | None:
     """What this annotator does with a group whose crops truly show ``truths`` (one list of parts per crop);
     ``attributes`` per crop: its scene's attributes of each part. None: they skip the group (nothing ticked)."""
+    errors = errors or DEFAULT_ERRORS
     seen = [[p for p in parts if rng.random() < annotator.accuracy] for parts in truths]
     counts = Counter(p for parts in seen for p in set(parts))
     if not counts:
