@@ -22,9 +22,29 @@ import json
 import time
 from pathlib import Path
 
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+from scipy.stats import spearmanr
+
+from analysis.concepts import Judgment
+from analysis.errors import AnalysisError
+from analysis.grouping import group_regions
+from demo_data.annotators import SimulatedAnnotator, demo_crowd, simulate_label
+from demo_data.group_annotators import judge_group
 from demo_data.scenes import SceneConfig, generate_dataset
 from demo_data.train import train_demo_model
 
+from .measure import print_table
+
+# Rough seconds per judgment from the browser test (tests/browser/test_group_flow.py, printed there): machine
+# time through the pages with keys typed at a steady pace, no time for looking; a group of 8 crops took 2.7 s,
+# a single crop 1.2 s on this machine. Real people take longer on both; the ratio is the rough part that carries over.
+SECONDS_SINGLE = 1.2
+SECONDS_GROUP = 2.7
 CACHE = Path(__file__).resolve().parent / "out" / "label_budget_cache"
 
 
@@ -43,7 +63,7 @@ def build(cache: Path, *, images: int, seed: int) -> dict[str, object]:
     root.mkdir(parents=True, exist_ok=True)
     t = time.perf_counter()
     data = root / "data"
-    generate_dataset(data, SceneConfig(seed=seed, n_train=1200, n_test=images, n_counterfactual=0, cue="tag"))
+    generate_dataset(data, SceneConfig(seed=seed, n_train=1200, n_test=images, n_counterfactual=100, cue="tag"))
     trained = train_demo_model(data, root / "model", epochs=6, seed=seed)
     engine = make_engine(root / "project")
     factory = session_factory(engine)
@@ -59,16 +79,337 @@ def build(cache: Path, *, images: int, seed: int) -> dict[str, object]:
     return info
 
 
+# --- what the benchmark needs from a project ---------------------------------------------------------
+
+
+@dataclass
+class World:
+    """Everything the simulation reads: predictions, each region's truth, class, image and embedding."""
+
+    project: Path
+    run_id: int
+    predictions: pd.DataFrame  # store.prediction_frame
+    region_class: dict[int, str]
+    region_image: dict[int, int]
+    truths: dict[int, tuple[list[str], dict[str, list[str]]]]  # region -> (parts it shows, its scene's part attributes)
+    embedding: dict[int, npt.NDArray[np.float32]]
+    campaign: Any  # CampaignInfo of the "everything" campaign (for covering tests)
+    model_sha: str
+
+
+def load_world(info: dict[str, object]) -> World:
+    from sqlalchemy import select
+
+    from app import campaigns, store
+    from app.db import make_engine, session_factory, write_session
+    from app.demo import region_truths
+    from app.embeddings import load_embeddings
+    from app.models import Campaign, SaliencyRun
+
+    project, data, run_id = Path(str(info["project"])), Path(str(info["data"])), int(str(info["run_id"]))
+    engine = make_engine(project)
+    factory = session_factory(engine)
+    with write_session(factory) as s:
+        cid = s.scalar(select(Campaign.id).where(Campaign.name == "everything"))
+        if cid is None:
+            cid = campaigns.create_campaign(s, name="everything", run_id=run_id, labels_per_region=3)
+    with factory() as s:
+        c = campaigns.get_campaign(s, cid)
+        predictions = store.prediction_frame(s, run_id)
+        region_class = campaigns.region_classes(s, cid)
+        truths = {r: (t, scene["parts"]) for r, t, scene in region_truths(s, project, data, c)}
+        run = s.get(SaliencyRun, run_id)
+        sha = str((run.provenance or {}).get("model_sha256", "")) if run else ""
+    engine.dispose()
+    region_image = {int(r): int(i) for i, rs in zip(predictions.index, predictions["regions"]) for r in rs}
+    emb = load_embeddings(project, run_id)
+    embedding = {int(r): v for r, v in zip(emb.region_ids, emb.vectors)}
+    return World(project, run_id, predictions, region_class, region_image, truths, embedding, c, sha)
+
+
+# --- simulated labelling --------------------------------------------------------------------------------
+
+
+@dataclass
+class Labelled:
+    """The judgments of one way of labelling a sample, and what they cost in actions."""
+
+    judgments: list[Judgment]
+    singles: int = 0  # one crop, one submit
+    groups: int = 0  # one group judgment (gives a label to each ticked crop)
+
+    @property
+    def n(self) -> int:
+        return len(self.judgments)
+
+
+def _judgment(region: int, name: str, entities: list[tuple[str, list[str]]]) -> Judgment:
+    return Judgment(region, name, tuple((e, tuple(a)) for e, a in entities), False)
+
+
+def _disagree(world: World, found: list[Judgment]) -> bool:
+    """Whether the first two labels of a region disagree (budget's rule when it is in the tree, else: their concept sets differ)."""
+    try:
+        from app.campaigns.redundancy import first_disagree
+    except ImportError:
+        from analysis.concepts import judgment_concepts
+
+        a, b = (frozenset(judgment_concepts(j)) for j in found[:2])
+        return a != b
+    return bool(first_disagree(found, base=2, rules=None, cls=None))
+
+
+def label_singly(world: World, regions: list[int], crowd: list[SimulatedAnnotator], rng: np.random.Generator, *, k: int,
+                 adaptive: bool = False) -> Labelled:
+    out = Labelled([])
+    base = 2 if adaptive else k
+    for r in regions:
+        parts, attrs = world.truths[r]
+        found = [_judgment(r, a.name, simulate_label(a, parts, attrs, rng)) for a in crowd[:base]]
+        if adaptive and k > base and _disagree(world, found):
+            found += [_judgment(r, a.name, simulate_label(a, parts, attrs, rng)) for a in crowd[base:k]]
+        out.judgments += found
+        out.singles += len(found)
+    return out
+
+
+def label_in_groups(world: World, regions: list[int], crowd: list[SimulatedAnnotator], rng: np.random.Generator, *, k: int,
+                    adaptive: bool = False, size: int = 12) -> Labelled:
+    """The group flow of the app, in memory: each person judges each group's crops still open to them; what no group
+    labelled (unticked by everyone, skipped) is labelled one crop at a time; adaptive: two people, a third only on disagreement."""
+    grouping = group_regions(np.stack([world.embedding[r] for r in regions]), [world.region_class[r] for r in regions],
+                             [world.region_image[r] for r in regions], size=size, max_class_share=0.5, seed=0)
+    out = Labelled([])
+    by_region: dict[int, list[Judgment]] = {r: [] for r in regions}
+    wanted = dict.fromkeys(regions, 2 if adaptive else k)
+
+    def group_pass(people: list[SimulatedAnnotator]) -> None:
+        for members in grouping.groups:
+            for a in people:
+                crops = [regions[i] for i in members if len(by_region[regions[i]]) < wanted[regions[i]]
+                         and all(j.annotator != a.name for j in by_region[regions[i]])]
+                if not crops:
+                    continue
+                got = judge_group(a, [world.truths[r][0] for r in crops], [world.truths[r][1] for r in crops], rng)
+                out.groups += 1
+                if got is None:
+                    continue
+                for r, tick in zip(crops, got.ticked):
+                    if tick:
+                        by_region[r].append(_judgment(r, a.name, got.entities))
+
+    def fill_singly() -> None:
+        for r in regions:
+            for a in crowd:
+                if len(by_region[r]) >= wanted[r]:
+                    break
+                if all(j.annotator != a.name for j in by_region[r]):
+                    by_region[r].append(_judgment(r, a.name, simulate_label(a, *world.truths[r], rng)))
+                    out.singles += 1
+
+    group_pass(crowd[: wanted[regions[0]]] if regions else [])
+    fill_singly()
+    if adaptive and k > 2:
+        for r in regions:
+            if _disagree(world, by_region[r]):
+                wanted[r] = k
+        group_pass(crowd)
+        fill_singly()
+    out.judgments = [j for r in regions for j in by_region[r]]
+    return out
+
+
+# --- samples --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Sample:
+    images: list[int]
+    strata: dict[int, str] | None = None  # image -> stratum (a stratified sample), for weighted estimates
+    population: dict[str, int] | None = None
+
+    def regions(self, world: World) -> list[int]:
+        return [int(r) for i in self.images for r in world.predictions.at[i, "regions"]]
+
+
+def random_sample(world: World, n_images: int, seed: int) -> Sample:
+    rng = np.random.default_rng(seed)
+    ids = world.predictions.index.to_numpy()
+    return Sample(sorted(int(i) for i in rng.choice(ids, size=min(n_images, len(ids)), replace=False)))
+
+
+def stratified_sample(world: World, regions_per_class: int, seed: int) -> Sample | None:
+    """The budget engineer's stratified sample (analysis.sampling) when it is in the tree; None otherwise."""
+    try:
+        from analysis.sampling import Stratum, allocate, draw_sample, stratum_kinds
+    except ImportError:
+        return None
+    p = world.predictions
+    kinds = stratum_kinds(list(p["predicted"]), list(p["label"]), p["confidence"].to_numpy(), confident_at=0.9)
+    names = [f"{c} / {k}" for c, k in zip(p["predicted"], kinds)]
+    units: dict[str, list[int]] = {}
+    counts: dict[str, list[int]] = {}
+    for image, name, (cls, kind), rs in zip(p.index, names, zip(p["predicted"], kinds), p["regions"]):
+        units.setdefault(name, []).append(int(image))
+        counts.setdefault(name, [0, 0])
+        counts[name][0] += 1
+        counts[name][1] += len(rs)
+    strata = [Stratum(name.split(" / ")[0], name.split(" / ")[1], n, r) for name, (n, r) in counts.items()]  # type: ignore[arg-type]
+    drawn = draw_sample(units, allocate(strata, regions_per_class=regions_per_class), seed=seed)
+    return Sample(sorted(drawn), {i: st for i, (st, _) in drawn.items()}, {name: len(ids) for name, ids in units.items()})
+
+
+# --- what a sample's labels say ------------------------------------------------------------------------
+
+
+@dataclass
+class Verdict:
+    judgments: int
+    people_seconds: float
+    cue_rank: int | None
+    cue_q: float | None
+    cue_confirmed: bool | None
+    classes_matching: int
+    classes: int
+
+    @property
+    def cue_ok(self) -> bool:
+        return self.cue_rank == 1 and self.cue_q is not None and self.cue_q < 0.01 and bool(self.cue_confirmed)
+
+    @property
+    def rules_ok(self) -> bool:
+        return self.classes_matching == self.classes
+
+
+def concept_table(world: World, labelled: Labelled, sample: Sample | None) -> Any:
+    from analysis.pipeline import campaign_table
+
+    preds = world.predictions if sample is None else world.predictions.loc[sample.images]
+    in_sample = set(world.region_class) if sample is None else set(sample.regions(world))
+    region_class = {r: c for r, c in world.region_class.items() if r in in_sample}
+    options: dict[str, Any] = {}
+    if sample is not None and sample.strata is not None:
+        options = {"sample": sample.strata, "population": sample.population}
+    return campaign_table(labelled.judgments, preds, region_class=region_class, method="majority", **options).table
+
+
+def ranked(rules: pd.DataFrame, cls: str) -> list[str]:
+    mine = rules[rules["class"] == cls].sort_values(["rank", "confidence_low"], ascending=[True, False], kind="stable")
+    return [str(c) for c in mine["concepts"]]
+
+
+def rules_match(reference: list[str], found: list[str]) -> bool:
+    """The same top 3 (as a set) and a rank correlation of at least 0.9 over the reference's top 10."""
+    top = reference[:10]
+    if len(top) < 3 or set(top[:3]) != set(found[:3]):
+        return False
+    where = {c: i for i, c in enumerate(found)}
+    positions = [where.get(c, len(found) + 1) for c in top]
+    rho = spearmanr(range(len(top)), positions).statistic
+    return bool(np.isfinite(rho) and rho >= 0.9)
+
+
+def judge(world: World, model: Any, labelled: Labelled, sample: Sample | None, reference: dict[str, list[str]] | None,
+          seconds: tuple[float, float]) -> tuple[Verdict, dict[str, list[str]]]:
+    from analysis.reliance import VerdictSettings, judge_family
+    from app.db import make_engine, session_factory
+    from app.demo import names_cue
+    from app.reliance import rule_reliance
+    from app.services.campaign_analysis import Results
+
+    table = concept_table(world, labelled, sample)
+    rules = table.rules(min_support=0.02).rules
+    classes = sorted(set(rules["class"]))
+    order = {c: ranked(rules, c) for c in classes}
+    can = rules[rules["class"] == "can"]
+    named = can[[names_cue(str(c), "tag", str(f)) for c, f in zip(can["concepts"], can["family"].fillna(""))]]
+    rank = int(named["rank"].min()) if len(named) else None
+    q = float(named.sort_values("rank")["q_value"].iloc[0]) if len(named) else None
+    confirmed = None
+    if rank == 1 and q is not None and q < 0.01:
+        engine = make_engine(world.project)
+        with session_factory(engine)() as s:
+            res = Results(world.campaign, table, len(labelled.judgments), world.model_sha)
+            tests = rule_reliance(s, world.project, res, model, "can", [str(named.sort_values("rank")["concepts"].iloc[0])])
+        engine.dispose()
+        if tests is not None:
+            found = judge_family([tests], VerdictSettings())
+            confirmed = any(f.reliance == "relies on" for f in found.values())
+        else:
+            confirmed = False
+    ref = reference or order
+    matching = sum(rules_match(ref[c], order.get(c, [])) for c in ref)
+    people = labelled.singles * seconds[0] + labelled.groups * seconds[1]
+    return Verdict(labelled.n, people, rank, q, confirmed, matching, len(ref)), order
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0] if __doc__ else None)
     p.add_argument("--images", type=int, default=5000)
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--cache", type=Path, default=CACHE)
     p.add_argument("--build-only", action="store_true")
+    p.add_argument("--seconds-single", type=float, default=SECONDS_SINGLE, help="seconds per single-crop judgment (rough, browser test)")
+    p.add_argument("--seconds-group", type=float, default=SECONDS_GROUP, help="seconds per group judgment (rough, browser test)")
+    p.add_argument("--out", type=Path, default=Path(__file__).resolve().parent / "out" / "label_budget.json")
     args = p.parse_args(argv)
     info = build(args.cache, images=args.images, seed=args.seed)
-    print(json.dumps(info, indent=2))
+    print(f"project: {info['images']} audited images, {info['regions']} regions (built in {info['build_s']} s, cached in {info['root']})", flush=True)
+    if args.build_only:
+        return 0
+    from analysis.model_io import load_model
+
+    t0 = time.perf_counter()
+    world = load_world(info)
+    model = load_model(Path(str(info["root"])) / "model" / "sorter_cnn.pt", Path(str(info["root"])) / "model" / "sidecar.json")
+    crowd = demo_crowd(3, args.seed)
+    seconds = (args.seconds_single, args.seconds_group)
+    everything = label_singly(world, sorted(world.region_class), crowd, np.random.default_rng(args.seed), k=3)
+    ref_verdict, reference = judge(world, model, everything, None, None, seconds)
+    rows: list[dict[str, object]] = [_row("everything, k=3", "all", ref_verdict, ref_verdict)]
+    print(f"reference ready in {time.perf_counter() - t0:.0f} s", flush=True)
+    n_all = len(world.predictions)
+    ladder = [int(n_all * f) for f in (0.02, 0.04, 0.08, 0.16)]
+    per_class = [max(10, int(world.predictions["regions"].map(len).sum() * f / 3)) for f in (0.02, 0.04, 0.08, 0.16)]
+    ways: list[tuple[str, Any]] = [
+        ("random sample, k=3", lambda i, seed: (random_sample(world, ladder[i], seed), False, False)),
+        ("stratified, k=3", lambda i, seed: (stratified_sample(world, per_class[i], seed), False, False)),
+        ("stratified + groups, k=3", lambda i, seed: (stratified_sample(world, per_class[i], seed), True, False)),
+        ("stratified + groups + adaptive", lambda i, seed: (stratified_sample(world, per_class[i], seed), True, True)),
+    ]
+    for name, make in ways:
+        for i in range(len(ladder)):
+            sample, grouped, adaptive = make(i, args.seed)
+            if sample is None:
+                rows.append({"way": name, "sample": "-", "note": "needs analysis.sampling (not in this tree yet)"})
+                break
+            rng = np.random.default_rng(args.seed + 1)
+            regions = sample.regions(world)
+            labelled = (label_in_groups if grouped else label_singly)(world, regions, crowd, rng, k=3, adaptive=adaptive)
+            try:
+                verdict, _ = judge(world, model, labelled, sample, reference, seconds)
+            except AnalysisError as exc:
+                rows.append({"way": name, "sample": f"{len(sample.images)} images", "note": str(exc)[:80]})
+                continue
+            rows.append(_row(name, f"{len(sample.images)} images", verdict, ref_verdict))
+            print(rows[-1], flush=True)
+            if verdict.cue_ok and verdict.rules_ok:
+                break
+    print()
+    print(f"Seconds per judgment (rough, from tests/browser/test_group_flow.py: machine time, keys at a steady pace, no looking): "
+          f"single crop {args.seconds_single} s, group judgment {args.seconds_group} s.")
+    print_table(rows)
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    args.out.write_text(json.dumps({"build": info, "rows": rows, "seconds": {"single": args.seconds_single, "group": args.seconds_group}}, indent=2,
+                                   default=str))
+    print(f"wrote {args.out} ({time.perf_counter() - t0:.0f} s)")
     return 0
+
+
+def _row(way: str, sample: str, v: Verdict, ref: Verdict) -> dict[str, object]:
+    return {"way": way, "sample": sample, "judgments": v.judgments, "x fewer": round(ref.judgments / max(1, v.judgments), 1),
+            "people-hours": round(v.people_seconds / 3600, 2), "cue rank": v.cue_rank, "cue q": None if v.cue_q is None else float(f"{v.cue_q:.2g}"),
+            "covering confirms": v.cue_confirmed, "(i) cue": v.cue_ok, "classes matching": f"{v.classes_matching}/{v.classes}", "(ii) rules": v.rules_ok}
 
 
 if __name__ == "__main__":
