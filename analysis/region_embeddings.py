@@ -99,10 +99,10 @@ def layer_features(model: LoadedModel, inputs: torch.Tensor) -> torch.Tensor:
         raise InvalidInputError(f"inputs must be N x 3 x {h} x {w}; got {tuple(inputs.shape)}.")
     x = inputs.detach().to(model.device)
     if model.max_batch is not None and len(x) != model.max_batch:
-        parts = [model.tap(chunk)[1].detach() for _, chunk in batch_chunks(x, model.max_batch)]
+        parts = [model.tap(chunk).activation.detach() for _, chunk in batch_chunks(x, model.max_batch)]
         activation = torch.cat(parts)[: len(x)]
     else:
-        activation = model.tap(x)[1].detach()
+        activation = model.tap(x).activation.detach()
     return feature_grid(activation, model.grid).float().cpu()
 
 

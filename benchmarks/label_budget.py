@@ -20,9 +20,8 @@ from __future__ import annotations
 import argparse
 import json
 import time
-from pathlib import Path
-
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -249,7 +248,7 @@ def stratified_sample(world: World, regions_per_class: int, seed: int) -> Sample
     names = [f"{c} / {k}" for c, k in zip(p["predicted"], kinds)]
     units: dict[str, list[int]] = {}
     counts: dict[str, list[int]] = {}
-    for image, name, (cls, kind), rs in zip(p.index, names, zip(p["predicted"], kinds), p["regions"]):
+    for image, name, rs in zip(p.index, names, p["regions"]):
         units.setdefault(name, []).append(int(image))
         counts.setdefault(name, [0, 0])
         counts[name][0] += 1
