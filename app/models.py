@@ -224,8 +224,9 @@ class Label(Base):
     unsure: Mapped[bool] = mapped_column(Boolean, default=False)
     submitted_at: Mapped[datetime] = mapped_column(DateTime(), default=utcnow)
     seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)
-    # Given as part of a group: the group judgment it came from (provenance); None for a single crop.
-    group_label_id: Mapped[int | None] = mapped_column(ForeignKey("group_labels.id"), nullable=True)
+    # Given as part of a group: the id of the group judgment (group_labels) it came from; None for a single crop.
+    # Not a foreign key: group judgments are never deleted, and a plain column can be dropped on SQLite.
+    group_label_id: Mapped[int | None] = mapped_column(Integer, nullable=True)
 
 
 class WithdrawnLabel(Base):

@@ -156,7 +156,7 @@ def test_open_project_refuses_a_missing_project(tmp_path: Path) -> None:
     assert not (tmp_path / "nothing").exists()
 
 
-def test_revision_0003_gives_old_labels_no_group_and_lets_the_campaign_be_grouped(schema3_project: Path) -> None:
+def test_revision_0004_gives_old_labels_no_group_and_lets_the_campaign_be_grouped(schema3_project: Path) -> None:
     """Labels given before groups existed keep their content and name no group; a group judgment can then be stored."""
     import numpy as np
 

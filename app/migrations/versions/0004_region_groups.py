@@ -2,8 +2,8 @@
 
 Existing labels were given one crop at a time: their ``group_label_id`` stays NULL.
 
-Revision ID: 0003_region_groups
-Revises: 0002_fence
+Revision ID: 0004_region_groups
+Revises: 0003_budget
 Create Date: 2026-12-03
 """
 
@@ -12,8 +12,8 @@ from __future__ import annotations
 import sqlalchemy as sa
 from alembic import op
 
-revision = '0003_region_groups'
-down_revision = '0002_fence'
+revision = "0004_region_groups"
+down_revision = "0003_budget"
 branch_labels = None
 depends_on = None
 
@@ -75,12 +75,10 @@ def upgrade() -> None:
 
     with op.batch_alter_table('labels', schema=None) as batch_op:
         batch_op.add_column(sa.Column('group_label_id', sa.Integer(), nullable=True))
-        batch_op.create_foreign_key('fk_labels_group_label_id', 'group_labels', ['group_label_id'], ['id'])
 
 
 def downgrade() -> None:
     with op.batch_alter_table('labels', schema=None) as batch_op:
-        batch_op.drop_constraint('fk_labels_group_label_id', type_='foreignkey')
         batch_op.drop_column('group_label_id')
 
     with op.batch_alter_table('region_group_members', schema=None) as batch_op:
