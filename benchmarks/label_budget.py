@@ -147,14 +147,9 @@ def _judgment(region: int, name: str, entities: list[tuple[str, list[str]]]) -> 
 
 
 def _disagree(world: World, found: list[Judgment]) -> bool:
-    """Whether the first two labels of a region disagree (budget's rule when it is in the tree, else: their concept sets differ)."""
-    try:
-        from app.campaigns.redundancy import first_disagree
-    except ImportError:
-        from analysis.concepts import judgment_concepts
+    """Whether the first two labels of a region disagree, by the adaptive campaigns' own rule (app.campaigns.redundancy)."""
+    from app.campaigns.redundancy import first_disagree
 
-        a, b = (frozenset(judgment_concepts(j)) for j in found[:2])
-        return a != b
     return bool(first_disagree(found, base=2, rules=None, cls=None))
 
 
@@ -228,7 +223,8 @@ class Sample:
     population: dict[str, int] | None = None
 
     def regions(self, world: World) -> list[int]:
-        return [int(r) for i in self.images for r in world.predictions.at[i, "regions"]]
+        regions = world.predictions["regions"]
+        return [int(r) for i in self.images for r in regions.loc[i]]
 
 
 def random_sample(world: World, n_images: int, seed: int) -> Sample:
@@ -237,14 +233,13 @@ def random_sample(world: World, n_images: int, seed: int) -> Sample:
     return Sample(sorted(int(i) for i in rng.choice(ids, size=min(n_images, len(ids)), replace=False)))
 
 
-def stratified_sample(world: World, regions_per_class: int, seed: int) -> Sample | None:
-    """The budget engineer's stratified sample (analysis.sampling) when it is in the tree; None otherwise."""
-    try:
-        from analysis.sampling import Stratum, allocate, draw_sample, stratum_kinds
-    except ImportError:
-        return None
+def stratified_sample(world: World, regions_per_class: int, seed: int) -> Sample:
+    """The stratified sample a budgeted campaign draws (analysis.sampling): by predicted class, confident errors and
+    confident correct predictions both represented, with each stratum's size for the weighted estimates."""
+    from analysis.sampling import Stratum, allocate, draw_sample, stratum_kinds
+
     p = world.predictions
-    kinds = stratum_kinds(list(p["predicted"]), list(p["label"]), p["confidence"].to_numpy(), confident_at=0.9)
+    kinds = stratum_kinds(list(p["predicted"]), list(p["label"]), p["confidence"].to_numpy(), confident_at=0.8)
     names = [f"{c} / {k}" for c, k in zip(p["predicted"], kinds)]
     units: dict[str, list[int]] = {}
     counts: dict[str, list[int]] = {}
@@ -368,8 +363,9 @@ def main(argv: list[str] | None = None) -> int:
     rows: list[dict[str, object]] = [_row("everything, k=3", "all", ref_verdict, ref_verdict)]
     print(f"reference ready in {time.perf_counter() - t0:.0f} s", flush=True)
     n_all = len(world.predictions)
-    ladder = [int(n_all * f) for f in (0.02, 0.04, 0.08, 0.16)]
-    per_class = [max(10, int(world.predictions["regions"].map(len).sum() * f / 3)) for f in (0.02, 0.04, 0.08, 0.16)]
+    fractions = (0.02, 0.04, 0.06, 0.08, 0.12, 0.16, 0.24)
+    ladder = [int(n_all * f) for f in fractions]
+    per_class = [max(10, int(world.predictions["regions"].map(len).sum() * f / 3)) for f in fractions]
     ways: list[tuple[str, Any]] = [
         ("random sample, k=3", lambda i, seed: (random_sample(world, ladder[i], seed), False, False)),
         ("stratified, k=3", lambda i, seed: (stratified_sample(world, per_class[i], seed), False, False)),
@@ -379,9 +375,6 @@ def main(argv: list[str] | None = None) -> int:
     for name, make in ways:
         for i in range(len(ladder)):
             sample, grouped, adaptive = make(i, args.seed)
-            if sample is None:
-                rows.append({"way": name, "sample": "-", "note": "needs analysis.sampling (not in this tree yet)"})
-                break
             rng = np.random.default_rng(args.seed + 1)
             regions = sample.regions(world)
             labelled = (label_in_groups if grouped else label_singly)(world, regions, crowd, rng, k=3, adaptive=adaptive)
@@ -397,7 +390,8 @@ def main(argv: list[str] | None = None) -> int:
     print()
     print(f"Seconds per judgment (rough, from tests/browser/test_group_flow.py: machine time, keys at a steady pace, no looking): "
           f"single crop {args.seconds_single} s, group judgment {args.seconds_group} s.")
-    print_table(rows)
+    header = ["way", "sample", "judgments", "x fewer", "people-hours", "cue rank", "cue q", "covering confirms", "(i) cue", "classes matching", "(ii) rules"]
+    print_table(header, [[r.get(h, r.get("note", "") if h == "judgments" else "") for h in header] for r in rows])
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps({"build": info, "rows": rows, "seconds": {"single": args.seconds_single, "group": args.seconds_group}}, indent=2,
                                    default=str))
