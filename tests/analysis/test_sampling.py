@@ -213,3 +213,26 @@ def test_stratum_kinds():
     assert kinds == ["confident correct", "confident error", "other", "other"]
     with pytest.raises(InvalidInputError, match="confident_at"):
         stratum_kinds([], [], [], confident_at=1.5)
+
+
+def test_compare_classes_on_a_sample_weights_each_class_back():
+    from analysis.compare import compare_classes
+    from analysis.concept_table import build_concept_table
+
+    # Class "can": 100 images, 20 "confident error" ones all show "tag", 80 others none; the sample takes 10 of each
+    # kind, so half the sampled cans show "tag" while a fifth of all cans do. "bottle": 50 images, sampled whole, none show it.
+    kinds = ["err"] * 10 + ["ok"] * 10 + ["bottle"] * 50
+    meta = pd.DataFrame({"true_class": ["bottle"] * 10 + ["can"] * 10 + ["bottle"] * 50, "predicted_class": ["can"] * 20 + ["bottle"] * 50,
+                         "confidence": 0.9, "split": ""}, index=range(70))
+    regions = {i: [i] for i in range(70)}
+    concepts = {i: ({"tag": 1.0} if i < 10 else {"cap": 1.0}) for i in range(70)}
+    table = build_concept_table(meta, regions, {i: 1.0 for i in range(70)}, concepts, method="majority")
+    code = {"bottle": 0, "err": 1, "ok": 2}
+    from dataclasses import replace
+
+    sampled = replace(table, design=Design(np.array([code[k] for k in kinds], dtype=np.int64), np.array([50.0, 20.0, 80.0])))
+    plain = {r.concept: r for r in compare_classes(table, "can", "bottle").all}
+    weighted = {r.concept: r for r in compare_classes(sampled, "can", "bottle").all}
+    assert plain["tag"].rate_a == pytest.approx(0.5)
+    assert weighted["tag"].rate_a == pytest.approx(0.2)  # 20 of 100 cans
+    assert weighted["tag"].rate_b == 0.0 and weighted["tag"].p_value < 0.05

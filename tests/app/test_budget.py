@@ -215,8 +215,9 @@ def test_results_page_and_exports_of_a_sampled_campaign(project: Path) -> None:
         assert "sampling weight" in client.get(f"/campaigns/{c.id}/exports/concepts.csv").text.splitlines()[0]
         assert client.get(f"/campaigns/{c.id}/plots/frequency.png").status_code == 200
         assert client.get(f"/campaigns/{c.id}/stopping").status_code == 200
-        for page in ("ask", "errors", "compare", "expectations"):  # pages that count the sample itself say so
+        for page in ("ask", "errors", "expectations"):  # pages that count the sample itself say so
             assert "data-sample-note" in client.get(f"/campaigns/{c.id}/{page}").text, page
+        assert "data-sample-note" not in client.get(f"/campaigns/{c.id}/compare").text  # its rates are weighted
 
 
 def test_the_budget_revision_leaves_existing_campaigns_as_they_were(tmp_path: Path) -> None:
