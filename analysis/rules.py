@@ -83,10 +83,30 @@ def wilson_lower(successes: npt.ArrayLike, trials: npt.ArrayLike, *, z: float = 
     return (centre - spread) / (1 + z * z / n)
 
 
-def _as_sparse(table: pd.DataFrame) -> sparse.csr_matrix:
+def _as_sparse(table: pd.DataFrame) -> sparse.csc_matrix:
+    """The table as a sparse boolean matrix; sparse columns are read from their stored positions."""
     if len(table.columns) and all(isinstance(t, pd.SparseDtype) for t in table.dtypes):
-        return sparse.csr_matrix(table.sparse.to_coo()).astype(bool)  # type: ignore[attr-defined]  # pandas-stubs lack DataFrame.sparse
-    return sparse.csr_matrix(table.to_numpy(dtype=bool))
+        arrays = [table.iloc[:, j].array for j in range(table.shape[1])]
+        if all(not a.fill_value for a in arrays):
+            rows = []
+            for a in arrays:
+                stored = np.asarray(a.sp_values)
+                at = np.asarray(a.sp_index.indices)
+                rows.append(at[stored.astype(bool)] if stored.dtype != bool or not stored.all() else at)
+            indptr = np.zeros(len(rows) + 1, dtype=np.int64)
+            np.cumsum([len(r) for r in rows], out=indptr[1:])
+            indices = np.concatenate(rows) if rows else np.zeros(0, dtype=np.int64)
+            return sparse.csc_matrix((np.ones(len(indices), dtype=bool), indices, indptr), shape=table.shape)
+        return sparse.csc_matrix(table.sparse.to_coo()).astype(bool)  # type: ignore[attr-defined]  # pandas-stubs lack DataFrame.sparse
+    return sparse.csc_matrix(table.to_numpy(dtype=bool))
+
+
+def _class_codes(classes: pd.Series) -> tuple[npt.NDArray[np.str_], npt.NDArray[np.int64]]:
+    """Sorted class names (as text) and each row's code: what np.unique(classes.astype(str)) gives,
+    hashing the rows once and sorting only the distinct names."""
+    codes, uniques = pd.factorize(classes, use_na_sentinel=False)
+    names, inverse = np.unique(np.asarray(uniques).astype(str), return_inverse=True)
+    return names, inverse.astype(np.int64)[codes]
 
 
 def mine_rules(
@@ -149,7 +169,7 @@ def mine_rules(
         raise InvalidInputError("classes must have the same index as the concept table (one class per image).")
     n = len(table)
     names = [str(c) for c in table.columns]
-    class_names, codes = np.unique(classes.astype(str).to_numpy(), return_inverse=True)
+    class_names, codes = _class_codes(classes)
     threshold = max(min_count, support_count(min_support, n))
     x = _as_sparse(table)
     counter = count_with_mlxtend if engine == "mlxtend" else count_itemsets
@@ -274,7 +294,7 @@ def _redundant(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: n
     return out
 
 
-def _saliency_shares(saliency: RegionMass, x: sparse.csr_matrix, counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64],
+def _saliency_shares(saliency: RegionMass, x: sparse.csc_matrix, counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64],
                      codes: npt.NDArray[np.int64]) -> npt.NDArray[np.float64]:
     """Mean, over the images holding the set and the class, of the saliency share on regions carrying any of its concepts."""
     carries = sparse.csc_matrix(saliency.carries)

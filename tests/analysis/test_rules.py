@@ -229,3 +229,22 @@ def test_top_rules_take_one_rule_per_family() -> None:
         assert group["family"].is_unique and len(group) <= 2
     can = top[top["class"] == "can"]["concepts"].tolist()
     assert can[0] == "tag" and "yellow tag" not in can  # the entity stands for its family
+
+
+def test_sparse_columns_and_class_codes_read_like_the_dense_table_and_numpy_unique() -> None:
+    # Sparse columns are read from their stored positions (an explicitly stored 0 is not a concept
+    # shown), and class names are what np.unique(classes.astype(str)) gives for mixed types: the
+    # rules equal those of the same table held dense.
+    rng = np.random.default_rng(4)
+    dense = pd.DataFrame(rng.random((400, 6)) < 0.3, columns=[f"c{i}" for i in range(6)])
+    classes = pd.Series(rng.choice(np.array([1, "1", "b", 2.5], dtype=object), 400))
+    table = dense.astype(pd.SparseDtype(bool, False))
+    values = dense["c5"].to_numpy().astype(np.int64)
+    at = np.arange(0, 400, 2)  # every other row stored, zeros included
+    at = np.union1d(at, np.nonzero(values)[0]).astype(np.int32)
+    table["c5"] = pd.arrays.SparseArray.from_indices(values[at], at, 400, fill_value=0)
+    assert (table["c5"].array.sp_values == 0).any()
+    a = mine_rules(dense, classes, min_support=0.01, max_len=2, min_lift=0.0).rules
+    b = mine_rules(table, classes, min_support=0.01, max_len=2, min_lift=0.0).rules
+    pd.testing.assert_frame_equal(a, b)
+    assert sorted(set(a["class"])) == np.unique(classes.astype(str).to_numpy()).tolist() == ["1", "2.5", "b"]
