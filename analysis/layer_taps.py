@@ -169,12 +169,12 @@ class Tapped:
         return [self.activation, *(leaf for leaf, _ in self.pooled)]
 
 
-def channel_gradient(tapped: Tapped, target: torch.Tensor, grid: TokenGrid | None) -> tuple[torch.Tensor | None, torch.Tensor | None]:
-    """(alpha, full gradient) for ``target`` (a scalar): alpha is the Grad-CAM weight per channel, the
-    spatial mean of d target / d activation (N x C; patch tokens only for a token grid). The full
-    gradient map is None when every path from the layer went through a global pooling.
-    Both None when the target does not depend on the layer."""
-    grads = torch.autograd.grad(target, tapped.leaves(), allow_unused=True)
+def channel_gradient(tapped: Tapped, target: torch.Tensor, grid: TokenGrid | None, *, seed: torch.Tensor | None = None) -> tuple[torch.Tensor | None, torch.Tensor | None]:
+    """(alpha, full gradient) for ``target`` (a scalar, or weighted by ``seed`` of its shape): alpha is
+    the Grad-CAM weight per channel, the spatial mean of d target / d activation (N x C; patch tokens
+    only for a token grid). The full gradient map is None when every path from the layer went through
+    a global pooling. Both None when the target does not depend on the layer."""
+    grads = torch.autograd.grad(target, tapped.leaves(), grad_outputs=seed, allow_unused=True)
     full = grads[0]
     alpha: torch.Tensor | None = None
     if full is not None:

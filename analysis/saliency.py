@@ -100,7 +100,7 @@ def compute_saliency(model: LoadedModel, inputs: torch.Tensor, *, implementation
     else:
         probs, maps = _compute(model, inputs.detach(), implementation)
     confidence, predicted = probs.max(dim=1)
-    maps_np = maps[:, 0].clamp_min(0).numpy().astype(np.float32)
+    maps_np = np.asarray(maps[:, 0].float().clamp_min_(0).numpy(), dtype=np.float32)  # a fresh tensor: clamped in place, no copy
     empty = maps_np.reshape(len(maps_np), -1).max(axis=1) <= 0
     return SaliencyBatch(
         predicted=predicted.numpy().astype(np.int64),
@@ -150,8 +150,9 @@ def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, tor
         )
     probs = torch.softmax(logits.detach().float(), dim=1)
     predicted = probs.argmax(dim=1)
-    with torch.enable_grad():
-        alpha, _ = channel_gradient(tapped, logits.gather(1, predicted[:, None]).sum(), model.grid)
+    with torch.enable_grad():  # d (each image's predicted logit) / d layer, seeded with the one-hot of the predicted class
+        seed = torch.zeros_like(logits).scatter_(1, predicted[:, None], 1.0)
+        alpha, _ = channel_gradient(tapped, logits, model.grid, seed=seed)
     if alpha is None:
         raise GradientUnavailableError(
             f"the predicted class's logit does not depend on layer {model.sidecar.target_layer!r}; choose a layer before the output ('heedmap layers' lists them)."
