@@ -14,6 +14,8 @@ from __future__ import annotations
 
 import contextlib
 import itertools
+import logging
+import os
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -50,15 +52,26 @@ class ClusterOptions:
 
     workers: int | None = None
     address: str | None = None
-    threads_per_worker: int = 1
+    threads_per_worker: int | None = None  # torch threads per worker; None: this machine's cores shared out (local), 1 (a joined cluster)
 
     def __post_init__(self) -> None:
         if (self.workers is None) == (self.address is None):
             raise AppError("give either --workers N (a local cluster) or --cluster ADDRESS (a running scheduler), not both.")
         if self.workers is not None and not 1 <= self.workers <= 256:
             raise AppError(f"--workers must be between 1 and 256; got {self.workers}.")
-        if not 1 <= self.threads_per_worker <= 256:
+        if self.threads_per_worker is not None and not 1 <= self.threads_per_worker <= 256:
             raise AppError(f"threads per worker must be between 1 and 256; got {self.threads_per_worker}.")
+
+    @property
+    def torch_threads(self) -> int:
+        """Torch threads each worker computes with: the given number, else the local cores shared out among the
+        workers (at least one), or one on a joined cluster (start its workers with one thread each and as many
+        worker processes as cores: ``dask worker ADDRESS --nthreads 1 --nworkers N``)."""
+        if self.threads_per_worker is not None:
+            return self.threads_per_worker
+        if self.workers is not None:
+            return max(1, (os.cpu_count() or 1) // self.workers)
+        return 1
 
 
 _LOADED: dict[ModelSpec, LoadedModel] = {}  # per worker process: the model is loaded once, not per batch
@@ -105,8 +118,8 @@ def connect(options: ClusterOptions) -> Iterator[Any]:
         with client:
             yield client
         return
-    cluster = LocalCluster(n_workers=options.workers, threads_per_worker=options.threads_per_worker, processes=True,  # type: ignore[no-untyped-call]  # distributed: untyped
-                           host="127.0.0.1", dashboard_address=None, silence_logs=40)
+    cluster = LocalCluster(n_workers=options.workers, threads_per_worker=1, processes=True,  # type: ignore[no-untyped-call]  # distributed: untyped
+                           host="127.0.0.1", dashboard_address=None, silence_logs=logging.CRITICAL)
     with cluster, Client(cluster) as client:  # type: ignore[no-untyped-call]  # distributed: untyped
         yield client
 
@@ -133,7 +146,8 @@ def run_saliency_on_cluster(
     ``model`` is loaded in this process too: its provenance keys the run, so a job on the cluster
     continues a single-process run of the same model and images, and the other way round.
     ``after_batch`` is called with the number of batches stored so far, after each one is stored.
-    ``client``: a Dask client already connected (``options`` then only sets threads per worker).
+    ``client``: a Dask client already connected (``options`` then only sets the torch threads per worker).
+    A worker runs one batch at a time (one Dask thread), with ``options.torch_threads`` torch threads.
     """
     if spec.sha256 != model.sha256:
         raise AppError("the model spec does not match the loaded model (sha256 differs).")
@@ -151,7 +165,7 @@ def run_saliency_on_cluster(
         queue = iter(batches)
 
         def submit(batch: list[tuple[int, str]]) -> Any:
-            return client.submit(worker_batch, spec, batch, params, options.threads_per_worker, pure=False)
+            return client.submit(worker_batch, spec, batch, params, options.torch_threads, pure=False)
 
         running = as_completed([submit(b) for b in itertools.islice(queue, window)])  # type: ignore[no-untyped-call]  # distributed: untyped
         for fut in running:

@@ -4,7 +4,8 @@
     .venv/bin/python -m benchmarks.cluster_saliency --quick    # 400 images
     .venv/bin/python -m benchmarks.cluster_saliency --arch resnet18 --size 224 --images 192
 
-Each worker runs one torch thread; the single-process job runs two (the machine's cores). The cluster is
+The machine's cores are shared out among the workers (1 worker: two torch threads; 2 workers: one each), as
+`--workers N` does; the single-process job runs two threads. The cluster is
 started before the clock starts (its start-up is reported on its own line); every run writes a fresh
 project through the one writer, so the rates count every read, computation and write. Runs alternate
 (1 worker, 2 workers, single process) twice and the faster of each is kept. The load average printed is
@@ -70,7 +71,7 @@ def main(argv: list[str] | None = None) -> str:
             register_images(factory, records)
             return project, factory
 
-        rates: dict[str, list[float]] = {"1 worker": [], "2 workers": [], "single process (2 threads)": []}
+        rates: dict[str, list[float]] = {"1 worker": [], "2 workers": [], "single process": []}
         starts: dict[str, float] = {}
         for _ in range(2):
             for label, workers in (("1 worker", 1), ("2 workers", 2)):
@@ -85,7 +86,7 @@ def main(argv: list[str] | None = None) -> str:
             project, factory = fresh("p")
             t = time.perf_counter()
             run_saliency(factory, project, model, batch_size=BATCH, images=records, progress=None)
-            rates["single process (2 threads)"].append(n / (time.perf_counter() - t))
+            rates["single process"].append(n / (time.perf_counter() - t))
         writer = writer_rates(work, records)
     load_end = os.getloadavg()[0]
     base = max(rates["1 worker"])

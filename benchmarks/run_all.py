@@ -27,6 +27,8 @@ BENCHMARKS = [
     ("agreement_page", "The agreement page on a large campaign: only what is shown, and cached"),
     ("annotation_load", "50 annotators at once against the served app"),
     ("product_scale", "The product at two sizes: pages, exports, labelling task, saliency job, disk and memory"),
+    ("saliency_job", "The whole saliency job against plain inference, and its files"),
+    ("cluster_saliency", "The saliency job on a local cluster: 1 and 2 workers"),
 ]
 START, END = "<!-- benchmarks:start -->", "<!-- benchmarks:end -->"
 

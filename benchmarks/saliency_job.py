@@ -45,10 +45,26 @@ def _images(work: Path, n: int, size: int) -> list:  # type: ignore[type-arg]
     from analysis.images import find_images
     from demo_data.scenes import SceneConfig, generate_dataset
 
-    data = work / f"data{size}-{n}"
+    data = work / f"data64-{n}"
     if not (data / "manifest.csv").exists():
-        generate_dataset(data, SceneConfig(seed=0, n_train=0, n_test=n, n_counterfactual=0, size=size))
-    return [r for r in find_images(data / "manifest.csv") if r.split == "test"][:n]
+        generate_dataset(data, SceneConfig(seed=0, n_train=0, n_test=n, n_counterfactual=0))
+    records = [r for r in find_images(data / "manifest.csv") if r.split == "test"][:n]
+    if size == 64:
+        return records
+    # The generator draws 64 px scenes; larger inputs are those scenes enlarged (bilinear) and stored as PNG.
+    from dataclasses import replace
+
+    from PIL import Image
+
+    big = work / f"data{size}-{n}"
+    out = []
+    for r in records:
+        target = big / Path(r.path).relative_to(data)
+        if not target.exists():
+            target.parent.mkdir(parents=True, exist_ok=True)
+            Image.open(r.path).convert("RGB").resize((size, size), Image.Resampling.BILINEAR).save(target)
+        out.append(replace(r, path=target))
+    return out
 
 
 def _model(arch: str, size: int):  # type: ignore[no-untyped-def]
@@ -120,7 +136,7 @@ def speed_table(work: Path, sizes: dict[str, int]) -> str:
             pre.append(plain_rate(model, records, prefetch=True))
         p, j, q = max(plain), max(job), max(pre)
         rows.append([f"{arch} {px}px", n, p, q, j, j / p, j / q])
-        print(f"{arch} done", flush=True)
+        print(f"{arch} {px}px: plain {plain}, prefetched {pre}, job {job} img/s", flush=True)
     return print_table(["model", "images", "plain img/s", "plain, reads prefetched img/s", "job img/s", "job / plain", "job / prefetched plain"], rows)
 
 

@@ -85,7 +85,7 @@ def test_two_local_workers_store_what_the_single_process_job_stores_and_resume(t
         if stored == 2:
             raise Killed
 
-    options = ClusterOptions(workers=2)
+    options = ClusterOptions(workers=2, threads_per_worker=1)
     with connect(options) as client:
         with pytest.raises(Killed):  # the job stops after two batches are stored (as a crash would)
             run_saliency_on_cluster(factory, spread, model, spec, options, batch_size=4, after_batch=kill, client=client)
