@@ -111,11 +111,17 @@ def connect(options: ClusterOptions) -> Iterator[Any]:
         raise AppError(f"--workers and --cluster need Dask distributed; {INSTALL_HINT}.") from None
     if options.address is not None:
         try:
-            client = Client(options.address, timeout=30)  # type: ignore[no-untyped-call]  # distributed: untyped
+            client = Client(options.address, timeout=10)  # type: ignore[no-untyped-call]  # distributed: untyped
         except (OSError, TimeoutError, ValueError) as exc:
             raise AppError(f"could not reach the Dask scheduler at {options.address!r}: {exc}. Start one ('dask scheduler') and its workers "
                            "('dask worker ADDRESS'), or use --workers N for a cluster on this machine.") from None
         with client:
+            if not client.scheduler_info().get("workers"):
+                try:
+                    client.wait_for_workers(1, timeout=60)
+                except (OSError, TimeoutError) as exc:
+                    raise AppError(f"the Dask scheduler at {options.address!r} has no workers ({exc}); start some with "
+                                   f"'dask worker {options.address} --nthreads 1 --nworkers N' on machines that reach the images.") from None
             yield client
         return
     cluster = LocalCluster(n_workers=options.workers, threads_per_worker=1, processes=True,  # type: ignore[no-untyped-call]  # distributed: untyped
