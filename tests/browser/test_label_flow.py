@@ -77,6 +77,8 @@ def test_invite_link_then_keyboard_labelling_suggestions_and_undo(served: tuple[
         page.click("[data-join-confirm]")  # opening the link asks; the button signs in
         page.click("[data-start]")  # showing the page takes nothing; the button hands out a region
         page.wait_for_selector("body[data-ready]")
+        # The crop is cut from the original image when asked: wait until it has arrived (or failed), then check it shows.
+        page.wait_for_function("() => { const img = document.querySelector('[data-crop]'); return img && img.complete; }")
         assert page.locator("[data-crop]").evaluate("img => img.naturalWidth") > 0
 
         def saved(n: int) -> None:
