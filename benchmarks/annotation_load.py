@@ -74,12 +74,16 @@ def make_project(root: Path, n_images: int, n_people: int, k: int, database_url:
 
 
 def _cpu_seconds(pid: int) -> float:
-    """User + system processor seconds of process ``pid`` so far (Linux /proc; 0 elsewhere)."""
-    try:
-        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
-    except OSError:
-        return 0.0
-    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    """User + system processor seconds of process ``pid`` and its live children (server workers) so far (Linux /proc; 0 elsewhere)."""
+    total = 0.0
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except (OSError, IndexError):
+            continue
+        if stat.parent.name == str(pid) or fields[1] == str(pid):
+            total += (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    return total
 
 
 def free_port() -> int:

@@ -15,7 +15,7 @@ from app.deps import COOKIE
 from app.errors import ConflictError
 from app.main import create_app
 from app.models import Person, Secret
-from app.people import create_invite, key_path, session_cookie, set_role
+from app.people import create_invite, key_path, load_key, session_cookie, set_role
 from app.settings import Settings
 
 from .conftest import invite, join
@@ -89,3 +89,23 @@ def test_an_invite_never_changes_an_existing_persons_role(client: TestClient, pr
     assert client.post("/admin/people/role", data={"csrf": csrf, "name": "ed", "role": "admin"}, follow_redirects=False).status_code == 303
     lone = client.post("/admin/people/role", data={"csrf": csrf, "name": "nobody", "role": "admin"})
     assert lone.status_code == 404 and "nobody called" in lone.text
+
+
+def test_server_processes_starting_at_once_share_one_key(tmp_path: Path) -> None:
+    """Several workers (``serve --workers N``) may make the key at the same moment: every one ends with the same key."""
+    import threading
+
+    gate = threading.Barrier(8, timeout=60)
+    keys: list[bytes] = []
+
+    def start() -> None:
+        gate.wait()
+        keys.append(load_key(tmp_path))
+
+    threads = [threading.Thread(target=start) for _ in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert len(keys) == 8 and len(set(keys)) == 1 and load_key(tmp_path) == keys[0]
+    assert _mode(key_path(tmp_path)) == 0o600 and [p.name for p in tmp_path.iterdir()] == ["secret.key"]  # no temporary file left
