@@ -3,6 +3,7 @@
 
     .venv/bin/python -m benchmarks.agreement_page            # 5,000 images, 10,000 regions, 30,000 labels
     .venv/bin/python -m benchmarks.agreement_page --quick    # 1,000 images
+    .venv/bin/python -m benchmarks.agreement_page --images 20000
 
 The project is synthetic (rows only, no images): 20 annotators name 1-2 of 300 concepts on each
 region, three annotators per region. Both sides read the same database in one run.
@@ -76,8 +77,9 @@ def make_project(root: Path, n_images: int, *, n_people: int = 20, k: int = 3, n
 def main(argv: list[str] | None = None) -> str:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="1,000 images instead of 5,000")
+    p.add_argument("--images", type=int, help="this many images instead (e.g. 20000)")
     args = p.parse_args(argv)
-    n_images = 1_000 if args.quick else 5_000
+    n_images = args.images or (1_000 if args.quick else 5_000)
     with tempfile.TemporaryDirectory() as tmp:
         cid = make_project(Path(tmp), n_images)
         engine = make_engine(Path(tmp))
