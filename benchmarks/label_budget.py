@@ -288,8 +288,11 @@ def concept_table(world: World, labelled: Labelled, sample: Sample | None) -> An
 
 
 def ranked(rules: pd.DataFrame, cls: str) -> list[str]:
+    """The class's rules as the results page ranks them: one entry per family (a rule with its refinements,
+    "tag" with "yellow tag"), best first."""
     mine = rules[rules["class"] == cls].sort_values(["rank", "confidence_low"], ascending=[True, False], kind="stable")
-    return [str(c) for c in mine["concepts"]]
+    families = mine["family"].where(mine["family"].astype(bool), mine["concepts"]) if "family" in mine else mine["concepts"]
+    return list(dict.fromkeys(str(f) for f in families))
 
 
 def rules_match(reference: list[str], found: list[str]) -> bool:
@@ -351,19 +354,26 @@ def main(argv: list[str] | None = None) -> int:
     print(f"project: {info['images']} audited images, {info['regions']} regions (built in {info['build_s']} s, cached in {info['root']})", flush=True)
     if args.build_only:
         return 0
-    from analysis.model_io import load_model
+    from app.db import make_engine, session_factory
+    from app.reliance import model_for_run
 
     t0 = time.perf_counter()
     world = load_world(info)
-    model = load_model(Path(str(info["root"])) / "model" / "sorter_cnn.pt", Path(str(info["root"])) / "model" / "sidecar.json")
+    engine = make_engine(world.project)
+    with session_factory(engine)() as s:
+        model = model_for_run(s, world.run_id)  # the model and sidecar the run recorded
+    engine.dispose()
     crowd = demo_crowd(3, args.seed)
     seconds = (args.seconds_single, args.seconds_group)
     everything = label_singly(world, sorted(world.region_class), crowd, np.random.default_rng(args.seed), k=3)
     ref_verdict, reference = judge(world, model, everything, None, None, seconds)
     rows: list[dict[str, object]] = [_row("everything, k=3", "all", ref_verdict, ref_verdict)]
+    # The noise floor of question (ii): everything labelled again by the same crowd with other random draws.
+    again = label_singly(world, sorted(world.region_class), crowd, np.random.default_rng(args.seed + 99), k=3)
+    rows.append(_row("everything again, k=3 (other draws)", "all", judge(world, model, again, None, reference, seconds)[0], ref_verdict))
     print(f"reference ready in {time.perf_counter() - t0:.0f} s", flush=True)
     n_all = len(world.predictions)
-    fractions = (0.02, 0.04, 0.06, 0.08, 0.12, 0.16, 0.24)
+    fractions = (0.02, 0.04, 0.08, 0.16)
     ladder = [int(n_all * f) for f in fractions]
     per_class = [max(10, int(world.predictions["regions"].map(len).sum() * f / 3)) for f in fractions]
     ways: list[tuple[str, Any]] = [
