@@ -339,31 +339,13 @@ class FxGraph:
 
     def capture(self, probe: torch.Tensor, names: set[str]) -> tuple[object, dict[str, object]]:
         wanted = {node for path, (node, _, _) in self._outputs.items() if path in names}
-        values: dict[torch.fx.Node, object] = {}
-
-        class Recorder(torch.fx.Interpreter):
-            def run_node(self, n: torch.fx.Node) -> object:
-                result = super().run_node(n)
-                if n in wanted:
-                    values[n] = result
-                return result
-
-        out = Recorder(self.module).run(probe)
+        out, values = _run_recording(self.module, probe, wanted)
         return out, {path: values[node] for path, (node, _, _) in self._outputs.items() if path in names and node in values}
 
     def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
-        wanted = {node: path for path, (node, _, _) in self._outputs.items()}
-        values: dict[torch.fx.Node, object] = {}
-
-        class Recorder(torch.fx.Interpreter):
-            def run_node(self, n: torch.fx.Node) -> object:
-                result = super().run_node(n)
-                if n in wanted:
-                    values[n] = result
-                return result
-
+        wanted = {node for node, _, _ in self._outputs.values()}
         with torch.enable_grad():  # recorded, so the default layer's search differentiates this same pass
-            out = Recorder(self.module).run(_grad_probe(probe))
+            out, values = _run_recording(self.module, _grad_probe(probe), wanted)
         self.captured = (out, {path: values[node] for path, (node, _, _) in self._outputs.items() if node in values})
         order = {n: i for i, n in enumerate(self.module.graph.nodes)}
         # Execution order; a module ending on the same node as its child comes after it (outermost last).
@@ -556,6 +538,20 @@ class ScriptGraph:
 
 
 ModelGraph = EagerGraph | FxGraph | ScriptGraph
+
+
+def _run_recording(module: torch.fx.GraphModule, probe: torch.Tensor, wanted: set[torch.fx.Node]) -> tuple[object, dict[torch.fx.Node, object]]:
+    """Run the graph once, keeping the value of each wanted node (one pass serves every layer asked about)."""
+    values: dict[torch.fx.Node, object] = {}
+
+    class Recorder(torch.fx.Interpreter):
+        def run_node(self, n: torch.fx.Node) -> object:
+            result = super().run_node(n)
+            if n in wanted:
+                values[n] = result
+            return result
+
+    return Recorder(module).run(probe), values
 
 
 def _grad_probe(probe: torch.Tensor) -> torch.Tensor:
