@@ -143,6 +143,17 @@ def _cluster_sequence(x: npt.NDArray[np.float64], result: KMeansResult) -> list[
     return seq
 
 
+def _place(i: int, group: list[int], per_class: Counter[str], per_image: Counter[int], cls: str, image: int, *, cap: int,
+           max_per_image: int) -> bool:
+    """Put region ``i`` in the group being filled if its class and its image still have room there; whether it was put."""
+    if per_class[cls] >= cap or per_image[image] >= max_per_image:
+        return False
+    group.append(i)
+    per_class[cls] += 1
+    per_image[image] += 1
+    return True
+
+
 def _cut(sequence: list[int], classes: Sequence[str], images: Sequence[int], *, size: int, cap: int, max_per_image: int) -> list[list[int]]:
     """Cut the sequence into groups of ``size``; a region over its class's ``cap`` or its image's limit waits for the next group."""
     groups: list[list[int]] = []
@@ -156,19 +167,11 @@ def _cut(sequence: list[int], classes: Sequence[str], images: Sequence[int], *, 
             if len(group) == size:
                 break
             i = waiting.popleft()
-            if per_class[classes[i]] < cap and per_image[images[i]] < max_per_image:
-                group.append(i)
-                per_class[classes[i]] += 1
-                per_image[images[i]] += 1
-            else:
+            if not _place(i, group, per_class, per_image, classes[i], images[i], cap=cap, max_per_image=max_per_image):
                 waiting.append(i)
         while len(group) < size and stream:
             i = stream.popleft()
-            if per_class[classes[i]] < cap and per_image[images[i]] < max_per_image:
-                group.append(i)
-                per_class[classes[i]] += 1
-                per_image[images[i]] += 1
-            else:
+            if not _place(i, group, per_class, per_image, classes[i], images[i], cap=cap, max_per_image=max_per_image):
                 waiting.append(i)
         if not stream:
             # Only waiting regions are left and none fits: the rest of a dominant class fills groups on its own.

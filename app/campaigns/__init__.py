@@ -4,7 +4,19 @@ from __future__ import annotations
 
 from .assignment import Task, held_tasks, lease_tasks
 from .checks import check_answers, examples, set_check_answer, set_example
-from .groups import GroupingSummary, GroupResult, GroupTask, held_group, lease_group, make_groups, save_group_label, skip_group
+from .groups import (
+    GroupCounts,
+    GroupingSummary,
+    GroupResult,
+    GroupTask,
+    group_counts,
+    has_groups,
+    held_group,
+    lease_group,
+    make_groups,
+    save_group_label,
+    skip_group,
+)
 from .judgments import judgments, raw_labels, region_classes
 from .labelling import region_visible_to, save_label, skip_region, undo_last
 from .plans import PlanInfo, StratumInfo, plan_of, sample_of, strata_of
@@ -48,6 +60,7 @@ __all__ = [
     "AnnotatorProgress",
     "CampaignInfo",
     "ClassProgress",
+    "GroupCounts",
     "GroupResult",
     "GroupTask",
     "GroupingSummary",
@@ -55,6 +68,8 @@ __all__ = [
     "RuleRow",
     "Task",
     "add_synonym_rule",
+    "group_counts",
+    "has_groups",
     "held_group",
     "held_tasks",
     "lease_group",

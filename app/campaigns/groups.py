@@ -14,7 +14,7 @@ from collections import Counter
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
-from sqlalchemy import and_, delete, exists, func, insert, select, update
+from sqlalchemy import Select, and_, delete, exists, func, insert, select, update
 from sqlalchemy.orm import Session
 
 from analysis.grouping import group_regions
@@ -140,31 +140,49 @@ def held_group(s: Session, *, campaign: CampaignInfo, person_id: int, now: datet
     return _group_task(s, held[0], person_id, campaign.id, held[1])
 
 
-def _pick_group(s: Session, c: CampaignInfo, person_id: int, now: datetime) -> tuple[int, list[int]] | None:
-    """The group with the most crops this person may label now (not judged by them as a group before), and those crops."""
+def _open_place(c: CampaignInfo, person_id: int, now: datetime, region=None):  # type: ignore[no-untyped-def]
+    """The campaign region (``CampaignRegion`` joined on ``region``) still wants a label this person may give now: short of its own
+    quota (adaptive labelling; 0 in a class closed early), its places not all held by others, not seen by this person, not a check item."""
+    wants = func.coalesce(CampaignRegion.quota, c.labels_per_region)
     held_by_others = (
         select(func.count()).where(Lease.campaign_id == c.id, Lease.region_id == CampaignRegion.region_id, Lease.expires_at > now, Lease.person_id != person_id)
         .scalar_subquery()
     )
-    open_place = and_(
-        CampaignRegion.campaign_id == c.id, CampaignRegion.region_id == RegionGroupMember.region_id, CampaignRegion.n_labels < c.labels_per_region,
-        CampaignRegion.check_answer.is_(None), CampaignRegion.example_answer.is_(None), CampaignRegion.n_labels + held_by_others < c.labels_per_region,
-        _unseen(c.id, person_id, now, CampaignRegion.region_id),
+    return and_(
+        CampaignRegion.campaign_id == c.id, *([] if region is None else [CampaignRegion.region_id == region]), CampaignRegion.n_labels < c.labels_per_region,
+        CampaignRegion.n_labels < wants, CampaignRegion.check_answer.is_(None), CampaignRegion.example_answer.is_(None),
+        _unseen(c.id, person_id, now, CampaignRegion.region_id), CampaignRegion.n_labels + held_by_others < wants,
     )
+
+
+def first_open_group(c: CampaignInfo, person_id: int, now: datetime) -> Select[int]:
+    """The statement that finds the group to hand out next (:func:`_pick_group`); a test reads its query plan."""
     judged = exists().where(GroupLabel.campaign_id == c.id, GroupLabel.group_id == RegionGroupMember.group_id, GroupLabel.person_id == person_id)
-    n = func.count().label("n")
-    best = s.execute(
-        select(RegionGroupMember.group_id, n).join(CampaignRegion, open_place)
-        .where(RegionGroupMember.campaign_id == c.id, ~judged).group_by(RegionGroupMember.group_id)
-        .order_by(n.desc(), RegionGroupMember.group_id).limit(1)
-    ).first()
-    if best is None:
+    return (
+        select(RegionGroupMember.group_id).select_from(CampaignRegion)
+        .join(RegionGroupMember, and_(RegionGroupMember.campaign_id == CampaignRegion.campaign_id, RegionGroupMember.region_id == CampaignRegion.region_id))
+        .where(_open_place(c, person_id, now), ~judged)
+        .order_by(CampaignRegion.n_labels, CampaignRegion.region_id).limit(1)
+    )
+
+
+def _pick_group(s: Session, c: CampaignInfo, person_id: int, now: datetime) -> tuple[int, list[int]] | None:
+    """The group of the least-labelled region this person may label now, in a group they have not judged; and that group's open crops.
+
+    The first statement walks the (campaign, n_labels, region) index in order and stops at the first
+    region that qualifies, as the single-crop page does: nothing groups or sorts the campaign, so the
+    cost does not grow with the campaign. On PostgreSQL the crops are locked (SKIP LOCKED: a crop
+    another request is handing out right now is passed over).
+    """
+    first = s.execute(first_open_group(c, person_id, now)).first()
+    if first is None:
         return None
     crops = list(s.scalars(
-        select(RegionGroupMember.region_id).join(CampaignRegion, open_place)
-        .where(RegionGroupMember.group_id == best[0]).order_by(RegionGroupMember.id).limit(MAX_GROUP_CROPS)
+        select(RegionGroupMember.region_id).join(CampaignRegion, _open_place(c, person_id, now, RegionGroupMember.region_id))
+        .where(RegionGroupMember.group_id == first[0]).order_by(RegionGroupMember.id).limit(MAX_GROUP_CROPS)
+        .with_for_update(skip_locked=True, of=CampaignRegion)
     ))
-    return best[0], crops
+    return (first[0], crops) if crops else None
 
 
 def lease_group(s: Session, *, campaign: CampaignInfo, person_id: int, now: datetime | None = None) -> GroupTask | None:
@@ -273,8 +291,28 @@ def skip_group(s: Session, *, campaign: CampaignInfo, person_id: int, group_id: 
     return len(shown)
 
 
-def group_counts(s: Session, campaign_id: int) -> tuple[int, int]:
-    """(groups, group judgments) of a campaign, for the admin page."""
-    groups = s.scalar(select(func.count()).select_from(RegionGroup).where(RegionGroup.campaign_id == campaign_id)) or 0
-    judged = s.scalar(select(func.count()).select_from(GroupLabel).where(GroupLabel.campaign_id == campaign_id)) or 0
-    return int(groups), int(judged)
+@dataclass(frozen=True)
+class GroupCounts:
+    """How a grouped campaign is being labelled, for the admin page."""
+
+    groups: int
+    smallest: int
+    largest: int
+    judgments: int  # group judgments stored (one per person and group)
+    people: int  # people who judged at least one group
+    labels_from_groups: int  # crop labels those judgments gave
+    unticked: int  # crops shown in a group and left unticked (back in the pool for someone else)
+    labels_single: int  # labels given one crop at a time in the same campaign
+
+
+def group_counts(s: Session, campaign_id: int) -> GroupCounts | None:
+    """The campaign's groups and their judgments; None when it is not grouped."""
+    sizes = s.execute(select(func.count()).select_from(RegionGroupMember).where(RegionGroupMember.campaign_id == campaign_id)
+                      .group_by(RegionGroupMember.group_id)).scalars().all()
+    if not sizes:
+        return None
+    judged = s.execute(select(func.count(), func.count(func.distinct(GroupLabel.person_id))).where(GroupLabel.campaign_id == campaign_id)).one()
+    unticked = sum(len(u or []) for u in s.scalars(select(GroupLabel.unticked).where(GroupLabel.campaign_id == campaign_id)))
+    from_groups = s.scalar(select(func.count()).select_from(Label).where(Label.campaign_id == campaign_id, Label.group_label_id.is_not(None))) or 0
+    single = s.scalar(select(func.count()).select_from(Label).where(Label.campaign_id == campaign_id, Label.group_label_id.is_(None))) or 0
+    return GroupCounts(len(sizes), min(sizes), max(sizes), int(judged[0]), int(judged[1]), int(from_groups), unticked, int(single))

@@ -143,7 +143,8 @@ def campaign_admin(request: Request, campaign_id: int, s: SessionDep, viewer: Ad
                "examples": campaigns.examples(s, campaign_id),
                "methods": METHODS, "careless_seconds": settings.careless_seconds,
                "plan": campaigns.plan_of(s, campaign_id), "strata": campaigns.strata_of(s, campaign_id),
-               "redundancy": campaigns.redundancy_counts(s, campaign_id), "judgments_spent": sum(a.labels for a in annotators)}
+               "redundancy": campaigns.redundancy_counts(s, campaign_id), "groups": campaigns.group_counts(s, campaign_id),
+               "judgments_spent": sum(a.labels for a in annotators)}
     return render(request, "campaign_admin.html", context, viewer=viewer)
 
 

@@ -142,7 +142,7 @@ def _page(request: Request, s: Session, viewer: Viewer, c: CampaignInfo, *, type
         "campaign": c, "task": public(tasks[0]) if tasks else None, "upcoming": public(tasks[1]) if len(tasks) > 1 else None,
         "done": done, "total": total, "client_id": uuid.uuid4().hex, "typed": typed, "unsure": unsure, "error": error,
         "notice": notice, "attribute_kinds": ATTRIBUTE_KINDS, "examples": campaigns.examples(s, c.id),
-        "may_start": offer and not tasks and c.closed_at is None and done < total,
+        "may_start": offer and not tasks and c.closed_at is None and done < total, "grouped": campaigns.has_groups(s, c.id),
     }
     return render(request, "annotate.html", context, viewer=viewer, status_code=status_code)
 

@@ -22,6 +22,8 @@ from app.people import ensure_person
 
 from .conftest import csrf_of, join
 
+pytestmark = pytest.mark.both_databases
+
 
 @pytest.fixture()
 def factory(project: Path):  # type: ignore[no-untyped-def]
@@ -193,6 +195,16 @@ def test_group_pages_and_api_store_one_label_per_ticked_crop(client: TestClient,
     no_token = client.post("/campaigns/1/groups/next", data={})
     assert no_token.status_code == 403 and "anti-forgery" in no_token.text
     assert csrf_of(client)
+    assert 'href="/campaigns/1/groups" data-group-link' in client.get("/campaigns/1/label").text  # the single-crop page leads to the groups
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        counts = campaigns.group_counts(s, 1)
+        from_groups = s.scalar(select(func.count()).select_from(Label).where(Label.group_label_id.is_not(None)))
+        judged = s.scalar(select(func.count()).select_from(GroupLabel))
+    assert counts is not None and counts.labels_from_groups == from_groups and counts.judgments == judged and counts.unticked >= 1
+    join(client, "root", "admin")
+    admin = client.get("/admin/campaigns/1")
+    assert admin.status_code == 200 and "data-groups" in admin.text
+    assert f"<span data-group-labels>{from_groups}</span>" in admin.text and f"<span data-group-judgments>{judged}</span>" in admin.text
 
 
 def test_groups_command_needs_embeddings_first(project: Path, campaign_id: int, capsys: pytest.CaptureFixture[str]) -> None:
@@ -234,3 +246,21 @@ def test_group_error_model_misses_misfits_at_its_rate() -> None:
         fitted += sum(got.ticked[:9])
     assert fitted == 9 * 400
     assert abs(left / 1200 - 0.2) < 0.04  # binomial sd about 0.012
+
+
+@pytest.mark.sqlite_only
+def test_next_group_walks_the_load_index_instead_of_grouping_the_campaign(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    """SQLite's own query plan: the next group is found by walking the (campaign, n_labels, region) index in order and stopping at
+    the first open region, with no temporary sort or grouping of the campaign's rows."""
+    from datetime import datetime
+
+    from app.campaigns.groups import first_open_group
+    from app.models import utcnow
+
+    with factory() as s:
+        q = first_open_group(grouped, _person(factory, "planner"), utcnow()).compile(s.get_bind())
+        params = tuple(str(q.params[k]) if isinstance(q.params[k], datetime) else q.params[k] for k in q.positiontup or ())
+        plan = [str(r[-1]) for r in s.connection().exec_driver_sql("EXPLAIN QUERY PLAN " + str(q), params)]
+    print("\n".join(plan))
+    assert any("ix_campaign_regions_load" in step for step in plan), plan
+    assert not any("TEMP B-TREE" in step for step in plan), plan

@@ -7,11 +7,7 @@ of people (they also look, think and move their eyes across the grid). Nothing h
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
 import time
-import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -24,12 +20,9 @@ from app.db import make_engine, session_factory, write_session
 from app.embeddings import embed_run, load_embeddings
 from app.people import create_invite
 
-from .test_label_flow import CHROMIUM, _free_port
+from .serving import BROWSER_MARKS, launch, served, sign_in
 
-pytestmark = [
-    pytest.mark.browser,
-    pytest.mark.skipif(not Path(CHROMIUM).exists(), reason="Debian's chromium is not installed (./dev test installs it as root)"),
-]
+pytestmark = BROWSER_MARKS
 KEY_DELAY_MS = 120  # a steady typist's pace between keys, stated so the timing below can be read
 
 
@@ -45,28 +38,8 @@ def served_groups(project: Path, varied_model: LoadedModel) -> Iterator[tuple[st
         campaigns.make_groups(s, campaign=campaigns.get_campaign(s, cid), region_ids=list(emb.region_ids), vectors=emb.vectors, size=8)
         _, token = create_invite(s, name="gus", role="annotator", campaign_id=cid)
     engine.dispose()
-    port = _free_port()
-    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=subprocess.PIPE,
-                            stderr=subprocess.STDOUT, text=True, env={**os.environ, "PYTHONUNBUFFERED": "1"})
-    url = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + 60
-    while True:
-        try:
-            with urllib.request.urlopen(url + "/", timeout=1):
-                break
-        except OSError:
-            if proc.poll() is not None or time.monotonic() > deadline:
-                proc.kill()
-                output = proc.stdout.read() if proc.stdout else ""
-                if proc.stdout:
-                    proc.stdout.close()
-                raise RuntimeError("server did not start:\n" + output) from None
-            time.sleep(0.2)
-    yield url, token, cid
-    proc.terminate()
-    proc.wait(timeout=10)
-    if proc.stdout:
-        proc.stdout.close()
+    with served(project) as url:
+        yield url, token, cid
 
 
 def test_group_flow_keyboard_only_with_rough_timing(served_groups: tuple[str, str, int], project: Path) -> None:
@@ -74,13 +47,9 @@ def test_group_flow_keyboard_only_with_rough_timing(served_groups: tuple[str, st
 
     url, token, cid = served_groups
     with sync_playwright() as p:
-        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True,
-                                    args=["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--disable-sync", "--no-first-run"])
+        browser = launch(p)
         page = browser.new_page()
-        page.goto(f"{url}/join/{token}")
-        page.wait_for_selector("[data-join-confirm]:focus")
-        with page.expect_navigation():
-            page.keyboard.press("Enter")  # the sign-in button has the focus
+        sign_in(page, url, token)
         page.goto(f"{url}/campaigns/{cid}/groups")
         page.wait_for_selector("[data-start]")
         page.keyboard.press("Enter")  # "Next group" has the focus

@@ -2,12 +2,6 @@
 
 from __future__ import annotations
 
-import os
-import socket
-import subprocess
-import sys
-import time
-import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -18,17 +12,10 @@ from app.campaigns import create_campaign
 from app.db import make_engine, session_factory, write_session
 from app.people import create_invite
 
-CHROMIUM = "/usr/bin/chromium"
-pytestmark = [
-    pytest.mark.browser,
-    pytest.mark.skipif(not Path(CHROMIUM).exists(), reason="Debian's chromium is not installed (./dev test installs it as root)"),
-]
+from .serving import BROWSER_MARKS, launch, sign_in
+from .serving import served as serve_project
 
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
+pytestmark = BROWSER_MARKS
 
 
 @pytest.fixture()
@@ -39,28 +26,8 @@ def served(project: Path) -> Iterator[tuple[str, str]]:
         cid = create_campaign(s, name="browser", run_id=1, labels_per_region=2)
         _, token = create_invite(s, name="kim", role="annotator", campaign_id=cid)
     engine.dispose()
-    port = _free_port()
-    proc = subprocess.Popen([sys.executable, "-m", "app.cli", "serve", str(project), "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-                            env={**os.environ, "PYTHONUNBUFFERED": "1"})
-    url = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + 60
-    while True:
-        try:
-            with urllib.request.urlopen(url + "/", timeout=1):
-                break
-        except OSError:
-            if proc.poll() is not None or time.monotonic() > deadline:
-                proc.kill()
-                output = proc.stdout.read() if proc.stdout else ""
-                if proc.stdout:
-                    proc.stdout.close()
-                raise RuntimeError("server did not start:\n" + output) from None
-            time.sleep(0.2)
-    yield url, token
-    proc.terminate()
-    proc.wait(timeout=10)
-    if proc.stdout:
-        proc.stdout.close()
+    with serve_project(project) as url:
+        yield url, token
 
 
 def test_invite_link_then_keyboard_labelling_suggestions_and_undo(served: tuple[str, str], project: Path) -> None:
@@ -69,12 +36,10 @@ def test_invite_link_then_keyboard_labelling_suggestions_and_undo(served: tuple[
     url, token = served
     dialogs: list[str] = []
     with sync_playwright() as p:
-        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True,
-                                    args=["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update", "--disable-sync", "--no-first-run"])
+        browser = launch(p)
         page = browser.new_page()
         page.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
-        page.goto(f"{url}/join/{token}")
-        page.click("[data-join-confirm]")  # opening the link asks; the button signs in
+        sign_in(page, url, token)  # opening the link asks; the button signs in
         page.click("[data-start]")  # showing the page takes nothing; the button hands out a region
         page.wait_for_selector("body[data-ready]")
         # The crop is cut from the original image when asked: wait until it has arrived (or failed), then check it shows.
