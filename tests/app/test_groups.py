@@ -264,3 +264,24 @@ def test_next_group_walks_the_load_index_instead_of_grouping_the_campaign(factor
     print("\n".join(plan))
     assert any("ix_campaign_regions_load" in step for step in plan), plan
     assert not any("TEMP B-TREE" in step for step in plan), plan
+
+
+def test_a_class_closed_early_hands_out_no_crop_in_groups(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    """Groups mix classes; once a class is closed its crops leave the groups handed out (its regions want no more labels)."""
+    with factory() as s:
+        classes = Counter(campaigns.region_classes(s, grouped.id).values())
+    closed = classes.most_common(1)[0][0]
+    with write_session(factory) as s:
+        campaigns.close_class(s, campaign_id=grouped.id, cls=closed)
+    ann = _person(factory, "ann")
+    seen: list[str] = []
+    for _ in range(60):
+        with write_session(factory) as s:
+            task = campaigns.lease_group(s, campaign=grouped, person_id=ann)
+            if task is None:
+                break
+            seen += [t.predicted for t in task.crops]
+            got = campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=[t.region_id for t in task.crops],
+                                             entities=[("body", [])], unsure=False, client_id=f"closed-{task.group_id}", seconds_spent=None)
+            assert got.lost == ()
+    assert seen and closed not in seen and set(seen) <= set(classes)
