@@ -14,7 +14,6 @@ from scipy import sparse
 from .errors import InvalidInputError
 from .rules import RegionMass, RuleTable, mine_rules
 from .sampling import Design
-from .weighted_rules import weighted_rules
 
 Target = Literal["predicted", "true", "errors"]
 TARGETS: tuple[Target, ...] = ("predicted", "true", "errors")
@@ -76,12 +75,8 @@ class ConceptTable:
 
         A sampled table's rates are weighted estimates with design-based intervals (analysis.weighted_rules).
         """
-        if self.design is not None:
-            rules = weighted_rules(self.presence, self.targets(target), self.design, min_support=min_support, max_len=max_len, min_lift=min_lift,
-                                   min_count=min_count, prune=prune, saliency=self.regions, families=dict(self.families))
-        else:
-            rules = mine_rules(self.presence, self.targets(target), min_support=min_support, max_len=max_len, min_lift=min_lift,
-                               min_count=min_count, prune=prune, saliency=self.regions, families=self.families)
+        rules = mine_rules(self.presence, self.targets(target), min_support=min_support, max_len=max_len, min_lift=min_lift, min_count=min_count,
+                           prune=prune, saliency=self.regions, families=self.families, design=self.design)
         if target == "errors":
             kept = rules.rules[rules.rules["class"] != CORRECT].reset_index(drop=True)
             return replace(rules, rules=kept)

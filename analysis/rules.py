@@ -18,6 +18,7 @@ from scipy import sparse
 from .association import associate, benjamini_hochberg, fisher_greater  # noqa: F401  (the latter two are imported from here too)
 from .errors import InvalidInputError
 from .itemsets import ItemsetCounts, count_itemsets, count_with_mlxtend
+from .sampling import Design
 
 RULE_COLUMNS = [
     "class", "concepts", "size", "n_images", "support", "confidence", "confidence_low", "lift", "leverage", "conviction",
@@ -121,6 +122,7 @@ def mine_rules(
     saliency: RegionMass | None = None,
     engine: Literal["bitset", "mlxtend"] = "bitset",
     families: Mapping[str, str] | None = None,
+    design: Design | None = None,
 ) -> RuleTable:
     """Mine rules ``concept set => class`` with support, confidence, lift, leverage, conviction and significance.
 
@@ -151,6 +153,11 @@ def mine_rules(
         its own entity is not a rule (it says no more than the refinement alone). Rules are ranked
         by family: a family takes the place of its strongest rule, the entity's own rule comes
         first and its refinements follow it, each with its typicality.
+    design
+        For a table that is a stratified sample: each row's stratum and each stratum's images
+        (:class:`analysis.sampling.Design`). Rules are found in the sample, then every rate is
+        estimated for the population with the sampling weights (:mod:`analysis.weighted_rules`);
+        ``min_support`` and ``min_lift`` then apply to the weighted estimates.
 
     Each rule gets a one-sided Fisher's exact p-value and a Benjamini-Hochberg q-value over every
     rule tested. Rules within a class are ranked by ``confidence_low``, the lower end of the 95%
@@ -167,6 +174,12 @@ def mine_rules(
         raise InvalidInputError("the concept table has no rows; label some regions first.")
     if not table.index.equals(classes.index):
         raise InvalidInputError("classes must have the same index as the concept table (one class per image).")
+    if design is not None:
+        from .weighted_rules import reweigh, sample_support  # it builds on this module's rule table
+
+        in_sample = mine_rules(table, classes, min_support=sample_support(min_support, design, len(table)), max_len=max_len, min_lift=-np.inf,
+                               min_count=min_count, prune=prune, engine=engine, families=families)
+        return reweigh(in_sample, table, classes, design, min_support=min_support, min_lift=min_lift, saliency=saliency)
     n = len(table)
     names = [str(c) for c in table.columns]
     class_names, codes = _class_codes(classes)
@@ -187,8 +200,6 @@ def mine_rules(
     found = associate(n_xy, n_x, n_y, n)
     confidence = found.confidence
     p_class = n_y / n
-    with np.errstate(divide="ignore"):
-        conviction = np.where(confidence < 1, (1 - p_class) / np.maximum(1 - confidence, 1e-300), np.inf)
     out = pd.DataFrame(
         {
             "class": class_names[cls_idx],
@@ -200,7 +211,7 @@ def mine_rules(
             "confidence_low": wilson_lower(n_xy, n_x),
             "lift": found.lift,
             "leverage": n_xy / n - (n_x / n) * p_class,
-            "conviction": conviction,
+            "conviction": conviction(confidence, p_class),
             "class_images": n_y,
             "concept_images": n_x,
             "p_value": found.p_value,
@@ -220,6 +231,13 @@ def mine_rules(
     out["saliency_share"] = _saliency_shares(saliency, x, counts, set_idx[keep], cls_idx[keep], codes) if saliency is not None else np.nan
     out = _rank_by_family(out)
     return RuleTable(out.reset_index(drop=True)[RULE_COLUMNS], n, min_support, max_len, threshold, n_tested, pruned)
+
+
+def conviction(confidence: npt.NDArray[np.float64], class_share: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+    """(1 - P(class)) / (1 - confidence): how much more often the rule would be wrong if set and class were unrelated; infinite at confidence 1."""
+    with np.errstate(divide="ignore"):
+        out: npt.NDArray[np.float64] = np.where(confidence < 1, (1 - class_share) / np.maximum(1 - confidence, 1e-300), np.inf)
+    return out
 
 
 def top_rules(rules: pd.DataFrame, per_class: int) -> pd.DataFrame:
@@ -294,20 +312,23 @@ def _redundant(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: n
     return out
 
 
+def set_mass(saliency: RegionMass, cols: list[int], n_images: int) -> npt.NDArray[np.float64]:
+    """Each image's share of saliency on regions carrying any of the concepts at table columns ``cols``."""
+    on_region = np.asarray(sparse.csc_matrix(saliency.carries)[:, cols].sum(axis=1)).ravel() > 0
+    return np.bincount(saliency.region_image[on_region], weights=saliency.mass[on_region], minlength=n_images).astype(np.float64)
+
+
 def _saliency_shares(saliency: RegionMass, x: sparse.csc_matrix, counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64],
                      codes: npt.NDArray[np.int64]) -> npt.NDArray[np.float64]:
     """Mean, over the images holding the set and the class, of the saliency share on regions carrying any of its concepts."""
-    carries = sparse.csc_matrix(saliency.carries)
     xc = sparse.csc_matrix(x)
     n_images = len(codes)
     out = np.full(len(set_idx), np.nan)
     for r, (s, k) in enumerate(zip(set_idx.tolist(), cls_idx.tolist())):
         cols = list(counts.itemsets[s])
-        on_region = np.asarray(carries[:, cols].sum(axis=1)).ravel() > 0
-        mass = np.bincount(saliency.region_image[on_region], weights=saliency.mass[on_region], minlength=n_images)
         holds = (np.asarray(xc[:, cols].sum(axis=1)).ravel() == len(cols)) & (codes == k)
         if holds.any():
-            out[r] = float(mass[holds].mean())
+            out[r] = float(set_mass(saliency, cols, n_images)[holds].mean())
     return out
 
 

@@ -14,12 +14,11 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-import numpy as np
 import pandas as pd
 
 from .errors import InvalidInputError
+from .rule_ranking import confidence_intervals
 from .rules import top_rules
-from .sampling import wilson
 
 
 @dataclass(frozen=True)
@@ -35,15 +34,6 @@ class ClassSettling:
     @property
     def settled(self) -> bool:
         return self.separated and self.unchanged
-
-
-def _intervals(rules: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
-    low = rules["confidence_low"].to_numpy(dtype=np.float64)
-    if "confidence_high" in rules.columns:
-        high = rules["confidence_high"].to_numpy(dtype=np.float64)
-    else:
-        high = wilson(rules["confidence"].to_numpy(dtype=np.float64), rules["concept_images"].to_numpy(dtype=np.float64))[1]
-    return low, high
 
 
 def _top(rules: pd.DataFrame, cls: str, k: int) -> tuple[str, ...]:
@@ -74,7 +64,7 @@ def settling(now: pd.DataFrame, earlier: Sequence[pd.DataFrame], *, top: int = 3
         if mine.empty:
             out.append(ClassSettling(cls, (), False, False, "no rule yet"))
             continue
-        low, high = _intervals(mine)
+        low, high = confidence_intervals(mine)
         k = min(top, len(mine))
         shown = tuple(mine["concepts"].astype(str).iloc[:k])
         if len(mine) > k:

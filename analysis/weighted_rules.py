@@ -9,7 +9,11 @@ share, a Wald interval on the log scale for lift, each from the linearised varia
 population correction (they describe the audited image set). The p-value is a one-sided Wald test
 that leverage exceeds 0 from the linearised variance without the finite population correction (a
 question about the process that made the images), adjusted by Benjamini-Hochberg over every rule
-tested. Rules are ranked as the unweighted ones are, by the lower end of their confidence interval.
+tested. A rule's typicality (the share of its family's images of the class that show the refinement)
+and its saliency share (the mean share of saliency on regions carrying its concepts, over the images
+holding the set and the class) are weighted means too. Rules are ranked as the unweighted ones are,
+by the lower end of their confidence interval. The entry point is :func:`analysis.rules.mine_rules`
+with a ``design``; pruning there compares confidences in the sample.
 """
 
 from __future__ import annotations
@@ -21,7 +25,7 @@ import pandas as pd
 
 from .association import benjamini_hochberg
 from .errors import InvalidInputError
-from .rules import RULE_COLUMNS, RegionMass, RuleTable, _rank_by_family, mine_rules
+from .rules import RULE_COLUMNS, RegionMass, RuleTable, _rank_by_family, conviction, set_mass
 from .sampling import Z95, Design, effective_size, one_sided_p, ratio, total_variance, wilson
 
 # Columns a weighted rule table adds after RULE_COLUMNS; "n_images", "class_images" and "concept_images" stay counts in the sample.
@@ -31,44 +35,31 @@ SAMPLED_COLUMNS = [
 ]
 
 
-def weighted_rules(
-    table: pd.DataFrame,
-    classes: pd.Series,
-    design: Design,
-    *,
-    min_support: float = 0.02,
-    max_len: int = 2,
-    min_lift: float = 1.0,
-    min_count: int = 1,
-    prune: bool = False,
-    saliency: RegionMass | None = None,
-    families: dict[str, str] | None = None,
-) -> RuleTable:
-    """Rules ``concept set => class`` on a stratified sample, with weighted rates and design-based intervals.
-
-    Parameters are those of :func:`analysis.rules.mine_rules`, plus ``design``: the stratum of each
-    row of ``table`` and each stratum's size in the population. ``min_support`` and ``min_lift``
-    apply to the weighted estimates. Pruning compares confidences in the sample.
-
-    Returns
-    -------
-    RuleTable
-        RULE_COLUMNS then SAMPLED_COLUMNS; ``n_images`` is the sample's count and
-        ``images_estimated`` the population's.
-    """
-    if len(design) != len(table):
-        raise InvalidInputError(f"the design has {len(design)} units but the table {len(table)} rows; give one stratum per image.")
-    w = design.weights
-    if len(w) == 0:
+def sample_support(min_support: float, design: Design, n_rows: int) -> float:
+    """The support to mine the sample at so that no rule whose weighted support reaches ``min_support`` is missed:
+    a rule with weighted support s holds in at least s * mean(w) / max(w) of the sample's images."""
+    if len(design) != n_rows:
+        raise InvalidInputError(f"the design has {len(design)} units but the table {n_rows} rows; give one stratum per image.")
+    if n_rows == 0:
         raise InvalidInputError("the concept table has no rows; label some regions first.")
-    # A rule with weighted support s holds in at least s * mean(w) / max(w) of the sample's images.
-    sample_support = max(min_support * float(w.mean() / w.max()), 1.0 / len(w))
-    found = mine_rules(table, classes, min_support=min(1.0, sample_support), max_len=max_len, min_lift=-np.inf, min_count=min_count,
-                       prune=prune, saliency=saliency, families=families)
+    w = design.weights
+    return min(1.0, max(min_support * float(w.mean() / w.max()), 1.0 / n_rows))
+
+
+def reweigh(found: RuleTable, table: pd.DataFrame, classes: pd.Series, design: Design, *, min_support: float, min_lift: float,
+            saliency: RegionMass | None) -> RuleTable:
+    """The rules ``found`` in a sample (by :func:`analysis.rules.mine_rules` at :func:`sample_support`) with every rate
+    estimated for the population: RULE_COLUMNS then SAMPLED_COLUMNS, ``min_support`` and ``min_lift`` applied to the
+    weighted estimates. ``n_images`` stays the sample's count and ``images_estimated`` is the population's.
+
+    Called by :func:`analysis.rules.mine_rules` when it is given a design.
+    """
     if found.rules.empty:
         return replace(found, rules=pd.DataFrame(columns=RULE_COLUMNS + SAMPLED_COLUMNS), min_support=min_support)
+    w = design.weights
     rules = found.rules
-    x = _holds(table, rules["concepts"].tolist())
+    index = {str(c): i for i, c in enumerate(table.columns)}
+    x = _holds(table, rules["concepts"].tolist(), index)
     y = (classes.astype(str).to_numpy()[:, None] == rules["class"].astype(str).to_numpy()[None, :]).astype(np.float64)
     xy = x * y
     ones = np.ones((len(w), 1))
@@ -91,16 +82,14 @@ def weighted_rules(
     leverage = support.value - share_x.value * share_y.value
     z_lev = (xy - support.value - share_y.value * (x - share_x.value) - share_x.value * (y - share_y.value)) / n_hat
     p = one_sided_p(leverage, np.sqrt(total_variance(z_lev, design, fpc=False)))
-    n_x = x.sum(axis=0)
-    n_y = y.sum(axis=0)
-    conf_low, conf_high = wilson(conf.value, effective_size(conf.value, conf.se, n_x))
-    pres_low, pres_high = wilson(presence.value, effective_size(presence.value, presence.se, n_y))
-    with np.errstate(divide="ignore"):
-        conviction = np.where(conf.value < 1, (1 - share_y.value) / np.maximum(1 - conf.value, 1e-300), np.inf)
+    conf_low, conf_high = wilson(conf.value, effective_size(conf.value, conf.se, x.sum(axis=0)))
+    pres_low, pres_high = wilson(presence.value, effective_size(presence.value, presence.se, y.sum(axis=0)))
     out = rules.assign(
-        support=support.value, confidence=conf.value, confidence_low=conf_low, lift=lift, leverage=leverage, conviction=conviction,
-        p_value=p, images_estimated=t_xy, class_images_estimated=t_y, confidence_high=conf_high, presence_share=presence.value,
-        presence_share_low=pres_low, presence_share_high=pres_high, lift_low=lift_low, lift_high=lift_high, support_se=support.se,
+        support=support.value, confidence=conf.value, confidence_low=conf_low, lift=lift, leverage=leverage,
+        conviction=conviction(conf.value, share_y.value), p_value=p, images_estimated=t_xy, class_images_estimated=t_y, confidence_high=conf_high,
+        presence_share=presence.value, presence_share_low=pres_low, presence_share_high=pres_high, lift_low=lift_low, lift_high=lift_high,
+        support_se=support.se, typicality=_typicality(table, rules, y, w, t_xy, index),
+        saliency_share=_saliency_shares(saliency, rules, xy, w, index) if saliency is not None else np.nan,
     )
     keep = (out["support"].to_numpy() >= min_support - 1e-12) & (out["lift"].to_numpy() > min_lift)
     # Benjamini-Hochberg over every rule tested: with ranks among the rules kept and m = all tested, each q is at
@@ -110,8 +99,42 @@ def weighted_rules(
     out = out.assign(q_value=_bh_of_family(p_all, m))
     out = out[keep].drop(columns=["rank"])
     out = _rank_by_family(out)
-    return RuleTable(out.reset_index(drop=True)[RULE_COLUMNS + SAMPLED_COLUMNS], len(table), min_support, max_len, found.min_count,
+    return RuleTable(out.reset_index(drop=True)[RULE_COLUMNS + SAMPLED_COLUMNS], len(table), min_support, found.max_len, found.min_count,
                      found.n_tested, found.pruned)
+
+
+def _typicality(table: pd.DataFrame, rules: pd.DataFrame, y: np.ndarray, w: np.ndarray, t_xy: np.ndarray, index: dict[str, int]) -> np.ndarray:
+    """Weighted share of the family's images of the class that show the refinement, t(set & class) / t(family & class)
+    (Hajek); NaN for a family's own rule, as unweighted, and where the family's concepts are not all columns."""
+    present = table.to_numpy(dtype=bool)
+    out = np.full(len(rules), np.nan)
+    for j, (concepts, family) in enumerate(zip(rules["concepts"].astype(str), rules["family"].fillna("").astype(str))):
+        if not family or family == concepts:
+            continue
+        try:
+            cols = _split(family, index)
+        except InvalidInputError:
+            continue
+        t_f = float((w * y[:, j]) @ present[:, cols].all(axis=1))
+        if t_f > 0:
+            out[j] = t_xy[j] / t_f
+    return out
+
+
+def _saliency_shares(saliency: RegionMass, rules: pd.DataFrame, xy: np.ndarray, w: np.ndarray, index: dict[str, int]) -> np.ndarray:
+    """Weighted mean, over the images holding the set and the class, of the saliency share on regions carrying any of
+    its concepts: sum w m / sum w over those images (Hajek; NaN where none)."""
+    n = xy.shape[0]
+    out = np.full(len(rules), np.nan)
+    mass: dict[str, np.ndarray] = {}
+    for j, concepts in enumerate(rules["concepts"].astype(str).tolist()):
+        if concepts not in mass:
+            mass[concepts] = set_mass(saliency, _split(concepts, index), n)
+        held = w * xy[:, j]
+        total = float(held.sum())
+        if total > 0:
+            out[j] = float(held @ mass[concepts]) / total
+    return out
 
 
 def _bh_of_family(p: np.ndarray, m: int) -> np.ndarray:
@@ -122,15 +145,12 @@ def _bh_of_family(p: np.ndarray, m: int) -> np.ndarray:
     return q.clip(max=1.0)
 
 
-def _holds(table: pd.DataFrame, sets: list[str]) -> np.ndarray:
-    """(images, rules) 1.0 where the image shows every concept of the rule's set (sets as the rule table writes them)."""
-    names = [str(c) for c in table.columns]
-    index = {c: i for i, c in enumerate(names)}
+def _holds(table: pd.DataFrame, sets: list[str], index: dict[str, int]) -> np.ndarray:
+    """(images, sets) 1.0 where the image shows every concept of the set (sets as the rule table writes them)."""
     x = table.to_numpy(dtype=bool)
     out = np.ones((len(table), len(sets)), dtype=bool)
     for j, s in enumerate(sets):
-        cols = _split(s, index)
-        out[:, j] = x[:, cols].all(axis=1)
+        out[:, j] = x[:, _split(s, index)].all(axis=1)
     return out.astype(np.float64)
 
 

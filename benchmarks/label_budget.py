@@ -27,11 +27,11 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
-from scipy.stats import spearmanr
 
 from analysis.concepts import Judgment
 from analysis.errors import AnalysisError
 from analysis.grouping import group_regions
+from analysis.rule_ranking import RankedFamily, family_ranking, match_ranking
 from demo_data.annotators import SimulatedAnnotator, demo_crowd, simulate_label
 from demo_data.group_annotators import judge_group
 from demo_data.scenes import SceneConfig, generate_dataset
@@ -256,6 +256,13 @@ def stratified_sample(world: World, regions_per_class: int, seed: int) -> Sample
 # --- what a sample's labels say ------------------------------------------------------------------------
 
 
+# The comparisons of question (ii): against labelling everything with k=3, read plainly (its order as it stands) and
+# tie-aware (families whose 95% intervals overlap there are ties: analysis.rule_ranking), and tie-aware against the
+# truth the demo knows (every region labelled once with exactly the parts it shows). The goal reads the tie-aware one.
+COMPARISONS = (("k=3 plain", "everything", False), ("k=3 ties", "everything", True), ("truth ties", "truth", True))
+GOAL = "k=3 ties"
+
+
 @dataclass
 class Verdict:
     judgments: int
@@ -263,16 +270,15 @@ class Verdict:
     cue_rank: int | None
     cue_q: float | None
     cue_confirmed: bool | None
-    classes_matching: int
+    matching: dict[str, int]  # comparison -> classes whose top-10 families match
     classes: int
 
     @property
     def cue_ok(self) -> bool:
         return self.cue_rank == 1 and self.cue_q is not None and self.cue_q < 0.01 and bool(self.cue_confirmed)
 
-    @property
-    def rules_ok(self) -> bool:
-        return self.classes_matching == self.classes
+    def rules_ok(self, comparison: str = GOAL) -> bool:
+        return self.matching.get(comparison, -1) == self.classes
 
 
 def concept_table(world: World, labelled: Labelled, sample: Sample | None) -> Any:
@@ -287,27 +293,12 @@ def concept_table(world: World, labelled: Labelled, sample: Sample | None) -> An
     return campaign_table(labelled.judgments, preds, region_class=region_class, method="majority", **options).table
 
 
-def ranked(rules: pd.DataFrame, cls: str) -> list[str]:
-    """The class's rules as the results page ranks them: one entry per family (a rule with its refinements,
-    "tag" with "yellow tag"), best first."""
-    mine = rules[rules["class"] == cls].sort_values(["rank", "confidence_low"], ascending=[True, False], kind="stable")
-    families = mine["family"].where(mine["family"].astype(bool), mine["concepts"]) if "family" in mine else mine["concepts"]
-    return list(dict.fromkeys(str(f) for f in families))
+Ranking = dict[str, list[RankedFamily]]
 
 
-def rules_match(reference: list[str], found: list[str]) -> bool:
-    """The same top 3 (as a set) and a rank correlation of at least 0.9 over the reference's top 10."""
-    top = reference[:10]
-    if len(top) < 3 or set(top[:3]) != set(found[:3]):
-        return False
-    where = {c: i for i, c in enumerate(found)}
-    positions = [where.get(c, len(found) + 1) for c in top]
-    rho = spearmanr(range(len(top)), positions).statistic
-    return bool(np.isfinite(rho) and rho >= 0.9)
-
-
-def judge(world: World, model: Any, labelled: Labelled, sample: Sample | None, reference: dict[str, list[str]] | None,
-          seconds: tuple[float, float]) -> tuple[Verdict, dict[str, list[str]]]:
+def judge(world: World, model: Any, labelled: Labelled, sample: Sample | None, references: dict[str, Ranking],
+          seconds: tuple[float, float]) -> tuple[Verdict, Ranking]:
+    """Question (i) and the comparisons of question (ii) for one way of labelling; the classes' rankings it gives."""
     from analysis.reliance import VerdictSettings, judge_family
     from app.db import make_engine, session_factory
     from app.demo import names_cue
@@ -317,7 +308,7 @@ def judge(world: World, model: Any, labelled: Labelled, sample: Sample | None, r
     table = concept_table(world, labelled, sample)
     rules = table.rules(min_support=0.02).rules
     classes = sorted(set(rules["class"]))
-    order = {c: ranked(rules, c) for c in classes}
+    order = {c: family_ranking(rules, c) for c in classes}
     can = rules[rules["class"] == "can"]
     named = can[[names_cue(str(c), "tag", str(f)) for c, f in zip(can["concepts"], can["family"].fillna(""))]]
     rank = int(named["rank"].min()) if len(named) else None
@@ -334,10 +325,20 @@ def judge(world: World, model: Any, labelled: Labelled, sample: Sample | None, r
             confirmed = any(f.reliance == "relies on" for f in found.values())
         else:
             confirmed = False
-    ref = reference or order
-    matching = sum(rules_match(ref[c], order.get(c, [])) for c in ref)
+    matching: dict[str, int] = {}
+    n_classes = 0
+    for name, against, ties in COMPARISONS:
+        ref = references.get(against, order)
+        n_classes = len(ref)
+        matching[name] = sum(match_ranking(ref[c], [f.name for f in order.get(c, [])], ties=ties).matches for c in ref)
     people = labelled.singles * seconds[0] + labelled.groups * seconds[1]
-    return Verdict(labelled.n, people, rank, q, confirmed, matching, len(ref)), order
+    return Verdict(labelled.n, people, rank, q, confirmed, matching, n_classes), order
+
+
+def label_truth(world: World) -> Labelled:
+    """Every region labelled once with exactly the parts it shows and all their attributes: the noise-free reference."""
+    return Labelled([_judgment(r, "truth", [(p, list(world.truths[r][1].get(p, []))) for p in world.truths[r][0]])
+                     for r in sorted(world.region_class)])
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -346,6 +347,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--cache", type=Path, default=CACHE)
     p.add_argument("--build-only", action="store_true")
+    p.add_argument("--fractions", type=float, nargs="+", default=[0.02, 0.04, 0.08, 0.16],
+                   help="sample sizes tried, smallest first, as shares of the images (random) or of the regions per class (stratified)")
     p.add_argument("--seconds-single", type=float, default=SECONDS_SINGLE, help="seconds per single-crop judgment (rough, browser test)")
     p.add_argument("--seconds-group", type=float, default=SECONDS_GROUP, help="seconds per group judgment (rough, browser test)")
     p.add_argument("--out", type=Path, default=Path(__file__).resolve().parent / "out" / "label_budget.json")
@@ -365,15 +368,18 @@ def main(argv: list[str] | None = None) -> int:
     engine.dispose()
     crowd = demo_crowd(3, args.seed)
     seconds = (args.seconds_single, args.seconds_group)
+    truth_verdict, truth = judge(world, model, label_truth(world), None, {}, seconds)
     everything = label_singly(world, sorted(world.region_class), crowd, np.random.default_rng(args.seed), k=3)
-    ref_verdict, reference = judge(world, model, everything, None, None, seconds)
-    rows: list[dict[str, object]] = [_row("everything, k=3", "all", ref_verdict, ref_verdict)]
+    ref_verdict, reference = judge(world, model, everything, None, {"truth": truth}, seconds)
+    references = {"everything": reference, "truth": truth}
+    rows: list[dict[str, object]] = [_row("truth: each region's true parts, once", "all", truth_verdict, ref_verdict),
+                                      _row("everything, k=3", "all", ref_verdict, ref_verdict)]
     # The noise floor of question (ii): everything labelled again by the same crowd with other random draws.
     again = label_singly(world, sorted(world.region_class), crowd, np.random.default_rng(args.seed + 99), k=3)
-    rows.append(_row("everything again, k=3 (other draws)", "all", judge(world, model, again, None, reference, seconds)[0], ref_verdict))
-    print(f"reference ready in {time.perf_counter() - t0:.0f} s", flush=True)
+    rows.append(_row("everything again, k=3 (other draws)", "all", judge(world, model, again, None, references, seconds)[0], ref_verdict))
+    print(f"references ready in {time.perf_counter() - t0:.0f} s", flush=True)
     n_all = len(world.predictions)
-    fractions = (0.02, 0.04, 0.08, 0.16)
+    fractions = tuple(args.fractions)
     ladder = [int(n_all * f) for f in fractions]
     per_class = [max(10, int(world.predictions["regions"].map(len).sum() * f / 3)) for f in fractions]
     ways: list[tuple[str, Any]] = [
@@ -382,29 +388,40 @@ def main(argv: list[str] | None = None) -> int:
         ("stratified + groups, k=3", lambda i, seed: (stratified_sample(world, per_class[i], seed), True, False)),
         ("stratified + groups + adaptive", lambda i, seed: (stratified_sample(world, per_class[i], seed), True, True)),
     ]
+    needed: list[list[str]] = []
     for name, make in ways:
+        first: dict[str, Verdict] = {}
         for i in range(len(ladder)):
             sample, grouped, adaptive = make(i, args.seed)
             rng = np.random.default_rng(args.seed + 1)
             regions = sample.regions(world)
             labelled = (label_in_groups if grouped else label_singly)(world, regions, crowd, rng, k=3, adaptive=adaptive)
             try:
-                verdict, _ = judge(world, model, labelled, sample, reference, seconds)
+                verdict, _ = judge(world, model, labelled, sample, references, seconds)
             except AnalysisError as exc:
                 rows.append({"way": name, "sample": f"{len(sample.images)} images", "note": str(exc)[:80]})
                 continue
             rows.append(_row(name, f"{len(sample.images)} images", verdict, ref_verdict))
             print(rows[-1], flush=True)
-            if verdict.cue_ok and verdict.rules_ok:
+            for goal, ok in (("(i)", verdict.cue_ok), ("(ii)", verdict.rules_ok()), ("both", verdict.cue_ok and verdict.rules_ok())):
+                if ok and goal not in first:
+                    first[goal] = verdict
+            if "both" in first:
                 break
+        needed.append([name] + [_needed(first.get(g), ref_verdict) for g in ("(i)", "(ii)", "both")])
     print()
     print(f"Seconds per judgment (rough, from tests/browser/test_group_flow.py: machine time, keys at a steady pace, no looking): "
           f"single crop {args.seconds_single} s, group judgment {args.seconds_group} s.")
-    header = ["way", "sample", "judgments", "x fewer", "people-hours", "cue rank", "cue q", "covering confirms", "(i) cue", "classes matching", "(ii) rules"]
+    header = ["way", "sample", "judgments", "x fewer", "people-hours", "cue rank", "cue q", "covering confirms", "(i) cue",
+              *(f"(ii) {c[0]}" for c in COMPARISONS)]
     print_table(header, [[r.get(h, r.get("note", "") if h == "judgments" else "") for h in header] for r in rows])
+    print()
+    print(f"Judgments each way needed (the smallest sample tried that met the goal; x fewer than everything, k=3 = {ref_verdict.judgments:,}); "
+          f"(ii) is read tie-aware against everything, k=3:")
+    print_table(["way", "(i) cue", "(ii) top-10 rules", "both"], needed)
     args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps({"build": info, "rows": rows, "seconds": {"single": args.seconds_single, "group": args.seconds_group}}, indent=2,
-                                   default=str))
+    args.out.write_text(json.dumps({"build": info, "rows": rows, "needed": needed, "fractions": fractions,
+                                    "seconds": {"single": args.seconds_single, "group": args.seconds_group}}, indent=2, default=str))
     print(f"wrote {args.out} ({time.perf_counter() - t0:.0f} s)")
     return 0
 
@@ -412,7 +429,12 @@ def main(argv: list[str] | None = None) -> int:
 def _row(way: str, sample: str, v: Verdict, ref: Verdict) -> dict[str, object]:
     return {"way": way, "sample": sample, "judgments": v.judgments, "x fewer": round(ref.judgments / max(1, v.judgments), 1),
             "people-hours": round(v.people_seconds / 3600, 2), "cue rank": v.cue_rank, "cue q": None if v.cue_q is None else float(f"{v.cue_q:.2g}"),
-            "covering confirms": v.cue_confirmed, "(i) cue": v.cue_ok, "classes matching": f"{v.classes_matching}/{v.classes}", "(ii) rules": v.rules_ok}
+            "covering confirms": v.cue_confirmed, "(i) cue": v.cue_ok,
+            **{f"(ii) {c[0]}": f"{v.matching[c[0]]}/{v.classes}" for c in COMPARISONS}}
+
+
+def _needed(v: Verdict | None, ref: Verdict) -> str:
+    return "not met" if v is None else f"{v.judgments:,} ({ref.judgments / max(1, v.judgments):.1f}x fewer)"
 
 
 if __name__ == "__main__":

@@ -7,7 +7,7 @@ The population is synthetic (rows only, concepts known exactly, no labelling noi
 classes of unequal size (60/30/10%), about 3% confident errors, and a "shortcut" concept shown far
 more often on the errors. Each repeat draws the campaign's stratified sample (analysis.sampling:
 the same allocation as ``heedmap campaign --regions-per-class``) and computes the rule "shortcut =>
-class" both ways: weighted (analysis.weighted_rules: Hajek ratios, linearised variance) and naive
+class" both ways: weighted (mine_rules with a design, analysis.weighted_rules: Hajek ratios, linearised variance) and naive
 (the sample's own counts, mine_rules, as if every image had been labelled). The table prints, side by
 side, each one's mean error against the population's value and how often its 95% interval covers it.
 This measures the sampling error only: labels are taken as given.
@@ -22,7 +22,6 @@ import pandas as pd
 
 from analysis.rules import mine_rules
 from analysis.sampling import Design, Stratum, allocate, draw_sample, stratum_kinds, wilson
-from analysis.weighted_rules import weighted_rules
 
 from .measure import print_table
 
@@ -70,7 +69,7 @@ def run(n: int, repeats: int, regions_per_class: int, seed: int = 0) -> list[lis
             table = sample[["shortcut", "cap"]].reset_index(drop=True)
             classes = sample["predicted"].reset_index(drop=True)
             design = Design(np.array([names.index(drawn[i][0]) for i in ids], dtype=np.int64), population_sizes)
-            w = weighted_rules(table, classes, design, min_support=1e-6, min_lift=-np.inf, max_len=1).rules.set_index(["class", "concepts"])
+            w = mine_rules(table, classes, design=design, min_support=1e-6, min_lift=-np.inf, max_len=1).rules.set_index(["class", "concepts"])
             u = mine_rules(table, classes, min_support=1e-6, min_lift=-np.inf, max_len=1).rules.set_index(["class", "concepts"])
             if (cls, concept) not in w.index or (cls, concept) not in u.index:
                 continue

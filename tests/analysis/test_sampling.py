@@ -21,7 +21,7 @@ import pytest
 from statsmodels.stats.proportion import proportion_confint
 
 from analysis.errors import InvalidInputError
-from analysis.rules import mine_rules
+from analysis.rules import RegionMass, mine_rules
 from analysis.sampling import (
     Design,
     Stratum,
@@ -34,7 +34,6 @@ from analysis.sampling import (
     total_variance,
     wilson,
 )
-from analysis.weighted_rules import weighted_rules
 
 # Invented populations (invariants of the estimators hold for any values).
 Y = [np.array([3.0, 7.0, 1.0, 4.0, 9.0]), np.array([2.0, 2.0, 8.0, 5.0])]
@@ -127,7 +126,7 @@ def test_weighted_support_is_unbiased_over_every_sample_of_a_tiny_population():
     for picks in _samples():
         table = pd.DataFrame({"tag": _values(concept, picks)})
         classes = pd.Series(_values(cls, picks))
-        found = weighted_rules(table, classes, _design(picks), min_support=1e-9, min_lift=-np.inf).rules
+        found = mine_rules(table, classes, design=_design(picks), min_support=1e-9, min_lift=-np.inf).rules
         row = found[(found["class"] == "a") & (found["concepts"] == "tag")]
         supports.append(float(row["support"].iloc[0]) if len(row) else 0.0)
         confs.append(float(row["confidence"].iloc[0]) if len(row) else 0.0)
@@ -143,7 +142,7 @@ def test_weighted_rules_of_a_census_equal_the_unweighted_rules():
     classes = pd.Series(np.where(table["tag"] | (rng.random(60) < 0.2), "can", "bottle"))
     design = Design(np.where(classes == "can", 0, 1).astype(np.int64), np.array([float((classes == "can").sum()), float((classes == "bottle").sum())]))
     plain = mine_rules(table, classes, min_support=0.05).rules.set_index(["class", "concepts"]).sort_index()
-    weighted = weighted_rules(table, classes, design, min_support=0.05).rules.set_index(["class", "concepts"]).sort_index()
+    weighted = mine_rules(table, classes, design=design, min_support=0.05).rules.set_index(["class", "concepts"]).sort_index()
     assert list(weighted.index) == list(plain.index)
     for col in ("support", "confidence", "lift", "leverage", "n_images"):
         np.testing.assert_allclose(weighted[col].to_numpy(dtype=float), plain[col].to_numpy(dtype=float), rtol=1e-12)
@@ -158,7 +157,7 @@ def test_weighted_rules_undo_an_oversampled_stratum():
     table = pd.DataFrame({"tag": np.r_[np.ones(10), np.zeros(40), np.ones(5), np.zeros(45)].astype(bool)})
     classes = pd.Series(["can"] * 50 + ["bottle"] * 50)
     design = Design(np.r_[np.zeros(50), np.ones(50)].astype(np.int64), np.array([100.0, 900.0]))
-    found = weighted_rules(table, classes, design, min_support=0.001, min_lift=-np.inf).rules.set_index(["class", "concepts"])
+    found = mine_rules(table, classes, design=design, min_support=0.001, min_lift=-np.inf).rules.set_index(["class", "concepts"])
     row = found.loc[("can", "tag")]
     assert row["confidence"] == pytest.approx(20 / 110)
     assert row["support"] == pytest.approx(20 / 1000)
@@ -167,6 +166,60 @@ def test_weighted_rules_undo_an_oversampled_stratum():
     assert row["class_images_estimated"] == pytest.approx(100)
     assert row["confidence_low"] < row["confidence"] < row["confidence_high"]
     assert row["lift_low"] < row["lift"] < row["lift_high"]
+
+
+def _sample_with_regions(seed: int):
+    """A sample of 9 images from strata of 12 (4 drawn, weight 3) and 10 (5 drawn, weight 2), two regions each."""
+    rng = np.random.default_rng(seed)
+    n = 9
+    strata = np.r_[np.zeros(4), np.ones(5)].astype(np.int64)
+    classes = pd.Series(np.where(rng.random(n) < 0.6, "can", "bottle"))
+    tag = rng.random(n) < 0.7
+    yellow = tag & (rng.random(n) < 0.5)
+    cap = rng.random(n) < 0.5
+    table = pd.DataFrame({"tag": tag, "yellow tag": yellow, "cap": cap})
+    region_image = np.repeat(np.arange(n), 2)
+    mass = rng.uniform(0.05, 0.5, 2 * n)
+    # A region carries what its image shows, shared out: the first region the tag family, the second the cap.
+    carries = np.zeros((2 * n, 3), dtype=bool)
+    carries[0::2, 0], carries[0::2, 1], carries[1::2, 2] = tag, yellow, cap
+    from scipy import sparse
+
+    regions = RegionMass(region_image, mass, sparse.csc_matrix(carries))
+    return table, classes, Design(strata, np.array([12.0, 10.0])), regions
+
+
+def test_weighted_rates_equal_the_plain_ones_of_the_population_each_unit_stands_for():
+    """A Horvitz-Thompson weight says how many population units a sampled unit stands for (Horvitz & Thompson 1952):
+    a Hajek ratio is exactly the plain ratio over the sample with every unit repeated by its (whole) weight. Every
+    rate of a weighted rule, typicality and saliency share included, must equal the unweighted rule's over that
+    expanded table; the sample's own unweighted typicality and saliency share differ from it."""
+    from scipy import sparse
+
+    families = {"yellow tag": "tag"}
+    for seed in range(4):
+        table, classes, design, regions = _sample_with_regions(seed)
+        reps = design.weights.astype(int)
+        rows = np.repeat(np.arange(len(table)), reps)
+        big = table.iloc[rows].reset_index(drop=True)
+        big_classes = classes.iloc[rows].reset_index(drop=True)
+        # Each repeated image keeps its own regions.
+        new_pos = np.cumsum(np.r_[0, reps[:-1]])
+        reg_rows = [(r, new_pos[regions.region_image[r]] + k) for r in range(len(regions.mass)) for k in range(reps[regions.region_image[r]])]
+        picked = np.array([r for r, _ in reg_rows])
+        big_regions = RegionMass(np.array([i for _, i in reg_rows]), regions.mass[picked], sparse.csc_matrix(regions.carries)[picked])
+        options = {"min_support": 1e-9, "min_lift": -np.inf, "max_len": 2, "prune": False, "families": families}
+        weighted = mine_rules(table, classes, design=design, saliency=regions, **options).rules.set_index(["class", "concepts"]).sort_index()
+        expanded = mine_rules(big, big_classes, saliency=big_regions, **options).rules.set_index(["class", "concepts"]).sort_index()
+        sample = mine_rules(table, classes, saliency=regions, **options).rules.set_index(["class", "concepts"]).sort_index()
+        assert list(weighted.index) == list(expanded.index)
+        for col in ("support", "confidence", "lift", "leverage", "typicality", "saliency_share"):
+            np.testing.assert_allclose(weighted[col].to_numpy(dtype=float), expanded[col].to_numpy(dtype=float), rtol=1e-12, err_msg=col)
+        assert weighted["typicality"].notna().any() and weighted["saliency_share"].notna().all()
+        common = sample.index.intersection(weighted.index)
+        differs = [not np.allclose(sample.loc[common, c].to_numpy(dtype=float), weighted.loc[common, c].to_numpy(dtype=float), equal_nan=True)
+                   for c in ("typicality", "saliency_share")]
+        assert any(differs), "the sample's own values equal the weighted ones: the check could not fail"
 
 
 def test_wilson_matches_statsmodels():
