@@ -107,8 +107,10 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--json", action="store_true")
     r.add_argument("--max-candidates", type=int, default=DEFAULT_MAX_CANDIDATES, help="refuse settings that could count more concept sets than this")
     from .cli_analysis_args import add_parsers
+    from .cli_stopping import add_stopping_parser
 
     add_parsers(sub)
+    add_stopping_parser(sub)
     from .cli_groups import add_group_parsers
 
     add_group_parsers(sub)
@@ -443,6 +445,10 @@ def _dispatch(args: argparse.Namespace) -> int:
         from . import cli_groups
 
         return int(getattr(cli_groups, args.command)(args))
+    elif args.command == "stopping":
+        from .cli_stopping import stopping
+
+        return stopping(args)
     elif args.command in ("ask", "check", "export", "report", "interventions"):
         from . import cli_analysis
 

@@ -22,6 +22,7 @@ from sqlalchemy.orm import Session
 
 from ..db import dialect_insert, is_postgres
 from ..models import CampaignRegion, Label, Lease, Prediction, RegionRow, Skip, utcnow
+from .plans import budget_left
 from .progress import labels_done
 from .records import CampaignInfo
 
@@ -154,6 +155,10 @@ def lease_tasks(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
         conn.execute(_RENEW, {**mine, "expires": expires})
     picks: list[int] = []
     need = want - len(held)
+    if need > 0:
+        left = budget_left(s, campaign_id=campaign.id, person_id=person_id, now=now)  # None: the campaign has no judgment budget
+        if left is not None:
+            need = min(need, left - len(held))  # places this person holds already count against it
     if need > 0:
         # How many labels the person gave decides when a check item comes; only asked when there are check items.
         check = _pick_check(s, campaign, person_id, now, labels_done(s, campaign.id, person_id) + len(held)) if campaign.n_checks else None

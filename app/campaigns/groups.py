@@ -34,6 +34,7 @@ from ..models import (
 )
 from .assignment import Task, _unseen
 from .labelling import save_label, skip_region
+from .plans import budget_left
 from .records import CampaignInfo, Entities
 
 MAX_GROUP_CROPS = 32  # the most crops one group shows (groups are made of 8-16)
@@ -211,6 +212,11 @@ def lease_group(s: Session, *, campaign: CampaignInfo, person_id: int, now: date
     if picked is None:
         return None
     group_id, crops = picked
+    left = budget_left(s, campaign_id=campaign.id, person_id=person_id, now=now)  # a campaign with a judgment budget hands out no more
+    if left is not None:
+        crops = crops[:left]
+        if not crops:
+            return None
     s.execute(insert(Lease), [{"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires}
                               for r in crops])
     s.execute(insert(GroupLease).values(campaign_id=campaign.id, person_id=person_id, group_id=group_id, expires_at=expires))

@@ -13,6 +13,7 @@ from analysis.concepts import format_label_text
 from ..db import upsert_insert
 from ..errors import ConflictError, ForbiddenError, NotFoundError
 from ..models import CampaignRegion, Label, Lease, Skip, WithdrawnLabel, utcnow
+from .plans import budget_left
 from .records import CampaignInfo, Entities
 from .redundancy import refresh_quota
 from .vocabulary import add_words, words_of
@@ -109,6 +110,10 @@ def save_label(
             held = conn.scalar(_HELD_BY_OTHERS, {**here, "now": now}) or 0
             if n_labels + held >= k:
                 raise ConflictError(f"your hold on region {region_id} ran out and other annotators have its last places; your next region is ready.")
+            # Without a live hold the label is a new judgment: a campaign with a budget takes it only while judgments are left.
+            if budget_left(s, campaign_id=campaign.id, person_id=person_id, now=now) == 0:
+                raise ConflictError(f"campaign {campaign.name!r} has spent its judgment budget; labels are taken only for regions "
+                                    "handed to you before it ran out. Nothing else is left to label here.")
     try:
         conn.execute(_INSERT_LABEL, {
             "client_id": client_id, "campaign_id": campaign.id, "region_id": region_id, "person_id": person_id,

@@ -4,15 +4,16 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from datetime import datetime
 
-from sqlalchemy import func, insert, select
+from sqlalchemy import and_, func, insert, select
 from sqlalchemy.orm import Session
 
 from analysis.errors import InvalidInputError
 from analysis.sampling import Stratum, allocate, draw_sample, regions_per_class_for_budget, stratum_kinds
 
 from ..errors import InvalidRequestError
-from ..models import CampaignPlan, CampaignSample, CampaignStratum, ImageRow, Prediction, RegionRow
+from ..models import CampaignPlan, CampaignRegion, CampaignSample, CampaignStratum, ImageRow, Lease, Prediction, RegionRow
 
 # Share of regions assumed to need the extra labels in an adaptive campaign when sizing a sample for a budget;
 # the admin page shows the judgments actually spent.
@@ -69,6 +70,32 @@ def sample_of(s: Session, campaign_id: int) -> tuple[dict[int, str], dict[str, i
     drawn = dict(s.execute(select(CampaignSample.image_id, CampaignStratum.name).join(CampaignStratum, CampaignStratum.id == CampaignSample.stratum_id)
                            .where(CampaignSample.campaign_id == campaign_id)).all())
     return drawn, population
+
+
+_REGULAR = (CampaignRegion.check_answer.is_(None), CampaignRegion.example_answer.is_(None))
+
+
+def judgments_given(s: Session, campaign_id: int) -> int:
+    """Labels given to the campaign's regions to label (check items and examples are not part of a budget)."""
+    return int(s.scalar(select(func.coalesce(func.sum(CampaignRegion.n_labels), 0)).where(CampaignRegion.campaign_id == campaign_id, *_REGULAR)) or 0)
+
+
+def budget_left(s: Session, *, campaign_id: int, person_id: int, now: datetime) -> int | None:
+    """Judgments a campaign with a budget may still hand out to ``person_id``: the budget less the labels given and the
+    places other people hold now (their live leases); None for a campaign without a budget.
+
+    A place handed out within the budget stays honoured: the person holding it can save their label.
+    """
+    budget = s.scalar(select(CampaignPlan.budget).where(CampaignPlan.campaign_id == campaign_id))
+    if budget is None:
+        return None
+    # On PostgreSQL the plan's row stays locked until commit, so two requests cannot both hand out the last judgment
+    # (SQLite's BEGIN IMMEDIATE holds the one write lock already; SQLAlchemy leaves the clause out there).
+    s.execute(select(CampaignPlan.campaign_id).where(CampaignPlan.campaign_id == campaign_id).with_for_update())
+    held = s.scalar(select(func.count()).select_from(Lease)
+                    .join(CampaignRegion, and_(CampaignRegion.campaign_id == Lease.campaign_id, CampaignRegion.region_id == Lease.region_id))
+                    .where(Lease.campaign_id == campaign_id, Lease.person_id != person_id, Lease.expires_at > now, *_REGULAR)) or 0
+    return max(0, int(budget) - judgments_given(s, campaign_id) - int(held))
 
 
 def check_plan_options(*, budget: int | None, regions_per_class: int | None, labels_per_region: int, adaptive: bool, confident_at: float,

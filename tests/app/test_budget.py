@@ -265,3 +265,57 @@ def test_consistent_labels_settle_each_class_and_a_short_campaign_does_not(facto
     with factory() as s:
         short = stopping_status(s, d, min_support=0.01)
     assert short.checkpoints == () and all(not st.settled and "too few judgments" in st.reason for st in short.classes)
+
+
+def test_a_spent_budget_hands_out_nothing_more_and_honours_the_places_held(factory) -> None:  # type: ignore[no-untyped-def]
+    budget = 7
+    c = _campaign(factory, budget=budget)
+    assert c.n_regions >= 5, "the sample must have room for more judgments than the budget, or the check could not fail"
+    held_by, worker, late = (_person(factory, n) for n in ("ann", "bob", "cy"))
+    with write_session(factory) as s:
+        held = campaigns.lease_tasks(s, campaign=c, person_id=held_by)  # two places held when the budget runs out
+    assert len(held) == 2
+    done = _work(factory, c, worker, lambda r: [("cap", [])])
+    assert len(done) == budget - len(held)  # ann's two held places count against the budget
+    with write_session(factory) as s:
+        assert campaigns.lease_tasks(s, campaign=c, person_id=late) == []
+        for t in held:  # what was handed out within the budget is taken
+            campaigns.save_label(s, campaign=c, region_id=t.region_id, person_id=held_by, entities=[("tag", [])], unsure=False,
+                                 client_id=f"held-{t.region_id}", seconds_spent=1.0)
+    with factory() as s:
+        labels = len(list(s.scalars(select(Label.id).where(Label.campaign_id == c.id))))
+    assert labels == budget
+    with write_session(factory) as s:
+        assert campaigns.lease_tasks(s, campaign=c, person_id=held_by) == []
+        free = next(r for r in campaigns.region_classes(s, c.id) if r not in done)
+        with pytest.raises(ConflictError, match="spent its judgment budget"):  # a label without a place handed out
+            campaigns.save_label(s, campaign=c, region_id=free, person_id=late, entities=[("cap", [])], unsure=False, client_id="no-hold",
+                                 seconds_spent=1.0)
+    # Regions per class alone set no budget: labelling goes on to k per region.
+    d = _campaign(factory, name="per class", k=1, regions_per_class=2)
+    assert len(_work(factory, d, _person(factory, "dee"), lambda r: [("cap", [])])) == d.n_regions
+
+
+def test_cli_shows_settling_and_closes_and_reopens_a_class(project: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["campaign", str(project), "--name", "sampled", "--budget", "30"]) == 0
+    capsys.readouterr()
+    assert main(["stopping", str(project), "--json"]) == 0
+    doc = __import__("json").loads(capsys.readouterr().out)
+    assert doc["budget"] == 30 and doc["judgments_given"] == 0 and doc["budget_left"] == 30
+    cls = doc["classes"][0]["class"]
+    assert main(["stopping", str(project), "--campaign", "sampled", "--close", cls]) == 0
+    out = capsys.readouterr().out
+    assert f"class {cls!r} closed early" in out and f"{cls}: closed early" in out and "rule of thumb" in out
+    engine = make_engine(project)
+    with session_factory(engine)() as s:
+        assert campaigns.plan_of(s, doc["campaign"]).closed_classes == (cls,)  # type: ignore[union-attr]
+    engine.dispose()
+    assert main(["stopping", str(project), "--campaign", str(doc["campaign"]), "--reopen", cls]) == 0
+    assert f"{cls}: closed early" not in capsys.readouterr().out
+    # Bad input: one line saying what to fix, no traceback.
+    assert main(["stopping", str(project), "--close", "no such class"]) == 1
+    err = capsys.readouterr().err
+    assert "no region of class 'no such class'" in err and "Traceback" not in err
+    assert main(["stopping", str(project), "--campaign", "nope"]) == 1
+    err = capsys.readouterr().err
+    assert "no campaign 'nope'" in err and "sampled" in err and "Traceback" not in err
