@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+from typing import Any, TypeAlias
 
 import numpy as np
 import numpy.typing as npt
@@ -24,21 +25,43 @@ def _codes(ratings: npt.ArrayLike) -> tuple[npt.NDArray[np.int64], int]:
     return codes, len(values)
 
 
-def _pairable(counts: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+Counts: TypeAlias = Any
+"""A units x values count table: a dense float array, or a scipy sparse matrix (a column per value, a few used per unit)."""
+
+
+def _as_counts(counts: object) -> Counts:
+    if sparse.issparse(counts):
+        table = sparse.csr_matrix(counts, dtype=float)
+        table.sum_duplicates()
+        table.sort_indices()
+        return table
+    return np.asarray(counts, dtype=float)
+
+
+def _row_sums(counts: Counts) -> npt.NDArray[np.float64]:
+    return np.asarray(counts.sum(axis=1), dtype=float).ravel()
+
+
+def _row_square_sums(counts: Counts) -> npt.NDArray[np.float64]:
+    squared = counts.multiply(counts) if sparse.issparse(counts) else counts**2
+    return np.asarray(squared.sum(axis=1), dtype=float).ravel()
+
+
+def _pairable(counts: Counts) -> Counts:
     """Units x values count table, keeping only units with two or more ratings (the pairable ones)."""
-    counts = np.asarray(counts, dtype=float)
-    kept: npt.NDArray[np.float64] = counts[counts.sum(axis=1) >= 2]
+    counts = _as_counts(counts)
+    kept: Counts = counts[_row_sums(counts) >= 2]
     return kept
 
 
-def _alpha_from_counts(counts: npt.NDArray[np.float64]) -> float:
+def _alpha_from_counts(counts: Counts) -> float:
     """Nominal alpha = 1 - (n - 1) * sum_u D_u / (n^2 - sum_c n_c^2), with D_u = (m_u^2 - sum_c n_uc^2) / (m_u - 1).
 
     This is the coincidence-matrix form with the sums taken per unit.
     """
-    m = counts.sum(axis=1)
-    d = (m**2 - (counts**2).sum(axis=1)) / (m - 1)
-    n_c = counts.sum(axis=0)
+    m = _row_sums(counts)
+    d = (m**2 - _row_square_sums(counts)) / (m - 1)
+    n_c = np.asarray(counts.sum(axis=0), dtype=float).ravel()
     n = n_c.sum()
     expected = n * n - (n_c**2).sum()
     if expected == 0:
@@ -67,10 +90,10 @@ def unit_counts(ratings: npt.ArrayLike) -> npt.NDArray[np.float64]:
     return np.bincount(unit * k + codes[codes >= 0], minlength=n_units * k).reshape(n_units, k).astype(float)
 
 
-def alpha_from_counts(counts: npt.ArrayLike) -> float:
-    """Nominal alpha from a units x values count table (missing ratings simply not counted)."""
-    pairable = _pairable(np.asarray(counts, dtype=float))
-    if len(pairable) == 0:
+def alpha_from_counts(counts: npt.ArrayLike | sparse.csr_matrix) -> float:
+    """Nominal alpha from a units x values count table, dense or sparse (missing ratings simply not counted)."""
+    pairable = _pairable(_as_counts(counts))
+    if pairable.shape[0] == 0:
         raise InvalidInputError("no unit has two or more ratings; alpha is undefined.")
     return _alpha_from_counts(pairable)
 
@@ -94,27 +117,35 @@ def _resample_weights(u: int, n_boot: int, seed: int) -> tuple[npt.NDArray[np.fl
     return tuple(chunks)
 
 
-def _distinct_rows(table: npt.NDArray[np.float64]) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.int64]] | None:
+def _distinct_rows(table: Counts) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.int64]] | None:
     """The distinct rows of a table of whole counts and how many times each occurs (None when it is not whole counts).
 
     Each row becomes one integer and the integers are grouped (``np.unique(axis=0)`` sorts the rows as
     records instead, a hundred times slower): a narrow row's counts are the digits of its integer; a wide
     row (one column per value, few values used per unit) is first cut to its used columns and their counts.
+    The distinct rows come back dense.
     """
-    whole = table.astype(np.int64)
-    if whole.size == 0 or whole.min() < 0 or not np.array_equal(whole, table):
+    n_rows = table.shape[0]
+    if sparse.issparse(table):
+        values = table.data
+        rows_at = np.repeat(np.arange(n_rows), np.diff(table.indptr))
+        cols_at = table.indices.astype(np.int64)
+    else:
+        values = table[table != 0] if table.size else table.ravel()
+        rows_at, cols_at = np.nonzero(table)
+    whole_values = values.astype(np.int64)
+    if n_rows == 0 or table.shape[1] == 0 or (len(values) and (whole_values.min() < 0 or not np.array_equal(whole_values, values))):
         return None
-    top = int(whole.max()) + 1
-    if whole.shape[1] * np.log2(top + 1) < 62:
-        digits = whole
+    top = (int(whole_values.max()) if len(values) else 0) + 1
+    if table.shape[1] * np.log2(top + 1) < 62:
+        digits = (table.toarray() if sparse.issparse(table) else table).astype(np.int64)
     else:  # the used (column, count) pairs of each row, padded with 0, as the row's digits
-        rows_at, cols_at = np.nonzero(whole)
-        used = np.bincount(rows_at, minlength=len(whole))
-        width = int(used.max())
+        used = np.bincount(rows_at, minlength=n_rows)
+        width = max(int(used.max()), 1)
         slot = np.arange(len(rows_at)) - np.repeat(np.cumsum(used) - used, used)
-        digits = np.zeros((len(whole), width), dtype=np.int64)
-        digits[rows_at, slot] = cols_at * top + whole[rows_at, cols_at]
-        top = whole.shape[1] * top
+        digits = np.zeros((n_rows, width), dtype=np.int64)
+        digits[rows_at, slot] = cols_at * top + whole_values
+        top = table.shape[1] * top
     base = top + 1
     if digits.shape[1] * np.log2(base) < 62:
         keys = digits @ (base ** np.arange(digits.shape[1], dtype=np.int64))
@@ -130,10 +161,11 @@ def _distinct_rows(table: npt.NDArray[np.float64]) -> tuple[npt.NDArray[np.float
                 counts.append(0)
             counts[k] += 1
         first, share = np.asarray(firsts), np.asarray(counts, dtype=np.int64)
-    return table[first], share
+    distinct = table[first]
+    return (distinct.toarray() if sparse.issparse(distinct) else distinct), share
 
 
-def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float = 0.95, seed: int = 0) -> tuple[float, float]:
+def alpha_bootstrap(counts: npt.ArrayLike | sparse.csr_matrix, *, n_boot: int = 1000, level: float = 0.95, seed: int = 0) -> tuple[float, float]:
     """Percentile bootstrap interval for nominal alpha, resampling units with replacement.
 
     Resampling whole units is common practice for agreement coefficients (Krippendorff's own
@@ -146,23 +178,27 @@ def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float =
     resample costs the number of distinct rows, not of units, and the interval is the units'
     bootstrap interval all the same. With many distinct rows every unit gets a weight per resample.
     """
-    pairable = _pairable(np.asarray(counts, dtype=float))
-    if len(pairable) < 2:
+    pairable = _pairable(_as_counts(counts))
+    u = pairable.shape[0]
+    if u < 2:
         raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
-    u = len(pairable)
     grouped = _distinct_rows(pairable)
     if grouped is not None and len(grouped[0]) <= max(64, u // 4):
         rows, share = grouped
         drawn = np.random.default_rng(seed).multinomial(u, share / u, size=n_boot).astype(float)  # (n_boot, distinct rows)
         weights: tuple[npt.NDArray[np.float64], ...] = (drawn,)
-        x = rows
+        x: Counts = rows
     else:  # many distinct rows: a weight for every unit in every resample
         weights = _resample_weights(u, n_boot, seed)
         x = pairable
-    m = x.sum(axis=1)
-    d = (m**2 - (x**2).sum(axis=1)) / (m - 1)
+    m = _row_sums(x)
+    d = (m**2 - _row_square_sums(x)) / (m - 1)
     # A wide table (a column per value, a few used per unit) is multiplied as a sparse one: only its used cells count.
-    wide = sparse.csr_array(x) if x.shape[1] > 16 and np.count_nonzero(x) < 0.1 * x.size else None
+    if sparse.issparse(x):
+        wide = sparse.csr_array(x) if x.shape[1] > 16 and x.nnz < 0.1 * x.shape[0] * x.shape[1] else None
+        x = x.toarray() if wide is None else x
+    else:
+        wide = sparse.csr_array(x) if x.shape[1] > 16 and np.count_nonzero(x) < 0.1 * x.size else None
     stats = []
     for w in weights:
         n_c = (wide.T @ w.T).T if wide is not None else w @ x
@@ -177,7 +213,7 @@ def alpha_bootstrap(counts: npt.ArrayLike, *, n_boot: int = 1000, level: float =
     return float(lo), float(hi)
 
 
-def alpha_with_interval(counts: npt.ArrayLike, *, n_boot: int = 1000, seed: int = 0) -> tuple[float | None, tuple[float, float] | None, str]:
+def alpha_with_interval(counts: npt.ArrayLike | sparse.csr_matrix, *, n_boot: int = 1000, seed: int = 0) -> tuple[float | None, tuple[float, float] | None, str]:
     """Alpha, its bootstrap interval (None when ``n_boot`` is 0) and, where alpha is undefined, why (else "")."""
     try:
         alpha = alpha_from_counts(counts)
@@ -186,20 +222,20 @@ def alpha_with_interval(counts: npt.ArrayLike, *, n_boot: int = 1000, seed: int 
         return None, None, str(exc)
 
 
-def fleiss_kappa(table: npt.ArrayLike) -> float:
-    """Fleiss' kappa from an items x categories table of rating counts (same raters per item).
+def fleiss_kappa(table: npt.ArrayLike | sparse.csr_matrix) -> float:
+    """Fleiss' kappa from an items x categories table of rating counts (same raters per item), dense or sparse.
 
     Reference: Fleiss (1971), "Measuring nominal scale agreement among many raters".
     """
-    t = np.asarray(table, dtype=float)
+    t = _as_counts(table)
     if t.ndim != 2 or t.shape[0] < 1:
         raise InvalidInputError("table must be items x categories counts.")
-    n = t.sum(axis=1)
+    n = _row_sums(t)
     if not np.all(n == n[0]) or n[0] < 2:
         raise InvalidInputError("Fleiss' kappa needs the same number (at least 2) of ratings for every item; use Krippendorff's alpha instead.")
     r = n[0]
-    p_j = t.sum(axis=0) / t.sum()
-    p_i = ((t * (t - 1)).sum(axis=1)) / (r * (r - 1))
+    p_j = np.asarray(t.sum(axis=0), dtype=float).ravel() / t.sum()
+    p_i = (_row_square_sums(t) - n) / (r * (r - 1))
     p_e = (p_j**2).sum()
     if p_e == 1:
         raise InvalidInputError("every rating is in one category; kappa is undefined.")
@@ -213,12 +249,18 @@ def cohen_kappa(a: npt.ArrayLike, b: npt.ArrayLike) -> float:
         raise InvalidInputError("a and b must be equal-length, non-empty 1-D label sequences.")
     cats = sorted(set(x.tolist()) | set(y.tolist()), key=str)
     idx = {c: i for i, c in enumerate(cats)}
-    m = np.zeros((len(cats), len(cats)))
-    for u, v in zip(x.tolist(), y.tolist()):
-        m[idx[u], idx[v]] += 1
-    m /= m.sum()
-    p_o = np.trace(m)
-    p_e = float(m.sum(1) @ m.sum(0))
+    return cohen_kappa_codes(np.array([idx[u] for u in x.tolist()], dtype=np.int64), np.array([idx[v] for v in y.tolist()], dtype=np.int64))
+
+
+def cohen_kappa_codes(x: npt.NDArray[np.int64], y: npt.NDArray[np.int64]) -> float:
+    """:func:`cohen_kappa` of two equal-length, non-empty arrays of category codes (0, 1, ...)."""
+    if x.shape != y.shape or x.ndim != 1 or len(x) == 0:
+        raise InvalidInputError("a and b must be equal-length, non-empty 1-D label sequences.")
+    k = int(max(x.max(), y.max())) + 1
+    p_x = np.bincount(x, minlength=k) / len(x)
+    p_y = np.bincount(y, minlength=k) / len(y)
+    p_o = float(np.count_nonzero(x == y)) / len(x)
+    p_e = float(p_x @ p_y)
     if p_e == 1:
         raise InvalidInputError("both annotators used one and the same category throughout; kappa is undefined.")
     return float((p_o - p_e) / (1 - p_e))

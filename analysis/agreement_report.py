@@ -8,8 +8,9 @@ from itertools import combinations
 from typing import Any
 
 import numpy as np
+from scipy import sparse
 
-from .agreement import alpha_with_interval, cohen_kappa, fleiss_kappa
+from .agreement import alpha_with_interval, cohen_kappa_codes, fleiss_kappa
 from .errors import InvalidInputError
 from .long_labels import LongLabels
 
@@ -58,8 +59,7 @@ class AgreementReport:
         return asdict(self)
 
 
-def _fleiss(counts: np.ndarray) -> tuple[float | None, str]:
-    m = counts.sum(axis=1)
+def _fleiss(counts: sparse.csr_matrix, m: np.ndarray) -> tuple[float | None, str]:
     rated = m[m > 0]
     if rated.min() != rated.max():
         return None, f"not applicable: items have between {int(rated.min())} and {int(rated.max())} ratings, and Fleiss' kappa needs the same number for every item (use alpha)."
@@ -73,36 +73,40 @@ def _fleiss(counts: np.ndarray) -> tuple[float | None, str]:
 
 def _pairs(labels: LongLabels, min_common: int) -> list[PairKappa]:
     out = []
-    by_ann: dict[int, dict[int, int]] = {a: {} for a in range(len(labels.annotators))}  # annotator -> {item: label}
-    for i, a, y in zip(labels.item_codes.tolist(), labels.annotator_codes.tolist(), labels.label_codes.tolist()):
-        by_ann[a][i] = y
+    given = np.full((len(labels.annotators), len(labels.items)), -1, dtype=np.int64)  # annotator x item -> label code, -1 where none
+    given[labels.annotator_codes, labels.item_codes] = labels.label_codes
     for a, b in combinations(range(len(labels.annotators)), 2):
-        common = sorted(by_ann[a].keys() & by_ann[b].keys())
+        common = (given[a] >= 0) & (given[b] >= 0)
+        n_common = int(np.count_nonzero(common))
         name_a, name_b = labels.annotators[a], labels.annotators[b]
-        if len(common) < min_common:
-            out.append(PairKappa(name_a, name_b, len(common), None, f"fewer than {min_common} items in common"))
+        if n_common < min_common:
+            out.append(PairKappa(name_a, name_b, n_common, None, f"fewer than {min_common} items in common"))
             continue
         try:
-            k = cohen_kappa([by_ann[a][i] for i in common], [by_ann[b][i] for i in common])
-            out.append(PairKappa(name_a, name_b, len(common), k))
+            k = cohen_kappa_codes(given[a][common], given[b][common])
+            out.append(PairKappa(name_a, name_b, n_common, k))
         except InvalidInputError as exc:
-            out.append(PairKappa(name_a, name_b, len(common), None, str(exc)))
+            out.append(PairKappa(name_a, name_b, n_common, None, str(exc)))
     return out
 
 
 def agreement_report(labels: LongLabels, *, n_boot: int = 1000, seed: int = 0, top_disputed: int = 20, min_common: int = 5, pairwise: bool = True) -> AgreementReport:
     """Everything the agreement table shows, computed once from the judgments."""
-    counts = labels.counts().astype(float)
-    m = counts.sum(axis=1)
+    i, a, y = labels.item_codes, labels.annotator_codes, labels.label_codes
+    k = max(len(labels.classes), 1)
+    # Items x labels counts, sparse: an item uses a few of many labels.
+    cells, cell_of, cell_count = np.unique(i * k + y, return_inverse=True, return_counts=True)
+    counts = sparse.csr_matrix((cell_count.astype(float), (cells // k, cells % k)), shape=(len(labels.items), k))
+    counts.sort_indices()
+    m = np.bincount(i, minlength=len(labels.items)).astype(float)
     pairable = int((m >= 2).sum())
     alpha, interval, note = alpha_with_interval(counts, n_boot=n_boot, seed=seed)
-    fleiss, fleiss_note = _fleiss(counts)
+    fleiss, fleiss_note = _fleiss(counts, m)
     pairs = _pairs(labels, min_common) if pairwise else []
 
-    i, a, y = labels.item_codes, labels.annotator_codes, labels.label_codes
     n_ann = len(labels.annotators)
     co = m[i] >= 2
-    same = (counts[i[co], y[co]] - 1) / (m[i[co]] - 1)
+    same = (cell_count[cell_of.reshape(-1)][co] - 1) / (m[i[co]] - 1)
     per = np.bincount(a[co], weights=same, minlength=n_ann)
     n_co = np.bincount(a[co], minlength=n_ann)
     n_all = np.bincount(a, minlength=n_ann)
@@ -116,10 +120,12 @@ def agreement_report(labels: LongLabels, *, n_boot: int = 1000, seed: int = 0, t
         for k, name in enumerate(labels.annotators)
     ]
 
-    top_share = np.where(m > 0, counts.max(axis=1) / np.maximum(m, 1), 1.0)
+    top_share = np.where(m > 0, counts.max(axis=1).toarray().ravel() / np.maximum(m, 1), 1.0)
     order = [int(u) for u in np.lexsort((-m, top_share)) if m[u] >= 2][:top_disputed]
     disputed = [
-        DisputedItem(labels.items[u], int(m[u]), float(top_share[u]), {labels.classes[c]: int(counts[u, c]) for c in np.nonzero(counts[u])[0]})
+        DisputedItem(labels.items[u], int(m[u]), float(top_share[u]),
+                     {labels.classes[c]: int(n) for c, n in zip(counts.indices[counts.indptr[u]:counts.indptr[u + 1]].tolist(),
+                                                                counts.data[counts.indptr[u]:counts.indptr[u + 1]].tolist())})
         for u in order
         if top_share[u] < 1.0
     ]

@@ -67,6 +67,81 @@ class PresenceVotes:
         return np.bincount(self.main_entities.item_codes, minlength=len(self.regions))
 
 
+@dataclass(frozen=True)
+class Reading:
+    """What one label says in a region of one predicted class: the concepts it names, each mapped to its
+    entity (see :func:`analysis.concepts.judgment_families`), and its main entity."""
+
+    families: Mapping[str, str]
+    concepts: tuple[str, ...]
+    main: str
+
+
+def read_label(entities: tuple[tuple[str, tuple[str, ...]], ...], cls: str | None, *, rules: SynonymRules | None,
+               words: frozenset[str]) -> Reading:
+    """One label (``entities`` as typed) read in a region predicted as ``cls``, with the campaign's rules and attribute words."""
+    j = Judgment(0, "", entities)
+    fam = judgment_families(j, rules=rules, cls=cls, attributes=words)
+    return Reading(fam, tuple(fam), main_entity(j, rules=rules, cls=cls, attributes=words))
+
+
+@dataclass(frozen=True)
+class ReadJudgments:
+    """Usable judgments as codes: each one's region, annotator and reading, every distinct label read once.
+
+    ``words`` are the attribute words the readings were made with (see :func:`analysis.concepts.attribute_words`).
+    """
+
+    region_ids: IntArray  # (J,)
+    annotators: tuple[str, ...]  # sorted
+    annotator_codes: IntArray  # (J,)
+    readings: tuple[Reading, ...]
+    reading_codes: IntArray  # (J,)
+    words: frozenset[str] = frozenset()
+
+
+def read_judgments(judgments: Iterable[Judgment], *, rules: SynonymRules | None = None, region_class: Mapping[int, str] | None = None) -> ReadJudgments:
+    """The usable judgments (not marked unsure), read: the same few labels come back thousands of times, each distinct one is read once."""
+    region_class = region_class or {}
+    usable = [j for j in judgments if not j.unsure]
+    words = attribute_words(usable, rules=rules)
+    index: dict[tuple[object, str | None], int] = {}
+    readings: list[Reading] = []
+    codes = np.empty(len(usable), dtype=np.int64)
+    for n, j in enumerate(usable):
+        cls = region_class.get(j.region_id)
+        k = index.get((j.entities, cls))
+        if k is None:
+            k = index[(j.entities, cls)] = len(readings)
+            readings.append(read_label(j.entities, cls, rules=rules, words=words))
+        codes[n] = k
+    annotators = tuple(sorted({j.annotator for j in usable}))
+    a_index = {a: i for i, a in enumerate(annotators)}
+    return ReadJudgments(np.fromiter((int(j.region_id) for j in usable), dtype=np.int64, count=len(usable)), annotators,
+                         np.fromiter((a_index[j.annotator] for j in usable), dtype=np.int64, count=len(usable)), tuple(readings), codes, words)
+
+
+def known_concepts(known: Mapping[int, Iterable[str]], *, rules: SynonymRules | None = None, region_class: Mapping[int, str] | None = None,
+                   words: frozenset[str] = frozenset()) -> tuple[dict[int, set[str]], dict[str, str]]:
+    """The concepts each check region is known to show (normalised, read through the rules), and the refinements among them -> their entity."""
+    region_class = region_class or {}
+    families: dict[str, str] = {}
+    known_sets: dict[int, set[str]] = {}
+    for r, cs in known.items():
+        found: set[str] = set()
+        for c in cs:
+            label = normalise_label(c)
+            if not label:
+                continue
+            head, lead = entity_with_attributes(label, rules or SynonymRules(), region_class.get(int(r)), words)
+            found.add(head)
+            for attr in lead:
+                found.add(f"{attr} {head}")
+                families.setdefault(f"{attr} {head}", head)
+        known_sets[int(r)] = found
+    return known_sets, families
+
+
 def presence_votes(
     judgments: Iterable[Judgment],
     *,
@@ -86,90 +161,81 @@ def presence_votes(
     attribute are split off the front of multi-word entities throughout. ``families`` of the
     result maps each refinement to its entity.
     """
-    region_class = region_class or {}
-    judgments = [j for j in judgments if not j.unsure]
-    words = attribute_words(judgments, rules=rules)
-    families: dict[str, str] = {}
-    known_sets: dict[int, set[str]] = {}
-    for r, cs in (known or {}).items():
-        found: set[str] = set()
-        for c in cs:
-            label = normalise_label(c)
-            if not label:
-                continue
-            head, lead = entity_with_attributes(label, rules or SynonymRules(), region_class.get(int(r)), words)
-            found.add(head)
-            for attr in lead:
-                found.add(f"{attr} {head}")
-                families.setdefault(f"{attr} {head}", head)
-        known_sets[int(r)] = found
-    named: dict[tuple[int, str], set[str]] = {}
-    entity: dict[tuple[int, str], str] = {}
-    # Reading a label depends only on what was typed and the region's class (the rules and attribute words are
-    # fixed here), and the same few labels come back thousands of times: read each distinct one once.
-    read: dict[tuple[object, str | None], tuple[dict[str, str], frozenset[str], str]] = {}
-    for j in judgments:
-        key = (int(j.region_id), j.annotator)
-        if key in named:
-            raise InvalidInputError(f"annotator {j.annotator!r} judged region {j.region_id} twice; keep one judgment per region and annotator.")
-        cls = region_class.get(j.region_id)
-        seen = read.get((j.entities, cls))
-        if seen is None:
-            fam = judgment_families(j, rules=rules, cls=cls, attributes=words)
-            seen = read[(j.entities, cls)] = (fam, frozenset(fam), main_entity(j, rules=rules, cls=cls, attributes=words))
-            for concept, e in fam.items():
-                if concept != e:
-                    families.setdefault(concept, e)
-        named[key] = set(seen[1])
-        entity[key] = seen[2]
-    if not named:
+    read = read_judgments(judgments, rules=rules, region_class=region_class)
+    return votes_from_read(read, known=known, rules=rules, region_class=region_class)
+
+
+def votes_from_read(read: ReadJudgments, *, known: Mapping[int, Iterable[str]] | None = None, rules: SynonymRules | None = None,
+                    region_class: Mapping[int, str] | None = None) -> PresenceVotes:
+    """:func:`presence_votes` from judgments already read (see :func:`read_judgments`).
+
+    Pairs come sorted by region, then concept; each pair's votes in the order of the judgments. Only the
+    distinct readings are visited one by one; the rest is array work, so it costs little per judgment.
+    """
+    if len(read.region_ids) == 0:
         raise InvalidInputError("no judgments to aggregate (none given, or all marked not sure); collect labels first.")
-    regions = tuple(sorted({r for r, _ in named}))
-    annotators = tuple(sorted({a for _, a in named}))
-    concept_set = {c for cs in named.values() for c in cs}
-    for r in regions:
-        concept_set |= known_sets.get(r, set())
-    concepts = tuple(sorted(concept_set))
+    known_sets, families = known_concepts(known or {}, rules=rules, region_class=region_class, words=read.words)
+    used = np.unique(read.reading_codes)
+    for k in used:
+        for concept, e in read.readings[k].families.items():
+            if concept != e:
+                families.setdefault(concept, e)
+    regions_arr, jr = np.unique(read.region_ids, return_inverse=True)
+    jr = jr.astype(np.int64).reshape(-1)
+    ja = read.annotator_codes
+    n_ann = max(len(read.annotators), 1)
+    pair_key = jr * n_ann + ja
+    keys, first, times = np.unique(pair_key, return_index=True, return_counts=True)
+    if len(keys) < len(pair_key):
+        dup = int(first[np.argmax(times > 1)])
+        raise InvalidInputError(f"annotator {read.annotators[int(ja[dup])]!r} judged region {int(read.region_ids[dup])} twice; "
+                                "keep one judgment per region and annotator.")
+    regions = tuple(int(r) for r in regions_arr)
+    concept_set = {c for k in used for c in read.readings[k].concepts}
     r_index = {r: i for i, r in enumerate(regions)}
-    a_index = {a: i for i, a in enumerate(annotators)}
+    answered = {r_index[r]: found for r, found in known_sets.items() if r in r_index}
+    for found in answered.values():
+        concept_set |= found
+    concepts = tuple(sorted(concept_set))
     c_index = {c: i for i, c in enumerate(concepts)}
-    per_region: dict[int, list[tuple[int, set[str]]]] = {}
-    for (r, a), cs in named.items():
-        per_region.setdefault(r, []).append((a_index[a], cs))
-    pr: list[int] = []
-    pc: list[int] = []
-    kn: list[int] = []
-    vp: list[int] = []
-    va: list[int] = []
-    vy: list[bool] = []
-    for r in regions:
-        raters = per_region[r]
-        answer = known_sets.get(r)
-        union = set().union(*(cs for _, cs in raters)) | (answer or set())
-        for c in sorted(union):
-            p = len(pr)
-            pr.append(r_index[r])
-            pc.append(c_index[c])
-            kn.append(-1 if answer is None else int(c in answer))
-            for rater, cs in raters:
-                vp.append(p)
-                va.append(rater)
-                vy.append(c in cs)
-    keys = sorted(entity)
-    ent_names = tuple(sorted(set(entity.values())))
+    n_c = max(len(concepts), 1)
+    # What each judgment named, as sorted keys judgment * n_c + concept code.
+    in_use = np.zeros(len(read.readings), dtype=bool)
+    in_use[used] = True
+    reading_concepts = [np.array(sorted(c_index[c] for c in x.concepts) if in_use[k] else [], dtype=np.int64) for k, x in enumerate(read.readings)]
+    sizes = np.array([len(c) for c in reading_concepts], dtype=np.int64)
+    flat = np.concatenate([*reading_concepts, np.zeros(0, dtype=np.int64)])
+    starts = np.cumsum(sizes) - sizes
+    per_judgment = sizes[read.reading_codes]
+    named_j = np.repeat(np.arange(len(jr), dtype=np.int64), per_judgment)
+    offset = np.arange(len(named_j), dtype=np.int64) - np.repeat(np.cumsum(per_judgment) - per_judgment, per_judgment)
+    named_c = flat[starts[read.reading_codes][named_j] + offset]
+    named_key = named_j * n_c + named_c
+    # The pairs: every (region, concept) somebody named there, and the concepts of a check region's answer.
+    has_answer = np.zeros(len(regions), dtype=bool)
+    has_answer[list(answered)] = True
+    known_keys = np.array(sorted(i * n_c + c_index[c] for i, found in answered.items() for c in found), dtype=np.int64)
+    pairs = np.unique(np.concatenate([jr[named_j] * n_c + named_c, known_keys]))
+    pr, pc = pairs // n_c, pairs % n_c
+    kn = np.where(has_answer[pr], np.isin(pairs, known_keys).astype(np.int64), -1)
+    # Every judgment of a pair's region votes on it: yes where it named the concept.
+    order = np.argsort(jr, kind="stable")  # judgments by region, in their own order within one
+    per_region = np.bincount(jr, minlength=len(regions))
+    region_start = np.cumsum(per_region) - per_region
+    n_votes = per_region[pr]
+    vp = np.repeat(np.arange(len(pairs), dtype=np.int64), n_votes)
+    k = np.arange(len(vp), dtype=np.int64) - np.repeat(np.cumsum(n_votes) - n_votes, n_votes)
+    voter = order[region_start[pr[vp]] + k]
+    asked = voter * n_c + pc[vp]
+    at = np.minimum(np.searchsorted(named_key, asked), max(len(named_key) - 1, 0))
+    vy = named_key[at] == asked if len(named_key) else np.zeros(len(asked), dtype=bool)
+    ent_names = tuple(sorted({read.readings[k].main for k in used}))
     e_index = {e: i for i, e in enumerate(ent_names)}
-    main = LongLabels(
-        tuple(str(r) for r in regions), annotators, ent_names,
-        np.array([r_index[r] for r, _ in keys], dtype=np.int64),
-        np.array([a_index[a] for _, a in keys], dtype=np.int64),
-        np.array([e_index[entity[k]] for k in keys], dtype=np.int64),
-    )
-
-    def as_int(v: list[int]) -> IntArray:
-        return np.array(v, dtype=np.int64)
-
+    reading_entity = np.array([e_index.get(x.main, -1) for x in read.readings], dtype=np.int64)
+    by_key = np.lexsort((ja, jr))  # (region, annotator)
+    main = LongLabels(tuple(str(r) for r in regions), read.annotators, ent_names, jr[by_key], ja[by_key], reading_entity[read.reading_codes][by_key])
     fams = {c: e for c, e in sorted(families.items()) if c in concept_set and e in concept_set}
-    return PresenceVotes(regions, annotators, concepts, as_int(pr), as_int(pc), as_int(kn), as_int(vp), as_int(va), np.array(vy, dtype=bool), main, fams)
+    return PresenceVotes(regions, read.annotators, concepts, pr, pc, kn.astype(np.int64), vp, ja[voter], np.asarray(vy, dtype=bool), main, fams)
 
 
 @dataclass(frozen=True)

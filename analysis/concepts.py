@@ -69,8 +69,12 @@ def attribute_words(judgments: Iterable[Judgment], *, rules: SynonymRules | None
     A multi-word entity whose leading words are all among these ("yellow tag" where somebody wrote
     "tag: yellow") is read as its last words' entity with those words as an attribute.
     """
+    return typed_attribute_words({a for j in judgments for _, attributes in j.entities for a in attributes}, rules=rules)
+
+
+def typed_attribute_words(typed: Iterable[str], *, rules: SynonymRules | None = None) -> frozenset[str]:
+    """:func:`attribute_words` from the distinct attributes as typed (each read once)."""
     rules = rules or SynonymRules()
-    typed = {a for j in judgments for _, attributes in j.entities for a in attributes}  # each distinct word read once
     out: set[str] = set()
     for a in typed:
         out.update(rules.attribute(normalise_label(a)).split())

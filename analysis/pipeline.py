@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from .concept_table import ConceptTable, build_concept_table
-from .concept_votes import PresenceVotes, estimate_concepts, presence_votes
+from .concept_votes import PresenceVotes, ReadJudgments, estimate_concepts, read_judgments, votes_from_read
 from .concepts import Judgment, judgment_concepts
 from .errors import InvalidInputError, NotEnoughLabelsError
 from .reliability import METHODS, Method
@@ -35,7 +35,7 @@ class CampaignTable:
 
 
 def campaign_votes(
-    judgments: Sequence[Judgment],
+    judgments: Sequence[Judgment] | ReadJudgments,
     *,
     rules: SynonymRules | None = None,
     region_class: Mapping[int, str] | None = None,
@@ -48,17 +48,23 @@ def campaign_votes(
     NotEnoughLabelsError
         When no judgment is usable (none given, or every one marked not sure).
     """
-    usable = [j for j in judgments if not j.unsure]
-    if not usable:
-        detail = f"all {len(judgments)} are marked not sure" if judgments else "there are none"
-        raise NotEnoughLabelsError(f"no usable labels yet ({detail}); label some regions first.")
+    if isinstance(judgments, ReadJudgments):  # read already (the app keeps them read between requests)
+        read = judgments
+        if len(read.region_ids) == 0:
+            raise NotEnoughLabelsError("no usable labels yet (there are none, or all are marked not sure); label some regions first.")
+    else:
+        usable = [j for j in judgments if not j.unsure]
+        if not usable:
+            detail = f"all {len(judgments)} are marked not sure" if judgments else "there are none"
+            raise NotEnoughLabelsError(f"no usable labels yet ({detail}); label some regions first.")
+        read = read_judgments(usable, rules=rules, region_class=region_class)
     region_class = region_class or {}
     known = {r: judgment_concepts(j, rules=rules, cls=region_class.get(r)) for r, j in (check_answers or {}).items()}
-    return presence_votes(usable, rules=rules, region_class=region_class, known=known)
+    return votes_from_read(read, known=known, rules=rules, region_class=region_class)
 
 
 def campaign_table(
-    judgments: Sequence[Judgment],
+    judgments: Sequence[Judgment] | ReadJudgments,
     predictions: pd.DataFrame,
     *,
     rules: SynonymRules | None = None,
@@ -75,7 +81,8 @@ def campaign_table(
     Parameters
     ----------
     judgments
-        Every label of the campaign (those marked not sure are kept out of the votes).
+        Every label of the campaign (those marked not sure are kept out of the votes), or its usable
+        ones already read (:func:`analysis.concept_votes.read_judgments`).
     predictions
         Indexed by image id, with PREDICTION_COLUMNS: true ``label``, ``predicted`` class,
         ``confidence``, ``split``, ``regions`` (ids) and ``mass_shares`` (one per region).

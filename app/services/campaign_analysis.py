@@ -13,6 +13,7 @@ from typing import TypeVar, cast
 
 import numpy as np
 import pandas as pd
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from analysis.agreement_report import AgreementReport, agreement_report
@@ -21,17 +22,21 @@ from analysis.concept_votes import (
     AnnotatorRates,
     ConceptAgreement,
     PresenceVotes,
+    ReadJudgments,
     estimate_concepts,
     presence_agreement,
 )
+from analysis.concepts import Judgment
 from analysis.pipeline import campaign_table, campaign_votes
 from analysis.reliability import Method
 from analysis.rules import RuleTable
+from analysis.synonyms import SynonymRules
 
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..errors import InvalidRequestError, NotFoundError
-from ..models import SaliencyRun
+from ..models import CampaignRegion, Prediction, SaliencyRun
+from .label_store import LabelStore
 
 T = TypeVar("T")
 
@@ -59,6 +64,7 @@ class ResultsCache:
     """
 
     size: int = 32
+    labels: LabelStore = field(default_factory=LabelStore)  # each campaign's labels, read incrementally
     _found: dict[tuple[object, ...], object] = field(default_factory=dict)
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
@@ -82,15 +88,47 @@ def _method(campaign: CampaignInfo) -> Method:
     return cast(Method, campaign.method)
 
 
-def compute_results(s: Session, campaign: CampaignInfo, *, threshold: float = 0.5) -> Results:
-    """The campaign's concept table, from its labels, synonym rules, check answers and the run's predictions."""
-    found = campaigns.judgments(s, campaign.id)
-    if not found:
+def region_classes(s: Session, campaign_id: int, *, cache: ResultsCache | None = None) -> dict[int, str]:
+    """Each campaign region's predicted class (``campaigns.region_classes``), kept while the campaign's regions stay the same."""
+    if cache is None:
+        return campaigns.region_classes(s, campaign_id)
+    shape = s.execute(select(func.count(), func.max(CampaignRegion.region_id), func.min(CampaignRegion.region_id))
+                      .where(CampaignRegion.campaign_id == campaign_id)).one()
+    return cache.get_or_make(("region-classes", campaign_id, *shape), lambda: campaigns.region_classes(s, campaign_id))
+
+
+def prediction_frame(s: Session, run_id: int, *, cache: ResultsCache | None = None) -> pd.DataFrame:
+    """The run's predictions (``store.prediction_frame``; read-only), kept while the run's predictions stay the same."""
+    if cache is None:
+        return store.prediction_frame(s, run_id)
+    shape = s.execute(select(func.count(), func.max(Prediction.id)).where(Prediction.run_id == run_id)).one()
+    return cache.get_or_make(("predictions", run_id, *shape), lambda: store.prediction_frame(s, run_id))
+
+
+def _read(s: Session, campaign: CampaignInfo, cache: ResultsCache | None, version: tuple[object, ...] | None = None,
+          *, limit: int | None = None) -> tuple[ReadJudgments | list[Judgment], SynonymRules, dict[int, str]]:
+    """The campaign's judgments (read incrementally and handed on read, with a cache), its rules and each region's class."""
+    rules = campaigns.synonym_rules(s, campaign.id)[0]
+    region_class = region_classes(s, campaign.id, cache=cache)
+    if cache is None:
+        found = campaigns.judgments(s, campaign.id)
+        if not found:
+            raise NotFoundError(f"campaign {campaign.name!r} has no labels yet; label some regions first.")
+        return (found if limit is None else found[:limit]), rules, region_class
+    version = version or store.labels_version(s, campaign.id)
+    if not version[1]:
         raise NotFoundError(f"campaign {campaign.name!r} has no labels yet; label some regions first.")
+    return cache.labels.read(s, campaign.id, version, rules=rules, region_class=region_class, limit=limit), rules, region_class
+
+
+def compute_results(s: Session, campaign: CampaignInfo, *, threshold: float = 0.5, cache: ResultsCache | None = None,
+                    version: tuple[object, ...] | None = None) -> Results:
+    """The campaign's concept table, from its labels, synonym rules, check answers and the run's predictions."""
+    found, rules, region_class = _read(s, campaign, cache, version)
     design = campaigns.sample_of(s, campaign.id)
     made = campaign_table(
-        found, store.prediction_frame(s, campaign.run_id), rules=campaigns.synonym_rules(s, campaign.id)[0],
-        region_class=campaigns.region_classes(s, campaign.id), check_answers=campaigns.check_answers(s, campaign.id),
+        found, prediction_frame(s, campaign.run_id, cache=cache), rules=rules,
+        region_class=region_class, check_answers=campaigns.check_answers(s, campaign.id),
         classes=campaign.classes, method=_method(campaign), threshold=threshold,
         sample=design[0] if design else None, population=design[1] if design else None,
     )
@@ -103,7 +141,8 @@ def campaign_results(s: Session, campaign: CampaignInfo | int, *, cache: Results
     c = _campaign(s, campaign)
     if cache is None:
         return compute_results(s, c)
-    found = cache.get_or_make(("results", *store.labels_version(s, c.id)), lambda: compute_results(s, c))
+    version = store.labels_version(s, c.id)
+    found = cache.get_or_make(("results", *version), lambda: compute_results(s, c, cache=cache, version=version))
     return replace(found, campaign=c)  # the table is cached; the campaign's text fields are read fresh
 
 
@@ -122,15 +161,13 @@ def campaign_rules(res: Results, *, target: str = "predicted", max_len: int = 2,
     return res.table.rules(target=target_of(target), min_support=min_support, max_len=max_len, prune=prune)
 
 
-def votes(s: Session, campaign: CampaignInfo) -> PresenceVotes:
+def votes(s: Session, campaign: CampaignInfo, *, cache: ResultsCache | None = None, version: tuple[object, ...] | None = None) -> PresenceVotes:
     """The campaign's yes/no votes per (region, concept) and main entities, among annotators only.
 
     Check answers are left out: agreement is about the annotators, not about the answer key.
     """
-    found = campaigns.judgments(s, campaign.id)
-    if not found:
-        raise NotFoundError(f"campaign {campaign.name!r} has no labels yet; label some regions first.")
-    return campaign_votes(found, rules=campaigns.synonym_rules(s, campaign.id)[0], region_class=campaigns.region_classes(s, campaign.id))
+    found, rules, region_class = _read(s, campaign, cache, version)
+    return campaign_votes(found, rules=rules, region_class=region_class)
 
 
 def main_labels(s: Session, campaign: CampaignInfo | int) -> pd.DataFrame:
@@ -158,8 +195,9 @@ def most_named(v: PresenceVotes, top: int) -> list[str]:
     return [v.concepts[c] for c in order[:top]]
 
 
-def _agreement(s: Session, c: CampaignInfo, *, top_concepts: int) -> AgreementSummary:
-    v = votes(s, c)
+def _agreement(s: Session, c: CampaignInfo, *, top_concepts: int, cache: ResultsCache | None = None,
+               version: tuple[object, ...] | None = None) -> AgreementSummary:
+    v = votes(s, c, cache=cache, version=version)
     report = agreement_report(v.main_entities, n_boot=500, top_disputed=12)
     # Alpha with its bootstrap interval costs the same for every concept: compute it only for those shown.
     concepts = presence_agreement(v, concepts=most_named(v, top_concepts), n_boot=200)
@@ -183,4 +221,5 @@ def agreement_summary(s: Session, campaign: CampaignInfo | int, *, cache: Result
     c = _campaign(s, campaign)
     if cache is None:
         return _agreement(s, c, top_concepts=top_concepts)
-    return cache.get_or_make(("agreement", top_concepts, *store.labels_version(s, c.id)), lambda: _agreement(s, c, top_concepts=top_concepts))
+    version = store.labels_version(s, c.id)
+    return cache.get_or_make(("agreement", top_concepts, *version), lambda: _agreement(s, c, top_concepts=top_concepts, cache=cache, version=version))
