@@ -169,3 +169,37 @@ def test_single_mentions_kept_are_mostly_right_when_annotators_differ() -> None:
     assert kept_right + kept_wrong > 100
     assert kept_right / (kept_right + kept_wrong) > 0.7
     assert kept_wrong + dropped_true < 0.5 * (kept_right + dropped_true)  # majority's errors here: every true single mention
+
+
+def test_votes_built_with_arrays_equal_the_definition_pair_by_pair() -> None:
+    # Invariant on invented labels: every judge of a region votes on every concept named there (or in its
+    # known answer), yes where they named it, pairs by region then concept, votes in the judgments' order.
+    from analysis.concepts import attribute_words, judgment_concepts
+    from analysis.synonyms import Split
+
+    rng = np.random.default_rng(3)
+    words = ["cap", "lid", "yellow tag", "tag", "label band", "top", "rim"]
+    js = [Judgment(int(r), f"a{a}", tuple((str(rng.choice(words)), tuple(str(x) for x in rng.choice(["red", "yellow"], int(rng.integers(0, 2)))))
+                                          for _ in range(int(rng.integers(0, 3)))), bool(rng.random() < 0.05))
+          for r in rng.permutation(80) for a in rng.choice(5, int(rng.integers(1, 4)), replace=False)]
+    region_class = {j.region_id: ("bottle", "carton")[j.region_id % 2] for j in js}
+    rules = build_rules([Merge("lid", "cap")], [Split("top", (("bottle", "cap"), ("carton", "gable top")))])
+    known = {int(js[0].region_id): ["cap", "yellow tag"], int(js[-1].region_id): []}
+    votes = presence_votes(js, rules=rules, region_class=region_class, known=known)
+
+    usable = [j for j in js if not j.unsure]
+    attrs = attribute_words(usable, rules=rules)
+    named = {(j.region_id, j.annotator): judgment_concepts(j, rules=rules, cls=region_class[j.region_id], attributes=attrs) for j in usable}
+    assert "yellow" in attrs  # so the known "yellow tag" is the refinement of "tag", and both are known
+    answer = {js[0].region_id: {"cap", "tag", "yellow tag"}, js[-1].region_id: set()}
+    expected_pairs, expected_votes = [], []
+    for r in sorted({j.region_id for j in usable}):
+        judges = [(j.annotator, named[(j.region_id, j.annotator)]) for j in usable if j.region_id == r]
+        union = set().union(*(cs for _, cs in judges)) | answer.get(r, set())
+        for c in sorted(union):
+            expected_pairs.append((r, c, -1 if r not in known else int(c in answer[r])))
+            expected_votes.extend((len(expected_pairs) - 1, a, c in cs) for a, cs in judges)
+    got_pairs = [(votes.regions[r], votes.concepts[c], int(k)) for r, c, k in zip(votes.pair_region, votes.pair_concept, votes.known)]
+    got_votes = [(int(p), votes.annotators[a], bool(y)) for p, a, y in zip(votes.vote_pair, votes.vote_annotator, votes.vote_yes)]
+    assert got_pairs == expected_pairs and got_votes == expected_votes
+    assert votes.families.get("yellow tag") == "tag"

@@ -147,3 +147,47 @@ def test_progress_is_cached_until_a_label_or_a_skip(client: TestClient, campaign
         labelled = campaign_progress(s, campaign_id, cache=cache)
         assert {a.name: (a.labels, a.skips) for a in labelled[0]} == {"p": (3, 1), "q": (1, 0)}
         assert labelled == campaign_progress(s, campaign_id)  # the uncached path agrees
+
+
+def test_labels_held_between_requests_equal_the_stored_ones_after_labels_undo_and_relabel(client: TestClient, campaign_id: int) -> None:
+    # One label store across every change: what it holds and the votes made from it equal a fresh read each time.
+    import numpy as np
+
+    from analysis.pipeline import campaign_votes
+    from app import campaigns, store
+    from app.services.label_store import LabelStore
+
+    held = LabelStore()
+
+    def agrees() -> None:
+        with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+            version = store.labels_version(s, campaign_id)
+            fresh = campaigns.judgments(s, campaign_id)
+            assert held.judgments(s, campaign_id, version) == fresh
+            rules, region_class = campaigns.synonym_rules(s, campaign_id)[0], campaigns.region_classes(s, campaign_id)
+            a = campaign_votes(fresh, rules=rules, region_class=region_class)
+            b = campaign_votes(held.read(s, campaign_id, version, rules=rules, region_class=region_class), rules=rules, region_class=region_class)
+            assert (a.regions, a.annotators, a.concepts, a.families) == (b.regions, b.annotators, b.concepts, b.families)
+            for name in ("pair_region", "pair_concept", "known", "vote_pair", "vote_annotator", "vote_yes"):
+                assert np.array_equal(getattr(a, name), getattr(b, name)), name
+            assert np.array_equal(a.main_entities.label_codes, b.main_entities.label_codes)
+
+    _label(client, campaign_id, "p", 5)
+    agrees()
+    _label(client, campaign_id, "q", 4)
+    agrees()
+    csrf = join(client, "q")
+    task = next_task(client, campaign_id).json()["task"]
+    url = f"/api/campaigns/{campaign_id}/regions/{task['region_id']}/labels"
+    assert client.post(url, json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap"}], "unsure": True},
+                       headers={"X-CSRF-Token": csrf}).status_code == 201
+    agrees()
+    assert client.post(f"/api/campaigns/{campaign_id}/undo", headers={"X-CSRF-Token": csrf}).status_code == 200
+    agrees()
+    # The freed highest id handed out again, with another answer.
+    assert client.post(url, json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "hinge", "attributes": ["steel"]}]},
+                       headers={"X-CSRF-Token": csrf}).status_code == 201
+    agrees()
+    assert client.post(f"/api/campaigns/{campaign_id}/undo", headers={"X-CSRF-Token": csrf}).status_code == 200
+    assert client.post(f"/api/campaigns/{campaign_id}/undo", headers={"X-CSRF-Token": csrf}).status_code == 200
+    agrees()
