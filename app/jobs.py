@@ -21,12 +21,12 @@ from sqlalchemy.orm import Session, sessionmaker
 from analysis.errors import ImageInputError
 from analysis.images import DEFAULT_MAX_PIXELS, ImageRecord, check_image, read_rgb, to_model_input
 from analysis.model_io import LoadedModel, Sidecar
-from analysis.regions import Region, ThresholdPolicy, extract_regions
+from analysis.regions import Region, ThresholdPolicy, extract_regions_batch
 from analysis.saliency import SaliencyBatch, compute_saliency, saliency_provenance
 
 from .db import write_session
 from .layout import ProjectLayout
-from .maps import sync_folder, write_array
+from .maps import as_float16, sync_folder, write_array
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 
 
@@ -201,26 +201,20 @@ def finish_batch(read: BatchInput, res: SaliencyBatch | None, params: RegionPara
     if res is None:  # no image of the batch could be read
         empty = np.zeros((0, 0, 0), np.float16)
         return BatchResult(ids=(), predicted=(), confidence=(), empty=(), regions=(), maps=empty, labels=empty.astype(np.uint8), unreadable=read.unreadable)
-    keep, nonfinite = [], []
-    for k, (image_id, path) in enumerate(zip(read.ids, read.paths)):
-        if np.isfinite(float(res.confidence[k])) and np.isfinite(res.maps[k]).all():
-            keep.append(k)
-        else:
-            nonfinite.append((image_id, path))
-    regions, labels = [], []
-    for k in keep:
-        found, lab = extract_regions(res.maps[k], policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
-        regions.append(tuple(found))
-        labels.append(lab.astype(np.uint8))
+    finite = np.isfinite(res.confidence) & np.isfinite(res.maps).reshape(len(res.maps), -1).all(axis=1)
+    keep = [k for k in range(len(read.ids)) if finite[k]]
+    nonfinite = [(read.ids[k], read.paths[k]) for k in range(len(read.ids)) if not finite[k]]
+    kept_maps = res.maps[keep] if len(keep) < len(res.maps) else res.maps
+    regions, labels = extract_regions_batch(kept_maps, policy=params.policy, max_regions=params.max_regions, min_area=params.min_area)
     shape = (0, *res.maps.shape[1:])
     return BatchResult(
         ids=tuple(read.ids[k] for k in keep),
         predicted=tuple(int(res.predicted[k]) for k in keep),
         confidence=tuple(float(res.confidence[k]) for k in keep),
         empty=tuple(bool(res.empty[k]) for k in keep),
-        regions=tuple(regions),
-        maps=res.maps[keep].astype(np.float16) if keep else np.zeros(shape, np.float16),
-        labels=np.stack(labels) if labels else np.zeros(shape, np.uint8),
+        regions=tuple(tuple(r) for r in regions),
+        maps=as_float16(kept_maps) if keep else np.zeros(shape, np.float16),
+        labels=labels if keep else np.zeros(shape, np.uint8),
         unreadable=read.unreadable,
         nonfinite=tuple(nonfinite),
     )

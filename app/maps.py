@@ -71,6 +71,19 @@ def region_labels_for(s: Session, layout: ProjectLayout, run_id: int, image_ids:
     return {i: read_region_labels(layout, ref) for i, ref in map_refs(s, run_id, image_ids).items()}
 
 
+def as_float16(maps: npt.NDArray[np.float32]) -> npt.NDArray[np.float16]:
+    """``maps.astype(np.float16)``, bit for bit, at the speed of the hardware conversion.
+
+    numpy converts values below float16's smallest normal (6.1e-5) one at a time in software, and a
+    Grad-CAM map is mostly such values when the logits' gradients are small: 0.23 ms per 64 x 64 map,
+    more than the rest of the map's writing. torch converts with the CPU's instructions (same
+    round-to-nearest-even); a test checks the two agree on every class of value.
+    """
+    import torch
+
+    return torch.from_numpy(np.ascontiguousarray(maps, dtype=np.float32)).to(torch.float16).numpy()
+
+
 def write_array(path: Path, array: npt.NDArray[np.generic]) -> None:
     """Write ``array`` as .npy to ``path`` durably: a temporary file, fsync, then an atomic rename."""
     tmp = path.with_name(f".{path.name}.tmp")

@@ -5,7 +5,7 @@ import pytest
 from scipy import ndimage
 
 from analysis.errors import InvalidInputError
-from analysis.regions import ThresholdPolicy, extract_regions, threshold_mask
+from analysis.regions import ThresholdPolicy, extract_regions, extract_regions_batch, threshold_mask
 
 
 def test_regions_are_components_ranked_by_mass() -> None:
@@ -43,3 +43,46 @@ def test_empty_map_gives_no_regions_and_bad_policy_errors() -> None:
     assert extract_regions(np.zeros((8, 8), dtype=np.float32))[0] == []
     with pytest.raises(InvalidInputError, match="value"):
         ThresholdPolicy("fraction_of_max", 1.5)
+
+
+def _stack_of_maps(seed: int) -> np.ndarray:
+    """Smooth random maps (as upsampled Grad-CAM is), flat plateaus (ties), all-zero and single-pixel maps."""
+    rng = np.random.default_rng(seed)
+    maps = [ndimage.gaussian_filter(rng.random((48, 40)), s).astype(np.float32) for s in (1, 2, 3, 1.5) * 6]
+    plateau = np.zeros((48, 40), np.float32)
+    plateau[5:9, 5:9] = 1.0  # two equal-mass components: the tie goes to the first in raster order
+    plateau[30:34, 20:24] = 1.0
+    plateau[40, 2] = 1.0  # below min_area
+    dot = np.zeros((48, 40), np.float32)
+    dot[10, 10] = 0.25
+    maps += [np.zeros((48, 40), np.float32), plateau, dot, np.maximum(maps[0] - 0.5, 0).astype(np.float32)]
+    return np.stack(maps)
+
+
+@pytest.mark.parametrize("policy", [ThresholdPolicy("fraction_of_max", 0.5), ThresholdPolicy("fraction_of_max", 0.3),
+                                    ThresholdPolicy("fraction_of_max", 0.7), ThresholdPolicy("mass", 0.4)])
+@pytest.mark.parametrize(("max_regions", "min_area"), [(3, 4), (1, 1), (100, 1), (5, 9)])
+def test_a_stack_gives_each_map_the_same_regions_and_labels_as_one_map_at_a_time(policy: ThresholdPolicy, max_regions: int, min_area: int) -> None:
+    maps = _stack_of_maps(7)
+    regions, labels = extract_regions_batch(maps, policy=policy, max_regions=max_regions, min_area=min_area)
+    assert labels.dtype == np.uint8 and labels.shape == maps.shape
+    for k, m in enumerate(maps):
+        one, lab = extract_regions(m, policy=policy, max_regions=max_regions, min_area=min_area)
+        assert regions[k] == one  # every field, mass share to the last bit
+        np.testing.assert_array_equal(labels[k], lab)
+    assert sum(len(r) > 0 for r in regions) >= 20  # not degenerate: most maps have regions
+
+
+def test_a_stack_never_joins_components_across_maps() -> None:
+    maps = np.ones((3, 6, 6), np.float32)  # the same full square in every map: one component each, not one in all
+    regions, labels = extract_regions_batch(maps, max_regions=3, min_area=1)
+    assert [len(r) for r in regions] == [1, 1, 1]
+    assert all(r[0].area == 36 and r[0].mass_share == 1.0 for r in regions)
+    assert (labels == 1).all()
+
+
+def test_an_empty_stack_and_bad_shapes() -> None:
+    regions, labels = extract_regions_batch(np.zeros((0, 4, 4), np.float32))
+    assert regions == [] and labels.shape == (0, 4, 4)
+    with pytest.raises(InvalidInputError, match="N x H x W"):
+        extract_regions_batch(np.zeros((4, 4), np.float32))
