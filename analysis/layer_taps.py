@@ -16,16 +16,20 @@ one is recorded from the activation on, so Grad-CAM costs about one forward pass
 
 from __future__ import annotations
 
+import functools
 import re
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
+from types import FunctionType
 from typing import Any
 
 import torch
+import torch.nn.functional as F
 from torch import nn
 from torch.overrides import TorchFunctionMode
 
+from .attention_rows import ATTENTION_ROWS_OP, attention_rows, plain_attention_call
 from .errors import GradientUnavailableError, ModelInputError
 
 MIN_USEFUL_MAP = 4  # common practice: coarser maps make every region cover most of the image
@@ -130,13 +134,47 @@ def _spatial_pool_scale(func: object, args: tuple[object, ...], kwargs: dict[str
     return _GLOBAL_POOLS[name]
 
 
-class _PoolLeaves(TorchFunctionMode):
-    """Active after the tapped layer: a global spatial pooling of the activation becomes a leaf of its own.
+def _attention_with_rows(*args: Any, **kwargs: Any) -> torch.Tensor:
+    """``scaled_dot_product_attention`` with the row-sparse backward where the call is the plain case
+    and something in it requires grad; torch's own otherwise."""
+    call = plain_attention_call(args, kwargs)
+    if call is not None and torch.is_grad_enabled() and any(t.requires_grad for t in call[:3]):
+        q, k, v, scale = call
+        return attention_rows(q, k, v, scale=scale)
+    return F.scaled_dot_product_attention(*args, **kwargs)
 
-    Grad-CAM needs only the spatial sum of d logit / d activation per channel; through a global
-    pooling that sum is d logit / d pooled (times h*w for a sum, whatever positions an amax ties on),
-    so the backward pass stops at the pooled N x C values and never makes a gradient map.
-    Other uses of the activation are differentiated as usual and the two parts add up.
+
+@functools.cache
+def _mha_with_rows() -> Callable[..., Any] | None:
+    """torch's ``F.multi_head_attention_forward`` (what ``nn.MultiheadAttention`` runs when it records
+    gradients) calling :func:`_attention_with_rows` for its attention; None if its code has changed shape.
+
+    A copy of the function with two names of its module rebound, not a patch of torch: other
+    callers and threads are unaffected. Its override check is off in the copy because the copy is
+    only called from :class:`_Tail`'s own handler of that function.
+    """
+    fn = F.multi_head_attention_forward
+    code = getattr(fn, "__code__", None)
+    if code is None or not {"scaled_dot_product_attention", "has_torch_function"} <= set(code.co_names):
+        return None
+    names = dict(fn.__globals__)
+    names["scaled_dot_product_attention"] = _attention_with_rows
+    names["has_torch_function"] = lambda *_args: False
+    copy = FunctionType(code, names, fn.__name__, fn.__defaults__, fn.__closure__)
+    copy.__kwdefaults__ = fn.__kwdefaults__
+    return copy
+
+
+class _Tail(TorchFunctionMode):
+    """Active after the tapped layer, while the rest of the forward pass records gradients.
+
+    * A global spatial pooling of a map activation becomes a leaf of its own: Grad-CAM needs only
+      the spatial sum of d logit / d activation per channel; through a global pooling that sum is
+      d logit / d pooled (times h*w for a sum, whatever positions an amax ties on), so the backward
+      pass stops at the pooled N x C values and never makes a gradient map. Other uses of the
+      activation are differentiated as usual and the two parts add up.
+    * Attention runs as :func:`analysis.attention_rows.attention_rows`, whose backward works only on
+      the query rows that carry gradient (one, below a class-token head's last attention).
     """
 
     def __init__(self, activation: torch.Tensor) -> None:
@@ -146,6 +184,12 @@ class _PoolLeaves(TorchFunctionMode):
 
     def __torch_function__(self, func: Any, types: Any, args: tuple[object, ...] = (), kwargs: dict[str, object] | None = None) -> Any:
         kwargs = kwargs or {}
+        name = _op_name(func)
+        if name == "scaled_dot_product_attention":
+            return _attention_with_rows(*args, **kwargs)
+        if func is F.multi_head_attention_forward:
+            mha: Callable[..., Any] = _mha_with_rows() or func
+            return mha(*args, **kwargs)
         scale = _spatial_pool_scale(func, args, kwargs, self.activation)
         if scale is None:
             return func(*args, **kwargs)
@@ -197,7 +241,7 @@ class HookTap:
 
     def __call__(self, x: torch.Tensor) -> Tapped:
         captured: list[torch.Tensor] = []
-        modes: list[_PoolLeaves] = []
+        modes: list[_Tail] = []
         name = self.name
 
         def hook(_module: nn.Module, _inputs: object, output: object) -> torch.Tensor:
@@ -212,10 +256,9 @@ class HookTap:
             activation = output.detach().requires_grad_(True)
             captured.append(activation)
             torch.set_grad_enabled(True)  # record the graph from here on, for this forward only
-            if activation.ndim == 4:
-                mode = _PoolLeaves(activation)
-                mode.__enter__()  # type: ignore[no-untyped-call]  # untyped in torch
-                modes.append(mode)
+            mode = _Tail(activation)
+            mode.__enter__()  # type: ignore[no-untyped-call]  # untyped in torch
+            modes.append(mode)
             return activation
 
         handle = self.layer.register_forward_hook(hook)
@@ -423,6 +466,31 @@ def _ts_pool_scale(node: torch._C.Node) -> str | None:
     return _GLOBAL_POOLS[kind]
 
 
+def _ts_attention_rows(graph: torch._C.Graph, block: torch._C.Block) -> None:
+    """Make the plain attention calls in ``block`` (and blocks inside it) run as
+    ``heedmap::attention_rows``, whose backward works only on query rows that carry gradient (see
+    :mod:`analysis.attention_rows`; the forward is the same attention)."""
+    for node in list(block.nodes()):
+        for inner in node.blocks():
+            _ts_attention_rows(graph, inner)
+        if node.kind() != "aten::scaled_dot_product_attention" or node.outputsSize() != 1:
+            continue
+        inputs = list(node.inputs())
+        if len(inputs) not in (7, 8):
+            continue
+        constants = [_ts_constant(v) if v.node().kind() == "prim::Constant" else "not constant" for v in inputs[3:]]
+        mask, causal = constants[0], constants[2]
+        gqa = constants[4] if len(constants) > 4 else False
+        if mask is not None or causal is not False or gqa is not False:  # dropout is 0 in eval mode, checked when run
+            continue
+        rows = graph.create(ATTENTION_ROWS_OP, [inputs[0], inputs[1], inputs[2], inputs[6], inputs[4]], 2)
+        rows.insertBefore(node)
+        rows.outputsAt(0).setType(node.output().type())
+        rows.outputsAt(1).setType(node.output().type())
+        node.output().replaceAllUsesWith(rows.outputsAt(0))
+        node.destroy()
+
+
 def _ts_leaf_after(graph: torch._C.Graph, value: torch._C.Value) -> torch._C.Value:
     """Detach ``value`` into a leaf that requires grad, used wherever ``value`` was."""
     det = graph.create("aten::detach", [value], 1)
@@ -527,12 +595,13 @@ class ScriptGraph:
         leaf = _ts_leaf_after(graph, outputs[name][0])
         pooled: list[torch._C.Value] = []
         scales: list[str] = []
-        if self._ranks.get(name) == 4:  # global poolings of the map become leaves of their own (see _PoolLeaves)
+        if self._ranks.get(name) == 4:  # global poolings of the map become leaves of their own (see _Tail)
             for use in list(leaf.uses()):
                 scale = _ts_pool_scale(use.user) if use.offset == 0 else None
                 if scale is not None and use.user.outputsSize() == 1:
                     pooled.append(_ts_leaf_after(graph, use.user.output()))
                     scales.append(scale)
+        _ts_attention_rows(graph, graph.block())
         fn = self._function(graph, [leaf, *pooled])
         return ScriptTap(fn, self.module._c, name, tuple(scales)), None
 

@@ -16,7 +16,7 @@ add time, so the table gives each side's best batch (images per CPU-second) and 
 the ratio of the medians beside it. Goal: >= 0.9x.
 
 Where the layer's map goes straight into a global pooling (mean, amax, sum, adaptive average
-pooling to 1x1), the backward pass stops at the pooled values (analysis.layer_taps._PoolLeaves):
+pooling to 1x1), the backward pass stops at the pooled values (analysis.layer_taps._Tail):
 an amax's backward on the whole map used to cost almost as much as the two small convolutions
 before it. TorchScript's layers after the tap are differentiated by eager autograd, not by its
 symbolic derivatives (SiLU's is five elementwise operations where eager autograd uses one kernel).

@@ -207,3 +207,35 @@ def test_gradient_stopped_at_global_pooling_equals_the_formula(fmt: str, mixed: 
     assert ours.predicted.tolist() == pred.tolist()
     assert float(ref.max()) > 0
     torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
+
+
+def _backward_node_names(out: torch.Tensor) -> set[str]:
+    names, seen, stack = set(), set(), [out.grad_fn]
+    while stack:
+        node = stack.pop()
+        if node is None or id(node) in seen:
+            continue
+        seen.add(id(node))
+        names.add(node.name())
+        stack.extend(f for f, _ in node.next_functions)
+    return names
+
+
+@pytest.mark.parametrize("fmt", FORMATS)
+@pytest.mark.parametrize("layer", ["blocks.1.norm1", "blocks.0.norm1"])
+def test_vit_attention_after_the_layer_runs_row_sparse_backward_and_gradcam_equals_formula(fmt: str, layer: str, tmp_path: Path, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    # At blocks.1.norm1 only the class token's row carries gradient out of the last attention; at
+    # blocks.0.norm1 the first attention gets gradient on every row (torch's backward kernel then).
+    eager, d = zoo_files["vit"]
+    sidecar = json.loads((d / "sidecar.json").read_text())
+    (tmp_path / "sidecar.json").write_text(json.dumps({**sidecar, "target_layer": layer}))
+    model_file = {"exported": "model.pt2", "torchscript": "model.pt", "factory": "checkpoint.pt"}[fmt]
+    factory = "tests.analysis.model_zoo:vit" if fmt == "factory" else None
+    loaded = load_model(d / model_file, tmp_path / "sidecar.json", factory=factory)
+    x = torch.randn(4, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(9))
+    tapped = loaded.tap(x)
+    assert any("attention_rows" in n for n in _backward_node_names(loaded.logits(tapped.out)))
+    ours = compute_saliency(loaded, x)
+    ref, pred = direct_gradcam(eager, layer, x, output=None, prefix=1)
+    assert ours.predicted.tolist() == pred.tolist() and float(ref.max()) > 0
+    torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
