@@ -21,6 +21,7 @@ from analysis.concept_table import TARGETS, ConceptTable, Target
 from analysis.concept_votes import (
     AnnotatorRates,
     ConceptAgreement,
+    ConceptEstimate,
     PresenceVotes,
     ReadJudgments,
     estimate_concepts,
@@ -65,6 +66,7 @@ class ResultsCache:
 
     size: int = 32
     labels: LabelStore = field(default_factory=LabelStore)  # each campaign's labels, read incrementally
+    last_fit: dict[int, ConceptEstimate] = field(default_factory=dict)  # each campaign's latest Dawid-Skene fit, to start the next from
     _found: dict[tuple[object, ...], object] = field(default_factory=dict)
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
@@ -201,7 +203,13 @@ def _agreement(s: Session, c: CampaignInfo, *, top_concepts: int, cache: Results
     report = agreement_report(v.main_entities, n_boot=500, top_disputed=12)
     # Alpha with its bootstrap interval costs the same for every concept: compute it only for those shown.
     concepts = presence_agreement(v, concepts=most_named(v, top_concepts), n_boot=200)
-    ds = estimate_concepts(v, method="dawid-skene")
+    # Started from the fit before the newest labels (the same optimum to within the tolerance, in a few iterations).
+    ds = estimate_concepts(v, method="dawid-skene", start=cache.last_fit.get(c.id) if cache is not None else None)
+    if cache is not None:
+        with cache._lock:
+            cache.last_fit[c.id] = ds
+            while len(cache.last_fit) > cache.size:
+                cache.last_fit.pop(next(iter(cache.last_fit)))
     reliability = {r.annotator: r for r in ds.annotator_rates()}
     note = f"{ds.prior.describe() if ds.prior else 'no smoothing'}; {'converged' if ds.converged else 'did not converge'} after {ds.iterations} iterations"
     return AgreementSummary(report, concepts, reliability, note)
