@@ -202,9 +202,9 @@ def votes_from_read(read: ReadJudgments, *, known: Mapping[int, Iterable[str]] |
     # What each judgment named, as sorted keys judgment * n_c + concept code.
     in_use = np.zeros(len(read.readings), dtype=bool)
     in_use[used] = True
-    reading_concepts = [np.array(sorted(c_index[c] for c in x.concepts) if in_use[k] else [], dtype=np.int64) for k, x in enumerate(read.readings)]
-    sizes = np.array([len(c) for c in reading_concepts], dtype=np.int64)
-    flat = np.concatenate([*reading_concepts, np.zeros(0, dtype=np.int64)])
+    reading_concepts = [sorted(c_index[c] for c in x.concepts) if in_use[k] else [] for k, x in enumerate(read.readings)]
+    sizes = np.fromiter((len(c) for c in reading_concepts), dtype=np.int64, count=len(reading_concepts))
+    flat = np.fromiter((c for cs in reading_concepts for c in cs), dtype=np.int64, count=int(sizes.sum()))
     starts = np.cumsum(sizes) - sizes
     per_judgment = sizes[read.reading_codes]
     named_j = np.repeat(np.arange(len(jr), dtype=np.int64), per_judgment)
@@ -295,8 +295,9 @@ class ConceptEstimate:
         """
         v = self.votes
         out: dict[int, dict[str, float]] = {r: {} for r in v.regions}
-        for p in np.nonzero(self.present)[0]:
-            out[v.regions[v.pair_region[p]]][v.concepts[v.pair_concept[p]]] = float(self.probability[p])
+        present = np.nonzero(self.present)[0]
+        for r, c, prob in zip(v.pair_region[present].tolist(), v.pair_concept[present].tolist(), self.probability[present].tolist()):
+            out[v.regions[r]][v.concepts[c]] = prob
         # A region showing a refinement shows its entity ("yellow tag" counts for "tag").
         for found in out.values():
             for c, prob in list(found.items()):

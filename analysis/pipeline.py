@@ -132,7 +132,7 @@ def campaign_table(
     if complete.empty:
         raise NotEnoughLabelsError("no image has all its regions labelled yet; label some more regions first.")
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
-    image_regions = {int(i): list(r) for i, r in zip(complete.index.to_numpy(dtype=np.int64), complete["regions"])}
+    image_regions = dict(zip(complete.index.to_numpy(dtype=np.int64).tolist(), complete["regions"].tolist()))
     table = build_concept_table(meta, image_regions, mass, region_concepts, method=str(method), threshold=threshold, families=votes.families)
     if sample is not None:
         table = replace(table, design=sample_design([sample[int(i)] for i in table.meta.index], population or {}))

@@ -357,8 +357,10 @@ def _column_cells(col: pd.Series) -> list[object]:
     kind = col.dtype.kind
     if kind in "biu":
         return list(col.astype(str).tolist())  # what csv writes for ints and bools: str(v)
-    if kind == "f":
-        return [f"{v:.6g}" if not math.isnan(v) else "" for v in col.to_numpy(dtype=np.float64).tolist()]
+    if kind == "f":  # each distinct value formatted once: a concept table's columns hold few (mostly 0)
+        distinct, at = np.unique(col.to_numpy(dtype=np.float64), return_inverse=True)
+        text = np.array([f"{v:.6g}" if not math.isnan(v) else "" for v in distinct.tolist()], dtype=object)
+        return list(text[at.reshape(-1)].tolist())
     return [_cell(v) for v in col.tolist()]
 
 
