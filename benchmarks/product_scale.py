@@ -13,8 +13,10 @@ job, open a campaign with room for four labels per region, and store three simul
 regions for the end-of-campaign task). The pages are requested through the app (FastAPI's test
 client, signed in through invite links), each on a fresh app so its cache is cold. The "start"
 task is a new annotator in a second, empty campaign over the same run; the "end" task is the first
-simulated annotator, who has labelled 98% of the regions. A ratio above N_large / N_small means the
-cost grows faster than the image set.
+simulated annotator, who has labelled 98% of the regions. "After a new label" is a running app that has
+shown each page once; an annotator new to the campaign stores one label and the page is loaded again (its
+results are new: nothing of the previous view can be reused as it was). A ratio above N_large / N_small
+means the cost grows faster than the image set.
 """
 
 from __future__ import annotations
@@ -168,18 +170,23 @@ def measure_size(n_images: int, prepared: dict[str, str], work: Path, *, repeat:
             "analyst": create_invite(s, name="bench analyst", role="analyst")[1],
             "end": create_invite(s, name="sim-1", role="annotator", campaign_id=cid)[1],
             "start": create_invite(s, name="newcomer", role="annotator", campaign_id=fresh)[1],
+            "admin": create_invite(s, name="bench admin", role="admin")[1],
+            "later": create_invite(s, name="late annotator", role="annotator", campaign_id=cid)[1],
         }
     engine.dispose()
+
+    def join(client: TestClient, who: str) -> None:
+        page = client.get(f"/join/{tokens[who]}")  # the sign-in page's form carries a one-use token
+        found = re.search(r'name="join" value="([^"]+)"', page.text)
+        r = client.post(f"/join/{tokens[who]}", data={"join": found.group(1) if found else ""}, follow_redirects=False)
+        if r.status_code != 303:
+            raise SystemExit(f"sign-in as {who} failed: {r.status_code} {r.text[:200]}")
+        client.headers[CSRF_HEADER] = csrf_token(client.app.state.key, client.cookies[COOKIE])  # type: ignore[attr-defined]
 
     @contextlib.contextmanager
     def signed_in(who: str) -> Iterator[TestClient]:
         with TestClient(create_app(Settings(project_dir=project))) as client:
-            page = client.get(f"/join/{tokens[who]}")  # the sign-in page's form carries a one-use token
-            found = re.search(r'name="join" value="([^"]+)"', page.text)
-            r = client.post(f"/join/{tokens[who]}", data={"join": found.group(1) if found else ""}, follow_redirects=False)
-            if r.status_code != 303:
-                raise SystemExit(f"sign-in as {who} failed: {r.status_code} {r.text[:200]}")
-            client.headers[CSRF_HEADER] = csrf_token(client.app.state.key, client.cookies[COOKIE])  # type: ignore[attr-defined]
+            join(client, who)
             yield client
 
     def get(client: TestClient, url: str) -> float:
@@ -196,6 +203,29 @@ def measure_size(n_images: int, prepared: dict[str, str], work: Path, *, repeat:
             out[key] = get(client, f"/campaigns/{cid}/{page}")
             if key == "results_s":
                 out["results_again_s"] = get(client, f"/campaigns/{cid}/results")
+
+    # The pages an analyst or admin opens, first loaded on a fresh app (nothing held), then the first load after one
+    # more label in a running app (the labels held since the previous view; each page's results are new).
+    after = {"agreement": "agreement", "results": "results", "concepts_csv": "exports/concepts.csv", "rules_csv": "exports/rules.csv",
+             "stopping": "stopping"}
+    with signed_in("admin") as client:
+        out["stopping_s"] = get(client, f"/campaigns/{cid}/stopping")
+    with signed_in("admin") as client:
+        out["admin_s"] = get(client, f"/admin/campaigns/{cid}")
+        for page in after.values():
+            get(client, f"/campaigns/{cid}/{page}")
+        for key, page in after.items():
+            join(client, "later")
+            task = client.post(f"/api/campaigns/{cid}/tasks/next").json().get("task")
+            if task is None:
+                raise SystemExit("no task left for the label before each page")
+            r = client.post(f"/api/campaigns/{cid}/regions/{task['region_id']}/labels",
+                            json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]})
+            if r.status_code != 201:
+                raise SystemExit(f"submit gave {r.status_code}: {r.text[:300]}")
+            join(client, "admin")
+            out[f"{key}_after_label_s"] = get(client, f"/campaigns/{cid}/{page}")
+        out["admin_after_label_s"] = get(client, f"/admin/campaigns/{cid}")
 
     def task_costs(who: str, campaign: int) -> dict[str, float]:
         with signed_in(who) as client:
@@ -252,6 +282,14 @@ ROWS = [
     ("results page, labels unchanged (cached)", "results_again_s"),
     ("concepts CSV, first request", "concepts_csv_s"),
     ("rules CSV, first request", "rules_csv_s"),
+    ("settling page, first load", "stopping_s"),
+    ("campaign admin page, first load", "admin_s"),
+    ("agreement page, first load after a new label", "agreement_after_label_s"),
+    ("results page, first load after a new label", "results_after_label_s"),
+    ("concepts CSV, first request after a new label", "concepts_csv_after_label_s"),
+    ("rules CSV, first request after a new label", "rules_csv_after_label_s"),
+    ("settling page, first load after a new label", "stopping_after_label_s"),
+    ("campaign admin page, after new labels", "admin_after_label_s"),
     ("vocabulary request, start of campaign", "vocabulary_start_s"),
     ("vocabulary request, end of campaign", "vocabulary_end_s"),
     ("next task, start of campaign", "next_start_s"),

@@ -50,6 +50,8 @@ class Results:
     table: ConceptTable
     n_labelled_regions: int
     model_sha256: str = ""  # of the run's model: interventions are kept per model version
+    version: tuple[object, ...] = ()  # store.labels_version these results were computed at (empty: not kept)
+    cache: ResultsCache | None = field(default=None, compare=False, repr=False)  # where results made from these are kept
 
     @property
     def method(self) -> str:
@@ -145,7 +147,7 @@ def campaign_results(s: Session, campaign: CampaignInfo | int, *, cache: Results
         return compute_results(s, c)
     version = store.labels_version(s, c.id)
     found = cache.get_or_make(("results", *version), lambda: compute_results(s, c, cache=cache, version=version))
-    return replace(found, campaign=c)  # the table is cached; the campaign's text fields are read fresh
+    return replace(found, campaign=c, version=version, cache=cache)  # the table is cached; the campaign's text fields are read fresh
 
 
 def target_of(target: str) -> Target:
@@ -160,7 +162,12 @@ def campaign_rules(res: Results, *, target: str = "predicted", max_len: int = 2,
     """The campaign's concept rules for a target class (predicted, true or errors)."""
     if not 1 <= max_len <= 4:
         raise InvalidRequestError(f"max_len must be 1-4 concepts; got {max_len}.")
-    return res.table.rules(target=target_of(target), min_support=min_support, max_len=max_len, prune=prune)
+    t = target_of(target)
+    if res.cache is None or not res.version:
+        return res.table.rules(target=t, min_support=min_support, max_len=max_len, prune=prune)
+    # Kept with the results they come from: the results page, its exports and questions ask for the same rules.
+    return res.cache.get_or_make(("rules", t, max_len, float(min_support), prune, *res.version),
+                                 lambda: res.table.rules(target=t, min_support=min_support, max_len=max_len, prune=prune))
 
 
 def votes(s: Session, campaign: CampaignInfo, *, cache: ResultsCache | None = None, version: tuple[object, ...] | None = None) -> PresenceVotes:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import pandas as pd
@@ -14,7 +15,7 @@ from analysis.stopping import ClassSettling, settling
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..campaigns.plans import SETTLE_WINDOW
-from .campaign_analysis import ResultsCache, _method
+from .campaign_analysis import ResultsCache, _method, _read, prediction_frame, region_classes
 
 TOP_RULES = 3
 
@@ -30,32 +31,37 @@ class StoppingStatus:
     closed: tuple[str, ...]
 
 
-def _rules_at(s: Session, c: CampaignInfo, n: int, *, min_support: float, max_len: int) -> pd.DataFrame:
-    found = campaigns.judgments(s, c.id)[:n]
+def _rules_at(s: Session, c: CampaignInfo, n: int, *, min_support: float, max_len: int, cache: ResultsCache | None,
+              version: tuple[object, ...]) -> pd.DataFrame:
+    """The predicted-class rules from the campaign's first ``n`` labels (held between requests when a cache is given)."""
+    found, rules, region_class = _read(s, c, cache, version, limit=n)
     design = campaigns.sample_of(s, c.id)
-    made = campaign_table(found, store.prediction_frame(s, c.run_id), rules=campaigns.synonym_rules(s, c.id)[0],
-                          region_class=campaigns.region_classes(s, c.id), check_answers=campaigns.check_answers(s, c.id), classes=c.classes,
+    made = campaign_table(found, prediction_frame(s, c.run_id, cache=cache), rules=rules,
+                          region_class=region_class, check_answers=campaigns.check_answers(s, c.id), classes=c.classes,
                           method=_method(c), sample=design[0] if design else None, population=design[1] if design else None)
     return made.table.rules(target="predicted", min_support=min_support, max_len=max_len, prune=True).rules
 
 
-def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int) -> StoppingStatus:
+def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, cache: ResultsCache | None = None,
+            version: tuple[object, ...] | None = None) -> StoppingStatus:
     plan = campaigns.plan_of(s, c.id)
     window = plan.settle_window if plan else SETTLE_WINDOW
     closed = plan.closed_classes if plan else ()
-    n = len(campaigns.judgments(s, c.id))
-    classes = sorted(set(campaigns.region_classes(s, c.id).values()))
+    version = version or store.labels_version(s, c.id)
+    n = int(str(version[1]))  # the campaign's labels, as many as its judgments
+    classes = sorted(set(region_classes(s, c.id, cache=cache).values()))
     checkpoints = tuple(k for k in (n - window, n - window // 2) if k > 0)
     if n == 0:
         return StoppingStatus([ClassSettling(k, (), False, False, "no labels yet") for k in classes], 0, window, (), closed)
+    at = functools.partial(_rules_at, s, c, min_support=min_support, max_len=max_len, cache=cache, version=version)
     try:
-        now = _rules_at(s, c, n, min_support=min_support, max_len=max_len)
+        now = at(n)
     except NotEnoughLabelsError as exc:
         return StoppingStatus([ClassSettling(k, (), False, False, str(exc)) for k in classes], n, window, (), closed)
     earlier = []
     for k in checkpoints:
         try:
-            earlier.append(_rules_at(s, c, k, min_support=min_support, max_len=max_len))
+            earlier.append(at(k))
         except NotEnoughLabelsError:
             checkpoints = tuple(x for x in checkpoints if x != k)
     if n < window:
@@ -68,5 +74,6 @@ def stopping_status(s: Session, campaign: CampaignInfo, *, min_support: float, m
     (compared with the results at that many, and half that many, judgments ago)."""
     if cache is None:
         return _status(s, campaign, min_support=min_support, max_len=max_len)
-    key = ("stopping", min_support, max_len, *store.labels_version(s, campaign.id), campaigns.plan_of(s, campaign.id))
-    return cache.get_or_make(key, lambda: _status(s, campaign, min_support=min_support, max_len=max_len))
+    version = store.labels_version(s, campaign.id)
+    key = ("stopping", min_support, max_len, *version, campaigns.plan_of(s, campaign.id))
+    return cache.get_or_make(key, lambda: _status(s, campaign, min_support=min_support, max_len=max_len, cache=cache, version=version))

@@ -191,3 +191,21 @@ def test_labels_held_between_requests_equal_the_stored_ones_after_labels_undo_an
     assert client.post(f"/api/campaigns/{campaign_id}/undo", headers={"X-CSRF-Token": csrf}).status_code == 200
     assert client.post(f"/api/campaigns/{campaign_id}/undo", headers={"X-CSRF-Token": csrf}).status_code == 200
     agrees()
+
+
+def test_rules_are_kept_with_their_results_until_a_new_label(client: TestClient, campaign_id: int) -> None:
+    from app.services.campaign_analysis import campaign_rules
+
+    _label(client, campaign_id, "p", 12)
+    cache = ResultsCache()
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        res = campaign_results(s, campaign_id, cache=cache)
+        first = campaign_rules(res, min_support=0.01)
+        assert campaign_rules(campaign_results(s, campaign_id, cache=cache), min_support=0.01) is first
+        assert campaign_rules(res, min_support=0.01, max_len=1) is not first
+        assert first.rules.equals(campaign_rules(campaign_results(s, campaign_id), min_support=0.01).rules)  # the uncached path agrees
+    _label(client, campaign_id, "q", 4)
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        again = campaign_rules(campaign_results(s, campaign_id, cache=cache), min_support=0.01)
+        assert again is not first
+        assert again.rules.equals(campaign_rules(campaign_results(s, campaign_id), min_support=0.01).rules)
