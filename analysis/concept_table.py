@@ -150,7 +150,17 @@ def build_concept_table(
                 out.add(c)
         return out
 
-    carried = {r: with_entities(region_concepts.get(r, {})) for image in meta.index for r in image_regions.get(image, ())}
+    # Regions show the same few concept sets again and again: each distinct set is completed with its entities once.
+    completed: dict[frozenset[str], set[str]] = {}
+
+    def carried_by(found: Mapping[str, float]) -> set[str]:
+        key = frozenset(found)
+        out = completed.get(key)
+        if out is None:
+            out = completed[key] = with_entities(found)
+        return out
+
+    carried = {r: carried_by(region_concepts.get(r, {})) for image in meta.index.tolist() for r in image_regions.get(image, ())}
     concepts = sorted({c for cs in carried.values() for c in cs})
     col = {c: j for j, c in enumerate(concepts)}
     row = {image: i for i, image in enumerate(meta.index)}
@@ -170,11 +180,31 @@ def build_concept_table(
                 r_cols.append(col[c])
     carries = sparse.csc_matrix((np.ones(len(r_rows), dtype=bool), (r_rows, r_cols)), shape=(len(r_image), len(concepts)))
     regions = RegionMass(np.array(r_image, dtype=np.int64), np.array(r_mass, dtype=np.float64), carries, np.array(r_ids, dtype=np.int64))
-    to_image = sparse.csr_matrix((np.ones(len(r_image)), (r_image, np.arange(len(r_image)))), shape=(len(meta), len(r_image)))
-    share = to_image @ sparse.csr_matrix(carries.multiply(np.array(r_mass)[:, None]))
+    return _assembled(meta, regions, concepts, method=method, threshold=threshold, families=parent)
+
+
+def concept_table_from_regions(meta: pd.DataFrame, regions: RegionMass, concepts: Sequence[str], *, method: str, threshold: float = 0.5,
+                               families: Mapping[str, str] | None = None) -> ConceptTable:
+    """:func:`build_concept_table` from its regions already as arrays: each region's image row (in ``meta``'s order),
+    saliency share and id, and which of ``concepts`` (sorted) it carries, entities of its refinements included."""
+    missing = [c for c in ("true_class", "predicted_class", "confidence", "split") if c not in meta.columns]
+    if missing:
+        raise InvalidInputError(f"image metadata lacks {missing}.")
+    if len(meta) == 0:
+        raise InvalidInputError("no images given; run saliency and collect labels first.")
+    meta = meta[["true_class", "predicted_class", "confidence", "split"]].copy()
+    meta["correct"] = meta["true_class"].astype(str) == meta["predicted_class"].astype(str)
+    return _assembled(meta[META_COLUMNS], regions, list(concepts), method=method, threshold=threshold, families=families or {})
+
+
+def _assembled(meta: pd.DataFrame, regions: RegionMass, concepts: list[str], *, method: str, threshold: float, families: Mapping[str, str]) -> ConceptTable:
+    n_regions = len(regions.region_image)
+    carries = regions.carries
+    to_image = sparse.csr_matrix((np.ones(n_regions), (regions.region_image, np.arange(n_regions))), shape=(len(meta), n_regions))
+    share = to_image @ sparse.csr_matrix(carries.multiply(regions.mass[:, None]))
     count = to_image @ carries.astype(np.float64)
     presence = pd.DataFrame(count.toarray() > 0, index=meta.index, columns=concepts)
     share_frame = pd.DataFrame(np.asarray(share.todense()).clip(0, 1), index=meta.index, columns=concepts)
     shown = set(concepts)
-    kept = {c: e for c, e in parent.items() if c in shown and e in shown}
+    kept = {c: e for c, e in families.items() if c in shown and e in shown}
     return ConceptTable(meta, presence, share_frame, regions, method, threshold, kept)

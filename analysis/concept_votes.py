@@ -332,7 +332,7 @@ def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", thre
         agg = aggregate(votes.vote_pair, votes.vote_annotator, yes, n_classes=2, method=method, known=known)
     else:
         items, anns, said, weights = _with_unnamed(votes, known)
-        fit = start.fit if start is not None and start.method == method and start.votes.annotators == votes.annotators else None
+        fit = _start_for(start, votes.annotators) if start is not None and start.method == method else None
         agg = aggregate(items, anns, said, n_classes=2, method=method, known=known, prior=prior, tol=tol, max_iter=max_iter, item_weights=weights,
                         start=fit)
     probability = np.asarray(agg.posterior[:n_pairs, 1], dtype=np.float64)  # every pair has its region's votes
@@ -351,6 +351,18 @@ def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", thre
                           counts, pseudo, agg.confusion_prior, None if agg.confusion is None else (agg.confusion, agg.prior))
     rates = est.annotator_rates()
     return replace(est, sensitivity=np.array([r.sensitivity.estimate for r in rates]), specificity=np.array([r.specificity.estimate for r in rates]))
+
+
+def _start_for(start: ConceptEstimate, annotators: tuple[str, ...]) -> tuple[FloatArray, FloatArray] | None:
+    """An earlier fit's (confusion, class shares) for these annotators: each one's own, the earlier annotators' mean for a newcomer."""
+    if start.fit is None or not start.votes.annotators:
+        return None
+    confusion, shares = start.fit
+    if confusion.shape[0] != len(start.votes.annotators):
+        return None
+    row = {a: k for k, a in enumerate(start.votes.annotators)}
+    mean = confusion.mean(axis=0)
+    return np.stack([confusion[row[a]] if a in row else mean for a in annotators]), shares
 
 
 def _with_unnamed(votes: PresenceVotes, known: dict[int, int]) -> tuple[IntArray, IntArray, IntArray, FloatArray]:

@@ -13,13 +13,16 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
+import numpy.typing as npt
 import pandas as pd
+from scipy import sparse
 
-from .concept_table import ConceptTable, build_concept_table
-from .concept_votes import PresenceVotes, ReadJudgments, estimate_concepts, read_judgments, votes_from_read
+from .concept_table import ConceptTable, concept_table_from_regions
+from .concept_votes import ConceptEstimate, PresenceVotes, ReadJudgments, estimate_concepts, read_judgments, votes_from_read
 from .concepts import Judgment, judgment_concepts
 from .errors import InvalidInputError, NotEnoughLabelsError
 from .reliability import METHODS, Method
+from .rules import RegionMass
 from .sampling import Design
 from .synonyms import SynonymRules
 
@@ -121,22 +124,67 @@ def campaign_table(
     if method not in METHODS:
         raise InvalidInputError(f"method must be one of {', '.join(METHODS)}; got {method!r}.")
     votes = campaign_votes(judgments, rules=rules, region_class=region_class, check_answers=check_answers)
-    region_concepts = estimate_concepts(votes, method=method, threshold=threshold).region_concepts()
-    labelled = set(region_concepts)
-    preds = predictions[predictions["predicted"].isin(list(classes))].copy() if classes else predictions.copy()
+    est = estimate_concepts(votes, method=method, threshold=threshold)
+    judged = set(votes.regions)  # every judged region has its concepts (none, possibly)
+    preds = predictions[predictions["predicted"].isin(list(classes))] if classes else predictions
     if sample is not None:
         preds = preds[preds.index.isin(list(sample))]
-    mass = {r: m for rs, ms in zip(preds["regions"], preds["mass_shares"]) for r, m in zip(rs, ms)}
-    preds["regions"] = preds["regions"].map(lambda rs: [r for r in rs if r in region_class])
-    complete = preds[preds["regions"].map(lambda rs: all(r in labelled for r in rs))]
+    region_lists = preds["regions"].tolist()
+    mass = {r: m for rs, ms in zip(region_lists, preds["mass_shares"].tolist()) for r, m in zip(rs, ms)}
+    kept_lists = [[r for r in rs if r in region_class] for rs in region_lists]
+    is_complete = np.array([all(r in judged for r in rs) for rs in kept_lists], dtype=bool)
+    complete = preds[is_complete] if len(preds) else preds
     if complete.empty:
         raise NotEnoughLabelsError("no image has all its regions labelled yet; label some more regions first.")
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
-    image_regions = dict(zip(complete.index.to_numpy(dtype=np.int64).tolist(), complete["regions"].tolist()))
-    table = build_concept_table(meta, image_regions, mass, region_concepts, method=str(method), threshold=threshold, families=votes.families)
+    image_rows: list[int] = []
+    region_ids: list[int] = []
+    for row, rs in enumerate(rs for rs, ok in zip(kept_lists, is_complete.tolist()) if ok):
+        image_rows.extend([row] * len(rs))
+        region_ids.extend(rs)
+    concepts, carries = _carried(est, np.array(region_ids, dtype=np.int64))
+    regions = RegionMass(np.array(image_rows, dtype=np.int64), np.array([float(mass.get(r, 0.0)) for r in region_ids], dtype=np.float64), carries,
+                         np.array(region_ids, dtype=np.int64))
+    table = concept_table_from_regions(meta, regions, concepts, method=str(method), threshold=threshold, families=votes.families)
     if sample is not None:
         table = replace(table, design=sample_design([sample[int(i)] for i in table.meta.index], population or {}))
-    return CampaignTable(table, len(labelled))
+    return CampaignTable(table, len(judged))
+
+
+def _carried(est: ConceptEstimate, region_ids: npt.NDArray[np.int64]) -> tuple[list[str], sparse.csc_matrix]:
+    """Which concepts each of these (judged) regions carries: those present there and every entity above them
+    (``families``, followed up the chain), as (sorted concept names, regions x concepts bool matrix).
+    The same as completing :meth:`ConceptEstimate.region_concepts` with their entities region by region."""
+    v = est.votes
+    n_c = max(len(v.concepts), 1)
+    code = {c: i for i, c in enumerate(v.concepts)}
+    chains: list[list[int]] = []
+    for c in v.concepts:
+        chain, seen = [code[c]], {c}
+        while c in v.families and v.families[c] not in seen:  # refinements of refinements reach the top entity
+            c = v.families[c]
+            seen.add(c)
+            chain.append(code[c])
+        chains.append(chain)
+    sizes = np.array([len(ch) for ch in chains], dtype=np.int64)
+    flat = np.array([a for ch in chains for a in ch], dtype=np.int64)
+    starts = np.cumsum(sizes) - sizes
+    present = np.nonzero(est.present)[0]
+    pc = v.pair_concept[present]
+    n_up = sizes[pc]
+    up = np.arange(int(n_up.sum()), dtype=np.int64) - np.repeat(np.cumsum(n_up) - n_up, n_up)
+    keys = np.unique(np.repeat(v.pair_region[present], n_up) * n_c + flat[np.repeat(starts[pc], n_up) + up])
+    key_region = keys // n_c
+    codes = np.searchsorted(np.asarray(v.regions, dtype=np.int64), region_ids)
+    first, last = np.searchsorted(key_region, codes, "left"), np.searchsorted(key_region, codes, "right")
+    n_each = last - first
+    rows = np.repeat(np.arange(len(region_ids), dtype=np.int64), n_each)
+    at = np.repeat(first, n_each) + np.arange(int(n_each.sum()), dtype=np.int64) - np.repeat(np.cumsum(n_each) - n_each, n_each)
+    concept_codes = keys[at] % n_c
+    used = np.unique(concept_codes)
+    cols = np.searchsorted(used, concept_codes)
+    carries = sparse.csc_matrix((np.ones(len(rows), dtype=bool), (rows, cols)), shape=(len(region_ids), len(used)))
+    return [v.concepts[c] for c in used.tolist()], carries
 
 
 def sample_design(strata: Sequence[str], population: Mapping[str, int]) -> Design:

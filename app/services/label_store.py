@@ -22,6 +22,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
+import numpy.typing as npt
 from sqlalchemy import String, select, type_coerce
 from sqlalchemy.orm import Session
 
@@ -48,6 +49,7 @@ class _Held:
     entities: list[Entities] = field(default_factory=list)
     entities_code: dict[str, int] = field(default_factory=dict)  # stored text -> code
     # Readings of (entities code, class) for one (rules, attribute words).
+    table: tuple[tuple[int, int, tuple[int, int | None]], npt.NDArray[np.int64]] | None = None  # rows as an array, for (count, last id, withdrawn)
     read_with: tuple[SynonymRules, frozenset[str]] | None = None
     reading_of: dict[tuple[int, str | None], int] = field(default_factory=dict)
     readings: list[Reading] = field(default_factory=list)
@@ -135,7 +137,10 @@ class LabelStore:
         held = self._slot(campaign_id)
         with held.lock:
             self._refresh(s, held, campaign_id, version)
-            table = np.array(list(held.rows.values()), dtype=np.int64).reshape(-1, 4)
+            state = (len(held.rows), next(reversed(held.rows), 0) if held.rows else 0, held.withdrawn)
+            if held.table is None or held.table[0] != state:
+                held.table = (state, np.array(list(held.rows.values()), dtype=np.int64).reshape(-1, 4))
+            table = held.table[1]
             if limit is not None:
                 table = table[:limit]
             table = table[table[:, _UNSURE] == 0]

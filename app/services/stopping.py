@@ -15,7 +15,7 @@ from analysis.stopping import ClassSettling, settling
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..campaigns.plans import SETTLE_WINDOW
-from .campaign_analysis import ResultsCache, _method, _read, prediction_frame, region_classes
+from .campaign_analysis import ResultsCache, _method, _read, campaign_results, campaign_rules, prediction_frame, region_classes
 
 TOP_RULES = 3
 
@@ -55,7 +55,8 @@ def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, ca
         return StoppingStatus([ClassSettling(k, (), False, False, "no labels yet") for k in classes], 0, window, (), closed)
     at = functools.partial(_rules_at, s, c, min_support=min_support, max_len=max_len, cache=cache, version=version)
     try:
-        now = at(n)
+        # The rules now are the results page's (kept per labels version when a cache is given).
+        now = campaign_rules(campaign_results(s, c, cache=cache), min_support=min_support, max_len=max_len).rules if cache is not None else at(n)
     except NotEnoughLabelsError as exc:
         return StoppingStatus([ClassSettling(k, (), False, False, str(exc)) for k in classes], n, window, (), closed)
     earlier = []
