@@ -57,3 +57,36 @@ def test_pipeline_refuses_bad_method_and_missing_columns() -> None:
         campaign_table(JUDGMENTS, PREDICTIONS, region_class={1: "can"}, method="")  # type: ignore[arg-type]
     with pytest.raises(InvalidInputError, match="mass_shares"):
         campaign_table(JUDGMENTS, PREDICTIONS.drop(columns="mass_shares"), region_class={1: "can"})
+
+
+@pytest.mark.parametrize("method", ["majority", "dawid-skene"])
+def test_pipeline_table_equals_the_region_by_region_build_on_a_larger_crowd(method: str) -> None:
+    # Invariant on invented labels: the table built from the estimate's arrays equals build_concept_table fed
+    # region by region (refinements completed with their entities), several regions per image, some images incomplete.
+    import numpy as np
+
+    rng = np.random.default_rng(7)
+    names = ["cap", "yellow tag", "tag", "label band", "rim", "body"]
+    n_images = 60
+    regions = {10 + i: [100 + 3 * i + k for k in range(int(rng.integers(0, 4)))] for i in range(n_images)}
+    region_class = {r: ("can", "bottle")[i % 2] for i, rs in enumerate(regions.values()) for r in rs}
+    judged = [r for rs in regions.values() for r in rs if rng.random() < 0.9]
+    js = [Judgment(r, f"a{a}", tuple((str(rng.choice(names)), tuple(str(x) for x in rng.choice(["red", "yellow"], int(rng.integers(0, 2)))))
+                                     for _ in range(int(rng.integers(0, 3)))))
+          for r in judged for a in rng.choice(4, 3, replace=False)]
+    preds = pd.DataFrame({"label": [("can", "bottle")[i % 3 % 2] for i in range(n_images)], "predicted": [("can", "bottle")[i % 2] for i in range(n_images)],
+                          "confidence": rng.random(n_images), "split": "test", "regions": list(regions.values()),
+                          "mass_shares": [[float(x) for x in rng.random(len(rs)) / 3] for rs in regions.values()]},
+                         index=pd.Index(list(regions), name="image_id"))
+    got = campaign_table(js, preds, region_class=region_class, method=method).table  # type: ignore[arg-type]
+    votes = presence_votes(js, region_class=region_class)
+    concepts = estimate_concepts(votes, method=method).region_concepts()  # type: ignore[arg-type]
+    complete = [i for i, rs in regions.items() if all(r in concepts for r in rs)]
+    meta = preds.loc[complete, ["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
+    mass = {r: m for rs, ms in zip(preds["regions"], preds["mass_shares"]) for r, m in zip(rs, ms)}
+    expected = build_concept_table(meta, {i: regions[i] for i in complete}, mass, concepts, method=method, families=votes.families)
+    assert "yellow tag" in got.concepts and got.families.get("yellow tag") == "tag"
+    pd.testing.assert_frame_equal(got.presence, expected.presence)
+    pd.testing.assert_frame_equal(got.share, expected.share)
+    assert got.families == expected.families
+    assert np.array_equal(got.regions.ids, expected.regions.ids) and (got.regions.carries != expected.regions.carries).nnz == 0
