@@ -23,6 +23,8 @@ same leading dimensions); :func:`plain_attention_call` says whether a call is on
 
 from __future__ import annotations
 
+from typing import Any
+
 import torch
 import torch.nn.functional as F
 
@@ -31,38 +33,22 @@ __all__ = ["ATTENTION_ROWS_OP", "attention_rows", "plain_attention_call"]
 ATTENTION_ROWS_OP = "heedmap::attention_rows"  # also called from edited TorchScript graphs
 
 
-@torch.library.custom_op(ATTENTION_ROWS_OP, mutates_args=())
-def _attention_rows(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, scale: float | None, dropout_p: float) -> tuple[torch.Tensor, torch.Tensor]:
-    """(output, logsumexp of each query row: empty off the CPU). ``dropout_p`` must be 0: it is an
-    argument because a TorchScript graph computes it at run time (0 in eval mode)."""
-    if dropout_p != 0.0:
-        raise RuntimeError(f"attention dropout is {dropout_p} during Grad-CAM: the model must be in eval mode.")
+def _forward(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, scale: float | None) -> tuple[torch.Tensor, torch.Tensor]:
+    """(output, logsumexp of each query row: empty where torch's CPU kernel does not apply)."""
     if q.device.type == "cpu" and q.ndim == 4 and q.shape[-1] == v.shape[-1]:
         out, lse = torch.ops.aten._scaled_dot_product_flash_attention_for_cpu(q, k, v, 0.0, False, attn_mask=None, scale=scale)[:2]
         return out, lse
     return F.scaled_dot_product_attention(q, k, v, scale=scale), q.new_empty(0)
 
 
-@_attention_rows.register_fake
-def _(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, scale: float | None, dropout_p: float) -> tuple[torch.Tensor, torch.Tensor]:
-    return q.new_empty((*q.shape[:-1], v.shape[-1])), q.new_empty(0)
-
-
-def _setup(ctx: torch.autograd.function.FunctionCtx, inputs: tuple[object, ...], output: tuple[torch.Tensor, torch.Tensor]) -> None:
-    q, k, v, scale, _dropout = inputs
-    ctx.save_for_backward(q, k, v, *output)  # type: ignore[arg-type]
-    ctx.scale = scale  # type: ignore[attr-defined]
-
-
-def _backward(ctx: torch.autograd.function.FunctionCtx, grad: torch.Tensor, _grad_lse: torch.Tensor | None) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, None, None]:
-    q, k, v, out, lse = ctx.saved_tensors  # type: ignore[attr-defined]
-    given: float | None = ctx.scale  # type: ignore[attr-defined]
+def _backward(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, out: torch.Tensor, lse: torch.Tensor, grad: torch.Tensor, given: float | None) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """(dq, dk, dv) from the live query rows (see the module docstring)."""
     scale = given if given is not None else q.shape[-1] ** -0.5
     if q.shape[:-2] != k.shape[:-2] or k.shape[:-2] != v.shape[:-2]:  # broadcast leading dimensions: torch's own backward
         with torch.enable_grad():
             lq, lk, lv = (t.detach().requires_grad_(True) for t in (q, k, v))
             dq, dk, dv = torch.autograd.grad(F.scaled_dot_product_attention(lq, lk, lv, scale=given), (lq, lk, lv), grad)
-        return dq, dk, dv, None, None
+        return dq, dk, dv
     length = q.shape[-2]
     live = grad.abs().reshape(-1, length, grad.shape[-1]).amax(dim=(0, 2)).ne(0)  # a NaN row counts as live
     rows = live.nonzero().flatten()
@@ -71,7 +57,7 @@ def _backward(ctx: torch.autograd.function.FunctionCtx, grad: torch.Tensor, _gra
             dq, dk, dv = torch.ops.aten._scaled_dot_product_flash_attention_for_cpu_backward(
                 grad.contiguous(), q, k, v, out, lse, 0.0, False, attn_mask=None, scale=given
             )
-            return dq, dk, dv, None, None
+            return dq, dk, dv
         rows = torch.arange(length, device=q.device)
     q_r, g_r, o_r = q.index_select(-2, rows), grad.index_select(-2, rows), out.index_select(-2, rows)
     p = torch.softmax(torch.matmul(q_r, k.transpose(-1, -2)) * scale, dim=-1)  # ... x r x Lk
@@ -79,16 +65,57 @@ def _backward(ctx: torch.autograd.function.FunctionCtx, grad: torch.Tensor, _gra
     ds = p * (torch.matmul(g_r, v.transpose(-1, -2)) - (g_r * o_r).sum(dim=-1, keepdim=True))
     dk = torch.matmul(ds.transpose(-1, -2), q_r) * scale
     dq = torch.zeros_like(q).index_copy_(-2, rows, torch.matmul(ds, k) * scale)
-    return dq, dk, dv, None, None
+    return dq, dk, dv
 
 
-_attention_rows.register_autograd(_backward, setup_context=_setup)
+class _AttentionRows(torch.autograd.Function):
+    """The eager form (an autograd Function costs far less per call than a registered operator)."""
+
+    @staticmethod
+    def forward(ctx: Any, q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, scale: float | None) -> torch.Tensor:
+        out, lse = _forward(q, k, v, scale)
+        ctx.save_for_backward(q, k, v, out, lse)
+        ctx.scale = scale
+        return out
+
+    @staticmethod
+    def backward(ctx: Any, grad: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, None]:
+        q, k, v, out, lse = ctx.saved_tensors
+        return (*_backward(q, k, v, out, lse, grad, ctx.scale), None)
+
+
+@torch.library.custom_op(ATTENTION_ROWS_OP, mutates_args=())
+def _attention_rows_op(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, scale: float | None, dropout_p: float) -> tuple[torch.Tensor, torch.Tensor]:
+    """The registered form, which TorchScript graphs can call: (output, logsumexp). ``dropout_p``
+    must be 0; it is an argument because a TorchScript graph computes it at run time (0 in eval mode)."""
+    if dropout_p != 0.0:
+        raise RuntimeError(f"attention dropout is {dropout_p} during Grad-CAM: the model must be in eval mode.")
+    return _forward(q, k, v, scale)
+
+
+@_attention_rows_op.register_fake
+def _(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, scale: float | None, dropout_p: float) -> tuple[torch.Tensor, torch.Tensor]:
+    return q.new_empty((*q.shape[:-1], v.shape[-1])), q.new_empty(0)
+
+
+def _op_setup(ctx: Any, inputs: tuple[object, ...], output: tuple[torch.Tensor, torch.Tensor]) -> None:
+    q, k, v, scale, _dropout = inputs
+    ctx.save_for_backward(q, k, v, *output)
+    ctx.scale = scale
+
+
+def _op_backward(ctx: Any, grad: torch.Tensor, _grad_lse: torch.Tensor | None) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, None, None]:
+    q, k, v, out, lse = ctx.saved_tensors
+    return (*_backward(q, k, v, out, lse, grad, ctx.scale), None, None)
+
+
+_attention_rows_op.register_autograd(_op_backward, setup_context=_op_setup)
 
 
 def attention_rows(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, *, scale: float | None = None) -> torch.Tensor:
     """softmax(scale q k^T) v, as ``F.scaled_dot_product_attention(q, k, v, scale=scale)``, with the
     row-sparse backward described in the module docstring. q, k, v: ... x L x E with equal leading dimensions."""
-    return torch.ops.heedmap.attention_rows(q, k, v, scale, 0.0)[0]  # type: ignore[no-any-return]
+    return _AttentionRows.apply(q, k, v, scale)  # type: ignore[no-untyped-call,no-any-return]
 
 
 def plain_attention_call(args: tuple[object, ...], kwargs: dict[str, object]) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, float | None] | None:
