@@ -141,7 +141,10 @@ def mine_rules(
     min_count
         Fewest images holding both the set and the class, whatever the support.
     prune
-        Drop a rule whose set adds no confidence over one of its subsets for the same class.
+        Drop a rule whose set adds no confidence over one of its subsets for the same class: where a
+        subset's confidence reaches the lower end of the rule's 95% Wilson interval (the rule does not
+        show, with its own evidence, more confidence than the subset; a difference within labelling
+        noise keeps no combination).
     saliency
         Region masses, for the ``saliency_share`` column (NaN without).
     engine
@@ -224,7 +227,7 @@ def mine_rules(
     keep = out["lift"].to_numpy() > min_lift
     pruned = 0
     if prune:
-        redundant = _redundant(counts, set_idx, cls_idx, confidence)
+        redundant = _redundant(counts, set_idx, cls_idx, out["confidence_low"].to_numpy(dtype=np.float64))
         pruned = int((keep & redundant).sum())
         keep &= ~redundant
     out = out[keep].copy()
@@ -294,8 +297,8 @@ def _rank_by_family(out: pd.DataFrame) -> pd.DataFrame:
     return out.assign(rank=first.astype(np.int64)).drop(columns=["_head", "_best", "_most", "_size"])
 
 
-def _redundant(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64], confidence: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:
-    """True where some proper subset of the rule's set reaches at least its confidence for the same class."""
+def _redundant(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: npt.NDArray[np.int64], low: npt.NDArray[np.float64]) -> npt.NDArray[np.bool_]:
+    """True where some proper subset of the rule's set reaches the lower end of its confidence interval (``low``) for the same class."""
     index = {s: i for i, s in enumerate(counts.itemsets)}
     totals = counts.totals
     out = np.zeros(len(set_idx), dtype=bool)
@@ -308,7 +311,7 @@ def _redundant(counts: ItemsetCounts, set_idx: npt.NDArray[np.int64], cls_idx: n
             for sub in combinations(items, size):
                 j = index[sub]  # every subset of a counted set was counted (Apriori)
                 best = max(best, counts.class_counts[j, k] / totals[j])
-        out[r] = best >= confidence[r] - 1e-12
+        out[r] = best >= low[r] - 1e-12
     return out
 
 

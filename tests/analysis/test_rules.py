@@ -4,6 +4,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from mlxtend.frequent_patterns import apriori, association_rules, fpgrowth
+from statsmodels.stats.proportion import proportion_confint
 
 from analysis.errors import InvalidInputError
 from analysis.rules import mine_rules, to_csv
@@ -138,6 +139,23 @@ def test_pruning_drops_sets_that_add_no_confidence() -> None:
     gone = set(zip(full.rules["class"], full.rules["concepts"])) - set(zip(pruned.rules["class"], pruned.rules["concepts"]))
     assert ("can", "belt & tag") in gone and ("can", "rim & tab") not in gone
     assert pruned.pruned == len(gone) and pruned.n_tested == full.n_tested
+
+
+def test_pruning_keeps_no_combination_whose_gain_is_within_its_own_interval() -> None:
+    # "tag" => can holds in 99 of 100 images; "tag & belt" in 50 of 50: a point estimate above the subset's (1.0 > 0.99),
+    # but the lower end of its 95% Wilson interval (about 0.93) is not, so it shows no gain with its own evidence and goes.
+    # "rim & tab" => can, 30 of 30, against 30 of 60 for each part alone: its interval's lower end (about 0.89) is far above.
+    rows = [("can", {"tag", "belt"})] * 50 + [("can", {"tag"})] * 49 + [("bottle", {"tag"})] + [("bottle", {"belt"})] * 50
+    rows += [("can", {"rim", "tab"})] * 30 + [("bottle", {"rim"})] * 30 + [("carton", {"tab"})] * 30
+    concepts = ["tag", "belt", "rim", "tab"]
+    table = pd.DataFrame([[c in s for c in concepts] for _, s in rows], columns=concepts)
+    classes = pd.Series([k for k, _ in rows])
+    pruned = mine_rules(table, classes, min_support=0.05, max_len=2, min_lift=0.0, prune=True).rules
+    kept = set(zip(pruned["class"], pruned["concepts"]))
+    assert ("can", "belt & tag") not in kept and ("can", "tag") in kept
+    assert ("can", "rim & tab") in kept
+    low = pruned.set_index(["class", "concepts"]).loc[("can", "rim & tab"), "confidence_low"]
+    assert low == pytest.approx(proportion_confint(30, 30, method="wilson")[0])
 
 
 def test_saliency_share_is_the_mass_on_regions_carrying_the_set() -> None:
