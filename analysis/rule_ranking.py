@@ -13,7 +13,7 @@ comparison is the plain one.
 
 Overlapping 95% intervals is a cautious reading of "cannot be told apart": two intervals can overlap
 while the difference is still significant (Schenker & Gentleman 2001, The American Statistician 55,
-182-186), so this counts a few separable pairs as ties; it never counts an inseparable pair as ordered.
+182-186; cited from memory), so this counts a few separable pairs as ties; it never counts an inseparable pair as ordered.
 """
 
 from __future__ import annotations
