@@ -255,7 +255,7 @@ def decide_expectations(verdicts: list[Verdict], findings: Mapping[tuple[str, st
                 "no reliance": f"{v.expectation.cls} does not rely on {v.expectation.question} by {settings.min_effect:g} or more",
                 "inconclusive": f"covering neither shows nor rules out reliance of {v.expectation.cls} on {v.expectation.question}"}[found.reliance]
         out.append(replace(v, verdict=verdict, reason=f"{said}: {found.evidence()} {support}.", confirmed=found.confirmed,
-                           decided_by=f"covering ({t.fill} fill)", effect=t.effect, interval=t.interval, adjusted_p=t.adjusted_p,
+                           decided_by=t.name, effect=t.effect, interval=t.interval, adjusted_p=t.adjusted_p,
                            steering=found.steering, family=found.family))
     return out
 

@@ -7,6 +7,12 @@ and see how far they move toward the class, against pasting same-shaped patches 
 elsewhere in the same source images. The effect is the mean per-image difference between the
 concept and its control, with a bootstrap interval and a one-sided sign-flip permutation p-value.
 Forward passes only, batched, no gradients.
+
+A concept spread over most of the image (a green belt under every object) leaves no room for a
+moved mask, so covering cannot test it. When such a concept is an attribute of an entity whose
+plain look is known ("green" of the belt, the belt's colour where it is not green), recolouring
+removes the attribute instead: the masked pixels' mean colour moves to the plain look, texture kept,
+against a sham recolouring of the same pixels to another image's attribute colour (:func:`recolour_test`).
 """
 
 from __future__ import annotations
@@ -33,6 +39,7 @@ DEFAULT_FILLS: tuple[Fill, ...] = ("ring",)
 # elsewhere overlaps itself, so "beyond matched controls" means nothing. Such images are left out,
 # and a test with fewer than two images left is not testable (common practice: a control needs room).
 MAX_COVER_SHARE = 0.5
+RECOLOUR = "recolour"  # the fill name a recolouring test records
 Position = Literal["same", "random"]
 Progress = Callable[[int, int], None]
 BoolMaps = npt.NDArray[np.bool_]
@@ -63,6 +70,9 @@ class InterventionResult:
     seed: int
     per_image: list[float] = field(default_factory=list, repr=False)  # change - control change, per image
     left_out: int = 0  # images left out because their mask covers more than MAX_COVER_SHARE of the image
+    # The covered regions also show other concepts (CoverPlan.alone was False): the effect is the concept's
+    # together with its neighbours', so it can rule reliance out but never confirm it (analysis.reliance.judge_test).
+    shared: bool = False
 
     def to_json(self) -> dict[str, object]:
         return asdict(self)
@@ -70,8 +80,10 @@ class InterventionResult:
     def summary(self) -> str:
         verb = "falls" if self.kind == "ablation" else "rises"
         left = f", {self.left_out} left out: mask over {MAX_COVER_SHARE:.0%} of the image" if self.left_out else ""
-        return (f"{self.kind} of {self.concept} ({self.n_images} images{left}): P({self.cls}) {verb} by {self.mean_change:.3f} against "
-                f"{self.control_mean_change:.3f} for matched random masks; effect {self.effect:.3f} "
+        left += ", in regions that also show other concepts" if self.shared else ""
+        what, control = (("recolouring", "sham recolourings that keep it") if self.fill == RECOLOUR else (self.kind, "matched random masks"))
+        return (f"{what} of {self.concept} ({self.n_images} images{left}): P({self.cls}) {verb} by {self.mean_change:.3f} against "
+                f"{self.control_mean_change:.3f} for {control}; effect {self.effect:.3f} "
                 f"[{self.interval[0]:.3f}, {self.interval[1]:.3f}], p {self.p_value:.3g}")
 
 
@@ -370,6 +382,95 @@ def insertion_test(
     effect, interval, p = effect_stats(diff, rng, n_boot, n_perm)
     return InterventionResult("insertion", model.classes[class_index], concept, "paste", position, n, draws, float(rise.mean()), float(flip.mean()),
                               float(control_rise.mean()), float(control_flip.mean()), effect, interval, p, seed, [float(v) for v in diff], left_out)
+
+
+def needs_recolour(masks: BoolMaps, *, max_share: float = MAX_COVER_SHARE) -> bool:
+    """Whether the policy removes a concept by recolouring rather than covering: its masks cover more than
+    ``max_share`` of the image in at least half the images (the median), so most images would be left
+    out of a covering test. Decided from the masks alone, before any result is seen."""
+    if len(masks) == 0:
+        return False
+    return float(np.median(np.asarray(masks, dtype=bool).reshape(len(masks), -1).mean(axis=1))) > max_share
+
+
+def plain_colours(x: torch.Tensor, masks: BoolMaps) -> torch.Tensor:
+    """The plain look of an entity, one colour per image (K x 3, model input space): the mean colour of
+    each image's masked pixels, for the images whose mask is not empty. ``masks`` mark regions that show
+    the entity without the attribute under test (the belt where it is not green)."""
+    masks = np.asarray(masks, dtype=bool)
+    if x.ndim != 4 or x.shape[1] != 3 or masks.shape != (x.shape[0], *x.shape[2:]):
+        raise InvalidInputError(f"images must be N x 3 x H x W with one N x H x W mask each; got {tuple(x.shape)} and {masks.shape}.")
+    has = np.nonzero(masks.reshape(len(masks), -1).any(axis=1))[0]
+    if len(has) == 0:
+        raise NotTestableError("recolouring needs regions that show the entity without the attribute (its plain look); none were given.")
+    return torch.stack([x[i][:, torch.from_numpy(masks[i])].mean(dim=1) for i in has])
+
+
+def recolour_images(x: torch.Tensor, masks: torch.Tensor, shifts: torch.Tensor, low: torch.Tensor, high: torch.Tensor) -> torch.Tensor:
+    """Add ``shifts`` (N x 3) to the masked pixels (masks N x H x W) of normalised images x (N x 3 x H x W),
+    kept inside the valid input range [low, high] per channel (3 values each)."""
+    m = masks[:, None].to(x.dtype)
+    moved = torch.maximum(torch.minimum(x + shifts[:, :, None, None], high[None, :, None, None]), low[None, :, None, None])
+    return x * (1 - m) + moved * m
+
+
+def recolour_test(
+    model: LoadedModel, x: torch.Tensor, masks: BoolMaps, class_index: int, *, plain: torch.Tensor, concept: str = "", draws: int = 5,
+    seed: int = 0, n_boot: int = 2000, n_perm: int = 5000, batch_size: int = 64, progress: Progress | None = None,
+) -> InterventionResult:
+    """Remove an attribute by recolouring, against a matched sham recolouring that keeps it.
+
+    Each draw moves every image's masked pixels, texture kept (one colour vector added to all of them,
+    clipped to the valid input range), from their own mean colour to a donor's colour:
+
+    - removal: the donor is a random image of the entity's plain look (``plain``, K x 3, from
+      :func:`plain_colours`: the belt where it is not green), so "green belt" becomes a plain belt with
+      the same seams and noise;
+    - control: the donor is another random image carrying the attribute (another of ``x``'s masked
+      regions), so the pixels are recoloured the same way (same pixels, same texture, a donor drawn the
+      same way, each image's own lighting replaced by the donor's) but the attribute stays.
+
+    Only the donor's attribute differs between the two, which is what makes the sham a control: what
+    recolouring does by itself is taken out, and the effect is what losing the attribute adds. The
+    effect is the mean per-image (fall - control fall), averaged over ``draws`` donors, with a bootstrap
+    interval and a one-sided sign-flip permutation p (:func:`effect_stats`). Unlike covering, the mask
+    may cover most of the image: nothing is moved elsewhere.
+    """
+    masks = np.asarray(masks, dtype=bool)
+    _check(model, x, masks, class_index)
+    plain = torch.as_tensor(plain, dtype=x.dtype)
+    if plain.ndim != 2 or plain.shape[1] != 3 or len(plain) == 0 or not torch.isfinite(plain).all():
+        raise InvalidInputError(f"plain must be K x 3 finite colours in model input space (K >= 1); got {tuple(plain.shape)}.")
+    if draws < 1:
+        raise InvalidInputError(f"draws must be at least 1; got {draws}.")
+    mean = torch.tensor(model.sidecar.mean, dtype=x.dtype)
+    std = torch.tensor(model.sidecar.std, dtype=x.dtype)
+    low, high = (0 - mean) / std, (1 - mean) / std
+    rng = np.random.default_rng(seed)
+    n = len(x)
+    m = torch.from_numpy(masks)
+    own = torch.stack([x[i][:, m[i]].mean(dim=1) for i in range(n)])
+    total = n * (1 + 2 * draws)
+    base = _probs(model, x, batch_size)
+    drop = np.zeros(n)
+    flip = np.zeros(n)
+    control_drop = np.zeros(n)
+    control_flip = np.zeros(n)
+    for k in range(draws):
+        donor_plain = plain[torch.from_numpy(rng.integers(0, len(plain), n))]
+        donor_same = own[torch.from_numpy((np.arange(n) + rng.integers(1, n, n)) % n)]  # another image with the attribute
+        after = _probs(model, recolour_images(x, m, donor_plain - own, low, high), batch_size)
+        sham = _probs(model, recolour_images(x, m, donor_same - own, low, high), batch_size)
+        drop += (base[:, class_index] - after[:, class_index]).numpy() / draws
+        flip += (after.argmax(1) != class_index).numpy() / draws
+        control_drop += (base[:, class_index] - sham[:, class_index]).numpy() / draws
+        control_flip += (sham.argmax(1) != class_index).numpy() / draws
+        if progress:
+            progress(n * (1 + 2 * (k + 1)), total)
+    diff = drop - control_drop
+    effect, interval, p = effect_stats(diff, rng, n_boot, n_perm)
+    return InterventionResult("ablation", model.classes[class_index], concept, RECOLOUR, "in place", n, draws, float(drop.mean()), float(flip.mean()),
+                              float(control_drop.mean()), float(control_flip.mean()), effect, interval, p, seed, [float(v) for v in diff], 0)
 
 
 def deletion_curve(model: LoadedModel, x: torch.Tensor, maps: npt.NDArray[np.floating], class_index: npt.ArrayLike, *, steps: int = 10,

@@ -1,7 +1,8 @@
 """Verdicts on reliance: what the covering and pasting tests of an audit say, corrected as one family.
 
-"Relies on X" is a causal claim and only the covering test (ablation) decides it: the class's
-probability falls when X is covered, beyond matched controls, significantly after correcting for
+"Relies on X" is a causal claim and only a removal test decides it: the class's probability falls
+when X is covered (or, for an attribute spread over most of the image such as a green belt,
+recoloured to the entity's plain look: analysis.interventions.recolour_test), beyond matched controls, significantly after correcting for
 every test of the audit, and by at least ``min_effect``. Pasting (insertion) answers another
 question, "can the class be steered by X", and is reported beside it, never instead of it.
 Co-occurrence (lift, Fisher's q) stays supporting evidence and decides nothing here.
@@ -101,25 +102,45 @@ class JudgedTest:
     adjusted_p: float
     flip_rate: float
     finding: Finding
+    shared: bool = False  # the covered regions also show other concepts: this test can rule reliance out, never confirm it
+
+    @property
+    def name(self) -> str:
+        """Which test this is, in words: "covering (ring fill)", "recolouring (to the entity's plain look)" or "pasting"."""
+        return test_name(self.kind, self.fill)
 
     def summary(self) -> str:
-        what = f"covering ({self.fill} fill)" if self.kind == "covering" else "pasting"
-        return (f"{what} on {self.n_images} images: effect {self.effect:.3f} [{self.interval[0]:.3f}, {self.interval[1]:.3f}], "
+        where = " in regions that also show other concepts (so it cannot confirm)" if self.shared else ""
+        return (f"{self.name} on {self.n_images} images{where}: effect {self.effect:.3f} [{self.interval[0]:.3f}, {self.interval[1]:.3f}], "
                 f"p {self.p_value:.3g}, adjusted p {self.adjusted_p:.3g}")
+
+
+def test_name(kind: Literal["covering", "pasting"], fill: str) -> str:
+    """The words for a removal or pasting test: covering with a fill, recolouring an attribute, or pasting."""
+    if kind == "pasting":
+        return "pasting"
+    return "recolouring (to the entity's plain look)" if fill == "recolour" else f"covering ({fill} fill)"
 
 
 def judge_test(result: InterventionResult, adjusted_p: float, settings: VerdictSettings) -> JudgedTest:
     """Shown: adjusted p at most alpha and the effect at least ``min_effect``; absent: the whole interval
-    below ``min_effect``; otherwise inconclusive."""
+    below ``min_effect``; otherwise inconclusive.
+
+    A covering test over regions that also show other concepts (``result.shared``, the fallback when too
+    few images have a region showing the concept alone) measures the concept together with whatever
+    shares its regions. Its p-value stays in the family and is corrected with the rest, but a fall it
+    shows cannot be laid on the concept alone: it reads inconclusive. A fall ruled out still rules the
+    concept out (covering more than the concept moved nothing)."""
     finding: Finding
     if adjusted_p <= settings.alpha and result.effect >= settings.min_effect:
-        finding = "shown"
+        finding = "inconclusive" if result.shared else "shown"
     elif result.interval[1] < settings.min_effect:
         finding = "absent"
     else:
         finding = "inconclusive"
     kind: Literal["covering", "pasting"] = "covering" if result.kind == "ablation" else "pasting"
-    return JudgedTest(kind, result.fill, result.n_images, result.effect, result.interval, result.p_value, float(adjusted_p), result.flip_rate, finding)
+    return JudgedTest(kind, result.fill, result.n_images, result.effect, result.interval, result.p_value, float(adjusted_p), result.flip_rate, finding,
+                      result.shared)
 
 
 @dataclass(frozen=True)

@@ -128,7 +128,7 @@ def run_demo_reliance(factory: sessionmaker[Session], project: Path, res: Result
     for f in judged.values():
         t = f.decided_by
         out.append({"class": f.cls, "concepts": f.concepts, "reliance": f.reliance, "steering": f.steering,
-                    "decided_by": f"covering ({t.fill} fill)" if t else "none", "effect": t.effect if t else None,
+                    "decided_by": t.name if t else "none", "effect": t.effect if t else None,
                     "interval": list(t.interval) if t else None, "adjusted_p": t.adjusted_p if t else None,
                     "pasting_effect": f.pasting.effect if f.pasting else None, "family": f.family})
     return out

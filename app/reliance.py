@@ -8,6 +8,7 @@ import hashlib
 import json
 import sys
 from collections.abc import Callable, Sequence
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -20,7 +21,20 @@ from sqlalchemy.orm import Session
 from analysis.errors import ImageInputError, InvalidInputError
 from analysis.expectations import Verdict, decide_expectations, read_expectations
 from analysis.images import read_rgb, to_model_input
-from analysis.interventions import DEFAULT_FILLS, CoverPlan, Fill, InterventionResult, NotTestableError, ablation_test, insertion_test, plan_regions
+from analysis.interventions import (
+    DEFAULT_FILLS,
+    RECOLOUR,
+    CoverPlan,
+    Fill,
+    InterventionResult,
+    NotTestableError,
+    ablation_test,
+    insertion_test,
+    needs_recolour,
+    plain_colours,
+    plan_regions,
+    recolour_test,
+)
 from analysis.model_io import LoadedModel, load_model
 from analysis.reliance import RelianceFinding, RuleTests, VerdictSettings, concepts_key, judge_family
 
@@ -95,6 +109,52 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
     return x, (np.stack([masks[i] for i in kept]) if kept else np.zeros((0, *model.sidecar.input_size), dtype=bool)), plan
 
 
+MAX_PLAIN_IMAGES = 200
+
+
+def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, concept: str) -> tuple[torch.Tensor | None, str]:
+    """The plain look of the entity that ``concept`` refines ("belt" for "green belt"): per image, the mean
+    colour of its regions that show the entity, or other refinements of it, and nothing else, without
+    ``concept`` (up to MAX_PLAIN_IMAGES images, any class). Returns (K x 3 colours, "") or (None, why
+    it cannot be found)."""
+    table = res.table
+    entity = table.families.get(concept)
+    if entity is None or entity not in table.concepts:
+        return None, (f"recolouring needs an attribute of an entity (such as 'green belt' of 'belt'), and {concept!r} is not "
+                      f"labelled as one (label it as '<entity>: <attribute>')")
+    ids = table.regions.ids
+    if ids is None:
+        return None, "the concept table has no region ids"
+    kin = ({entity} | {r for r, e in table.families.items() if e == entity}) - {concept}
+    carries = table.regions.carries.tocsc()
+    others = [j for j, c in enumerate(table.concepts) if c not in kin]
+    shows_entity = carries[:, table.concepts.index(entity)].toarray().ravel()
+    shows_concept = carries[:, table.concepts.index(concept)].toarray().ravel()
+    shows_other = np.asarray(carries[:, others].sum(axis=1)).ravel() > 0
+    plain = np.nonzero(shows_entity & ~shows_concept & ~shows_other)[0]
+    image_ids = [int(i) for i in table.meta.index]
+    per_image: dict[int, list[int]] = {}
+    for r in plain:
+        image = image_ids[int(table.regions.region_image[r])]
+        if image in per_image or len(per_image) < MAX_PLAIN_IMAGES:
+            per_image.setdefault(image, []).append(int(ids[r]))
+    why = (f"recolouring needs regions labelled {entity!r} without {concept!r} and without anything else (the entity's plain look); "
+           f"{len(per_image)} image{'s have' if len(per_image) != 1 else ' has'} one")
+    if len(per_image) < 2:
+        return None, why
+    wanted = [r for rs in per_image.values() for r in rs]
+    rank_of = {int(rid): int(rank) + 1 for rid, rank in s.execute(select(RegionRow.id, RegionRow.rank).where(RegionRow.id.in_(wanted))).all()}
+    labels = region_labels_for(s, ProjectLayout(project), res.campaign.run_id, list(per_image))
+    x, kept = _read_inputs(s, model, [i for i in per_image if i in labels])
+    if len(kept) < 2:
+        return None, why
+    masks = np.stack([np.isin(labels[i], [rank_of[r] for r in per_image[i] if r in rank_of]) for i in kept])
+    try:
+        return plain_colours(x, masks), ""
+    except NotTestableError:
+        return None, why
+
+
 def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: int, max_images: int, seed: int) -> tuple[str, list[int], list[int]]:
     """The cache key of a rule's interventions (a fill is added per test), the images of the rule,
     and the other-class images to paste into."""
@@ -105,7 +165,7 @@ def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: in
     targets = sorted(np.random.default_rng(seed).choice(others, size=min(max_images, len(others)), replace=False).tolist()) if others else []
     key = hashlib.sha256(json.dumps(
         {"model": model_sha, "run": res.campaign.run_id, "cls": cls, "concepts": sorted(concepts), "draws": draws, "seed": seed,
-         "images": image_ids, "targets": targets, "method": res.method, "version": 3}, sort_keys=True).encode()).hexdigest()[:20]
+         "images": image_ids, "targets": targets, "method": res.method, "version": 4}, sort_keys=True).encode()).hexdigest()[:20]
     return key, image_ids, targets
 
 
@@ -152,7 +212,7 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     name = concepts_key(concepts)
     stored = {f: _read_cached(_cache_path(project, key, f)) for f in (*fills, "paste")}
     if all(found for found, _ in stored.values()):
-        coverings = tuple(r for f in fills if (r := stored[f][1]) is not None)
+        coverings = _stored_coverings(project, key, [r for _, r in (stored[f] for f in fills)])
         return RuleTests(cls, name, coverings, stored["paste"][1]) if coverings else None
     x, masks, plan = _inputs(s, project, res, model, image_ids, concepts)
     if len(x) < 2:
@@ -161,19 +221,35 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
         return None
     index = model.classes.index(cls)
     label = f"{name} ({plan.note})" if plan.note else name
+    recolour_why = ""
+    if needs_recolour(masks):
+        # The concept's regions cover most of each image: covering has no room for a matched control. An
+        # attribute of an entity (green belt) is removed by recolouring it to the entity's plain look instead.
+        plain, recolour_why = _plain_look(s, project, res, model, concepts[0]) if len(concepts) == 1 else (None, "recolouring takes one concept")
+        if plain is not None:
+            bar = _bar(f"{cls} / {name} (recolour)") if progress else None
+            recoloured = replace(recolour_test(model, x, masks, index, plain=plain, concept=label, draws=draws, seed=seed, progress=bar),
+                                 shared=not plan.alone)
+            _write_cached(_cache_path(project, key, RECOLOUR), recoloured)
+            share = float(np.median(masks.reshape(len(masks), -1).mean(axis=1)))
+            for f in fills:
+                _write_cached(_cache_path(project, key, f), None, reason=f"covering: the regions cover {share:.0%} of the image; decided by recolouring")
+            _write_cached(_cache_path(project, key, "paste"), None)
+            return RuleTests(cls, name, (recoloured,), None)
     coverings_run = []
     for f in fills:
         found, result = stored[f]
         if not found or result is None:
             bar = _bar(f"{cls} / {name} ({f})") if progress else None
             try:
-                result = ablation_test(model, x, masks, index, concept=label, fill=f, draws=draws, seed=seed, progress=bar)
+                result = replace(ablation_test(model, x, masks, index, concept=label, fill=f, draws=draws, seed=seed, progress=bar), shared=not plan.alone)
             except NotTestableError as e:
                 # Not testable by covering (the regions cover most of each image): stored as such, read as "not tested".
+                reason = f"{e} Recolouring cannot stand in: {recolour_why}." if recolour_why else str(e)
                 for g in (*fills, "paste"):
-                    _write_cached(_cache_path(project, key, g), None, reason=str(e))
+                    _write_cached(_cache_path(project, key, g), None, reason=reason)
                 if progress:
-                    sys.stderr.write(f"{cls} / {name}: {e}\n")
+                    sys.stderr.write(f"{cls} / {name}: {reason}\n")
                 return None
             _write_cached(_cache_path(project, key, f), result)
         coverings_run.append(result)
@@ -185,7 +261,7 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
             if len(tx) >= 2:
                 bar = _bar(f"{cls} / {name} (paste)") if progress else None
                 try:
-                    pasting = insertion_test(model, tx, x, masks, index, concept=label, draws=draws, seed=seed, progress=bar)
+                    pasting = replace(insertion_test(model, tx, x, masks, index, concept=label, draws=draws, seed=seed, progress=bar), shared=not plan.alone)
                 except NotTestableError:
                     pasting = None
         _write_cached(_cache_path(project, key, "paste"), pasting)
@@ -244,14 +320,26 @@ def cached_reliance(project: Path, res: Results, cls: str, concepts: list[str], 
     if any(c not in res.table.concepts for c in concepts):
         return None
     key, _, _ = _plan(res, res.model_sha256, cls, concepts, draws, max_images, seed)
-    coverings = []
+    results = []
     for f in fills:
         found, result = _read_cached(_cache_path(project, key, f))
-        if not found or result is None:
+        if not found:
             return None
-        coverings.append(result)
+        results.append(result)
+    coverings = _stored_coverings(project, key, results)
+    if not coverings:
+        return None
     _, pasting = _read_cached(_cache_path(project, key, "paste"))
-    return RuleTests(cls, concepts_key(concepts), tuple(coverings), pasting)
+    return RuleTests(cls, concepts_key(concepts), coverings, pasting)
+
+
+def _stored_coverings(project: Path, key: str, results: Sequence[InterventionResult | None]) -> tuple[InterventionResult, ...]:
+    """The stored removal tests of a rule: every fill's covering when each ran, else the recolouring that
+    stood in for them (the regions covered most of each image), else none."""
+    if results and all(r is not None for r in results):
+        return tuple(r for r in results if r is not None)
+    found, recoloured = _read_cached(_cache_path(project, key, RECOLOUR))
+    return (recoloured,) if found and recoloured is not None else ()
 
 
 def stored_for_rules(project: Path, res: Results, frame: pd.DataFrame) -> list[RuleTests]:
@@ -305,7 +393,7 @@ def reliance_columns(frame: pd.DataFrame, found: dict[tuple[str, str], RelianceF
     family = next(iter(found.values())).family if found else ""
     return frame.assign(
         reliance=col(lambda r: r.reliance, "not tested"),
-        decided_by=col(lambda r: f"covering ({d(r).fill} fill)" if d(r) else None, "none"),
+        decided_by=col(lambda r: d(r).name if d(r) else None, "none"),
         covering_effect=col(lambda r: d(r).effect if d(r) else None), covering_low=col(lambda r: d(r).interval[0] if d(r) else None),
         covering_high=col(lambda r: d(r).interval[1] if d(r) else None), covering_p=col(lambda r: d(r).p_value if d(r) else None),
         covering_adjusted_p=col(lambda r: d(r).adjusted_p if d(r) else None), covering_flips=col(lambda r: d(r).flip_rate if d(r) else None),

@@ -150,3 +150,100 @@ def test_regions_showing_the_concept_alone_are_covered_when_enough_images_have_t
     tags = [[{"tag", "yellow tag"}], [{"tag"}], [{"tag", "body"}]]
     assert plan_regions(tags, ["tag"], families={"yellow tag": "tag"}, min_alone=2).regions == ((0,), (0,), ())
     assert plan_regions(tags, ["yellow tag"], families={"yellow tag": "tag"}, min_alone=1).regions == ((0,), (), ())
+
+
+GREEN, GREY = torch.tensor([-0.4, 0.5, -0.3]), torch.tensor([0.0, 0.0, 0.05])  # a green belt and a plain one, model input space
+BELT_SIDECAR = Sidecar(classes=("green", "other"), input_size=(32, 32), mean=(0.5, 0.5, 0.5), std=(0.25, 0.25, 0.25), target_layer="features")
+
+
+class Greenness(nn.Module):
+    """P(green) follows how green the whole image is (G minus the mean of R and B), in a gentle (near-linear) range."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.features = nn.Identity()
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        f = self.features(x)
+        g = (f[:, 1] - (f[:, 0] + f[:, 2]) / 2).mean(dim=(1, 2))
+        return torch.stack([2 * g - 0.3, torch.zeros_like(g)], dim=1)
+
+
+class ObjectOnly(nn.Module):
+    """P(green) follows the brightness of the central object only; the belt around it never matters."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.features = nn.Identity()
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        f = self.features(x)[:, :, 12:20, 12:20].mean(dim=(1, 2, 3))
+        return torch.stack([3 * f, torch.zeros_like(f)], dim=1)
+
+
+def _belts(n: int = 40, seed: int = 0) -> tuple[torch.Tensor, torch.Tensor, np.ndarray]:
+    """Scenes with a belt over 94% of the image (green, or the same scene with a plain belt: same noise,
+    same object) and the belt's mask. The pair gives the true effect of removing the attribute."""
+    g = torch.Generator().manual_seed(seed)
+    noise = torch.randn(n, 3, 32, 32, generator=g) * 0.15
+    belt = np.ones((n, 32, 32), dtype=bool)
+    belt[:, 12:20, 12:20] = False  # the object
+    obj = torch.rand(n, 3, 1, 1, generator=g) - 0.5
+    m = torch.from_numpy(belt)[:, None]
+
+    def scene(colour: torch.Tensor) -> torch.Tensor:
+        return torch.where(m, colour[None, :, None, None] + noise, obj + noise)
+
+    return scene(GREEN), scene(GREY), belt
+
+
+def test_recolouring_an_attribute_over_most_of_the_image_tracks_the_truth() -> None:
+    # Ground truth by construction: the same scenes with a plain belt. Covering refuses a mask over 94%
+    # of the image; recolouring to the plain look (donors: plain belts of other scenes) estimates the
+    # fall in P(green) within 25% of the true mean fall, and is significant.
+    from analysis.interventions import needs_recolour, plain_colours, recolour_test
+
+    model = prepare_model(Greenness(), BELT_SIDECAR)
+    x, x_plain, belt = _belts()
+    assert needs_recolour(belt) and not needs_recolour(~belt)
+    _, other_plain, other_belt = _belts(20, seed=1)
+    plain = plain_colours(other_plain, other_belt)
+    assert plain.shape == (20, 3)
+    torch.testing.assert_close(plain.mean(dim=0), GREY, atol=0.02, rtol=0)
+    with torch.inference_mode():
+        true = float((torch.softmax(model.module(x), 1)[:, 0] - torch.softmax(model.module(x_plain), 1)[:, 0]).mean())
+    with pytest.raises(NotTestableError):
+        ablation_test(model, x, belt, 0, concept="green belt", fill="ring")
+    found = recolour_test(model, x, belt, 0, plain=plain, concept="green belt", seed=2)
+    assert true > 0.2 and abs(found.effect - true) <= 0.25 * true, (found.effect, true)
+    assert found.p_value < 0.001 and found.fill == "recolour" and found.left_out == 0
+    # The sham (another image's green) keeps the attribute: it moves P(green) by little.
+    assert abs(found.control_mean_change) < 0.1 * true
+    assert "recolouring of green belt" in found.summary() and "sham" in found.summary()
+    again = recolour_test(model, x, belt, 0, plain=plain, concept="green belt", seed=2)
+    assert again.per_image == found.per_image  # seeded
+    with pytest.raises(InvalidInputError, match="plain must be K x 3"):
+        recolour_test(model, x, belt, 0, plain=torch.zeros(0, 3))
+
+
+def test_recolouring_what_the_model_ignores_has_no_effect() -> None:
+    from analysis.interventions import recolour_test
+
+    model = prepare_model(ObjectOnly(), BELT_SIDECAR)
+    x, _, belt = _belts()
+    found = recolour_test(model, x, belt, 0, plain=GREY[None], concept="green belt", seed=2)
+    assert abs(found.effect) < 1e-6 and abs(found.mean_change) < 1e-6 and found.p_value > 0.5
+
+
+def test_recolouring_touches_only_masked_pixels_and_stays_in_range() -> None:
+    from analysis.interventions import recolour_images
+
+    x, _, belt = _belts(3)
+    low, high = torch.full((3,), -2.0), torch.full((3,), 2.0)
+    out = recolour_images(x, torch.from_numpy(belt), torch.tensor([[5.0, 0.0, -5.0]] * 3), low, high)
+    keep = ~torch.from_numpy(belt)[:, None].expand_as(x)
+    torch.testing.assert_close(out[keep], x[keep])  # the object is untouched
+    assert out.max() <= 2.0 and out.min() >= -2.0
+    shift = torch.tensor([[0.1, -0.2, 0.3]] * 3)
+    moved = recolour_images(x, torch.from_numpy(belt), shift, torch.full((3,), -9.0), torch.full((3,), 9.0))
+    torch.testing.assert_close(moved[~keep].view(-1), (x + shift[:, :, None, None])[~keep].view(-1))  # texture kept: one shift for all
