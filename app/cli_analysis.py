@@ -134,7 +134,8 @@ def interventions(args: argparse.Namespace) -> int:
                            "insertion": r.pasting.to_json() if r and r.pasting else None, "family": settings.describe(n_tests),
                            "min_effect": settings.min_effect} for c, k, r in found], indent=1))
         return 0
-    print(f"Reliance is decided by covering; pasting ('can be steered by it') is shown beside it. {settings.describe(n_tests)}.")
+    print(f"Reliance is decided by covering (recolouring to the entity's plain look for an attribute over most of the image); pasting "
+          f"('can be steered by it') is shown beside it. {settings.describe(n_tests)}.")
     for cls, name, r in found:
         if r is None:
             why = untested_reason(Path(args.project), res, model.sha256, cls, name.split(" & "), fills=args.fill, draws=args.draws,

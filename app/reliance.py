@@ -68,10 +68,12 @@ def model_for_run(s: Session, run_id: int, model: Path | None = None, sidecar: P
     return loaded
 
 
-def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_ids: list[int], concepts: list[str]) -> tuple[torch.Tensor, np.ndarray, CoverPlan]:
+def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_ids: list[int],
+            concepts: list[str]) -> tuple[torch.Tensor, np.ndarray, CoverPlan, list[int]]:
     """Model inputs of the images and, per image, the mask of the regions to cover for the concepts
     (:func:`analysis.interventions.plan_regions`: the regions showing them alone when enough images
-    have one, else every region carrying any of them), and the plan that chose them."""
+    have one, else every region carrying any of them), the plan that chose them, and the ids of the images
+    in the order of the inputs (those with a region to cover that could be read)."""
     table = res.table
     cols = [table.concepts.index(c) for c in concepts]
     carries = table.regions.carries.tocsr()
@@ -81,7 +83,7 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
     wanted = {row_of[i] for i in image_ids}
     ids = table.regions.ids
     if ids is None:  # a table made without region ids has nothing to cover
-        return torch.zeros((0, 3, *model.sidecar.input_size)), np.zeros((0, *model.sidecar.input_size), dtype=bool), CoverPlan((), False)
+        return torch.zeros((0, 3, *model.sidecar.input_size)), np.zeros((0, *model.sidecar.input_size), dtype=bool), CoverPlan((), False), []
     candidates = [r for r in np.nonzero(on)[0] if int(table.regions.region_image[r]) in wanted]
     region_ids = [int(ids[r]) for r in candidates]
     found = s.execute(
@@ -106,17 +108,22 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
         if mask.any():
             masks[image_id] = mask
     x, kept = _read_inputs(s, model, list(masks))
-    return x, (np.stack([masks[i] for i in kept]) if kept else np.zeros((0, *model.sidecar.input_size), dtype=bool)), plan
+    return x, (np.stack([masks[i] for i in kept]) if kept else np.zeros((0, *model.sidecar.input_size), dtype=bool)), plan, kept
 
 
 MAX_PLAIN_IMAGES = 200
 
 
 def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, concept: str) -> tuple[torch.Tensor | None, str]:
-    """The plain look of the entity that ``concept`` refines ("belt" for "green belt"): per image, the mean
-    colour of its regions that show the entity, or other refinements of it, and nothing else, without
-    ``concept`` (up to MAX_PLAIN_IMAGES images, any class). Returns (K x 3 colours, "") or (None, why
-    it cannot be found)."""
+    """The plain look of the entity that ``concept`` refines ("belt" for "green belt"), one colour per image
+    (up to MAX_PLAIN_IMAGES images, any class), and where it came from; or (None, why it cannot be found).
+
+    The donors are regions that show the entity and nothing else, in images that do not show ``concept``
+    anywhere (an image has one belt: its other regions show the same green belt). Regions carrying another
+    attribute of the entity ("grey belt") are positive evidence that the attribute is absent and are used
+    when at least two images have one; otherwise regions of the bare entity are used. Those can still
+    hold the attribute where people named the entity but left the attribute out, which pulls the plain
+    look toward the attribute and the estimate toward zero (it errs toward understating reliance)."""
     table = res.table
     entity = table.families.get(concept)
     if entity is None or entity not in table.concepts:
@@ -125,21 +132,31 @@ def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, con
     ids = table.regions.ids
     if ids is None:
         return None, "the concept table has no region ids"
-    kin = ({entity} | {r for r, e in table.families.items() if e == entity}) - {concept}
+    siblings = sorted(r for r, e in table.families.items() if e == entity and r != concept and r in table.concepts)
+    kin = {entity, *siblings}
     carries = table.regions.carries.tocsc()
-    others = [j for j, c in enumerate(table.concepts) if c not in kin]
-    shows_entity = carries[:, table.concepts.index(entity)].toarray().ravel()
-    shows_concept = carries[:, table.concepts.index(concept)].toarray().ravel()
-    shows_other = np.asarray(carries[:, others].sum(axis=1)).ravel() > 0
-    plain = np.nonzero(shows_entity & ~shows_concept & ~shows_other)[0]
+
+    def shows(names: list[str]) -> np.ndarray:
+        return np.asarray(carries[:, [table.concepts.index(c) for c in names]].sum(axis=1)).ravel() > 0 if names else np.zeros(carries.shape[0], dtype=bool)
+
+    image_shows_concept = table.presence[concept].to_numpy(dtype=bool)[table.regions.region_image]
+    plain = shows([entity]) & ~shows([concept]) & ~shows([c for c in table.concepts if c not in kin]) & ~image_shows_concept
     image_ids = [int(i) for i in table.meta.index]
-    per_image: dict[int, list[int]] = {}
-    for r in plain:
-        image = image_ids[int(table.regions.region_image[r])]
-        if image in per_image or len(per_image) < MAX_PLAIN_IMAGES:
-            per_image.setdefault(image, []).append(int(ids[r]))
-    why = (f"recolouring needs regions labelled {entity!r} without {concept!r} and without anything else (the entity's plain look); "
-           f"{len(per_image)} image{'s have' if len(per_image) != 1 else ' has'} one")
+
+    def donors(rows: np.ndarray) -> dict[int, list[int]]:
+        per_image: dict[int, list[int]] = {}
+        for r in np.nonzero(rows)[0]:
+            image = image_ids[int(table.regions.region_image[r])]
+            if image in per_image or len(per_image) < MAX_PLAIN_IMAGES:
+                per_image.setdefault(image, []).append(int(ids[r]))
+        return per_image
+
+    per_image = donors(plain & shows(siblings))
+    source = f"regions labelled {' or '.join(repr(c) for c in siblings)}"
+    if len(per_image) < 2:
+        per_image, source = donors(plain), f"regions labelled {entity!r} alone in images without {concept!r}"
+    why = (f"recolouring needs regions labelled {entity!r} (or another attribute of it) without {concept!r} and without anything else, "
+           f"in images that do not show {concept!r} (the entity's plain look); {len(per_image)} image{'s have' if len(per_image) != 1 else ' has'} one")
     if len(per_image) < 2:
         return None, why
     wanted = [r for rs in per_image.values() for r in rs]
@@ -150,7 +167,7 @@ def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, con
         return None, why
     masks = np.stack([np.isin(labels[i], [rank_of[r] for r in per_image[i] if r in rank_of]) for i in kept])
     try:
-        return plain_colours(x, masks), ""
+        return plain_colours(x, masks), f"plain look from {source}, {len(kept)} images"
     except NotTestableError:
         return None, why
 
@@ -214,21 +231,21 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     if all(found for found, _ in stored.values()):
         coverings = _stored_coverings(project, key, [r for _, r in (stored[f] for f in fills)])
         return RuleTests(cls, name, coverings, stored["paste"][1]) if coverings else None
-    x, masks, plan = _inputs(s, project, res, model, image_ids, concepts)
+    x, masks, plan, _ = _inputs(s, project, res, model, image_ids, concepts)
     if len(x) < 2:
         for f in (*fills, "paste"):
             _write_cached(_cache_path(project, key, f), None)
         return None
     index = model.classes.index(cls)
     label = f"{name} ({plan.note})" if plan.note else name
-    recolour_why = ""
+    plain_note = ""
     if needs_recolour(masks):
         # The concept's regions cover most of each image: covering has no room for a matched control. An
         # attribute of an entity (green belt) is removed by recolouring it to the entity's plain look instead.
-        plain, recolour_why = _plain_look(s, project, res, model, concepts[0]) if len(concepts) == 1 else (None, "recolouring takes one concept")
+        plain, plain_note = _plain_look(s, project, res, model, concepts[0]) if len(concepts) == 1 else (None, "recolouring takes one concept")
         if plain is not None:
             bar = _bar(f"{cls} / {name} (recolour)") if progress else None
-            recoloured = replace(recolour_test(model, x, masks, index, plain=plain, concept=label, draws=draws, seed=seed, progress=bar),
+            recoloured = replace(recolour_test(model, x, masks, index, plain=plain, concept=f"{label} ({plain_note})", draws=draws, seed=seed, progress=bar),
                                  shared=not plan.alone)
             _write_cached(_cache_path(project, key, RECOLOUR), recoloured)
             share = float(np.median(masks.reshape(len(masks), -1).mean(axis=1)))
@@ -245,7 +262,7 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
                 result = replace(ablation_test(model, x, masks, index, concept=label, fill=f, draws=draws, seed=seed, progress=bar), shared=not plan.alone)
             except NotTestableError as e:
                 # Not testable by covering (the regions cover most of each image): stored as such, read as "not tested".
-                reason = f"{e} Recolouring cannot stand in: {recolour_why}." if recolour_why else str(e)
+                reason = f"{e} Recolouring cannot stand in: {plain_note}." if plain_note else str(e)
                 for g in (*fills, "paste"):
                     _write_cached(_cache_path(project, key, g), None, reason=reason)
                 if progress:

@@ -100,6 +100,28 @@ def test_several_fills_keep_the_most_conservative_verdict() -> None:
     assert found[("can", "patch")].reliance == "inconclusive" and found[("can", "patch")].decided_by.fill == "blur"  # type: ignore[union-attr]
 
 
+def test_a_covering_over_shared_regions_is_corrected_with_the_family_and_cannot_confirm() -> None:
+    # The fallback when too few images have a region showing the concept alone covers regions that also
+    # show other concepts: a fall there belongs to the concept and its neighbours together. It is one of
+    # the family (its p-value is adjusted with the rest), it can rule reliance out, but not confirm it.
+    from dataclasses import replace
+
+    strong = replace(_result("ablation", 0.4, (0.3, 0.5), 1e-4), shared=True)
+    alone = _result("ablation", 0.4, (0.3, 0.5), 1e-4)
+    flat = replace(_result("ablation", 0.001, (-0.01, 0.012), 0.4), shared=True)
+    pasted = replace(_result("insertion", 0.3, (0.2, 0.4), 1e-4), shared=True)
+    found = judge_family([RuleTests("can", "scrap", (strong,), pasted), RuleTests("can", "tag", (alone,)), RuleTests("can", "rim", (flat,))])
+    scrap = found[("can", "scrap")]
+    assert scrap.reliance == "inconclusive" and scrap.steering == "inconclusive" and scrap.decided_by is not None
+    assert scrap.decided_by.shared and "also show other concepts" in scrap.evidence()
+    assert found[("can", "tag")].reliance == "relies on"  # the same figures over regions of its own confirm
+    assert found[("can", "rim")].reliance == "no reliance"  # covering more than the rim moved nothing: the rim alone moves nothing
+    # All four tests are one family: each adjusted p is Holm's over four (statsmodels, the same p-values).
+    ref = multipletests([1e-4, 1e-4, 1e-4, 0.4], method="holm")[1]
+    assert scrap.decided_by.adjusted_p == pytest.approx(ref[0]) and "over the 4 intervention tests" in scrap.family
+    assert found[("can", "rim")].decided_by.adjusted_p == pytest.approx(ref[3])  # type: ignore[union-attr]
+
+
 def test_concept_sets_that_covering_can_test() -> None:
     assert concept_set('tag and "label band"') == ["label band", "tag"]
     assert concept_set("rim or tab") is None and concept_set("cap and not tag") is None
