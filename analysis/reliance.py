@@ -111,6 +111,7 @@ class JudgedTest:
 
     def summary(self) -> str:
         where = " in regions that also show other concepts (so it cannot confirm)" if self.shared else ""
+        where += " against sham recolourings that keep it" if self.fill == "recolour" else ""
         return (f"{self.name} on {self.n_images} images{where}: effect {self.effect:.3f} [{self.interval[0]:.3f}, {self.interval[1]:.3f}], "
                 f"p {self.p_value:.3g}, adjusted p {self.adjusted_p:.3g}")
 
