@@ -6,6 +6,7 @@ must show no such rule. Also the pointing game of the maps on the part masks (Zh
 
     .venv/bin/python -m benchmarks.bias_recovery            # default size, seeds 0-2
     .venv/bin/python -m benchmarks.bias_recovery --quick    # small size, seed 0
+    .venv/bin/python -m benchmarks.bias_recovery --seeds 1 --cues belt   # default size, seed 0, the green belt only
 
 Writes bias_recovery.csv and bias_recovery.json into --out (default benchmarks/out).
 """
@@ -58,12 +59,13 @@ def main(argv: list[str] | None = None) -> str:
     p.add_argument("--quick", action="store_true", help="small data, one seed")
     p.add_argument("--seeds", type=int, default=None, help="how many seeds (default 3, or 1 with --quick)")
     p.add_argument("--aggregation", default="majority", choices=["majority", "dawid-skene", "one-coin"])
+    p.add_argument("--cues", nargs="*", choices=list(CUES), help="run only these cues (default: every cue and the control)")
     p.add_argument("--out", type=Path, default=Path("benchmarks/out"))
     args = p.parse_args(argv)
     size = "small" if args.quick else "default"
     seeds = range(args.seeds or (1 if args.quick else 3))
     rows = []
-    for cue in CUES:
+    for cue in args.cues or CUES:
         for seed in seeds:
             rows.append(one_run(cue, seed, size, args.aggregation))
             print(f"{cue} seed {seed}: rank {rows[-1]['rank']}, lift {rows[-1]['lift']}", flush=True)
