@@ -9,6 +9,8 @@ from .groups import (
     GroupingSummary,
     GroupResult,
     GroupTask,
+    Undone,
+    crop_entities,
     group_counts,
     has_groups,
     held_group,
@@ -16,6 +18,7 @@ from .groups import (
     make_groups,
     save_group_label,
     skip_group,
+    undo_last_submission,
 )
 from .judgments import judgments, raw_labels, region_classes
 from .labelling import region_visible_to, save_label, skip_region, undo_last
@@ -63,6 +66,9 @@ __all__ = [
     "GroupCounts",
     "GroupResult",
     "GroupTask",
+    "Undone",
+    "crop_entities",
+    "undo_last_submission",
     "GroupingSummary",
     "Entities",
     "RuleRow",

@@ -3,7 +3,8 @@
 A group's crops are held by ordinary leases, so every guarantee of single-crop labelling holds for
 each crop: at most k labels per region, nobody labels a region twice, another person's live hold
 keeps its place. Each ticked crop gets its own label through :func:`labelling.save_label`, with the
-group judgment as its provenance; unticked crops are released (their place goes back to the pool)
+group judgment as its provenance, plus what that crop shows besides (its own additions: a group names what its crops
+share, a region usually shows more, and the single-crop page would have had all of it); unticked crops are released (their place goes back to the pool)
 and get no label from this person. A person is not offered a group they judged before; its
 remaining crops reach them one at a time on the single-crop page.
 """
@@ -11,12 +12,14 @@ remaining crops reach them one at a time on the single-crop page.
 from __future__ import annotations
 
 from collections import Counter
+from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
 from sqlalchemy import Select, and_, delete, exists, func, insert, select, update
 from sqlalchemy.orm import Session
 
+from analysis.concepts import MAX_ATTRIBUTES, MAX_ENTITIES, format_label_text, normalise_label
 from analysis.grouping import group_regions
 
 from ..errors import ConflictError, ForbiddenError, InvalidRequestError, NotFoundError
@@ -30,10 +33,11 @@ from ..models import (
     RegionGroup,
     RegionGroupMember,
     RegionRow,
+    WithdrawnLabel,
     utcnow,
 )
 from .assignment import Task, _unseen
-from .labelling import save_label, skip_region
+from .labelling import last_label, save_label, skip_region, undo_last, withdraw_label
 from .plans import budget_left
 from .records import CampaignInfo, Entities
 
@@ -67,6 +71,16 @@ class GroupResult:
     labelled: tuple[int, ...]  # regions that got this person's label
     returned: tuple[int, ...]  # unticked regions, back in the pool
     lost: tuple[int, ...]  # ticked regions whose places others took after this person's hold ran out
+
+
+@dataclass(frozen=True)
+class Undone:
+    """What an undo withdrew: one label, or every label of one group judgment (``group_id`` set)."""
+
+    region_id: int  # the last region labelled
+    text: str  # the label's text (a group's: what its crops share) to show again for editing
+    group_id: int | None
+    regions: tuple[int, ...]  # every region whose label from this person was withdrawn
 
 
 def has_groups(s: Session, campaign_id: int) -> bool:
@@ -231,28 +245,81 @@ def _shown(s: Session, campaign_id: int, group_id: int, person_id: int) -> list[
     ))
 
 
+def crop_entities(shared: Entities, extra: Entities) -> Entities:
+    """A ticked crop's label: what the group shares, then what this crop shows besides.
+
+    An addition naming a shared entity (after normalisation) adds its attributes to it, so "cap" shared
+    and "cap: red" added for one crop give that crop "cap: red".
+    """
+    out: list[tuple[str, list[str]]] = [(e, list(a)) for e, a in shared]
+    where = {normalise_label(e): i for i, (e, _) in enumerate(out)}
+    for e, attrs in extra:
+        key = normalise_label(e)
+        if key not in where:
+            where[key] = len(out)
+            out.append((e, []))
+        have = {normalise_label(a) for a in out[where[key]][1]}
+        for a in attrs:
+            if normalise_label(a) not in have:
+                have.add(normalise_label(a))
+                out[where[key]][1].append(a)
+    return out
+
+
+def _stored(entities: object) -> list[tuple[str, list[str]]]:
+    return [(str(e[0]), [str(a) for a in e[1]]) for e in entities or []]  # type: ignore[attr-defined]
+
+
+def _per_crop_entities(shared: Entities, ticked: list[int], extras: Mapping[int, Entities]) -> dict[int, Entities]:
+    """Each ticked crop's label; additions for a crop that is not ticked, or a label over the limits, are refused."""
+    stray = sorted(set(extras) - set(ticked))
+    if stray:
+        raise InvalidRequestError(f"region {stray[0]} has things added of its own but is not ticked; tick it, or clear what you added to it.")
+    if extras and not shared:
+        raise InvalidRequestError("a group marked nothing recognisable cannot name things for one region; name what the group shares, "
+                                  "or leave that region's additions empty.")
+    out = {r: crop_entities(shared, extras.get(r, [])) for r in ticked}
+    for r, e in out.items():
+        if len(e) > MAX_ENTITIES or any(len(a) > MAX_ATTRIBUTES for _, a in e):
+            raise InvalidRequestError(f"region {r} would get more than {MAX_ENTITIES} things or {MAX_ATTRIBUTES} attributes of one thing "
+                                      "with what the group shares; name fewer for it.")
+    return out
+
+
 def save_group_label(
     s: Session, *, campaign: CampaignInfo, person_id: int, group_id: int, ticked: list[int], entities: Entities, unsure: bool, client_id: str,
-    seconds_spent: float | None, now: datetime | None = None,
+    seconds_spent: float | None, now: datetime | None = None, extras: Mapping[int, Entities] | None = None,
 ) -> GroupResult:
     """Store one person's judgment of a group: the label of every ticked crop, with the group as its provenance.
 
-    A retry with the same ``client_id`` and content stores nothing and answers as before; other
-    content under a used id is a ConflictError. Every ticked crop must be one handed to the person in
-    this group. Unticked crops shown to them are released and get no label from them.
+    ``entities`` is what the ticked crops share; ``extras`` maps a ticked crop to what it shows besides, and
+    that crop's label is both (:func:`crop_entities`). A retry with the same ``client_id`` and content
+    stores nothing and answers as before; other content under a used id is a ConflictError. Every
+    ticked crop must be one handed to the person in this group. Unticked crops shown to them are
+    released and get no label from them.
     """
     now = now or utcnow()
     ticked = list(dict.fromkeys(ticked))
+    extras = {r: e for r, e in (extras or {}).items() if e}
     stored_entities: list[list[object]] = [[e, list(a)] for e, a in entities]
+    per_crop = _per_crop_entities(entities, ticked, extras)
+    if not ticked:
+        raise InvalidRequestError("tick at least one crop that shows what you named, or skip the group.")
+    if len(ticked) > MAX_GROUP_CROPS:
+        raise InvalidRequestError(f"a group holds at most {MAX_GROUP_CROPS} crops; {len(ticked)} were ticked.")
     found = s.scalar(select(GroupLabel).where(GroupLabel.client_id == client_id))
     if found is not None:
         if (found.person_id, found.group_id, found.campaign_id) != (person_id, group_id, campaign.id):
             raise ConflictError("this submission id was used for another group; reload the page to get a fresh form.")
         before: list[list[object]] = [[str(e[0]), [str(a) for a in e[1]]] for e in found.entities or []]
-        if before != stored_entities or sorted(found.ticked) != sorted(ticked) or bool(found.unsure) != unsure:
+        labelled_as = {r: _stored(e) for r, e in s.execute(select(Label.region_id, Label.entities).where(Label.group_label_id == found.id))}
+        if (before != stored_entities or sorted(found.ticked) != sorted(ticked) or bool(found.unsure) != unsure
+                or any(per_crop[r] != e for r, e in labelled_as.items())):
             raise ConflictError("this group judgment was stored already with other content; reload the page to see your next group.")
-        got = tuple(s.scalars(select(Label.region_id).where(Label.group_label_id == found.id).order_by(Label.region_id)))
+        got = tuple(sorted(labelled_as))
         return GroupResult(False, group_id, got, tuple(found.unticked), tuple(r for r in found.ticked if r not in got))
+    if s.scalar(select(WithdrawnLabel.id).where(WithdrawnLabel.client_id.startswith(f"{client_id}/", autoescape=True)).limit(1)) is not None:
+        raise ConflictError("this group judgment was undone, and a submission id stays used; reload the page to judge the group again.")
     if campaign.closed_at is not None:
         raise ConflictError(f"campaign {campaign.name!r} is closed; labels are no longer taken.")
     if s.scalar(select(RegionGroup.id).where(RegionGroup.id == group_id, RegionGroup.campaign_id == campaign.id)) is None:
@@ -260,10 +327,6 @@ def save_group_label(
     if s.scalar(select(GroupLabel.id).where(GroupLabel.campaign_id == campaign.id, GroupLabel.group_id == group_id,
                                             GroupLabel.person_id == person_id)) is not None:
         raise ConflictError(f"you judged group {group_id} already; your next group is ready.")
-    if not ticked:
-        raise InvalidRequestError("tick at least one crop that shows what you named, or skip the group.")
-    if len(ticked) > MAX_GROUP_CROPS:
-        raise InvalidRequestError(f"a group holds at most {MAX_GROUP_CROPS} crops; {len(ticked)} were ticked.")
     shown = _shown(s, campaign.id, group_id, person_id)
     foreign = [r for r in ticked if r not in shown]
     if foreign:
@@ -275,11 +338,11 @@ def save_group_label(
     s.flush()
     labelled: list[int] = []
     lost: list[int] = []
-    per_crop = None if seconds_spent is None else seconds_spent / len(ticked)
+    crop_seconds = None if seconds_spent is None else seconds_spent / len(ticked)
     for region_id in ticked:
         try:
-            save_label(s, campaign=campaign, region_id=region_id, person_id=person_id, entities=entities, unsure=unsure,
-                       client_id=f"{client_id}/{region_id}", seconds_spent=per_crop, now=now, require_lease=True, group_label_id=gl.id)
+            save_label(s, campaign=campaign, region_id=region_id, person_id=person_id, entities=per_crop[region_id], unsure=unsure,
+                       client_id=f"{client_id}/{region_id}", seconds_spent=crop_seconds, now=now, require_lease=True, group_label_id=gl.id)
             labelled.append(region_id)
         except ConflictError:
             lost.append(region_id)  # its places went to others after this person's hold ran out
@@ -295,6 +358,47 @@ def skip_group(s: Session, *, campaign: CampaignInfo, person_id: int, group_id: 
         skip_region(s, campaign=campaign, region_id=region_id, person_id=person_id)
     s.execute(delete(GroupLease).where(GroupLease.campaign_id == campaign.id, GroupLease.person_id == person_id))
     return len(shown)
+
+
+def undo_last_submission(s: Session, *, campaign: CampaignInfo, person_id: int, now: datetime | None = None) -> Undone | None:
+    """Withdraw the person's last submission in the campaign: a single label, or a whole group judgment.
+
+    A group judgment is one submission, so undoing it withdraws the label of every crop it gave, and
+    the group is handed back to the person (its crops whose places are still free to them), to judge
+    again. None when the person has no label in the campaign.
+    """
+    now = now or utcnow()
+    last = last_label(s, campaign_id=campaign.id, person_id=person_id)
+    if last is None:
+        return None
+    if last.group_label_id is None:
+        single = undo_last(s, campaign=campaign, person_id=person_id, now=now)
+        return None if single is None else Undone(single[0], single[1], None, (single[0],))
+    gl = s.get(GroupLabel, last.group_label_id)
+    if gl is None:  # the foreign key makes this impossible; kept so a damaged row never becomes a 500
+        single = undo_last(s, campaign=campaign, person_id=person_id, now=now)
+        return None if single is None else Undone(single[0], single[1], None, (single[0],))
+    labels = list(s.scalars(select(Label).where(Label.group_label_id == gl.id).order_by(Label.region_id)))
+    for label in labels:
+        withdraw_label(s, campaign=campaign, label=label, now=now)
+    text = format_label_text(_stored(gl.entities))
+    shown = [int(r) for r in [*gl.ticked, *gl.unticked]]
+    group_id = gl.group_id
+    s.delete(gl)
+    s.flush()
+    # The group comes back to the person: their other holds go, its crops still open to them are theirs again.
+    s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.person_id == person_id))
+    s.execute(delete(GroupLease).where(GroupLease.campaign_id == campaign.id, GroupLease.person_id == person_id))
+    crops = list(s.scalars(
+        select(RegionGroupMember.region_id).join(CampaignRegion, _open_place(campaign, person_id, now, RegionGroupMember.region_id))
+        .where(RegionGroupMember.group_id == group_id, RegionGroupMember.region_id.in_(shown)).order_by(RegionGroupMember.id)
+    ))
+    expires = now + timedelta(seconds=campaign.lease_seconds)
+    if crops:
+        s.execute(insert(Lease), [{"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires}
+                                  for r in crops])
+        s.execute(insert(GroupLease).values(campaign_id=campaign.id, person_id=person_id, group_id=group_id, expires_at=expires))
+    return Undone(last.region_id if labels else shown[0], text, group_id, tuple(label.region_id for label in labels))
 
 
 @dataclass(frozen=True)

@@ -140,26 +140,37 @@ def skip_region(s: Session, *, campaign: CampaignInfo, region_id: int, person_id
     s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id == person_id))
 
 
+def last_label(s: Session, *, campaign_id: int, person_id: int) -> Label | None:
+    """The person's latest label in the campaign (what an undo withdraws), or None."""
+    return s.scalar(select(Label).where(Label.campaign_id == campaign_id, Label.person_id == person_id).order_by(Label.id.desc()).limit(1))
+
+
+def withdraw_label(s: Session, *, campaign: CampaignInfo, label: Label, now: datetime) -> None:
+    """Take back one stored label: its place is free again, its words uncounted, its client id stays spent."""
+    region_id, person_id = label.region_id, label.person_id
+    # The region's row first, as save_label locks it: then the word counts, in the same order as there (no deadlock).
+    s.execute(update(CampaignRegion).where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
+              .values(n_labels=CampaignRegion.n_labels - 1))
+    s.add(WithdrawnLabel(client_id=label.client_id, campaign_id=label.campaign_id, region_id=region_id, person_id=person_id,
+                         entities=label.entities, withdrawn_at=now))
+    add_words(s, campaign.id, words_of(label.entities), sign=-1)
+    s.delete(label)
+    s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id == person_id))
+    refresh_quota(s, campaign_id=campaign.id, region_id=region_id)
+
+
 def undo_last(s: Session, *, campaign: CampaignInfo, person_id: int, now: datetime | None = None) -> tuple[int, str] | None:
     """Withdraw the person's latest label in the campaign; returns (region, its text) to show again, or None.
 
     The region is leased back to the person, so it is theirs to label again.
     """
     now = now or utcnow()
-    last = s.scalar(select(Label).where(Label.campaign_id == campaign.id, Label.person_id == person_id).order_by(Label.id.desc()).limit(1))
+    last = last_label(s, campaign_id=campaign.id, person_id=person_id)
     if last is None:
         return None
     text = format_label_text([(str(e[0]), [str(a) for a in e[1]]) for e in last.entities])
     region_id = last.region_id
-    # The region's row first, as save_label locks it: then the word counts, in the same order as there (no deadlock).
-    s.execute(update(CampaignRegion).where(CampaignRegion.campaign_id == campaign.id, CampaignRegion.region_id == region_id)
-              .values(n_labels=CampaignRegion.n_labels - 1))
-    s.add(WithdrawnLabel(client_id=last.client_id, campaign_id=last.campaign_id, region_id=region_id, person_id=person_id, entities=last.entities,
-                         withdrawn_at=now))
-    add_words(s, campaign.id, words_of(last.entities), sign=-1)
-    s.delete(last)
-    s.execute(delete(Lease).where(Lease.campaign_id == campaign.id, Lease.region_id == region_id, Lease.person_id == person_id))
-    refresh_quota(s, campaign_id=campaign.id, region_id=region_id)
+    withdraw_label(s, campaign=campaign, label=last, now=now)
     # Lease it back first in line: the undone region is what the person sees next.
     held = list(s.scalars(select(Lease).where(Lease.campaign_id == campaign.id, Lease.person_id == person_id)))
     for lease in held:

@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import uuid
 from typing import Annotated
-from urllib.parse import urlencode
 
 from fastapi import Form, Request
 from fastapi.responses import RedirectResponse, Response
@@ -15,10 +13,10 @@ from .. import campaigns
 from ..campaigns import CampaignInfo, GroupTask
 from ..campaigns.groups import MAX_GROUP_CROPS
 from ..deps import MAX_ID, AnnotatorDep, SessionDep, WriteSessionDep, guarded_router, require_annotator
-from ..errors import ConflictError, InvalidRequestError
+from ..errors import InvalidRequestError
 from ..people import Viewer
 from .common import render
-from .labelling import ATTRIBUTE_KINDS, EntityIn, LabelCreate, RegionPublic, campaign_for, parse_entities, public, structured_entities
+from .labelling import EntityIn, LabelCreate, RegionPublic, answer_form, campaign_for, page_context, parse_entities, public, structured_entities
 
 router = guarded_router(require_annotator, prefix="/campaigns/{campaign_id}/groups")
 api = guarded_router(require_annotator, prefix="/api/campaigns/{campaign_id}/groups")
@@ -39,12 +37,20 @@ class NextGroup(BaseModel):
     total: int
 
 
+class CropAdditions(BaseModel):
+    """What one ticked crop shows besides what the group shares."""
+
+    region_id: int = Field(ge=0, le=MAX_ID)
+    entities: list[EntityIn] = Field(min_length=1, max_length=10)
+
+
 class GroupLabelCreate(BaseModel):
     client_id: str = Field(min_length=8, max_length=40)
     entities: list[EntityIn] = Field(default_factory=list, max_length=10)
     nothing_recognisable: bool = False
     unsure: bool = False
     ticked: list[int] = Field(min_length=1, max_length=MAX_GROUP_CROPS)
+    also: list[CropAdditions] = Field(default_factory=list, max_length=MAX_GROUP_CROPS)
     seconds_spent: float | None = Field(default=None, ge=0, le=86_400)
 
 
@@ -61,27 +67,45 @@ def _entities(body: GroupLabelCreate) -> list[tuple[str, list[str]]]:
     return structured_entities(LabelCreate(client_id=body.client_id, entities=body.entities, nothing_recognisable=body.nothing_recognisable))
 
 
+def _additions(body: GroupLabelCreate) -> dict[int, list[tuple[str, list[str]]]]:
+    """Each crop's own additions as sent, checked as a label's entities are; a crop named twice is refused."""
+    out: dict[int, list[tuple[str, list[str]]]] = {}
+    for item in body.also:
+        if item.region_id in out:
+            raise InvalidRequestError(f"region {item.region_id} appears twice in also; send its additions once.")
+        out[item.region_id] = structured_entities(LabelCreate(client_id=body.client_id, entities=item.entities))
+    return out
+
+
+def _typed_additions(regions: list[int], texts: list[str]) -> dict[int, str]:
+    """The form's per-crop boxes: one region id and one text per crop shown, in the same order; empty boxes left out."""
+    if len(regions) != len(texts):
+        raise InvalidRequestError(f"the form sent {len(texts)} per-region boxes for {len(regions)} regions; reload the page.")
+    out: dict[int, str] = {}
+    for r, text in zip(regions, texts):
+        if len(text) > 1000:
+            raise InvalidRequestError(f"what you added to region {r} is longer than 1000 characters; shorten it.")
+        if text.strip():
+            out[r] = text
+    return out
+
+
 def group_public(task: GroupTask) -> GroupPublic:
     return GroupPublic(group_id=task.group_id, crops=[public(t) for t in task.crops])
 
 
 def _page(request: Request, s: Session, viewer: Viewer, c: CampaignInfo, *, typed: str = "", error: str = "", notice: str = "",
-          status_code: int = 200, unticked: frozenset[int] = frozenset(), offer: bool = True) -> Response:
+          status_code: int = 200, unticked: frozenset[int] = frozenset(), also: dict[int, str] | None = None, offer: bool = True) -> Response:
     task = campaigns.held_group(s, campaign=c, person_id=viewer.person_id)
-    done, total = campaigns.person_progress(s, c, viewer.person_id)
-    context = {
-        "campaign": c, "group": group_public(task) if task else None, "keys": CROP_KEYS, "done": done, "total": total,
-        "client_id": uuid.uuid4().hex, "typed": typed, "error": error, "notice": notice, "unticked": unticked,
-        "attribute_kinds": ATTRIBUTE_KINDS, "examples": campaigns.examples(s, c.id),
-        "may_start": offer and task is None and c.closed_at is None and done < total,
-    }
+    context = page_context(s, viewer, c, holding=task is not None, typed=typed, error=error, notice=notice, offer=offer)
+    context |= {"group": group_public(task) if task else None, "keys": CROP_KEYS, "unticked": unticked, "also": also or {}}
     return render(request, "annotate_group.html", context, viewer=viewer, status_code=status_code)
 
 
 @router.get("")
-def group_page(request: Request, campaign_id: int, s: SessionDep, viewer: AnnotatorDep, notice: str = "", empty: bool = False) -> Response:
+def group_page(request: Request, campaign_id: int, s: SessionDep, viewer: AnnotatorDep, notice: str = "", text: str = "", empty: bool = False) -> Response:
     """Similar crops at once: name what they share, untick those that do not fit (taking a group is a POST to /next)."""
-    return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), notice=notice[:200], offer=not empty)
+    return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), typed=text[:1000], notice=notice[:200], offer=not empty)
 
 
 @router.post("/next")
@@ -104,25 +128,30 @@ def submit_group(
     unsure: Annotated[str, Form()] = "",
     seconds_spent: Annotated[float | None, Form(ge=0, le=86_400)] = None,
     tick: Annotated[list[int] | None, Form(max_length=MAX_GROUP_CROPS)] = None,
+    also_region: Annotated[list[int] | None, Form(max_length=MAX_GROUP_CROPS)] = None,
+    also: Annotated[list[str] | None, Form(max_length=MAX_GROUP_CROPS)] = None,
 ) -> Response:
-    """Save one label per ticked crop and show the next group; bad input re-shows the group with the text and the message."""
+    """Save one label per ticked crop (what they share plus that crop's own additions) and show the next group; bad input
+    re-shows the group with everything typed and the message."""
     c = campaign_for(s, viewer, campaign_id)
     ticked = list(tick or [])
-    try:
-        entities = parse_entities(labels, bool(nothing))
-        got = campaigns.save_group_label(s, campaign=c, person_id=viewer.person_id, group_id=group_id, ticked=ticked, entities=entities,
-                                         unsure=bool(unsure), client_id=client_id, seconds_spent=seconds_spent)
-    except InvalidRequestError as exc:
+    typed_also: dict[int, str] = {}
+
+    def save() -> str:
+        typed_also.update(_typed_additions(list(also_region or []), list(also or [])))
+        extras = {r: parse_entities(text, False) for r, text in typed_also.items()}
+        got = campaigns.save_group_label(s, campaign=c, person_id=viewer.person_id, group_id=group_id, ticked=ticked,
+                                         entities=parse_entities(labels, bool(nothing)), unsure=bool(unsure), client_id=client_id,
+                                         seconds_spent=seconds_spent, extras=extras)
+        return f"{len(got.lost)} crop(s) had their places taken by others while you worked." if got.lost else ""
+
+    def reshow(message: str) -> Response:
         held = campaigns.held_group(s, campaign=c, person_id=viewer.person_id)
         shown = frozenset(t.region_id for t in held.crops) if held else frozenset()
-        return _page(request, s, viewer, c, typed=labels, error=exc.message, status_code=422, unticked=shown - frozenset(ticked))
-    except ConflictError as exc:
-        s.rollback()
-        campaigns.lease_group(s, campaign=c, person_id=viewer.person_id)
-        return RedirectResponse(f"/campaigns/{campaign_id}/groups?{urlencode({'notice': exc.message})}", status_code=303)
-    notice = f"{len(got.lost)} crop(s) had their places taken by others while you worked." if got.lost else ""
-    campaigns.lease_group(s, campaign=c, person_id=viewer.person_id)  # the next group is ready when the page shows
-    return RedirectResponse(f"/campaigns/{campaign_id}/groups" + (f"?{urlencode({'notice': notice})}" if notice else ""), status_code=303)
+        return _page(request, s, viewer, c, typed=labels, error=message, status_code=422, unticked=shown - frozenset(ticked), also=typed_also)
+
+    return answer_form(s, save=save, reshow=reshow, hand_out_next=lambda: campaigns.lease_group(s, campaign=c, person_id=viewer.person_id),
+                       page=f"/campaigns/{campaign_id}/groups")
 
 
 @router.post("/skip")
@@ -148,7 +177,9 @@ def next_group(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Ne
 
 @api.post("/{group_id}/labels", status_code=201)
 def create_group_label(campaign_id: int, group_id: int, body: GroupLabelCreate, s: WriteSessionDep, viewer: AnnotatorDep) -> GroupLabelResult:
-    """Store what the ticked crops of your group share: one label per ticked crop; a retried client_id stores nothing twice."""
+    """Store what the ticked crops of your group share, and what each shows besides (``also``): one label per ticked crop;
+    a retried client_id stores nothing twice."""
     got = campaigns.save_group_label(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id, group_id=group_id,
-                                     ticked=body.ticked, entities=_entities(body), unsure=body.unsure, client_id=body.client_id, seconds_spent=body.seconds_spent)
+                                     ticked=body.ticked, entities=_entities(body), unsure=body.unsure, client_id=body.client_id, seconds_spent=body.seconds_spent,
+                                     extras=_additions(body))
     return GroupLabelResult(stored=got.stored, group_id=got.group_id, labelled=list(got.labelled), returned=list(got.returned), lost=list(got.lost))

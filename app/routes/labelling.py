@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import unicodedata
 import uuid
-from typing import Annotated
+from collections.abc import Callable
+from typing import Annotated, Any
 from urllib.parse import urlencode
 
 from fastapi import Form, Request
@@ -75,6 +76,8 @@ class LabelResult(BaseModel):
 class UndoResult(BaseModel):
     region_id: int
     text: str
+    group_id: int | None = None  # set when the last submission was a group judgment: all its crop labels were withdrawn
+    regions: list[int] = Field(default_factory=list)
 
 
 def public(task: Task) -> RegionPublic:
@@ -133,17 +136,37 @@ def structured_entities(body: LabelCreate) -> list[tuple[str, list[str]]]:
     return entities
 
 
+def page_context(s: Session, viewer: Viewer, c: CampaignInfo, *, holding: bool, typed: str, error: str, notice: str, offer: bool) -> dict[str, Any]:
+    """What the single-crop and the group page both show: progress, a fresh submission id, the text typed, messages, words, examples."""
+    done, total = campaigns.person_progress(s, c, viewer.person_id)
+    return {
+        "campaign": c, "done": done, "total": total, "client_id": uuid.uuid4().hex, "typed": typed, "error": error, "notice": notice,
+        "attribute_kinds": ATTRIBUTE_KINDS, "examples": campaigns.examples(s, c.id), "grouped": campaigns.has_groups(s, c.id),
+        "may_start": offer and not holding and c.closed_at is None and done < total,
+    }
+
+
+def answer_form(s: Session, *, save: Callable[[], str], reshow: Callable[[str], Response], hand_out_next: Callable[[], object], page: str) -> Response:
+    """One form submission of either labelling page: ``save`` stores it (and returns a notice, or ""), then the next work is handed
+    out and the page shown. Bad input re-shows the form with its message and loses nothing; a conflict (a retried or stale form,
+    places taken) rolls back, hands out the next work and says why."""
+    try:
+        notice = save()
+    except InvalidRequestError as exc:
+        return reshow(exc.message)
+    except ConflictError as exc:
+        s.rollback()
+        notice = exc.message
+    hand_out_next()  # the next work is ready when the page shows
+    return RedirectResponse(page + (f"?{urlencode({'notice': notice})}" if notice else ""), status_code=303)
+
+
 def _page(request: Request, s: Session, viewer: Viewer, c: CampaignInfo, *, typed: str = "", unsure: bool = False, error: str = "",
           notice: str = "", status_code: int = 200, lease: bool = True, offer: bool = True) -> Response:
     """The labelling page; ``lease`` (POST answers only) hands out new regions, a GET shows those already held."""
     tasks = (campaigns.lease_tasks if lease else campaigns.held_tasks)(s, campaign=c, person_id=viewer.person_id)
-    done, total = campaigns.person_progress(s, c, viewer.person_id)
-    context = {
-        "campaign": c, "task": public(tasks[0]) if tasks else None, "upcoming": public(tasks[1]) if len(tasks) > 1 else None,
-        "done": done, "total": total, "client_id": uuid.uuid4().hex, "typed": typed, "unsure": unsure, "error": error,
-        "notice": notice, "attribute_kinds": ATTRIBUTE_KINDS, "examples": campaigns.examples(s, c.id),
-        "may_start": offer and not tasks and c.closed_at is None and done < total, "grouped": campaigns.has_groups(s, c.id),
-    }
+    context = page_context(s, viewer, c, holding=bool(tasks), typed=typed, error=error, notice=notice, offer=offer)
+    context |= {"task": public(tasks[0]) if tasks else None, "upcoming": public(tasks[1]) if len(tasks) > 1 else None, "unsure": unsure}
     return render(request, "annotate.html", context, viewer=viewer, status_code=status_code)
 
 
@@ -175,18 +198,14 @@ def submit_label(
 ) -> Response:
     """Save the label and show the next region; bad input re-shows the form with the text and the message."""
     c = campaign_for(s, viewer, campaign_id)
-    try:
-        entities = parse_entities(labels, bool(nothing))
-        campaigns.save_label(s, campaign=c, region_id=region_id, person_id=viewer.person_id, entities=entities, unsure=bool(unsure),
-                             client_id=client_id, seconds_spent=seconds_spent, require_lease=True)
-    except InvalidRequestError as exc:
-        return _page(request, s, viewer, c, typed=labels, unsure=bool(unsure), error=exc.message, status_code=422)
-    except ConflictError as exc:
-        s.rollback()
-        campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)
-        return RedirectResponse(f"/campaigns/{campaign_id}/label?{urlencode({'notice': exc.message})}", status_code=303)
-    campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id)  # the next region is ready when the page shows
-    return RedirectResponse(f"/campaigns/{campaign_id}/label", status_code=303)
+
+    def save() -> str:
+        campaigns.save_label(s, campaign=c, region_id=region_id, person_id=viewer.person_id, entities=parse_entities(labels, bool(nothing)),
+                             unsure=bool(unsure), client_id=client_id, seconds_spent=seconds_spent, require_lease=True)
+        return ""
+
+    return answer_form(s, save=save, reshow=lambda message: _page(request, s, viewer, c, typed=labels, unsure=bool(unsure), error=message, status_code=422),
+                       hand_out_next=lambda: campaigns.lease_tasks(s, campaign=c, person_id=viewer.person_id), page=f"/campaigns/{campaign_id}/label")
 
 
 @router.post("/skip")
@@ -200,10 +219,15 @@ def skip_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep, region
 
 @router.post("/undo")
 def undo_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Response:
-    """Withdraw your last label and show its region again with the text to edit."""
-    got = campaigns.undo_last(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
-    query = urlencode({"text": got[1]} if got else {"notice": "nothing to undo: you have no label in this campaign."})
-    return RedirectResponse(f"/campaigns/{campaign_id}/label?{query}", status_code=303)
+    """Withdraw your last submission and show it again with the text to edit: a label's region, or a group judgment's group."""
+    got = campaigns.undo_last_submission(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
+    if got is None:
+        return RedirectResponse(f"/campaigns/{campaign_id}/label?{urlencode({'notice': 'nothing to undo: you have no label in this campaign.'})}",
+                                status_code=303)
+    if got.group_id is not None:
+        notice = f"your judgment of this group was withdrawn ({len(got.regions)} crop labels); judge it again."
+        return RedirectResponse(f"/campaigns/{campaign_id}/groups?{urlencode({'text': got.text, 'notice': notice})}", status_code=303)
+    return RedirectResponse(f"/campaigns/{campaign_id}/label?{urlencode({'text': got.text})}", status_code=303)
 
 
 # --- JSON ------------------------------------------------------------------------------------------
@@ -237,9 +261,9 @@ def skip_api(campaign_id: int, region_id: int, s: WriteSessionDep, viewer: Annot
 
 @api.post("/undo")
 def undo_api(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> UndoResult | None:
-    """Withdraw your last label in the campaign; its region becomes your current task again."""
-    got = campaigns.undo_last(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
-    return UndoResult(region_id=got[0], text=got[1]) if got else None
+    """Withdraw your last submission in the campaign (a label, or a whole group judgment); it becomes your current task again."""
+    got = campaigns.undo_last_submission(s, campaign=campaign_for(s, viewer, campaign_id), person_id=viewer.person_id)
+    return UndoResult(region_id=got.region_id, text=got.text, group_id=got.group_id, regions=list(got.regions)) if got else None
 
 
 @api.get("/vocabulary")

@@ -80,18 +80,90 @@ def test_group_label_gives_each_ticked_crop_its_own_label_with_the_group_as_prov
         judged = campaigns.judgments(s, grouped.id)
         assert sorted(j.region_id for j in judged) == sorted(ticked)
         assert {j.entities for j in judged} == {(("cap", ("red",)),)}
-    # Undoing the last label withdraws one crop's label; the others keep theirs.
-    with write_session(factory) as s:
-        undone = campaigns.undo_last(s, campaign=grouped, person_id=ann)
-    assert undone is not None
-    with factory() as s:
-        assert sorted(s.scalars(select(Label.region_id).where(Label.person_id == ann))) == sorted(r for r in ticked if r != undone[0])
     # The misfit is not skipped: it goes back to the queue (here: offered to ann one at a time, never in that group again).
     with write_session(factory) as s:
         again = campaigns.lease_group(s, campaign=grouped, person_id=ann)
         assert again is None or again.group_id != task.group_id
         singles = [t.region_id for t in campaigns.lease_tasks(s, campaign=grouped, person_id=ann, want=200)]
     assert misfit in singles or again is not None
+
+
+def test_each_ticked_crop_keeps_what_it_shows_besides_what_the_group_shares(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    """A group names what its crops share; a crop's own additions join its label, as on the single-crop page."""
+    ann = _person(factory, "ann")
+    with write_session(factory) as s:
+        task = campaigns.lease_group(s, campaign=grouped, person_id=ann)
+        assert task is not None and len(task.crops) >= 3
+        shown = [t.region_id for t in task.crops]
+        with pytest.raises(InvalidRequestError, match="not ticked"):
+            campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=shown[1:], entities=[("cap", [])],
+                                       unsure=False, client_id="g-extra-0", seconds_spent=None, extras={shown[0]: [("tag", [])]})
+        with pytest.raises(InvalidRequestError, match="nothing recognisable"):
+            campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=shown, entities=[],
+                                       unsure=False, client_id="g-extra-0", seconds_spent=None, extras={shown[0]: [("tag", [])]})
+    extras = {shown[0]: [("tag", ["yellow"]), ("Caps", ["red"])], shown[1]: [("body", ["blue"])]}
+    for _ in range(2):  # the second is a retry: stored once
+        with write_session(factory) as s:
+            got = campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=shown, entities=[("cap", [])],
+                                             unsure=False, client_id="g-extra-1", seconds_spent=None, extras=extras)
+    assert not got.stored and sorted(got.labelled) == sorted(shown)
+    with factory() as s:
+        stored = dict(s.execute(select(Label.region_id, Label.entities).where(Label.person_id == ann)).all())
+    assert stored[shown[0]] == [["cap", ["red"]], ["tag", ["yellow"]]]  # "Caps" is the shared cap: its attribute joins it
+    assert stored[shown[1]] == [["cap", []], ["body", ["blue"]]]
+    assert all(stored[r] == [["cap", []]] for r in shown[2:])
+    with write_session(factory) as s, pytest.raises(ConflictError, match="other content"):
+        campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=shown, entities=[("cap", [])],
+                                   unsure=False, client_id="g-extra-1", seconds_spent=None, extras={shown[0]: [("tag", [])]})
+
+
+def test_crop_entities_merge_additions_into_what_the_group_shares() -> None:
+    """Invariants of the merge: shared things first, an addition of a shared thing adds its attributes once, new things follow."""
+    shared = [("cap", ["red"]), ("label band", [])]
+    assert campaigns.crop_entities(shared, []) == shared
+    assert campaigns.crop_entities(shared, [("Cap", ["Red", "round"]), ("tag", [])]) == [("cap", ["red", "round"]), ("label band", []), ("tag", [])]
+    assert campaigns.crop_entities([], [("tag", ["yellow"])]) == [("tag", ["yellow"])]
+
+
+def test_undo_withdraws_the_whole_group_judgment_and_hands_the_group_back(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
+    ann = _person(factory, "ann")
+    with write_session(factory) as s:
+        task = campaigns.lease_group(s, campaign=grouped, person_id=ann)
+        assert task is not None
+        shown = [t.region_id for t in task.crops]
+        campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=shown[1:], entities=[("cap", ["red"])],
+                                   unsure=False, client_id="g-undo-1", seconds_spent=None, extras={shown[1]: [("tag", [])]})
+    with factory() as s:
+        before = dict(s.execute(select(CampaignRegion.region_id, CampaignRegion.n_labels).where(CampaignRegion.campaign_id == grouped.id)).all())
+    with write_session(factory) as s:
+        undone = campaigns.undo_last_submission(s, campaign=grouped, person_id=ann)
+    assert undone is not None and undone.group_id == task.group_id and sorted(undone.regions) == sorted(shown[1:]) and undone.text == "cap: red"
+    with factory() as s:
+        assert s.scalar(select(func.count()).select_from(Label).where(Label.person_id == ann)) == 0  # every crop's label, not only the last
+        assert s.scalar(select(func.count()).select_from(GroupLabel)) == 0
+        after = dict(s.execute(select(CampaignRegion.region_id, CampaignRegion.n_labels).where(CampaignRegion.campaign_id == grouped.id)).all())
+    assert all(after[r] == before[r] - 1 for r in shown[1:]) and all(after[r] == before[r] for r in after if r not in shown[1:])
+    with factory() as s:  # the same group is the person's again, with every crop it showed
+        held = campaigns.held_group(s, campaign=grouped, person_id=ann)
+    assert held is not None and held.group_id == task.group_id and [t.region_id for t in held.crops] == shown
+    with write_session(factory) as s, pytest.raises(ConflictError, match="undone"):  # a late retry of the undone submit stores nothing
+        campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=shown[1:], entities=[("cap", ["red"])],
+                                   unsure=False, client_id="g-undo-1", seconds_spent=None, extras={shown[1]: [("tag", [])]})
+    with write_session(factory) as s:
+        again = campaigns.save_group_label(s, campaign=grouped, person_id=ann, group_id=task.group_id, ticked=shown, entities=[("cap", [])],
+                                           unsure=False, client_id="g-undo-2", seconds_spent=None)
+    assert again.stored and sorted(again.labelled) == sorted(shown)
+    # A single label after it is undone alone; then the next undo takes the group judgment again.
+    with write_session(factory) as s:
+        single = campaigns.lease_tasks(s, campaign=grouped, person_id=ann, want=1)
+        assert single
+        campaigns.save_label(s, campaign=grouped, region_id=single[0].region_id, person_id=ann, entities=[("rim", [])], unsure=False,
+                             client_id="single-after", seconds_spent=None, require_lease=True)
+    with write_session(factory) as s:
+        first = campaigns.undo_last_submission(s, campaign=grouped, person_id=ann)
+        second = campaigns.undo_last_submission(s, campaign=grouped, person_id=ann)
+    assert first is not None and first.group_id is None and first.regions == (single[0].region_id,) and first.text == "rim"
+    assert second is not None and second.group_id == task.group_id and len(second.regions) == len(shown)
 
 
 def test_groups_keep_k_per_region_and_no_repeats(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
@@ -175,18 +247,37 @@ def test_group_pages_and_api_store_one_label_per_ticked_crop(client: TestClient,
     group = r.context["group"]  # type: ignore[attr-defined]
     assert group is not None and 'data-tick' in r.text
     ids = [c.region_id for c in group.crops]
-    r = client.post("/campaigns/1/groups/label", data={"csrf": csrf, "group_id": group.group_id, "client_id": "form-group-1", "labels": "cap: red",
-                                                       "tick": ids[:-1]}, follow_redirects=False)
+    form = {"csrf": csrf, "group_id": group.group_id, "client_id": "form-group-1", "labels": "cap: red", "tick": ids[:-1], "also_region": ids,
+            "also": ["tag: yellow"] + [""] * (len(ids) - 2) + ["rim"]}
+    bad = client.post("/campaigns/1/groups/label", data=form)  # the last crop is unticked but has an addition: re-shown, nothing lost
+    assert bad.status_code == 422 and "not ticked" in bad.text and 'value="tag: yellow"' in bad.text and 'value="cap: red"' in bad.text
+    r = client.post("/campaigns/1/groups/label", data={**form, "also": ["tag: yellow"] + [""] * (len(ids) - 1)}, follow_redirects=False)
+    assert r.status_code == 303, r.text
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        got = dict(s.execute(select(Label.region_id, Label.entities).where(Label.client_id.startswith("form-group-1/"))).all())
+    assert got[ids[0]] == [["cap", ["red"]], ["tag", ["yellow"]]] and all(got[r] == [["cap", ["red"]]] for r in ids[1:-1])
+    undo = client.post("/campaigns/1/undo", data={"csrf": csrf}, follow_redirects=True)  # the whole judgment comes back, on the group page
+    assert undo.status_code == 200 and undo.template.name == "annotate_group.html" and 'value="cap: red"' in undo.text  # type: ignore[attr-defined]
+    assert undo.context["group"].group_id == group.group_id  # type: ignore[attr-defined]
+    r = client.post("/campaigns/1/groups/label", data={**form, "client_id": "form-group-3", "also": [""] * len(ids)}, follow_redirects=False)
     assert r.status_code == 303, r.text
     bad = client.post("/campaigns/1/groups/label", data={"csrf": csrf, "group_id": 999, "client_id": "form-group-2", "labels": ";;", "tick": [1]})
     assert bad.status_code in (303, 422) and "Traceback" not in bad.text
     api = client.post("/api/campaigns/1/groups/next", headers={"X-CSRF-Token": csrf}).json()
     if api["group"] is not None:
         g = api["group"]
-        body = {"client_id": "api-group-1", "entities": [{"entity": "body", "attributes": ["blue"]}], "ticked": [c["region_id"] for c in g["crops"]]}
+        body = {"client_id": "api-group-1", "entities": [{"entity": "body", "attributes": ["blue"]}], "ticked": [c["region_id"] for c in g["crops"]],
+                "also": [{"region_id": g["crops"][0]["region_id"], "entities": [{"entity": "tag", "attributes": []}]}]}
         first = client.post(f"/api/campaigns/1/groups/{g['group_id']}/labels", json=body, headers={"X-CSRF-Token": csrf})
         again = client.post(f"/api/campaigns/1/groups/{g['group_id']}/labels", json=body, headers={"X-CSRF-Token": csrf})
         assert first.status_code == 201 and first.json()["stored"] and again.status_code == 201 and not again.json()["stored"]
+        with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+            assert s.scalar(select(Label.entities).where(Label.client_id == f"api-group-1/{g['crops'][0]['region_id']}")) == [["body", ["blue"]], ["tag", []]]
+        twice = client.post(f"/api/campaigns/1/groups/{g['group_id']}/labels", json={**body, "client_id": "api-group-3", "also": body["also"] * 2},
+                            headers={"X-CSRF-Token": csrf})
+        assert twice.status_code == 422 and "twice" in twice.json()["message"]
+        undone = client.post("/api/campaigns/1/undo", headers={"X-CSRF-Token": csrf}).json()
+        assert undone["group_id"] == g["group_id"] and sorted(undone["regions"]) == sorted(c["region_id"] for c in g["crops"])
         too_many = client.post(f"/api/campaigns/1/groups/{g['group_id']}/labels", json={**body, "client_id": "api-group-2", "ticked": list(range(40))},
                                headers={"X-CSRF-Token": csrf})
         assert too_many.status_code == 422
