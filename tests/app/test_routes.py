@@ -143,7 +143,7 @@ def test_json_api_next_label_retry_skip_undo(client: TestClient, campaign_id: in
     assert client.post(f"/api/campaigns/{campaign_id}/regions/{skipped}/skip", headers=h).status_code == 204
     assert next_task(client, campaign_id).json()["task"]["region_id"] not in (rid, skipped)
     undone = client.post(f"/api/campaigns/{campaign_id}/undo", headers=h).json()
-    assert undone == {"region_id": rid, "text": "Cap: red"}
+    assert undone == {"region_id": rid, "text": "Cap: red", "group_id": None, "regions": [rid]}
     assert next_task(client, campaign_id).json()["task"]["region_id"] == rid
     vocab = client.get(f"/api/campaigns/{campaign_id}/vocabulary").json()
     assert "red" in vocab["attributes"] and "torn" in vocab["attributes"]
