@@ -41,6 +41,8 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--seed", type=int, default=0)
     d.add_argument("--port", type=int, default=None)
     d.add_argument("--aggregation", choices=list(METHODS), default="majority", help="how the simulated labels become concepts")
+    d.add_argument("--group-size", type=int, default=12, metavar="N",
+                   help="simulated annotators label similar regions N at a time (8-16); 0: one region at a time")
     from .cli_models import add_model_parsers
 
     add_model_parsers(sub)
@@ -424,7 +426,8 @@ def _dispatch(args: argparse.Namespace) -> int:
     if args.command == "demo":
         from .demo import run_demo
 
-        summary = run_demo(args.out, size=args.size, cue=args.cue, seed=args.seed, annotators=args.simulate_annotators, method=args.aggregation)
+        summary = run_demo(args.out, size=args.size, cue=args.cue, seed=args.seed, annotators=args.simulate_annotators, method=args.aggregation,
+                           group_size=args.group_size)
         print(json.dumps(summary, indent=2))
         print(f"wrote {args.out / 'demo.json'}" + (f" and {args.out / 'rules.csv'}" if args.simulate_annotators else ""))
         if not args.no_serve:

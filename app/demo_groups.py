@@ -1,7 +1,8 @@
 """The demo's simulated annotators labelling a campaign in groups, through the same functions the group page uses.
 
 Each person takes the next group handed to them (leases and all), judges it from the part masks of
-its crops only (demo_data.group_annotators), and submits; crops left over after the groups (unticked
+its crops only (demo_data.group_annotators; never from other people's answers), and submits what the
+group shares with what each ticked crop shows besides; crops left over after the groups (unticked
 by everyone, or whose group a person skipped) are labelled one at a time, as a person would on the
 single-crop page.
 """
@@ -70,7 +71,8 @@ def simulate_group_annotations(factory: sessionmaker[Session], project_dir: Path
                     continue
                 result = campaigns.save_group_label(s, campaign=c, person_id=ids[a.name], group_id=task.group_id,
                                                     ticked=[r for r, t in zip(crops, got.ticked) if t], entities=got.entities, unsure=False,
-                                                    client_id=f"simg-{campaign_id}-{task.group_id}-{a.name}", seconds_spent=None)
+                                                    client_id=f"simg-{campaign_id}-{task.group_id}-{a.name}", seconds_spent=None,
+                                                    extras={r: e for r, t, e in zip(crops, got.ticked, got.extras) if t and e})
                 judged += 1
                 from_groups += len(result.labelled)
     for a in crowd:

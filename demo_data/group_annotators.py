@@ -4,7 +4,9 @@ Each reads only the part masks under the crops shown to them (never other people
 see each crop's parts with their own accuracy, name the part most of the crops show (with the same
 synonyms and typos as on single crops), and untick the crops that do not show it, with a per-crop
 error model: a crop that does not fit stays ticked with probability ``miss_misfit`` (overlooked in a
-grid), and one that fits is unticked with probability ``drop_fit``.
+grid), and one that fits is unticked with probability ``drop_fit``. For each ticked crop that fits they add what
+else they saw in it (its other parts, with their attributes as on a single crop), each overlooked with probability
+``miss_other``: a crop's label is then what the group shares plus its own additions, as the app stores it.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ from .scenes import PARTS
 class GroupErrors:
     miss_misfit: float = 0.15  # a crop that does not show the named part is left ticked
     drop_fit: float = 0.03  # a crop that shows it is unticked anyway
+    miss_other: float = 0.1  # another part seen in a ticked crop is not added to that crop
 
 
 DEFAULT_ERRORS = GroupErrors()
@@ -30,8 +33,13 @@ DEFAULT_ERRORS = GroupErrors()
 
 @dataclass(frozen=True)
 class GroupJudgment:
-    entities: list[tuple[str, list[str]]]
+    entities: list[tuple[str, list[str]]]  # what the ticked crops share
     ticked: list[bool]  # per crop shown, in order
+    extras: list[list[tuple[str, list[str]]]]  # per crop shown: what it shows besides (empty for unticked ones)
+
+    def crop_label(self, i: int) -> list[tuple[str, list[str]]]:
+        """The label crop ``i`` gets (it must be ticked): what the group shares, then its own additions."""
+        return [*self.entities, *self.extras[i]]
 
 
 def _word(part: str, annotator: SimulatedAnnotator, rng: np.random.Generator) -> str:
@@ -66,4 +74,9 @@ def judge_group(annotator: SimulatedAnnotator, truths: Sequence[Sequence[str]], 
             mine = set(attrs.get(part, []))
             shared = mine if shared is None else shared & mine
     attrs_named = sorted(a for a in (shared or set()) if rng.random() < 0.8)
-    return GroupJudgment([(_word(part, annotator, rng), attrs_named)], ticked)
+    extras: list[list[tuple[str, list[str]]]] = []
+    for fit, tick, parts, attrs in zip(fits, ticked, seen, attributes):
+        others = [p for p in dict.fromkeys(parts) if p != part] if fit and tick else []
+        extras.append([(_word(p, annotator, rng), [a for a in attrs.get(p, []) if rng.random() < 0.8])
+                       for p in others if rng.random() >= errors.miss_other])
+    return GroupJudgment([(_word(part, annotator, rng), attrs_named)], ticked, extras)

@@ -317,6 +317,21 @@ def test_simulated_group_annotators_fill_every_place_through_the_app(project: Pa
     assert got.group_judgments > 0 and got.labels_from_groups == provenance > 0
     assert len(per_region) == n_regions and set(per_region.values()) == {2}  # every region has its k labels, none more
     assert got.labels_from_groups + got.single_labels == sum(per_region.values())
+    # Grouped crops keep their other parts: labels from groups name about as many of a region's true parts as the same people
+    # labelling every region one at a time would (simulated in memory here, with the same error model for a single crop).
+    from app.demo import region_truths
+    from demo_data.annotators import demo_crowd, simulate_label
+
+    with factory() as s:
+        truths = {r: (set(t), scene["parts"]) for r, t, scene in region_truths(s, project, small_scenes, grouped)}
+        rows = s.execute(select(Label.region_id, Label.entities).where(Label.campaign_id == grouped.id, Label.group_label_id.is_not(None))).all()
+    rng = np.random.default_rng(7)
+    several = {r for r, (t, _) in truths.items() if len(t) >= 2}  # regions that show more than one part: where a group could lose some
+    grouped_recall = float(np.mean([len(truths[r][0] & {str(e[0]) for e in ents}) / len(truths[r][0]) for r, ents in rows if r in several]))
+    single_recall = float(np.mean([len(truths[r][0] & {e for e, _ in simulate_label(a, sorted(truths[r][0]), truths[r][1], rng)}) / len(truths[r][0])
+                                   for r in several for a in demo_crowd(3, 1)]))
+    print(f"true parts named per label: from groups {grouped_recall:.2f}, one crop at a time {single_recall:.2f}")
+    assert grouped_recall > single_recall - 0.1
 
 
 def test_group_error_model_misses_misfits_at_its_rate() -> None:
@@ -376,3 +391,27 @@ def test_a_class_closed_early_hands_out_no_crop_in_groups(factory, grouped: camp
                                              entities=[("body", [])], unsure=False, client_id=f"closed-{task.group_id}", seconds_spent=None)
             assert got.lost == ()
     assert seen and closed not in seen and set(seen) <= set(classes)
+
+
+def test_simulated_group_labels_keep_each_crops_other_parts() -> None:
+    """Invented data (an invariant of the simulation): a careful annotator's label of a ticked crop that fits names exactly that
+    crop's parts, what the group shares and what it shows besides; with ``miss_other`` the other parts go missing at that rate."""
+    from demo_data.annotators import SimulatedAnnotator
+    from demo_data.group_annotators import GroupErrors, judge_group
+
+    rng = np.random.default_rng(0)
+    perfect = SimulatedAnnotator("p", accuracy=1.0, synonym_rate=0.0, typo_rate=0.0)
+    truths = [["body", "cap"], ["body", "tag"], ["body"], ["body", "cap", "label band"], ["rim"]]
+    attrs = [{"cap": ["red"]}, {"tag": ["yellow"]}, {}, {"cap": ["blue"]}, {}]
+    got = judge_group(perfect, truths, attrs, rng, GroupErrors(miss_misfit=0.0, drop_fit=0.0, miss_other=0.0))
+    assert got is not None and got.entities[0][0] == "body" and got.ticked == [True, True, True, True, False]
+    for i in range(4):
+        assert sorted(e for e, _ in got.crop_label(i)) == sorted(truths[i])
+    assert got.extras[4] == []
+    named = total = 0
+    for _ in range(300):
+        got = judge_group(perfect, truths, attrs, rng, GroupErrors(miss_misfit=0.0, drop_fit=0.0, miss_other=0.3))
+        assert got is not None
+        named += sum(len(got.extras[i]) for i in range(4))
+        total += 4  # cap, tag, cap, label band: the other parts of the four fitting crops
+    assert abs(named / total - 0.7) < 0.04  # binomial sd about 0.013
