@@ -178,7 +178,11 @@ def alpha_bootstrap(counts: npt.ArrayLike | sparse.csr_matrix, *, n_boot: int = 
     resample costs the number of distinct rows, not of units, and the interval is the units'
     bootstrap interval all the same. With many distinct rows every unit gets a weight per resample.
     """
-    pairable = _pairable(_as_counts(counts))
+    return _bootstrap_pairable(_pairable(_as_counts(counts)), n_boot=n_boot, level=level, seed=seed)
+
+
+def _bootstrap_pairable(pairable: Counts, *, n_boot: int, level: float, seed: int) -> tuple[float, float]:
+    """:func:`alpha_bootstrap` of a table already cut to its pairable units."""
     u = pairable.shape[0]
     if u < 2:
         raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
@@ -216,8 +220,11 @@ def alpha_bootstrap(counts: npt.ArrayLike | sparse.csr_matrix, *, n_boot: int = 
 def alpha_with_interval(counts: npt.ArrayLike | sparse.csr_matrix, *, n_boot: int = 1000, seed: int = 0) -> tuple[float | None, tuple[float, float] | None, str]:
     """Alpha, its bootstrap interval (None when ``n_boot`` is 0) and, where alpha is undefined, why (else "")."""
     try:
-        alpha = alpha_from_counts(counts)
-        return alpha, (alpha_bootstrap(counts, n_boot=n_boot, seed=seed) if n_boot else None), ""
+        pairable = _pairable(_as_counts(counts))
+        if pairable.shape[0] == 0:
+            raise InvalidInputError("no unit has two or more ratings; alpha is undefined.")
+        alpha = _alpha_from_counts(pairable)
+        return alpha, (_bootstrap_pairable(pairable, n_boot=n_boot, level=0.95, seed=seed) if n_boot else None), ""
     except InvalidInputError as exc:
         return None, None, str(exc)
 

@@ -408,11 +408,16 @@ def presence_agreement(votes: PresenceVotes, *, concepts: Sequence[str] | None =
     m = votes.raters.astype(np.float64)
     wanted = range(len(votes.concepts)) if concepts is None else [votes.concepts.index(c) for c in concepts if c in votes.concepts]
     yes_pair = np.bincount(votes.vote_pair, weights=votes.vote_yes, minlength=len(votes.pair_region))
+    # Yes votes per (region, wanted concept), for all wanted concepts in one pass over the pairs.
+    slot = np.full(len(votes.concepts), -1, dtype=np.int64)
+    slot[list(wanted)] = np.arange(len(wanted))
+    at = slot[votes.pair_concept]
+    sel = at >= 0
+    yes_all = np.bincount(votes.pair_region[sel] * max(len(wanted), 1) + at[sel], weights=yes_pair[sel],
+                          minlength=len(votes.regions) * max(len(wanted), 1)).reshape(len(votes.regions), max(len(wanted), 1))
     out = []
-    for c in wanted:
-        sel = votes.pair_concept == c
-        yes = np.zeros(len(votes.regions))
-        np.add.at(yes, votes.pair_region[sel], yes_pair[sel])
+    for k, c in enumerate(wanted):
+        yes = yes_all[:, k]
         counts = np.column_stack([m - yes, yes])
         named = int((yes > 0).sum())
         alpha, interval, note = alpha_with_interval(counts, n_boot=n_boot, seed=seed)
