@@ -20,6 +20,13 @@ pooling to 1x1), the backward pass stops at the pooled values (analysis.layer_ta
 an amax's backward on the whole map used to cost almost as much as the two small convolutions
 before it. TorchScript's layers after the tap are differentiated by eager autograd, not by its
 symbolic derivatives (SiLU's is five elementwise operations where eager autograd uses one kernel).
+Attention after the tap runs as analysis.attention_rows: below a class-token head only the class
+token's query row carries gradient, and its backward works on that row alone.
+
+Both sides run the same kernels before the layer: plain inference and the saliency stage's
+gradient-free part both take nn.MultiheadAttention's fused path in an eager or TorchScript model
+(it applies whenever nothing records gradients), and the same decomposed attention in an exported
+program.
 """
 
 from __future__ import annotations
@@ -111,16 +118,94 @@ def measure(model: LoadedModel, batches: int) -> tuple[float, float, float]:
     return max(plain_rates), max(sal_rates), statistics.median(sal_rates) / statistics.median(plain_rates)
 
 
+def compare_attention(entry: object, batches: int) -> list[list[object]]:
+    """The ViT's saliency stage with torch's attention backward and with the row-sparse one, against plain
+    inference, in one process, batch by batch: rows of (format, side, best img/CPU-s, best ratio, median ratio).
+
+    "torch's attention" swaps the tail's attention back to torch's own (analysis.layer_taps'
+    hooks for it), for a second copy of the model loaded that way; nothing else differs."""
+    from analysis import layer_taps
+
+    rows: list[list[object]] = []
+    x = torch.randn(BATCH, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(1))
+    originals = (layer_taps._attention_with_rows, layer_taps._mha_with_rows, layer_taps._ts_attention_rows)
+
+    def torch_attention(*args: object, **kwargs: object) -> torch.Tensor:
+        return torch.nn.functional.scaled_dot_product_attention(*args, **kwargs)  # type: ignore[arg-type]
+
+    def swap(off: bool) -> None:
+        if off:
+            layer_taps._attention_with_rows, layer_taps._mha_with_rows = torch_attention, lambda: None  # type: ignore[assignment]
+            layer_taps._ts_attention_rows = lambda *_a: None  # type: ignore[assignment]
+        else:
+            layer_taps._attention_with_rows, layer_taps._mha_with_rows, layer_taps._ts_attention_rows = originals
+
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        files = _save_all(entry, _build(entry), folder)
+        for fmt in FORMATS:
+            path, factory = files[fmt]
+            models = []
+            for off in (True, False):
+                swap(off)
+                if factory:
+                    importlib.import_module("benchmarks.model_zoo")._Factory.model = _build(entry)
+                    models.append(load_model(path, folder / "sidecar.json", factory="benchmarks.model_zoo:bench_factory"))
+                else:
+                    models.append(load_model(path, folder / "sidecar.json"))
+            swap(False)
+
+            def plain(model: LoadedModel = models[1]) -> None:
+                with torch.inference_mode():
+                    model.module(x)
+
+            def torch_side(model: LoadedModel = models[0]) -> None:
+                swap(True)
+                try:
+                    compute_saliency(model, x)
+                finally:
+                    swap(False)
+
+            def rows_side(model: LoadedModel = models[1]) -> None:
+                compute_saliency(model, x)
+
+            sides = {"plain": plain, "torch's attention backward": torch_side, "row-sparse attention": rows_side}
+            for fn in sides.values():
+                fn()
+                fn()
+            times: dict[str, list[float]] = {k: [] for k in sides}
+            for _ in range(batches):
+                for k, fn in sides.items():
+                    t = time.process_time()
+                    fn()
+                    times[k].append(time.process_time() - t)
+            best, median = min(times["plain"]), statistics.median(times["plain"])
+            for k, v in times.items():
+                rows.append([fmt, k, BATCH / min(v), best / min(v), median / statistics.median(v)])
+            print(f"{fmt}: done", flush=True)
+    return rows
+
+
 def main(argv: list[str] | None = None) -> str:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="3 batches per measurement instead of 8")
     p.add_argument("--only", nargs="*", help="zoo model names")
+    p.add_argument("--compare-attention", type=int, metavar="BATCHES", default=0,
+                   help="instead: the ViT with torch's attention backward and with the row-sparse one, BATCHES alternating batches each")
     args = p.parse_args(argv)
     batches = 3 if args.quick else 8
     threads = torch.get_num_threads()
     torch.set_num_threads(1)
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     print(f"torch {torch.__version__}, 1 thread, CPU time, batch {BATCH}, {SIZE} px, load average at start {load:.1f} on {os.cpu_count()} CPUs", flush=True)
+    if args.compare_attention:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            found = compare_attention(next(e for e in _zoo() if e.name == "vit"), args.compare_attention)  # type: ignore[attr-defined]
+        torch.set_num_threads(threads)
+        load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+        print(f"load average at the end {load:.1f}", flush=True)
+        return print_table(["format", "side", "img/CPU-s (best)", "/ plain (best)", "/ plain (medians)"], found)
     rows = []
     with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
         warnings.simplefilter("ignore")
