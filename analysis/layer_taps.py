@@ -466,14 +466,17 @@ def _ts_pool_scale(node: torch._C.Node) -> str | None:
     return _GLOBAL_POOLS[kind]
 
 
-def _ts_attention_rows(graph: torch._C.Graph, block: torch._C.Block) -> None:
-    """Make the plain attention calls in ``block`` (and blocks inside it) run as
-    ``heedmap::attention_rows``, whose backward works only on query rows that carry gradient (see
-    :mod:`analysis.attention_rows`; the forward is the same attention)."""
+def _ts_attention_rows(graph: torch._C.Graph, block: torch._C.Block, leaf: torch._C.Value, seen: list[bool]) -> None:
+    """Make the plain attention calls after the tap's ``leaf`` (``seen[0]`` turns True there; blocks
+    inside nodes are walked in order) run as ``heedmap::attention_rows``, whose backward works only
+    on query rows that carry gradient (see :mod:`analysis.attention_rows`; the forward is the same
+    attention). Those before it keep torch's operator: a Python-registered one costs more per call."""
     for node in list(block.nodes()):
+        if node.outputsSize() == 1 and node.output().unique() == leaf.unique():
+            seen[0] = True
         for inner in node.blocks():
-            _ts_attention_rows(graph, inner)
-        if node.kind() != "aten::scaled_dot_product_attention" or node.outputsSize() != 1:
+            _ts_attention_rows(graph, inner, leaf, seen)
+        if not seen[0] or node.kind() != "aten::scaled_dot_product_attention" or node.outputsSize() != 1:
             continue
         inputs = list(node.inputs())
         if len(inputs) not in (7, 8):
@@ -601,7 +604,7 @@ class ScriptGraph:
                 if scale is not None and use.user.outputsSize() == 1:
                     pooled.append(_ts_leaf_after(graph, use.user.output()))
                     scales.append(scale)
-        _ts_attention_rows(graph, graph.block())
+        _ts_attention_rows(graph, graph.block(), leaf, [False])
         fn = self._function(graph, [leaf, *pooled])
         return ScriptTap(fn, self.module._c, name, tuple(scales)), None
 
