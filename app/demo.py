@@ -163,7 +163,7 @@ def run_demo(out: Path, *, size: str = "default", cue: CueName = "tag", seed: in
     annotators label similar regions in groups of ``group_size`` (8-16; `heedmap demo` uses 12), or one region at a time with 0
     (the default here, which the benchmarks built on the demo keep)."""
     if group_size and not 8 <= group_size <= 16:
-        raise InvalidRequestError(f"group_size must be 8-16 crops, or 0 for one region at a time; got {group_size}.")
+        raise InvalidRequestError(f"the group size (--group-size) must be 8-16 crops, or 0 for one region at a time; got {group_size}.")
     timings: dict[str, float] = {}
     t = time.perf_counter()
     sz = SIZES[size]

@@ -415,3 +415,10 @@ def test_simulated_group_labels_keep_each_crops_other_parts() -> None:
         named += sum(len(got.extras[i]) for i in range(4))
         total += 4  # cap, tag, cap, label band: the other parts of the four fitting crops
     assert abs(named / total - 0.7) < 0.04  # binomial sd about 0.013
+
+
+def test_demo_refuses_a_group_size_off_the_screen_before_writing_anything(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "demo"
+    assert main(["demo", "--no-serve", "--group-size", "5", "--out", str(out)]) == 1
+    err = capsys.readouterr().err
+    assert "--group-size" in err and "8-16" in err and "Traceback" not in err and not out.exists()
