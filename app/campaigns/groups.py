@@ -81,6 +81,7 @@ class Undone:
     text: str  # the label's text (a group's: what its crops share) to show again for editing
     group_id: int | None
     regions: tuple[int, ...]  # every region whose label from this person was withdrawn
+    additions: tuple[tuple[int, str], ...] = ()  # a group's crops: what each showed besides what the group shares, as text
 
 
 def has_groups(s: Session, campaign_id: int) -> bool:
@@ -266,6 +267,21 @@ def crop_entities(shared: Entities, extra: Entities) -> Entities:
     return out
 
 
+def crop_additions(shared: Entities, label: Entities) -> Entities:
+    """What a crop's label holds beyond what its group shares (the inverse of :func:`crop_entities`)."""
+    have = {normalise_label(e): {normalise_label(a) for a in attrs} for e, attrs in shared}
+    out: list[tuple[str, list[str]]] = []
+    for e, attrs in label:
+        key = normalise_label(e)
+        if key not in have:
+            out.append((e, list(attrs)))
+        else:
+            extra = [a for a in attrs if normalise_label(a) not in have[key]]
+            if extra:
+                out.append((e, extra))
+    return out
+
+
 def _stored(entities: object) -> list[tuple[str, list[str]]]:
     return [(str(e[0]), [str(a) for a in e[1]]) for e in entities or []]  # type: ignore[attr-defined]
 
@@ -379,6 +395,8 @@ def undo_last_submission(s: Session, *, campaign: CampaignInfo, person_id: int, 
         single = undo_last(s, campaign=campaign, person_id=person_id, now=now)
         return None if single is None else Undone(single[0], single[1], None, (single[0],))
     labels = list(s.scalars(select(Label).where(Label.group_label_id == gl.id).order_by(Label.region_id)))
+    additions = tuple((label.region_id, format_label_text(extra)) for label in labels
+                      if (extra := crop_additions(_stored(gl.entities), _stored(label.entities))))
     for label in labels:
         withdraw_label(s, campaign=campaign, label=label, now=now)
     text = format_label_text(_stored(gl.entities))
@@ -398,7 +416,7 @@ def undo_last_submission(s: Session, *, campaign: CampaignInfo, person_id: int, 
         s.execute(insert(Lease), [{"campaign_id": campaign.id, "region_id": r, "person_id": person_id, "created_at": now, "expires_at": expires}
                                   for r in crops])
         s.execute(insert(GroupLease).values(campaign_id=campaign.id, person_id=person_id, group_id=group_id, expires_at=expires))
-    return Undone(last.region_id if labels else shown[0], text, group_id, tuple(label.region_id for label in labels))
+    return Undone(last.region_id if labels else shown[0], text, group_id, tuple(label.region_id for label in labels), additions)
 
 
 @dataclass(frozen=True)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import Form, Request
+from fastapi import Form, Query, Request
 from fastapi.responses import RedirectResponse, Response
 from pydantic import BaseModel, Field
 from sqlalchemy.orm import Session
@@ -103,9 +103,17 @@ def _page(request: Request, s: Session, viewer: Viewer, c: CampaignInfo, *, type
 
 
 @router.get("")
-def group_page(request: Request, campaign_id: int, s: SessionDep, viewer: AnnotatorDep, notice: str = "", text: str = "", empty: bool = False) -> Response:
-    """Similar crops at once: name what they share, untick those that do not fit (taking a group is a POST to /next)."""
-    return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), typed=text[:1000], notice=notice[:200], offer=not empty)
+def group_page(request: Request, campaign_id: int, s: SessionDep, viewer: AnnotatorDep, notice: str = "", text: str = "", empty: bool = False,
+               also: Annotated[list[str] | None, Query(max_length=MAX_GROUP_CROPS)] = None) -> Response:
+    """Similar crops at once: name what they share, untick those that do not fit (taking a group is a POST to /next).
+    ``text`` and ``also`` (``region:text``, one per crop) fill the boxes again after an undo."""
+    typed_also: dict[int, str] = {}
+    for item in also or []:
+        region, _, added = item.partition(":")
+        if region.isdigit() and len(region) <= 12:
+            typed_also[int(region)] = added[:1000]
+    return _page(request, s, viewer, campaign_for(s, viewer, campaign_id), typed=text[:1000], notice=notice[:200], offer=not empty,
+                 also=typed_also)
 
 
 @router.post("/next")

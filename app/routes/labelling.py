@@ -226,7 +226,8 @@ def undo_page(campaign_id: int, s: WriteSessionDep, viewer: AnnotatorDep) -> Res
                                 status_code=303)
     if got.group_id is not None:
         notice = f"your judgment of this group was withdrawn ({len(got.regions)} crop labels); judge it again."
-        return RedirectResponse(f"/campaigns/{campaign_id}/groups?{urlencode({'text': got.text, 'notice': notice})}", status_code=303)
+        query = [("text", got.text), ("notice", notice), *(("also", f"{r}:{text}") for r, text in got.additions)]
+        return RedirectResponse(f"/campaigns/{campaign_id}/groups?{urlencode(query)}", status_code=303)
     return RedirectResponse(f"/campaigns/{campaign_id}/label?{urlencode({'text': got.text})}", status_code=303)
 
 

@@ -123,6 +123,10 @@ def test_crop_entities_merge_additions_into_what_the_group_shares() -> None:
     assert campaigns.crop_entities(shared, []) == shared
     assert campaigns.crop_entities(shared, [("Cap", ["Red", "round"]), ("tag", [])]) == [("cap", ["red", "round"]), ("label band", []), ("tag", [])]
     assert campaigns.crop_entities([], [("tag", ["yellow"])]) == [("tag", ["yellow"])]
+    from app.campaigns.groups import crop_additions
+
+    extra = [("Cap", ["Red", "round"]), ("tag", [])]
+    assert crop_additions(shared, campaigns.crop_entities(shared, extra)) == [("cap", ["round"]), ("tag", [])]
 
 
 def test_undo_withdraws_the_whole_group_judgment_and_hands_the_group_back(factory, grouped: campaigns.CampaignInfo) -> None:  # type: ignore[no-untyped-def]
@@ -138,6 +142,7 @@ def test_undo_withdraws_the_whole_group_judgment_and_hands_the_group_back(factor
     with write_session(factory) as s:
         undone = campaigns.undo_last_submission(s, campaign=grouped, person_id=ann)
     assert undone is not None and undone.group_id == task.group_id and sorted(undone.regions) == sorted(shown[1:]) and undone.text == "cap: red"
+    assert undone.additions == ((shown[1], "tag"),)  # what that crop showed besides comes back to edit too
     with factory() as s:
         assert s.scalar(select(func.count()).select_from(Label).where(Label.person_id == ann)) == 0  # every crop's label, not only the last
         assert s.scalar(select(func.count()).select_from(GroupLabel)) == 0
@@ -259,6 +264,9 @@ def test_group_pages_and_api_store_one_label_per_ticked_crop(client: TestClient,
     undo = client.post("/campaigns/1/undo", data={"csrf": csrf}, follow_redirects=True)  # the whole judgment comes back, on the group page
     assert undo.status_code == 200 and undo.template.name == "annotate_group.html" and 'value="cap: red"' in undo.text  # type: ignore[attr-defined]
     assert undo.context["group"].group_id == group.group_id  # type: ignore[attr-defined]
+    assert 'value="tag: yellow"' in undo.text  # the first crop's own addition is back in its box
+    many = client.get("/campaigns/1/groups", params={"also": [f"{i}:x" for i in range(40)]})
+    assert many.status_code == 422 and "Traceback" not in many.text
     r = client.post("/campaigns/1/groups/label", data={**form, "client_id": "form-group-3", "also": [""] * len(ids)}, follow_redirects=False)
     assert r.status_code == 303, r.text
     bad = client.post("/campaigns/1/groups/label", data={"csrf": csrf, "group_id": 999, "client_id": "form-group-2", "labels": ";;", "tick": [1]})
