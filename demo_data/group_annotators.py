@@ -6,7 +6,8 @@ synonyms and typos as on single crops), and untick the crops that do not show it
 error model: a crop that does not fit stays ticked with probability ``miss_misfit`` (overlooked in a
 grid), and one that fits is unticked with probability ``drop_fit``. For each ticked crop that fits they add what
 else they saw in it (its other parts, with their attributes as on a single crop), each overlooked with probability
-``miss_other``: a crop's label is then what the group shares plus its own additions, as the app stores it.
+``miss_other`` (and the named part's own attributes the group's name left out, such as its colour in that crop): a
+crop's label is then what the group shares plus its own additions, as the app stores it.
 """
 
 from __future__ import annotations
@@ -38,8 +39,16 @@ class GroupJudgment:
     extras: list[list[tuple[str, list[str]]]]  # per crop shown: what it shows besides (empty for unticked ones)
 
     def crop_label(self, i: int) -> list[tuple[str, list[str]]]:
-        """The label crop ``i`` gets (it must be ticked): what the group shares, then its own additions."""
-        return [*self.entities, *self.extras[i]]
+        """The label crop ``i`` gets (it must be ticked): what the group shares, then its own additions (an addition of the
+        shared thing adds its attributes to it, as the app stores it)."""
+        out = [(e, list(a)) for e, a in self.entities]
+        for e, attrs in self.extras[i]:
+            same = [k for k, (name, _) in enumerate(out) if name == e]
+            if same:
+                out[same[0]][1].extend(a for a in attrs if a not in out[same[0]][1])
+            else:
+                out.append((e, list(attrs)))
+        return out
 
 
 def _word(part: str, annotator: SimulatedAnnotator, rng: np.random.Generator) -> str:
@@ -74,9 +83,16 @@ def judge_group(annotator: SimulatedAnnotator, truths: Sequence[Sequence[str]], 
             mine = set(attrs.get(part, []))
             shared = mine if shared is None else shared & mine
     attrs_named = sorted(a for a in (shared or set()) if rng.random() < 0.8)
+    word = _word(part, annotator, rng)
     extras: list[list[tuple[str, list[str]]]] = []
     for fit, tick, parts, attrs in zip(fits, ticked, seen, attributes):
-        others = [p for p in dict.fromkeys(parts) if p != part] if fit and tick else []
-        extras.append([(_word(p, annotator, rng), [a for a in attrs.get(p, []) if rng.random() < 0.8])
-                       for p in others if rng.random() >= errors.miss_other])
-    return GroupJudgment([(_word(part, annotator, rng), attrs_named)], ticked, extras)
+        mine: list[tuple[str, list[str]]] = []
+        if fit and tick:
+            # The named part's own attributes that the group's name left out (its colour in this crop), then its other parts.
+            own = [a for a in attrs.get(part, []) if a not in attrs_named and rng.random() < 0.8]
+            if own and rng.random() >= errors.miss_other:
+                mine.append((word, own))
+            mine += [(_word(p, annotator, rng), [a for a in attrs.get(p, []) if rng.random() < 0.8])
+                     for p in dict.fromkeys(parts) if p != part and rng.random() >= errors.miss_other]
+        extras.append(mine)
+    return GroupJudgment([(word, attrs_named)], ticked, extras)
