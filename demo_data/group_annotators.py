@@ -86,13 +86,13 @@ def judge_group(annotator: SimulatedAnnotator, truths: Sequence[Sequence[str]], 
     word = _word(part, annotator, rng)
     extras: list[list[tuple[str, list[str]]]] = []
     for fit, tick, parts, attrs in zip(fits, ticked, seen, attributes):
-        mine: list[tuple[str, list[str]]] = []
+        added: list[tuple[str, list[str]]] = []
         if fit and tick:
             # The named part's own attributes that the group's name left out (its colour in this crop), then its other parts.
             own = [a for a in attrs.get(part, []) if a not in attrs_named and rng.random() < 0.8]
             if own and rng.random() >= errors.miss_other:
-                mine.append((word, own))
-            mine += [(_word(p, annotator, rng), [a for a in attrs.get(p, []) if rng.random() < 0.8])
+                added.append((word, own))
+            added += [(_word(p, annotator, rng), [a for a in attrs.get(p, []) if rng.random() < 0.8])
                      for p in dict.fromkeys(parts) if p != part and rng.random() >= errors.miss_other]
-        extras.append(mine)
+        extras.append(added)
     return GroupJudgment([(word, attrs_named)], ticked, extras)
