@@ -100,27 +100,29 @@ def campaign_progress(s: Session, campaign: CampaignInfo) -> tuple[list[Annotato
     rules, _ = synonym_rules(s, campaign.id)
     answers = check_answers(s, campaign.id)
     classes = region_classes(s, campaign.id)
-    per: dict[str, dict[str, list[float]]] = {}
-    for name, region, ents, unsure, seconds in s.execute(
-        select(Person.name, Label.region_id, Label.entities, Label.unsure, Label.seconds_spent).join(Person, Person.id == Label.person_id)
-        .where(Label.campaign_id == campaign.id)
-    ):
-        p = per.setdefault(name, {"labels": [], "unsure": [], "seconds": [], "checks": []})
-        p["labels"].append(1)
-        p["unsure"].append(float(bool(unsure)))
-        if seconds is not None:
-            p["seconds"].append(float(seconds))
-        if region in answers:
+    # Counts in the database; the stored answers are decoded only for labels of check items.
+    counts = {name: (int(n), int(unsure or 0)) for name, n, unsure in s.execute(
+        select(Person.name, func.count(), func.sum(case((Label.unsure, 1), else_=0))).join(Person, Person.id == Label.person_id)
+        .where(Label.campaign_id == campaign.id).group_by(Person.name))}
+    seconds: dict[str, list[float]] = {}
+    for name, spent in s.execute(select(Person.name, Label.seconds_spent).join(Person, Person.id == Label.person_id)
+                                 .where(Label.campaign_id == campaign.id, Label.seconds_spent.is_not(None))):
+        if spent is not None:
+            seconds.setdefault(name, []).append(float(spent))
+    checks: dict[str, list[float]] = {}
+    if answers:
+        for name, region, ents in s.execute(select(Person.name, Label.region_id, Label.entities).join(Person, Person.id == Label.person_id)
+                                            .where(Label.campaign_id == campaign.id, Label.region_id.in_(list(answers)))):
             given = Judgment(region, name, entities_of(ents))
-            p["checks"].append(entity_overlap(answers[region], given, rules=rules, cls=classes.get(region)))
+            checks.setdefault(name, []).append(entity_overlap(answers[region], given, rules=rules, cls=classes.get(region)))
     skips = dict(s.execute(select(Person.name, func.count()).join(Skip, Skip.person_id == Person.id).where(Skip.campaign_id == campaign.id).group_by(Person.name)).all())
-    people = sorted(set(per) | set(skips))
+    people = sorted(set(counts) | set(skips))
     annotators = [
         AnnotatorProgress(
-            n, len(per.get(n, {}).get("labels", [])), int(skips.get(n, 0)), int(sum(per.get(n, {}).get("unsure", []))),
-            statistics.median(per[n]["seconds"]) if n in per and per[n]["seconds"] else None,
-            len(per.get(n, {}).get("checks", [])),
-            statistics.fmean(per[n]["checks"]) if n in per and per[n]["checks"] else None,
+            n, counts.get(n, (0, 0))[0], int(skips.get(n, 0)), counts.get(n, (0, 0))[1],
+            statistics.median(seconds[n]) if seconds.get(n) else None,
+            len(checks.get(n, [])),
+            statistics.fmean(checks[n]) if checks.get(n) else None,
         )
         for n in people
     ]
