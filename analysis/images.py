@@ -86,17 +86,22 @@ def _unreadable_mode(im: Image.Image, path: Path) -> str | None:
     return None
 
 
+def _check_size(im: Image.Image, path: Path, max_pixels: int) -> tuple[int, int]:
+    width, height = im.size
+    if width * height > max_pixels:
+        raise ImageInputError(
+            f"{path} is {width}x{height} = {width * height:,} pixels, over the limit of {max_pixels:,}; "
+            "downscale it or raise --max-pixels."
+        )
+    return width, height
+
+
 def check_image(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> tuple[int, int]:
     """Return (width, height), upright after its EXIF orientation, after checking the file opens,
     is within the pixel limit and has a pixel format heedmap reads correctly."""
     try:
         with Image.open(path) as im:
-            width, height = im.size
-            if width * height > max_pixels:
-                raise ImageInputError(
-                    f"{path} is {width}x{height} = {width * height:,} pixels, over the limit of {max_pixels:,}; "
-                    "downscale it or raise --max-pixels."
-                )
+            width, height = _check_size(im, Path(path), max_pixels)
             im.verify()
         with Image.open(path) as im:  # verify() leaves the image unusable; open again for orientation and mode
             orientation = im.getexif().get(0x0112, 1)
@@ -137,13 +142,27 @@ def as_rgb(im: Image.Image, path: Path) -> Image.Image:
 
 def read_rgb(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> Image.Image:
     """Open an image as 8-bit RGB (see :func:`as_rgb`), refusing missing, corrupt, oversized and
-    misreadable files with ImageInputError."""
-    check_image(path, max_pixels=max_pixels)
+    misreadable files with ImageInputError (the same checks and messages as :func:`check_image`).
+
+    The pixels are decoded once: the size is checked from the header, the file's checksums by
+    ``verify()``, and the orientation is read after decoding (a PNG keeps it after its pixels, so
+    asking for it first would decode the image twice).
+    """
     try:
         with Image.open(path) as im:
+            _check_size(im, Path(path), max_pixels)
+            im.verify()
+        with Image.open(path) as im:
+            im.load()
             return as_rgb(im, Path(path))
-    except (OSError, SyntaxError, ValueError) as exc:
-        raise ImageInputError(f"{path} could not be decoded ({exc}).") from None
+    except ImageInputError:
+        raise
+    except FileNotFoundError:
+        raise ImageInputError(f"{path} does not exist.") from None
+    except Image.DecompressionBombError:
+        raise ImageInputError(f"{path} is too large to decode safely; downscale it.") from None
+    except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
+        raise ImageInputError(f"{path} is not a readable image ({exc}).") from None
 
 
 def mean_fill(mean: tuple[float, float, float], *, channel_order: str = "RGB") -> tuple[int, int, int]:

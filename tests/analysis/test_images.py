@@ -71,3 +71,33 @@ def test_resize_policies_and_channel_order() -> None:
     # Letterbox pads with the mean colour, so the padding is zero after normalisation.
     padded = to_model_input([wide], size=(16, 16), mean=(0.4, 0.4, 0.4), std=std, resize="letterbox")
     assert float(padded[0, :, 0, :].abs().max()) < 0.01
+
+
+def test_model_input_is_bit_for_bit_the_normalisation_formula() -> None:
+    rng = np.random.default_rng(3)
+    pictures = [Image.fromarray(rng.integers(0, 256, (12, 10, 3), dtype=np.uint8)) for _ in range(5)]
+    mean, std = (0.485, 0.456, 0.406), (0.229, 0.224, 0.225)
+    for order in ("RGB", "BGR"):
+        got = to_model_input(pictures, size=(12, 10), mean=mean, std=std, channel_order=order)
+        # The formula in torch, one image at a time: x / 255 in float32, channels reordered, then (x - mean) / std.
+        x = torch.stack([torch.from_numpy(np.asarray(p, dtype=np.float32) / 255.0).permute(2, 0, 1) for p in pictures])
+        if order == "BGR":
+            x = x.flip(1)
+        want = (x - torch.tensor(mean).view(1, 3, 1, 1)) / torch.tensor(std).view(1, 3, 1, 1)
+        assert got.dtype == torch.float32 and got.is_contiguous() and torch.equal(got, want)
+
+
+def test_read_rgb_refuses_a_truncated_or_damaged_file_with_a_message(tmp_path: Path) -> None:
+    arr = np.random.default_rng(0).integers(0, 256, (40, 40, 3), dtype=np.uint8)
+    Image.fromarray(arr).save(tmp_path / "ok.png")
+    data = (tmp_path / "ok.png").read_bytes()
+    assert (np.asarray(read_rgb(tmp_path / "ok.png")) == arr).all()
+    (tmp_path / "cut.png").write_bytes(data[: len(data) // 2])
+    flipped = bytearray(data)
+    flipped[len(data) // 2] ^= 0xFF  # one damaged byte inside the pixel data: its checksum no longer matches
+    (tmp_path / "flip.png").write_bytes(bytes(flipped))
+    for name in ("cut.png", "flip.png"):
+        with pytest.raises(ImageInputError, match="not a readable image"):
+            read_rgb(tmp_path / name)
+    with pytest.raises(ImageInputError, match="over the limit"):
+        read_rgb(tmp_path / "ok.png", max_pixels=100)
