@@ -164,7 +164,8 @@ def extract_regions_batch(
     masks[totals <= 0] = False
     if not masks.any():
         return found, out_labels
-    components, count = ndimage.label(masks, structure=_EIGHT_PER_MAP)
+    components = np.empty(maps.shape, dtype=np.intp)  # the index type, so counting below needs no converted copy
+    count = int(ndimage.label(masks, structure=_EIGHT_PER_MAP, output=components))
     flat = components.ravel()
     masses = np.bincount(flat, weights=maps.ravel(), minlength=count + 1)[1:]
     areas = np.bincount(flat, minlength=count + 1)[1:]
