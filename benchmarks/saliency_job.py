@@ -12,7 +12,9 @@ Models: the demo CNN at 64 px on the demo generator's 64 px images, and a ResNet
 without gradients, nothing written. "plain, reads prefetched": the same with the next batch read on a
 second thread, for reference. "job": ``app.jobs.run_saliency`` into a fresh project (prediction,
 Grad-CAM, regions, the map shard and every row committed, fsynced); image registration is not counted.
-Each is run twice, alternating, and the faster run is kept, so load from others affects both sides.
+Each is run ``--rounds`` times (3), alternating, so load from others affects both sides; the table gives the
+best run of each and, beside it, the median of the per-round ratios (a round's job against the same round's
+prefetched plain), which moves less with the load.
 """
 
 from __future__ import annotations
@@ -123,21 +125,23 @@ def job_rate(model, records, project: Path) -> tuple[float, int, int, float]:  #
     return len(records) / took, report.regions, files, mb
 
 
-def speed_table(work: Path, sizes: dict[str, int]) -> str:
+def speed_table(work: Path, sizes: dict[str, int], *, rounds: int = 3) -> str:
     rows = []
     for arch, px, n in (("sorter_cnn", 64, sizes["cnn"]), ("resnet18", 224, sizes["resnet"])):
         records = _images(work, n, px)
         model = _model(arch, px)
         plain_rate(model, records[:BATCH])  # warm-up (page cache, allocator)
         plain, pre, job = [], [], []
-        for _ in range(2):
+        for _ in range(rounds):
             plain.append(plain_rate(model, records))
             job.append(job_rate(model, records, work / "project")[0])
             pre.append(plain_rate(model, records, prefetch=True))
         p, j, q = max(plain), max(job), max(pre)
-        rows.append([f"{arch} {px}px", n, p, q, j, j / p, j / q])
-        print(f"{arch} {px}px: plain {plain}, prefetched {pre}, job {job} img/s", flush=True)
-    return print_table(["model", "images", "plain img/s", "plain, reads prefetched img/s", "job img/s", "job / plain", "job / prefetched plain"], rows)
+        per_round = sorted(jr / qr for jr, qr in zip(job, pre))
+        rows.append([f"{arch} {px}px", n, p, q, j, j / p, j / q, per_round[len(per_round) // 2]])
+        print(f"{arch} {px}px: plain {plain}, prefetched {pre}, job {job} img/s; load average {os.getloadavg()[0]:.1f}", flush=True)
+    return print_table(["model", "images", "plain img/s", "plain, reads prefetched img/s", "job img/s", "job / plain", "job / prefetched plain",
+                        "median of rounds: job / prefetched plain"], rows)
 
 
 def files_table(work: Path, n: int) -> str:
@@ -152,17 +156,19 @@ def main(argv: list[str] | None = None) -> str:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="500 / 96 images and files at 2,000")
     p.add_argument("--files-only", type=int, default=None, metavar="N", help="only the files table, at N images")
+    p.add_argument("--rounds", type=int, default=3, help="alternating runs of each side (3)")
     p.add_argument("--work", type=Path, default=None, help="keep generated images here (reused by later runs)")
     args = p.parse_args(argv)
     torch.set_num_threads(2)
     with tempfile.TemporaryDirectory() as tmp:
         work = args.work or Path(tmp)
         work.mkdir(parents=True, exist_ok=True)
-        print(f"torch {torch.__version__}, {torch.get_num_threads()} threads, batch {BATCH}; load average {os.getloadavg()[0]:.1f}", flush=True)
+        print(f"torch {torch.__version__}, {torch.get_num_threads()} threads, batch {BATCH}, OMP_WAIT_POLICY {os.environ.get('OMP_WAIT_POLICY', 'unset')}; "
+              f"load average {os.getloadavg()[0]:.1f}", flush=True)
         if args.files_only:
             return files_table(work, args.files_only)
         sizes = {"cnn": 500, "resnet": 96} if args.quick else {"cnn": 2000, "resnet": 256}
-        speed = speed_table(work, sizes)
+        speed = speed_table(work, sizes, rounds=max(1, args.rounds))
         files = files_table(work, 2000 if args.quick else 20_000)
         return speed + "\n\n" + files
 
