@@ -29,6 +29,7 @@ from analysis.interventions import (
     InterventionResult,
     NotTestableError,
     ablation_test,
+    grow_by_colour,
     insertion_test,
     needs_recolour,
     plain_colours,
@@ -239,11 +240,17 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     index = model.classes.index(cls)
     label = f"{name} ({plan.note})" if plan.note else name
     plain_note = ""
-    if needs_recolour(masks):
-        # The concept's regions cover most of each image: covering has no room for a matched control. An
-        # attribute of an entity (green belt) is removed by recolouring it to the entity's plain look instead.
-        plain, plain_note = _plain_look(s, project, res, model, concepts[0]) if len(concepts) == 1 else (None, "recolouring takes one concept")
+    # An attribute of an entity (green belt) spans the entity, not only the salient pieces labelled: its masks
+    # are grown by colour to the rest of the entity before the policy looks at how much of the image they cover.
+    attribute = len(concepts) == 1 and concepts[0] in res.table.families
+    grown = grow_by_colour(x, masks) if attribute else masks
+    if needs_recolour(grown):
+        # Most of each image: covering has no room for a matched control. An attribute of an entity is removed
+        # by recolouring it to the entity's plain look instead.
+        plain, plain_note = (_plain_look(s, project, res, model, concepts[0]) if attribute else
+                             (None, "recolouring needs one concept that is an attribute of an entity (label it '<entity>: <attribute>')"))
         if plain is not None:
+            masks = grown
             bar = _bar(f"{cls} / {name} (recolour)") if progress else None
             recoloured = replace(recolour_test(model, x, masks, index, plain=plain, concept=f"{label} ({plain_note})", draws=draws, seed=seed, progress=bar),
                                  shared=not plan.alone)

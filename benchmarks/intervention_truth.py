@@ -33,6 +33,7 @@ from analysis.interventions import (
     InterventionResult,
     NotTestableError,
     ablation_test,
+    grow_by_colour,
     needs_recolour,
     plain_colours,
     plan_regions,
@@ -147,10 +148,15 @@ def _recolour(model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_],
     return recolour_test(model, x, masks, cls, plain=plain, concept="cue", draws=5, seed=seed, n_boot=2000, n_perm=5000)
 
 
-def _policy(cue: str, masks: npt.NDArray[np.bool_]) -> str:
-    """What the product's default policy runs: recolouring where the masks cover most of each image and the
-    cue is an attribute of an entity whose plain look is known (the green belt), else covering with the default fill."""
-    return "recolour" if cue == "belt" and needs_recolour(masks) else DEFAULT_FILLS[0]
+def _policy(cue: str, x: torch.Tensor, masks: npt.NDArray[np.bool_]) -> tuple[str, npt.NDArray[np.bool_]]:
+    """What the product's default policy runs, and on which masks: for an attribute of an entity (the green
+    belt) the masks grown by colour to the rest of the entity, recoloured where they cover most of each
+    image; else covering with the default fill on the masks as they are."""
+    if cue == "belt":
+        grown = grow_by_colour(x, masks)
+        if needs_recolour(grown):
+            return "recolour", grown
+    return DEFAULT_FILLS[0], masks
 
 
 def main(argv: list[str] | None = None) -> str:
@@ -190,8 +196,9 @@ def main(argv: list[str] | None = None) -> str:
                     x, m = pairs.with_cue[torch.from_numpy(keep)], masks[kind][keep]
                     share = float(m.reshape(len(m), -1).mean())
                     results: dict[str, InterventionResult | None] = {f: _estimate(model, x, m, index, f, args.seed) for f in FILLS}
-                    if cue == "belt":  # an attribute of an entity: recolouring to the belt's plain look
-                        results["recolour"] = _recolour(model, x, m, index, args.seed, kind)
+                    chosen, grown = _policy(cue, x, m)
+                    if cue == "belt":  # an attribute of an entity: recolouring to the belt's plain look, masks grown by colour
+                        results["recolour"] = _recolour(model, x, grown, index, args.seed, kind)
                     # The truth on the images each test used (covering leaves out masks over MAX_COVER_SHARE of the image).
                     small = m.reshape(len(m), -1).mean(axis=1) <= MAX_COVER_SHARE
                     t_all = float(true[keep].mean())
@@ -202,8 +209,8 @@ def main(argv: list[str] | None = None) -> str:
                             return "-"
                         return _cell(results[f], t_all if f == "recolour" else t_cover)
 
-                    chosen = _policy(cue, m)
-                    rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), f"{share:.0%}", f"{t_all:.3f}", *[cell(f) for f in (*FILLS, "recolour")],
+                    covered = f"{share:.0%}" + (f" (grown {float(grown.reshape(len(grown), -1).mean()):.0%})" if cue == "belt" else "")
+                    rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), covered, f"{t_all:.3f}", *[cell(f) for f in (*FILLS, "recolour")],
                                  f"{chosen}: {cell(chosen)}"])
                     print(rows[-1], flush=True)
             else:
@@ -220,9 +227,9 @@ def main(argv: list[str] | None = None) -> str:
                         true = float(true_each.mean())
                         name = f"{CUE_CONCEPTS[test_cue]}"
                         found: dict[str, InterventionResult | None] = {f: _estimate(model, pairs.with_cue, pairs.exact, index, f, args.seed) for f in FILLS}
-                        chosen = _policy(test_cue, pairs.exact)
+                        chosen, grown = _policy(test_cue, pairs.with_cue, pairs.exact)
                         if chosen == "recolour":
-                            found["recolour"] = _recolour(model, pairs.with_cue, pairs.exact, index, args.seed, "exact")
+                            found["recolour"] = _recolour(model, pairs.with_cue, grown, index, args.seed, "exact")
                         print(f"cue-less model, {test_cue} in {cls}: true {true:.3f}, " + ", ".join(f"{f} {_cell(r, 0.0)}" for f, r in found.items()), flush=True)
                         for f in (*FILLS, "default"):
                             true_of[(f, cls, name)] = true
@@ -233,8 +240,8 @@ def main(argv: list[str] | None = None) -> str:
                         r = None
                         if keep.sum() >= 2:
                             x, m = pairs.with_cue[torch.from_numpy(keep)], regions[keep]
-                            chosen = _policy(test_cue, m)
-                            r = (_recolour(model, x, m, index, args.seed, "regions") if chosen == "recolour"
+                            chosen, grown = _policy(test_cue, x, m)
+                            r = (_recolour(model, x, grown, index, args.seed, "regions") if chosen == "recolour"
                                  else _estimate(model, x, m, index, chosen, args.seed))
                             r = replace(r, shared=not plan.alone) if r is not None else None
                         true_of[("default, regions", cls, name)] = float(true_each[keep].mean()) if keep.any() else true
@@ -265,7 +272,8 @@ def main(argv: list[str] | None = None) -> str:
             f"covers, chosen as it chooses them (regions naming the cue alone when enough images have one, else every region naming it). "
             f"\"image covered\": mean share of the image under the mask; an image whose mask covers more than {MAX_COVER_SHARE:.0%} has no "
             f"matched control for covering and is left out, and a covering test left with fewer than two images is not testable. "
-            f"Recolour: the masked pixels' mean colour moved to a random donor's plain belt (regions naming the belt alone in scenes "
+            f"Recolour: the masks grown by colour to the rest of the belt (connected pixels within 3 robust "
+            f"standard deviations of the regions' colour), their mean colour moved to a random donor's plain belt (regions naming the belt alone in scenes "
             f"without any cue), texture kept, against a sham recolouring of the same pixels to another cue image's green; no image is left out. "
             f"The {policy} (median mask over {MAX_COVER_SHARE:.0%} of the image), as the product decides it. "
             f"Verdicts: {settings.describe(sum(1 for r in null_rows if r[-1] != 'not testable' and r[2] == 'exact'))} (each family "

@@ -247,3 +247,19 @@ def test_recolouring_touches_only_masked_pixels_and_stays_in_range() -> None:
     shift = torch.tensor([[0.1, -0.2, 0.3]] * 3)
     moved = recolour_images(x, torch.from_numpy(belt), shift, torch.full((3,), -9.0), torch.full((3,), 9.0))
     torch.testing.assert_close(moved[~keep].view(-1), (x + shift[:, :, None, None])[~keep].view(-1))  # texture kept: one shift for all
+
+
+def test_an_attribute_region_grows_by_colour_to_the_rest_of_its_entity() -> None:
+    # A few salient pieces of a green belt stand for the whole belt: grown by colour, the mask reaches every
+    # connected pixel of the belt (noise and all) and stops at the object, whose colour differs.
+    from analysis.interventions import grow_by_colour, needs_recolour
+
+    x, _, belt = _belts(6)
+    pieces = np.zeros_like(belt)
+    pieces[:, 2:6, 2:6] = True  # 16 pixels of the belt, 1.6% of the image
+    grown = grow_by_colour(x, pieces)
+    assert not needs_recolour(pieces) and needs_recolour(grown)
+    # The object (a random colour, at times near the green within the noise) is mostly not reached.
+    assert (grown & ~belt).sum() <= 0.1 * (~belt).sum()
+    assert (grown & belt).sum() / belt.sum() > 0.97  # nearly the whole belt (a pixel of extreme noise may stay out)
+    assert not grow_by_colour(x, np.zeros_like(belt)).any()
