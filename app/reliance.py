@@ -183,8 +183,40 @@ def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: in
     targets = sorted(np.random.default_rng(seed).choice(others, size=min(max_images, len(others)), replace=False).tolist()) if others else []
     key = hashlib.sha256(json.dumps(
         {"model": model_sha, "run": res.campaign.run_id, "cls": cls, "concepts": sorted(concepts), "draws": draws, "seed": seed,
-         "images": image_ids, "targets": targets, "method": res.method, "version": 4}, sort_keys=True).encode()).hexdigest()[:20]
+         "images": image_ids, "targets": targets, "method": res.method, "evidence": _evidence(res, image_ids, concepts),
+         "version": 5}, sort_keys=True).encode()).hexdigest()[:20]
     return key, image_ids, targets
+
+
+def _evidence(res: Results, image_ids: list[int], concepts: list[str]) -> str:
+    """A fingerprint of every region fact that decides what the tests cover: the regions of the rule's images
+    carrying its concepts, with all they show (which decides "alone", :func:`_inputs`), and, for a concept refining
+    an entity, every region showing that entity with all it shows and whether its image shows the concept (which
+    decides the plain look's donors, :func:`_plain_look`). New labels that change none of these keep stored results;
+    any that do run the tests again."""
+    table = res.table
+    ids = table.regions.ids
+    if ids is None:
+        return ""
+    carries = table.regions.carries.tocsr()
+    image_of = np.asarray(table.meta.index)[table.regions.region_image]
+    index = {c: k for k, c in enumerate(table.concepts)}
+    facts: list[object] = []
+    wanted = set(image_ids)
+    cols = [index[c] for c in concepts if c in index]
+    on = np.asarray(carries[:, cols].sum(axis=1)).ravel() > 0 if cols else np.zeros(carries.shape[0], dtype=bool)
+    for r in np.nonzero(on)[0]:
+        if int(image_of[r]) in wanted:
+            facts.append(["covered", int(ids[r]), int(image_of[r]), sorted(table.concepts[c] for c in carries[r].indices)])
+    for concept in concepts:
+        entity = table.families.get(concept)
+        if entity is None or entity not in index or concept not in index:
+            continue
+        shows_concept = table.presence[concept].to_numpy(dtype=bool)[table.regions.region_image]
+        for r in np.nonzero(np.asarray(carries[:, index[entity]].todense()).ravel() > 0)[0]:
+            facts.append(["donor", concept, int(ids[r]), int(image_of[r]), bool(shows_concept[r]),
+                          sorted(table.concepts[c] for c in carries[r].indices)])
+    return hashlib.sha256(json.dumps(facts).encode()).hexdigest()
 
 
 def _read_cached(path: Path) -> tuple[bool, InterventionResult | None]:

@@ -47,3 +47,30 @@ def test_a_not_testable_covering_is_stored_with_its_reason_and_read_as_not_run(t
     del raw["left_out"]
     path.write_text(__import__("json").dumps(raw))
     assert _read_cached(path)[1] == result
+
+
+def _stored_key(region_concepts: dict[int, dict[str, float]]) -> str:
+    """The storage key of "can relies on green belt" over a four-image table with the given region concepts."""
+    from types import SimpleNamespace
+
+    from analysis.concept_table import build_concept_table
+    from app.reliance import _plan
+
+    meta = pd.DataFrame({"true_class": ["can", "can", "bottle", "bottle"], "predicted_class": ["can", "can", "bottle", "bottle"],
+                         "confidence": [0.9] * 4, "split": ["test"] * 4}, index=[1, 2, 3, 4])
+    table = build_concept_table(meta, {1: [11, 12], 2: [21], 3: [31], 4: [41]}, {r: 0.5 for r in (11, 12, 21, 31, 41)},
+                                region_concepts, method="majority", families={"green belt": "belt", "grey belt": "belt"})
+    res = SimpleNamespace(table=table, campaign=SimpleNamespace(run_id=1), method="majority")
+    return _plan(res, "sha", "can", ["green belt"], 5, 200, 0)[0]  # type: ignore[arg-type]
+
+
+def test_stored_interventions_are_run_again_when_labels_change_what_they_cover_or_the_plain_look() -> None:
+    """Stored results are keyed by the region facts that decide the tests, not only by the images: a region that
+    now shows the belt with something else (no longer "alone"), or a donor belt that is now grey, must run the
+    tests again; a label elsewhere that changes none of these keeps them."""
+    base = {11: {"green belt": 1.0}, 12: {"can body": 1.0}, 21: {"green belt": 1.0}, 31: {"belt": 1.0}, 41: {"cap": 1.0}}
+    key = _stored_key(base)
+    assert _stored_key(dict(base)) == key
+    assert _stored_key({**base, 11: {"green belt": 1.0, "can body": 1.0}}) != key  # covered region no longer alone
+    assert _stored_key({**base, 31: {"grey belt": 1.0}}) != key  # the plain look's donors change
+    assert _stored_key({**base, 41: {"cap": 1.0, "label": 1.0}}) == key  # unrelated to what is covered or donated
