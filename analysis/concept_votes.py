@@ -315,8 +315,8 @@ def estimate_concepts(votes: PresenceVotes, *, method: Method = "majority", thre
     default threshold a concept needs more than half of them. Known pairs keep their answer.
     Dawid-Skene learns each annotator's sensitivity and specificity under ``prior`` (see
     :class:`analysis.reliability.ConfusionPrior`). ``start``, an earlier estimate by the same method of
-    the same annotators' votes (e.g. before the newest label), warm-starts it: fewer iterations, the
-    same optimum to within ``tol``. A start of other annotators or another method is ignored.
+    the same annotators' votes (e.g. before the newest label), warm-starts it: fewer iterations, but not
+    necessarily the cold start's stopping point (see :func:`analysis.reliability.dawid_skene`). A start of other annotators or another method is ignored.
     """
     if not 0 <= threshold < 1:
         raise InvalidInputError(f"threshold must be in [0, 1); got {threshold}. 0.5 keeps what more than half support.")
