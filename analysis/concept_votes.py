@@ -406,7 +406,7 @@ def presence_agreement(votes: PresenceVotes, *, concepts: Sequence[str] | None =
     the note says why instead of returning NaN.
     """
     m = votes.raters.astype(np.float64)
-    wanted = range(len(votes.concepts)) if concepts is None else [votes.concepts.index(c) for c in concepts if c in votes.concepts]
+    wanted = range(len(votes.concepts)) if concepts is None else [votes.concepts.index(c) for c in dict.fromkeys(concepts) if c in votes.concepts]
     yes_pair = np.bincount(votes.vote_pair, weights=votes.vote_yes, minlength=len(votes.pair_region))
     # Yes votes per (region, wanted concept), for all wanted concepts in one pass over the pairs.
     slot = np.full(len(votes.concepts), -1, dtype=np.int64)

@@ -244,7 +244,8 @@ def decide_expectations(verdicts: list[Verdict], findings: Mapping[tuple[str, st
             continue
         found = findings.get((v.expectation.cls, concepts_key(concepts)))
         if found is None or found.decided_by is None:
-            why = (f"not tested: fewer than two images of {v.expectation.cls} show {v.expectation.question} with a region to cover."
+            why = (f"not tested: no intervention on {v.expectation.question} in {v.expectation.cls} could run (too few images with a region to cover, "
+                   "or regions over most of each image with no plain look of their entity to recolour them to)."
                    if found is not None else v.reason)
             out.append(replace(v, verdict="not tested", reason=f"{why} {support}.", family=found.family if found else "",
                                steering=found.steering if found else "not tested"))
@@ -253,7 +254,7 @@ def decide_expectations(verdicts: list[Verdict], findings: Mapping[tuple[str, st
         t = found.decided_by
         said = {"relies on": f"{v.expectation.cls} relies on {v.expectation.question}",
                 "no reliance": f"{v.expectation.cls} does not rely on {v.expectation.question} by {settings.min_effect:g} or more",
-                "inconclusive": f"covering neither shows nor rules out reliance of {v.expectation.cls} on {v.expectation.question}"}[found.reliance]
+                "inconclusive": f"{t.name} neither shows nor rules out reliance of {v.expectation.cls} on {v.expectation.question}"}[found.reliance]
         out.append(replace(v, verdict=verdict, reason=f"{said}: {found.evidence()} {support}.", confirmed=found.confirmed,
                            decided_by=t.name, effect=t.effect, interval=t.interval, adjusted_p=t.adjusted_p,
                            steering=found.steering, family=found.family))

@@ -57,7 +57,11 @@ def stopping(args: argparse.Namespace) -> int:
     with factory() as s:
         cid = _campaign_id(s, args.project, args.campaign)
     changed = args.close or args.reopen
+    was_closed = False
     if changed:
+        with factory() as s:
+            before = campaigns.plan_of(s, cid)
+            was_closed = before is not None and changed in before.closed_classes
         with write_session(factory) as s:
             campaigns.close_class(s, campaign_id=cid, cls=changed, closed=bool(args.close))
     settings = get_settings(project_dir=args.project)
@@ -75,7 +79,8 @@ def stopping(args: argparse.Namespace) -> int:
                           "judgments_given": given, "budget_left": left, "classes": rows}, indent=1))
         return 0
     if changed:
-        print(f"class {changed!r} {'closed early' if args.close else 'open again'} in campaign {c.id} ({c.name})")
+        state = ("already closed" if was_closed else "closed early") if args.close else ("open again" if was_closed else "was not closed; nothing changed")
+        print(f"class {changed!r} {state} in campaign {c.id} ({c.name})")
     spent = f"; budget {budget:,} judgments, {given:,} given, {left or 0:,} left to hand out" if budget else ""
     print(f"campaign {c.id} ({c.name}): {status.judgments:,} judgments; top {TOP_RULES} rules compared over the last {status.window} judgments{spent}")
     print("Settled is a rule of thumb (intervals separated, order unchanged), not a test with a stated error rate.")

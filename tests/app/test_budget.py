@@ -311,7 +311,11 @@ def test_cli_shows_settling_and_closes_and_reopens_a_class(project: Path, capsys
         assert campaigns.plan_of(s, doc["campaign"]).closed_classes == (cls,)  # type: ignore[union-attr]
     engine.dispose()
     assert main(["stopping", str(project), "--campaign", str(doc["campaign"]), "--reopen", cls]) == 0
-    assert f"{cls}: closed early" not in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert f"{cls}: closed early" not in out and f"class {cls!r} open again" in out
+    # Reopening a class that is open says nothing changed instead of claiming it reopened.
+    assert main(["stopping", str(project), "--campaign", str(doc["campaign"]), "--reopen", cls]) == 0
+    assert "was not closed; nothing changed" in capsys.readouterr().out
     # Bad input: one line saying what to fix, no traceback.
     assert main(["stopping", str(project), "--close", "no such class"]) == 1
     err = capsys.readouterr().err
