@@ -104,6 +104,18 @@ class ConceptTable:
         return pd.concat([out, presence, share], axis=1)
 
 
+def _checked_meta(meta: pd.DataFrame) -> pd.DataFrame:
+    """The image metadata's columns in table order, with ``correct`` added; a clear error when any is missing."""
+    missing = [c for c in ("true_class", "predicted_class", "confidence", "split") if c not in meta.columns]
+    if missing:
+        raise InvalidInputError(f"image metadata lacks {missing}.")
+    if len(meta) == 0:
+        raise InvalidInputError("no images given; run saliency and collect labels first.")
+    meta = meta[["true_class", "predicted_class", "confidence", "split"]].copy()
+    meta["correct"] = meta["true_class"].astype(str) == meta["predicted_class"].astype(str)
+    return meta[META_COLUMNS]
+
+
 def build_concept_table(
     meta: pd.DataFrame,
     image_regions: Mapping[int, Sequence[int]],
@@ -130,14 +142,7 @@ def build_concept_table(
         Refinement -> entity (``PresenceVotes.families``); a region carrying a refinement carries
         its entity too, so the entity's column counts every image that shows any of its refinements.
     """
-    missing = [c for c in ("true_class", "predicted_class", "confidence", "split") if c not in meta.columns]
-    if missing:
-        raise InvalidInputError(f"image metadata lacks {missing}.")
-    if len(meta) == 0:
-        raise InvalidInputError("no images given; run saliency and collect labels first.")
-    meta = meta[["true_class", "predicted_class", "confidence", "split"]].copy()
-    meta["correct"] = meta["true_class"].astype(str) == meta["predicted_class"].astype(str)
-    meta = meta[META_COLUMNS]
+    meta = _checked_meta(meta)
     parent = dict(families or {})
 
     def with_entities(found: Mapping[str, float]) -> set[str]:
@@ -187,14 +192,7 @@ def concept_table_from_regions(meta: pd.DataFrame, regions: RegionMass, concepts
                                families: Mapping[str, str] | None = None) -> ConceptTable:
     """:func:`build_concept_table` from its regions already as arrays: each region's image row (in ``meta``'s order),
     saliency share and id, and which of ``concepts`` (sorted) it carries, entities of its refinements included."""
-    missing = [c for c in ("true_class", "predicted_class", "confidence", "split") if c not in meta.columns]
-    if missing:
-        raise InvalidInputError(f"image metadata lacks {missing}.")
-    if len(meta) == 0:
-        raise InvalidInputError("no images given; run saliency and collect labels first.")
-    meta = meta[["true_class", "predicted_class", "confidence", "split"]].copy()
-    meta["correct"] = meta["true_class"].astype(str) == meta["predicted_class"].astype(str)
-    return _assembled(meta[META_COLUMNS], regions, list(concepts), method=method, threshold=threshold, families=families or {})
+    return _assembled(_checked_meta(meta), regions, list(concepts), method=method, threshold=threshold, families=families or {})
 
 
 def _assembled(meta: pd.DataFrame, regions: RegionMass, concepts: list[str], *, method: str, threshold: float, families: Mapping[str, str]) -> ConceptTable:
