@@ -7,6 +7,10 @@ A class's top rules (one per family, best first) have settled when both hold:
   (the results of the campaign a set number of judgments ago).
 Both are rules of thumb (common practice for sequential reviews, not a test with a stated error rate);
 the page says so.
+
+The checkpoints lie on a grid of half a window (:func:`checkpoints`): each is at least as far back as
+"a window ago" and "half a window ago", and they stay where they are while the next half window of
+judgments comes in, so the results at a checkpoint are computed once, not after every judgment.
 """
 
 from __future__ import annotations
@@ -34,6 +38,23 @@ class ClassSettling:
     @property
     def settled(self) -> bool:
         return self.separated and self.unchanged
+
+
+def checkpoints(judgments: int, window: int) -> tuple[int, ...]:
+    """The judgment counts to compare with when ``judgments`` have been made: two points half a ``window`` apart.
+
+    The older point is the last multiple of ``window // 2`` at least ``window`` judgments back, the newer one
+    half a window after it; so the older is between one and one and a half windows back, the newer at least
+    half a window back (never nearer than "a window ago" and "half a window ago", which the grid replaces).
+    Points at or below zero are left out; fewer judgments than ``window`` give none.
+    """
+    if window < 1:
+        raise InvalidInputError(f"window must be at least 1 judgment; got {window}.")
+    if judgments < window:
+        return ()
+    step = max(1, window // 2)
+    older = (judgments - window) // step * step
+    return tuple(k for k in (older, older + step) if k > 0)
 
 
 def _top(rules: pd.DataFrame, cls: str, k: int) -> tuple[str, ...]:

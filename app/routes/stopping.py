@@ -9,6 +9,7 @@ from fastapi.responses import RedirectResponse, Response
 
 from .. import campaigns
 from ..deps import ReviewerDep, SessionDep, SettingsDep, WriteSessionDep, guarded_router, require_analyst, require_reviewer
+from ..services.campaign_analysis import campaign_progress
 from ..services.stopping import TOP_RULES, stopping_status
 from .common import render
 
@@ -21,7 +22,7 @@ def stopping(request: Request, campaign_id: int, s: SessionDep, settings: Settin
     """Per predicted class: whether its top rules have settled, and a way to close it early."""
     c = campaigns.get_campaign(s, campaign_id)
     status = stopping_status(s, c, min_support=settings.min_support, cache=request.app.state.results_cache)
-    _, progress = campaigns.campaign_progress(s, c)
+    _, progress = campaign_progress(s, c, cache=request.app.state.results_cache)
     context = {"campaign": c, "status": status, "progress": {p.cls: p for p in progress}, "top": TOP_RULES,
                "can_close": viewer.can("analyst")}
     return render(request, "stopping.html", context, viewer=viewer)

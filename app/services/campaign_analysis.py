@@ -69,6 +69,16 @@ class ResultsCache:
     labels: LabelStore = field(default_factory=LabelStore)  # each campaign's labels, read incrementally
     _found: dict[tuple[object, ...], object] = field(default_factory=dict)
     _lock: threading.Lock = field(default_factory=threading.Lock)
+    _apart: dict[str, ResultsCache] = field(default_factory=dict)
+
+    def apart(self, name: str, *, size: int = 64) -> ResultsCache:
+        """A cache of its own (sharing the labels held) for results that stay valid across labels versions, such as
+        the results at a settling checkpoint: there the many entries each new label adds do not push them out."""
+        with self._lock:
+            found = self._apart.get(name)
+            if found is None:
+                found = self._apart[name] = ResultsCache(size=size, labels=self.labels)
+            return found
 
     def get_or_make(self, key: tuple[object, ...], make: Callable[[], T]) -> T:
         found = self._found.get(key)

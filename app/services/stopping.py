@@ -3,18 +3,20 @@
 from __future__ import annotations
 
 import functools
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import pandas as pd
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from analysis.errors import NotEnoughLabelsError
 from analysis.pipeline import campaign_table
-from analysis.stopping import ClassSettling, settling
+from analysis.stopping import ClassSettling, checkpoints, settling
 
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
-from ..campaigns.plans import SETTLE_WINDOW
+from ..campaigns.plans import SETTLE_WINDOW, PlanInfo
+from ..models import CampaignRegion, Label
 from .campaign_analysis import ResultsCache, _method, _read, campaign_results, campaign_rules, prediction_frame, region_classes
 
 TOP_RULES = 3
@@ -27,7 +29,7 @@ class StoppingStatus:
     classes: list[ClassSettling]
     judgments: int
     window: int
-    checkpoints: tuple[int, ...]  # judgments counted at each earlier look
+    checkpoints: tuple[int, ...]  # judgments counted at each earlier look (see analysis.stopping.checkpoints)
     closed: tuple[str, ...]
 
 
@@ -42,6 +44,27 @@ def _rules_at(s: Session, c: CampaignInfo, n: int, *, min_support: float, max_le
     return made.table.rules(target="predicted", min_support=min_support, max_len=max_len, prune=True).rules
 
 
+def _first_labels(s: Session, campaign_id: int, n: int) -> tuple[int, int | None]:
+    """How many of the campaign's labels, and the highest id, among its first ``n`` labels by id (one index walk)."""
+    first = select(Label.id).where(Label.campaign_id == campaign_id).order_by(Label.id).limit(n).subquery()
+    count, last = s.execute(select(func.count(), func.max(first.c.id))).one()
+    return int(count), last
+
+
+def _checkpoint_key(s: Session, c: CampaignInfo, n: int, version: tuple[object, ...], plan: PlanInfo | None) -> tuple[object, ...]:
+    """What the results from the campaign's first ``n`` labels depend on, so they are made once and kept while more labels come in.
+
+    Labels are only stored (with an id above every id held) or undone (moved to the withdrawn table). So the first ``n``
+    labels are the same set while the ``n``-th label's id and the withdrawn labels are unchanged: an undo changes the
+    withdrawn count, and a label committed late with a lower id moves the ``n``-th id down. Synonym rules, check answers,
+    the method (``version[5:]``), the sample (the plan, less the classes closed since) and the campaign's regions count too.
+    """
+    regions = s.execute(select(func.count(), func.max(CampaignRegion.region_id), func.min(CampaignRegion.region_id))
+                        .where(CampaignRegion.campaign_id == c.id)).one()
+    return (c.id, n, *_first_labels(s, c.id, n), version[3], version[4], *version[5:], replace(plan, closed_classes=()) if plan else None,
+            *regions, c.run_id, tuple(c.classes))
+
+
 def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, cache: ResultsCache | None = None,
             version: tuple[object, ...] | None = None) -> StoppingStatus:
     plan = campaigns.plan_of(s, c.id)
@@ -50,7 +73,6 @@ def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, ca
     version = version or store.labels_version(s, c.id)
     n = int(str(version[1]))  # the campaign's labels, as many as its judgments
     classes = sorted(set(region_classes(s, c.id, cache=cache).values()))
-    checkpoints = tuple(k for k in (n - window, n - window // 2) if k > 0)
     if n == 0:
         return StoppingStatus([ClassSettling(k, (), False, False, "no labels yet") for k in classes], 0, window, (), closed)
     at = functools.partial(_rules_at, s, c, min_support=min_support, max_len=max_len, cache=cache, version=version)
@@ -59,20 +81,26 @@ def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, ca
         now = campaign_rules(campaign_results(s, c, cache=cache), min_support=min_support, max_len=max_len).rules if cache is not None else at(n)
     except NotEnoughLabelsError as exc:
         return StoppingStatus([ClassSettling(k, (), False, False, str(exc)) for k in classes], n, window, (), closed)
-    earlier = []
-    for k in checkpoints:
+    # The checkpoints stay put for half a window of judgments: their results are made once and kept apart from
+    # the per-version entries (which every new label adds to).
+    kept = cache.apart("settling checkpoints") if cache is not None else None
+    earlier, points = [], []
+    for k in checkpoints(n, window):
         try:
-            earlier.append(at(k))
+            if kept is None:
+                earlier.append(at(k))
+            else:
+                earlier.append(kept.get_or_make((*_checkpoint_key(s, c, k, version, plan), min_support, max_len), functools.partial(at, k)))
+            points.append(k)
         except NotEnoughLabelsError:
-            checkpoints = tuple(x for x in checkpoints if x != k)
-    if n < window:
-        earlier, checkpoints = [], ()
-    return StoppingStatus(settling(now, earlier, top=TOP_RULES, classes=classes), n, window, checkpoints, closed)
+            pass
+    return StoppingStatus(settling(now, earlier, top=TOP_RULES, classes=classes), n, window, tuple(points), closed)
 
 
 def stopping_status(s: Session, campaign: CampaignInfo, *, min_support: float, max_len: int = 2, cache: ResultsCache | None = None) -> StoppingStatus:
     """Per class, whether its top rules are separated and have held their order over the last ``settle_window`` judgments
-    (compared with the results at that many, and half that many, judgments ago)."""
+    (compared with the results at two checkpoints at least that many, and half that many, judgments ago; see
+    :func:`analysis.stopping.checkpoints`)."""
     if cache is None:
         return _status(s, campaign, min_support=min_support, max_len=max_len)
     version = store.labels_version(s, campaign.id)

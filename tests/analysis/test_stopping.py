@@ -41,3 +41,21 @@ def test_overlapping_intervals_and_no_history_are_not_settled() -> None:
     assert "too few judgments" in found[0].reason
     with pytest.raises(InvalidInputError, match="top"):
         settling(now, [], top=0)
+
+
+def test_checkpoints_lie_at_least_a_window_and_half_a_window_back_and_stay_put() -> None:
+    from analysis.stopping import checkpoints
+
+    window = 60
+    assert checkpoints(59, window) == ()  # fewer judgments than the window: nothing to compare with
+    assert checkpoints(60, window) == (30,)  # a point at zero is left out
+    for n in range(90, 2_000):
+        older, newer = checkpoints(n, window)
+        # never nearer than the exact "a window ago" and "half a window ago", and at most half a window further back
+        assert n - 1.5 * window < older <= n - window and n - window < newer <= n - window // 2
+        assert newer - older == window // 2 and older % (window // 2) == 0
+        # they hold for half a window of judgments: a new one every 30 judgments, not after every judgment
+        assert (checkpoints(n - 1, window) != (older, newer)) == (n % 30 == 0)
+    assert checkpoints(61, 61) == (30,) and checkpoints(92, 61) == (30, 60)  # an odd window; points at zero are left out
+    with pytest.raises(InvalidInputError, match="window"):
+        checkpoints(10, 0)
