@@ -188,13 +188,19 @@ def _bootstrap_pairable(pairable: Counts, *, n_boot: int, level: float, seed: in
         raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
     grouped = _distinct_rows(pairable)
     if grouped is not None and len(grouped[0]) <= max(64, u // 4):
-        rows, share = grouped
-        drawn = np.random.default_rng(seed).multinomial(u, share / u, size=n_boot).astype(float)  # (n_boot, distinct rows)
-        weights: tuple[npt.NDArray[np.float64], ...] = (drawn,)
-        x: Counts = rows
-    else:  # many distinct rows: a weight for every unit in every resample
-        weights = _resample_weights(u, n_boot, seed)
-        x = pairable
+        return _bootstrap_rows(*grouped, n_boot=n_boot, level=level, seed=seed)
+    # many distinct rows: a weight for every unit in every resample
+    return _bootstrap_weighted(pairable, _resample_weights(u, n_boot, seed), level=level)
+
+
+def _bootstrap_rows(rows: npt.NDArray[np.float64], share: npt.NDArray[np.int64], *, n_boot: int, level: float, seed: int) -> tuple[float, float]:
+    """The bootstrap of units given as distinct rows of counts and how many units show each: multinomial draws per row."""
+    u = int(share.sum())
+    drawn = np.random.default_rng(seed).multinomial(u, share / u, size=n_boot).astype(float)  # (n_boot, distinct rows)
+    return _bootstrap_weighted(rows, (drawn,), level=level)
+
+
+def _bootstrap_weighted(x: Counts, weights: tuple[npt.NDArray[np.float64], ...], *, level: float) -> tuple[float, float]:
     m = _row_sums(x)
     d = (m**2 - _row_square_sums(x)) / (m - 1)
     # A wide table (a column per value, a few used per unit) is multiplied as a sparse one: only its used cells count.
@@ -215,6 +221,41 @@ def _bootstrap_pairable(pairable: Counts, *, n_boot: int, level: float, seed: in
         raise InvalidInputError("every bootstrap resample lacked variation; alpha has no interval here.")
     lo, hi = np.quantile(values, [(1 - level) / 2, (1 + level) / 2])
     return float(lo), float(hi)
+
+
+def alpha_with_interval_of_rows(rows: npt.ArrayLike, share: npt.ArrayLike, *, n_boot: int = 1000, seed: int = 0
+                                ) -> tuple[float | None, tuple[float, float] | None, str]:
+    """:func:`alpha_with_interval` of a table given as its distinct rows of whole counts (each a unit, rated once or more)
+    and how many units show each row: the same figures, at a cost that does not grow with the units.
+
+    Rows in the order :func:`alpha_with_interval` groups them in (``np.lexsort(rows.T)``: by the last column first) draw
+    the same resamples with the same seed.
+    """
+    table = np.asarray(rows, dtype=float).reshape(len(np.asarray(share)), -1)
+    times = np.asarray(share, dtype=np.int64)
+    pairable = (table.sum(axis=1) >= 2) & (times > 0)
+    table, times = table[pairable], times[pairable]
+    u = int(times.sum())
+    try:
+        if u == 0:
+            raise InvalidInputError("no unit has two or more ratings; alpha is undefined.")
+        m = table.sum(axis=1)
+        d = (m**2 - (table**2).sum(axis=1)) / (m - 1)
+        n_c = times @ table
+        n = n_c.sum()
+        expected = n * n - (n_c**2).sum()
+        if expected == 0:
+            raise InvalidInputError("every rating has the same value; alpha is undefined (no variation to agree on).")
+        alpha = float(1 - (n - 1) * (times @ d) / expected)
+        if not n_boot:
+            return alpha, None, ""
+        if u < 2:
+            raise InvalidInputError("a bootstrap interval needs at least two units rated twice or more.")
+        if len(table) > max(64, u // 4):  # as many distinct rows as units, nearly: the units' own resampling
+            return alpha, _bootstrap_pairable(np.repeat(table, times, axis=0), n_boot=n_boot, level=0.95, seed=seed), ""
+        return alpha, _bootstrap_rows(table, times, n_boot=n_boot, level=0.95, seed=seed), ""
+    except InvalidInputError as exc:
+        return None, None, str(exc)
 
 
 def alpha_with_interval(counts: npt.ArrayLike | sparse.csr_matrix, *, n_boot: int = 1000, seed: int = 0) -> tuple[float | None, tuple[float, float] | None, str]:

@@ -15,7 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import numpy.typing as npt
 
-from .agreement import alpha_with_interval
+from .agreement import alpha_with_interval_of_rows
 from .concepts import (
     Judgment,
     attribute_words,
@@ -415,11 +415,18 @@ def presence_agreement(votes: PresenceVotes, *, concepts: Sequence[str] | None =
     sel = at >= 0
     yes_all = np.bincount(votes.pair_region[sel] * max(len(wanted), 1) + at[sel], weights=yes_pair[sel],
                           minlength=len(votes.regions) * max(len(wanted), 1)).reshape(len(votes.regions), max(len(wanted), 1))
+    # Regions with the same raters and yes votes are interchangeable in alpha: per concept, the distinct (no, yes)
+    # rows and how many regions show each, all concepts in one count (raters and votes are whole numbers).
+    width = int(m.max(initial=0)) + 1
+    n_wanted = max(len(wanted), 1)
+    cell = (np.arange(n_wanted) * width * width)[None, :] + (m.astype(np.int64) * width)[:, None] + yes_all.astype(np.int64)
+    shares = np.bincount(cell.ravel(), minlength=n_wanted * width * width).reshape(n_wanted, width, width)
     out = []
     for k, c in enumerate(wanted):
-        yes = yes_all[:, k]
-        counts = np.column_stack([m - yes, yes])
-        named = int((yes > 0).sum())
-        alpha, interval, note = alpha_with_interval(counts, n_boot=n_boot, seed=seed)
+        raters, yes = np.nonzero(shares[k])
+        rows = np.column_stack([raters - yes, yes]).astype(np.float64)
+        order = np.lexsort(rows.T)  # the order alpha_with_interval groups rows in: the same resamples
+        alpha, interval, note = alpha_with_interval_of_rows(rows[order], shares[k][raters, yes][order], n_boot=n_boot, seed=seed)
+        named = int(shares[k][:, 1:].sum())
         out.append(ConceptAgreement(votes.concepts[c], named, alpha, interval, note))
     return sorted(out, key=lambda a: (-a.regions_named, a.concept))

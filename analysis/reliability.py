@@ -186,6 +186,29 @@ def majority_vote(items: npt.ArrayLike, annotators: npt.ArrayLike, labels: npt.A
     return Aggregation("majority", post, acc, None, post.mean(axis=0), None, 0, True)
 
 
+def _item_groups(i: IntArray, code: IntArray, n_items: int, fixed: IntArray) -> tuple[IntArray, IntArray]:
+    """Items with the same judgments (the same multiset of (annotator, label) codes) and the same known answer, grouped.
+
+    Returns each item's group (0..G-1) and one item of each group. Items alike in this way get the same
+    posterior at every EM step (from the same start), so EM over one item per group, weighted by the
+    group's total weight, is the same EM with the same sums; with binary presence votes from a few
+    annotators there are a few hundred groups among hundreds of thousands of items. The grouping refines
+    position by position through each item's sorted codes: each pass costs the items with that many codes.
+    """
+    order = np.lexsort((code, i))
+    codes = code[order]
+    per_item = np.bincount(i, minlength=n_items)
+    start = np.concatenate([[0], np.cumsum(per_item)[:-1]])
+    group = np.unique(per_item * (int(fixed.max(initial=-1)) + 2) + fixed + 1, return_inverse=True)[1].reshape(-1).astype(np.int64)
+    n_codes = int(code.max()) + 1
+    for p in range(int(per_item.max(initial=0))):
+        at = np.nonzero(per_item > p)[0]  # items of a group all have the same count: groups split, never merge
+        _, again = np.unique(group[at] * n_codes + codes[start[at] + p], return_inverse=True)
+        group[at] = again.reshape(-1) + int(group.max()) + 1
+    _, first, group = np.unique(group, return_index=True, return_inverse=True)
+    return group.reshape(-1).astype(np.int64), first.astype(np.int64)
+
+
 def _log_norm(log_post: FloatArray) -> tuple[FloatArray, FloatArray]:
     top = log_post.max(axis=1, keepdims=True)
     norm = top[:, 0] + np.log(np.exp(log_post - top).sum(axis=1))
@@ -234,12 +257,20 @@ def dawid_skene(
     k = n_classes
     n_items, n_ann = int(i.max()) + 1, int(a.max()) + 1
     fixed = _known_array(known, n_items, k)
-    # S[(annotator, label), item] = number of such judgments; M-step and E-step are products with it.
-    s = sparse.csr_matrix((np.ones(len(i)), (a * k + y, i)), shape=(n_ann * k, n_items))
-    st = s.T.tocsr()
     w = np.ones(n_items) if item_weights is None else np.asarray(item_weights, dtype=np.float64)
     if w.shape != (n_items,) or not np.all(np.isfinite(w)) or w.min() < 0:
         raise InvalidInputError(f"item_weights must be {n_items} finite non-negative numbers, one per item.")
+    # EM over one item per group of alike items (same judgments, same known answer), weighted: the same sums.
+    group, one = _item_groups(i, a * k + y, n_items, fixed)
+    if len(one) < n_items:
+        is_one = np.zeros(n_items, dtype=bool)
+        is_one[one] = True
+        kept = is_one[i]
+        i, a, y = group[i[kept]], a[kept], y[kept]
+        w, fixed, n_items = np.bincount(group, weights=w, minlength=len(one)).astype(np.float64), fixed[one], len(one)
+    # S[(annotator, label), item] = number of such judgments; M-step and E-step are products with it.
+    s = sparse.csr_matrix((np.ones(len(i)), (a * k + y, i)), shape=(n_ann * k, n_items))
+    st = s.T.tocsr()
     per_ann = np.bincount(a, weights=w[i], minlength=n_ann)
     pseudo = prior.pseudo_counts(k) + 1e-10  # the floor stands in for crowd-kit's clipping when there is no prior
     if start is not None and start[0].shape == (n_ann, k, k) and start[1].shape == (k,) and np.all(start[0] > 0) and np.all(start[1] > 0):
@@ -284,7 +315,7 @@ def dawid_skene(
         accuracy = p
     else:
         accuracy = np.einsum("k,akk->a", pi, confusion)
-    return Aggregation("one-coin" if one_coin else "dawid-skene", post, accuracy, confusion, pi, ll, it, converged, counts, prior)
+    return Aggregation("one-coin" if one_coin else "dawid-skene", post[group] if len(post) < len(group) else post, accuracy, confusion, pi, ll, it, converged, counts, prior)
 
 
 def aggregate(items: npt.ArrayLike, annotators: npt.ArrayLike, labels: npt.ArrayLike, *, n_classes: int, method: Method, known: Mapping[int, int] | None = None,

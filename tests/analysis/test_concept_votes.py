@@ -100,6 +100,33 @@ def test_presence_alpha_per_concept_matches_krippendorff_package() -> None:
         assert lo <= rep[concept].alpha <= hi
 
 
+def test_presence_alpha_from_distinct_rows_is_the_per_region_computation() -> None:
+    """Alpha per concept is computed from the distinct (no, yes) rows and their counts: the same alpha, interval
+    (the same resamples) and note as the regions-by-(no, yes) table given to alpha_with_interval (alpha checked
+    against the krippendorff package above)."""
+    from analysis.agreement import alpha_with_interval
+
+    _, js = _crowd(8, sens=[0.9, 0.7, 0.6, 0.8, 0.5], fp=[0.1, 0.2, 0.4, 0.1, 0.3], n_regions=200)
+    js = [j for k, j in enumerate(js) if k % 5 != 2] + [Judgment(10_000, "a0", (("lone", ()),))]  # missing raters; a concept never pairable
+    votes = presence_votes(js)
+    found = {a.concept: a for a in presence_agreement(votes, n_boot=150, seed=3)}
+    yes_pair = np.bincount(votes.vote_pair, weights=votes.vote_yes, minlength=len(votes.pair_region))
+    assert set(found) == set(votes.concepts)
+    for k, concept in enumerate(votes.concepts):
+        mine = votes.pair_concept == k
+        yes = np.bincount(votes.pair_region[mine], weights=yes_pair[mine], minlength=len(votes.regions))
+        counts = np.column_stack([votes.raters - yes, yes])
+        alpha, interval, note = alpha_with_interval(counts, n_boot=150, seed=3)
+        got = found[concept]
+        assert got.regions_named == int((yes > 0).sum()) and got.note == note
+        assert (got.alpha is None) == (alpha is None) and (got.interval is None) == (interval is None)
+        if alpha is not None:
+            assert got.alpha == pytest.approx(alpha, rel=1e-12, abs=1e-12)
+        if interval is not None:
+            assert got.interval == pytest.approx(interval, rel=1e-12, abs=1e-12)
+    assert found["lone"].alpha is None and "alpha is undefined" in found["lone"].note
+
+
 def test_check_regions_keep_their_known_answer() -> None:
     truth, js = _crowd(6, sens=[0.6, 0.6, 0.6], fp=[0.5, 0.5, 0.5], n_regions=40)
     known = {r: truth[r] for r in range(10)}

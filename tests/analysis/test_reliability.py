@@ -121,6 +121,37 @@ def test_item_weights_count_like_repeated_items() -> None:
         dawid_skene(items, anns, labels, n_classes=3, item_weights=-weights)
 
 
+@crowd_kit_warnings
+@pytest.mark.parametrize("one_coin", [False, True])
+def test_alike_items_are_fitted_once_with_the_same_result(one_coin: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Yes/no votes of three annotators on every item: a few patterns among many items, fitted once per pattern.
+
+    Against the same EM over every item (the grouping turned off) and, for the full model, against crowd-kit.
+    """
+    from analysis import reliability
+
+    _, items, anns, labels = _crowd(4, [0.9, 0.8, 0.65], n_items=300, k=2, coverage=1.0)
+    known = {0: 1, 1: 0, 2: 1}
+    weights = np.random.default_rng(4).uniform(0.5, 2.0, 300)
+    group, one = reliability._item_groups(items, anns * 2 + labels, 300, reliability._known_array(known, 300, 2))
+    assert len(one) <= 2**3 + 3 * 3 and len(one) < 300  # at most one group per pattern of three votes (check items apart)
+    assert all(sorted(zip(anns[items == u], labels[items == u])) == sorted(zip(anns[items == one[group[u]]], labels[items == one[group[u]]]))
+               for u in range(300))
+    grouped = dawid_skene(items, anns, labels, n_classes=2, known=known, item_weights=weights, one_coin=one_coin)
+    with monkeypatch.context() as m:
+        m.setattr(reliability, "_item_groups", lambda i, code, n, fixed: (np.arange(n), np.arange(n)))
+        each = dawid_skene(items, anns, labels, n_classes=2, known=known, item_weights=weights, one_coin=one_coin)
+    assert grouped.iterations == each.iterations and grouped.converged == each.converged
+    np.testing.assert_allclose(grouped.posterior, each.posterior, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(grouped.confusion, each.confusion, rtol=0, atol=1e-12)  # type: ignore[arg-type]
+    np.testing.assert_allclose(grouped.confusion_counts, each.confusion_counts, rtol=1e-12)  # type: ignore[arg-type]
+    assert grouped.log_likelihood == pytest.approx(each.log_likelihood, rel=1e-12)
+    if not one_coin:
+        ref = DawidSkene(n_iter=2000, tol=1e-12).fit(_frame(items, anns, labels))
+        ours = dawid_skene(items, anns, labels, n_classes=2, prior=NO_PRIOR, tol=1e-12, max_iter=2000)
+        np.testing.assert_allclose(ours.posterior, ref.probas_.sort_index()[[0, 1]].to_numpy(), atol=1e-4)
+
+
 def _careful_crowd(seed: int, n: int, typo: float) -> tuple[list[str], np.ndarray, np.ndarray, np.ndarray]:
     """Three equally careful annotators naming what a region shows: right 90% of the time, else a typo
     (the word cut short, "strok" for "stroke") or another word. One word dominates, as "stroke" does on
