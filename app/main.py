@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import asyncio
+import logging
+import threading
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from pathlib import Path
@@ -15,10 +17,11 @@ from .db import is_postgres, lazy_write_factory, open_project, session_factory
 from .errors import install_error_handlers
 from .people import load_key
 from .security import install
-from .services.campaign_analysis import ResultsCache
+from .services.campaign_analysis import ResultsCache, warm_results
 from .settings import Settings, get_settings
 
 UI_DIR = Path(__file__).resolve().parent.parent / "annotator_ui"
+log = logging.getLogger("heedmap")
 
 
 def create_app(settings: Settings) -> FastAPI:
@@ -37,7 +40,10 @@ def create_app(settings: Settings) -> FastAPI:
         app.state.write_lock = None if is_postgres(engine) else asyncio.Lock()
         app.state.results_cache = ResultsCache()
         app.state.key = load_key(settings.project_dir)
+        stop, warming = _warm_in_background(app, settings)
         yield
+        stop.set()
+        warming.join(timeout=60)  # a campaign being warmed finishes (seconds); none is started after this
         engine.dispose()
 
     # The API's self-description is off unless asked for (settings.api_docs): it maps every route for a stranger.
@@ -55,6 +61,24 @@ def create_app(settings: Settings) -> FastAPI:
             app.include_router(router)
     install_error_handlers(app, debug=settings.debug)
     return app
+
+
+def _warm_in_background(app: FastAPI, settings: Settings) -> tuple[threading.Event, threading.Thread]:
+    """Start computing the recent campaigns' results (``warm_results``) on a thread, so that the first page after start-up
+    finds them made, or waits for the one being made instead of making it again. ``app.state.warmed`` is set when done."""
+    stop, app.state.warmed = threading.Event(), threading.Event()
+
+    def warm() -> None:
+        try:
+            warm_results(app.state.sessions, app.state.results_cache, min_support=settings.min_support, stop=stop)
+        except Exception:  # a page made later says what is wrong; start-up goes on without the warm results
+            log.warning("warming the results at start-up failed; pages compute them when first opened", exc_info=settings.debug)
+        finally:
+            app.state.warmed.set()
+
+    thread = threading.Thread(target=warm, name="heedmap-warm-results", daemon=True)
+    thread.start()
+    return stop, thread
 
 
 def app_from_environment() -> FastAPI:

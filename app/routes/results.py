@@ -19,7 +19,7 @@ from analysis.plots import frequency_plot, lift_plot
 from analysis.questions import QuestionError, answer_question, rule_question
 from analysis.synonyms import suggest_merges
 
-from .. import campaigns, store
+from .. import campaigns
 from ..deps import (
     AnalystDep,
     ReviewerDep,
@@ -40,7 +40,7 @@ from ..services.campaign_analysis import (
     campaign_rules,
     target_of,
 )
-from ..services.exports import Export, concepts_export, main_labels_export, rules_export
+from ..services.exports import Export, cached_concepts_export, main_labels_export, rules_export
 from ..services.reliance import expectation_verdicts, rules_with_reliance, stored_lookup
 from .common import render
 
@@ -96,8 +96,7 @@ def export_concepts(request: Request, campaign_id: int, fmt: str, s: SessionDep)
     """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet.
 
     The file is kept per state of the campaign's labels, like the results it is written from."""
-    key = ("concepts-export", fmt, *store.labels_version(s, campaign_id))
-    return _file(request.app.state.results_cache.get_or_make(key, lambda: concepts_export(results_for(request, s, campaign_id), fmt)))
+    return _file(cached_concepts_export(results_for(request, s, campaign_id), fmt))
 
 
 @router.get("/exports/main-labels.csv", response_class=PlainTextResponse)

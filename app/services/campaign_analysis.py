@@ -27,6 +27,7 @@ from analysis.concept_votes import (
     presence_agreement,
 )
 from analysis.concepts import Judgment
+from analysis.errors import InvalidInputError, NotEnoughLabelsError
 from analysis.pipeline import campaign_table, campaign_votes
 from analysis.reliability import Method
 from analysis.rules import RuleTable
@@ -35,7 +36,7 @@ from analysis.synonyms import SynonymRules
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..errors import InvalidRequestError, NotFoundError
-from ..models import CampaignRegion, Prediction, SaliencyRun
+from ..models import CampaignRegion, Label, Prediction, SaliencyRun
 from .label_store import LabelStore
 
 T = TypeVar("T")
@@ -63,11 +64,15 @@ class ResultsCache:
 
     The key includes store.labels_version, which changes with every label, synonym rule, check
     item or method change, so an entry is never stale; the oldest entries make room for new ones.
+    A result being made is made once: another thread asking for the same key waits for it (the
+    start-up warm-up and the first page, or two people opening the same page) instead of computing
+    it again beside it on the same few cores.
     """
 
     size: int = 32
     labels: LabelStore = field(default_factory=LabelStore)  # each campaign's labels, read incrementally
     _found: dict[tuple[object, ...], object] = field(default_factory=dict)
+    _making: dict[tuple[object, ...], threading.Event] = field(default_factory=dict)
     _lock: threading.Lock = field(default_factory=threading.Lock)
     _apart: dict[str, ResultsCache] = field(default_factory=dict)
 
@@ -81,14 +86,26 @@ class ResultsCache:
             return found
 
     def get_or_make(self, key: tuple[object, ...], make: Callable[[], T]) -> T:
-        found = self._found.get(key)
-        if found is None:
+        while True:
+            with self._lock:
+                if key in self._found:
+                    return cast(T, self._found[key])
+                pending = self._making.get(key)
+                if pending is None:
+                    pending = self._making[key] = threading.Event()
+                    break
+            pending.wait()  # made by another thread: found next time round (or, if that failed, made here)
+        try:
             found = make()
             with self._lock:
                 while len(self._found) >= self.size:
                     self._found.pop(next(iter(self._found)))
                 self._found[key] = found
-        return cast(T, found)
+            return found
+        finally:
+            with self._lock:
+                self._making.pop(key, None)
+            pending.set()
 
 
 def _campaign(s: Session, campaign: CampaignInfo | int) -> CampaignInfo:
@@ -242,3 +259,28 @@ def agreement_summary(s: Session, campaign: CampaignInfo | int, *, cache: Result
         return _agreement(s, c, top_concepts=top_concepts)
     version = store.labels_version(s, c.id)
     return cache.get_or_make(("agreement", top_concepts, *version), lambda: _agreement(s, c, top_concepts=top_concepts, cache=cache, version=version))
+
+
+def warm_results(sessions: Callable[[], Session], cache: ResultsCache, *, min_support: float, campaigns_kept: int = 3,
+                 stop: threading.Event | None = None) -> list[int]:
+    """Compute, into ``cache``, what the results page and the concepts CSV of the most recent campaigns with labels
+    need (their labels read, the concept table, the page's default rules, the CSV), so that the first page after
+    start-up does not pay for it. Returns the campaigns warmed; a campaign whose results cannot be made is passed
+    over (its page says why when opened). ``stop`` set: no further campaign is started."""
+    from .exports import cached_concepts_export  # exports builds on this module
+
+    with sessions() as s:
+        labelled = s.scalars(select(Label.campaign_id).group_by(Label.campaign_id).order_by(Label.campaign_id.desc()).limit(campaigns_kept)).all()
+    done = []
+    for campaign_id in labelled:
+        if stop is not None and stop.is_set():
+            break
+        with sessions() as s:
+            try:
+                res = campaign_results(s, int(campaign_id), cache=cache)
+                campaign_rules(res, min_support=min_support)
+                cached_concepts_export(res, "csv")
+            except (NotFoundError, InvalidInputError, NotEnoughLabelsError):
+                continue
+        done.append(int(campaign_id))
+    return done

@@ -55,6 +55,13 @@ def concepts_export(res: Results, fmt: str) -> Export:
     return Export(body, f"concepts-campaign-{res.campaign.id}.{fmt}", MEDIA[fmt])
 
 
+def cached_concepts_export(res: Results, fmt: str) -> Export:
+    """:func:`concepts_export`, kept with the results it is written from (per state of the campaign's labels)."""
+    if res.cache is None or not res.version:
+        return concepts_export(res, fmt)
+    return res.cache.get_or_make(("concepts-export", _format(fmt), *res.version), lambda: concepts_export(res, fmt))
+
+
 def main_labels_export(s: Session, campaign_id: int) -> Export:
     """Each usable judgment's main entity as item,annotator,label (CSV)."""
     return Export(to_csv(main_labels(s, campaign_id)).encode("utf-8"), f"main-labels-campaign-{campaign_id}.csv", MEDIA["csv"])

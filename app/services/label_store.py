@@ -2,8 +2,8 @@
 
 Every results page starts from all of a campaign's labels; at tens of thousands of labels reading and
 decoding them again after each new one cost seconds. Here each campaign's labels are read once, then
-each request reads only the labels stored since (ids above the highest one held) and the labels undone
-since (withdrawn rows above the highest withdrawn id held, matched by their client id). What is held is
+each request reads only the labels stored since (ids above the highest one held); when labels were undone
+since (the withdrawn labels' count or highest id moved) the held ones no longer stored are dropped. What is held is
 checked against the labels' count and highest id (``store.labels_version``); any difference (a label
 committed late with a lower id, a database replaced underneath) reads everything again, so what is
 held is always exactly the stored labels.
@@ -11,12 +11,14 @@ held is always exactly the stored labels.
 The distinct labels are read (normalised, through the synonym rules, attribute words split off) once
 per rule set and attribute words, and the judgments handed on as arrays of codes
 (:class:`analysis.concept_votes.ReadJudgments`), so the work per request grows with the distinct
-labels, not with the labels.
+labels, not with the labels. A cold read takes the rows from SQLite's driver as plain tuples, the stored
+entities as bytes, so each distinct text is decoded (and checked for damage) once.
 """
 
 from __future__ import annotations
 
 import json
+import sqlite3
 import threading
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -35,29 +37,38 @@ from ..models import Label, Person, WithdrawnLabel
 
 Entities = tuple[tuple[str, tuple[str, ...]], ...]
 _REGION, _PERSON, _ENTITIES, _UNSURE = range(4)
+_NO_ROWS = np.zeros((0, 4), dtype=np.int64)
+_READINGS_KEPT = 4
 
 
 @dataclass
 class _Held:
-    """One campaign's labels as last read: id -> (region, person code, entities code, unsure), in id order."""
+    """One campaign's labels as last read, in id order: their ids, and per label (region, person code, entities code, unsure)."""
 
-    rows: dict[int, tuple[int, int, int, bool]] = field(default_factory=dict)
-    client_of: dict[int, str] = field(default_factory=dict)  # label id -> client id (to find undone labels)
+    ids: npt.NDArray[np.int64] = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    rows: npt.NDArray[np.int64] = field(default_factory=lambda: _NO_ROWS)
+    loaded: bool = False
+    client_of: dict[object, int] = field(default_factory=dict)  # client id (text, or its bytes from SQLite) -> label id, to find undone labels
     withdrawn: tuple[int, int | None] = (0, None)  # withdrawn labels' count and highest id when last read
     people: list[str] = field(default_factory=list)
-    person_code: dict[str, int] = field(default_factory=dict)
+    person_code: dict[int, int] = field(default_factory=dict)  # person id -> code (index into people)
     entities: list[Entities] = field(default_factory=list)
-    entities_code: dict[str, int] = field(default_factory=dict)  # stored text -> code
-    # Readings of (entities code, class) for one (rules, attribute words).
-    table: tuple[tuple[int, int, tuple[int, int | None]], npt.NDArray[np.int64]] | None = None  # rows as an array, for (count, last id, withdrawn)
-    read_with: tuple[SynonymRules, frozenset[str]] | None = None
-    reading_of: dict[tuple[int, str | None], int] = field(default_factory=dict)
-    readings: list[Reading] = field(default_factory=list)
+    attributes: list[frozenset[str]] = field(default_factory=list)  # per entities code: the attribute words as typed
+    entities_code: dict[object, int] = field(default_factory=dict)  # stored text (or bytes) -> code
+    # Readings of (entities code, class) per (rules, attribute words), the few most recently used: the first labels of a
+    # campaign (the settling page's checkpoints) may use other attribute words than all of them, and pages alternate.
+    read_with: dict[tuple[SynonymRules, frozenset[str]], tuple[dict[tuple[int, str | None], int], list[Reading]]] = field(default_factory=dict)
     lock: threading.Lock = field(default_factory=threading.Lock)
 
 
-def _decoded(raw: object) -> tuple[str, Entities]:
-    key = raw if isinstance(raw, str) else json.dumps(raw)  # a driver that decodes JSON itself gives lists
+def _text(raw: object) -> tuple[str, Entities]:
+    """A stored entities value (JSON text, its UTF-8 bytes, or a list where the driver decodes JSON itself) -> (text, entities)."""
+    if isinstance(raw, bytes):
+        try:
+            raw = raw.decode("utf-8")
+        except UnicodeDecodeError:
+            raise sqlite3.DatabaseError("database disk image is malformed: a text value is not UTF-8") from None
+    key = raw if isinstance(raw, str) else json.dumps(raw)
     return key, entities_of(json.loads(raw) if isinstance(raw, str) else raw)  # type: ignore[arg-type]
 
 
@@ -81,47 +92,78 @@ class LabelStore:
         with self._lock:
             self._held.pop(campaign_id, None)
 
-    def _add(self, held: _Held, rows: object) -> None:
-        for label_id, client, region, name, raw, unsure in rows:  # type: ignore[attr-defined]
-            p = held.person_code.get(name)
-            if p is None:
-                p = held.person_code[name] = len(held.people)
-                held.people.append(name)
-            text = raw if isinstance(raw, str) else json.dumps(raw)
-            e = held.entities_code.get(text)
-            if e is None:
-                e = held.entities_code[text] = len(held.entities)
-                held.entities.append(_decoded(raw)[1])
-            held.rows[int(label_id)] = (int(region), p, e, bool(unsure))
-            held.client_of[int(label_id)] = str(client)
+    def _fetch(self, s: Session, campaign_id: int, after: int) -> list[tuple[int, object, int, int, object, int]]:
+        """(id, client id, region, person id, entities as stored, unsure) of the campaign's labels with ids above ``after``, in id order.
 
-    def _query(self, campaign_id: int):  # type: ignore[no-untyped-def]
-        return (select(Label.id, Label.client_id, Label.region_id, Person.name, type_coerce(Label.entities, String), Label.unsure)
-                .join(Person, Person.id == Label.person_id).where(Label.campaign_id == campaign_id).order_by(Label.id))
+        On SQLite the rows come straight from the driver with the entities as bytes: each distinct text is decoded (and
+        checked) once, not once per row, and no row objects are made (at 100,000 labels that was most of a cold read)."""
+        conn = s.connection()
+        if conn.dialect.name == "sqlite":
+            raw = conn.connection.dbapi_connection
+            if raw is not None:
+                cur = raw.cursor()
+                try:
+                    cur.execute("SELECT id, CAST(client_id AS BLOB), region_id, person_id, CAST(entities AS BLOB), unsure FROM labels "
+                                "WHERE campaign_id = ? AND id > ? ORDER BY id", (campaign_id, after))
+                    return list(cur.fetchall())
+                finally:
+                    cur.close()
+        query = (select(Label.id, Label.client_id, Label.region_id, Label.person_id, type_coerce(Label.entities, String), Label.unsure)
+                 .where(Label.campaign_id == campaign_id, Label.id > after).order_by(Label.id))
+        return [tuple(r) for r in conn.execute(query)]  # type: ignore[misc]
+
+    def _add(self, s: Session, held: _Held, rows: list[tuple[int, object, int, int, object, int]]) -> None:
+        if not rows:
+            return
+        ids, clients, regions, persons, raws, unsure = zip(*rows)
+        held.client_of.update(zip(clients, ids))
+        new_people = sorted({int(p) for p in set(persons)} - held.person_code.keys())
+        if new_people:
+            names = {int(i): str(name) for i, name in s.execute(select(Person.id, Person.name).where(Person.id.in_(new_people)))}
+            for p in new_people:
+                held.person_code[p] = len(held.people)
+                held.people.append(str(names.get(p, f"person {p}")))
+        codes = held.entities_code
+        for raw in set(raws):
+            if raw not in codes:
+                text, entities = _text(raw)
+                code = codes.get(text)
+                if code is None:
+                    code = codes[text] = len(held.entities)
+                    held.entities.append(entities)
+                    held.attributes.append(frozenset(a for _, attrs in entities for a in attrs))
+                codes[raw] = code
+        n = len(ids)
+        block = np.empty((n, 4), dtype=np.int64)
+        block[:, _REGION] = np.fromiter(regions, dtype=np.int64, count=n)
+        person = held.person_code
+        block[:, _PERSON] = np.fromiter((person[int(p)] for p in persons), dtype=np.int64, count=n)
+        block[:, _ENTITIES] = np.fromiter((codes[r] for r in raws), dtype=np.int64, count=n)
+        block[:, _UNSURE] = np.fromiter((bool(u) for u in unsure), dtype=np.int64, count=n)
+        held.ids = np.concatenate([held.ids, np.fromiter(ids, dtype=np.int64, count=n)])
+        held.rows = np.concatenate([held.rows, block])
 
     def _reload(self, s: Session, held: _Held, campaign_id: int, withdrawn: tuple[int, int | None]) -> None:
-        held.rows.clear()
-        held.client_of.clear()
-        self._add(held, s.connection().execute(self._query(campaign_id)))
-        held.withdrawn = withdrawn
+        held.ids, held.rows, held.client_of = np.zeros(0, dtype=np.int64), _NO_ROWS, {}
+        self._add(s, held, self._fetch(s, campaign_id, 0))
+        held.withdrawn, held.loaded = withdrawn, True
 
     def _refresh(self, s: Session, held: _Held, campaign_id: int, version: tuple[object, ...]) -> None:
         """Bring ``held`` up to ``version`` (store.labels_version: campaign, count, highest id, withdrawn count, highest withdrawn id, ...)."""
         n, last, wn, wlast = version[1], version[2], version[3], version[4]
         withdrawn = (int(str(wn)), None if wlast is None else int(str(wlast)))
-        if not held.rows and not held.client_of:
+        if not held.loaded:
             self._reload(s, held, campaign_id, withdrawn)
         else:
-            if withdrawn != held.withdrawn:
+            if withdrawn != held.withdrawn:  # labels undone since, found by their client ids (SQLite may hand an undone id out again)
                 since = held.withdrawn[1] or 0
-                gone = set(s.execute(select(WithdrawnLabel.client_id).where(WithdrawnLabel.campaign_id == campaign_id, WithdrawnLabel.id > since)).scalars())
-                for label_id in [i for i, c in held.client_of.items() if c in gone] if gone else []:
-                    del held.rows[label_id]
-                    del held.client_of[label_id]
+                gone = [held.client_of.pop(c, None) or held.client_of.pop(c.encode(), None)
+                        for c in s.execute(select(WithdrawnLabel.client_id).where(WithdrawnLabel.campaign_id == campaign_id, WithdrawnLabel.id > since)).scalars()]
+                keep = ~np.isin(held.ids, np.array([i for i in gone if i is not None], dtype=np.int64))
+                held.ids, held.rows = held.ids[keep], held.rows[keep]
                 held.withdrawn = withdrawn
-            top = next(reversed(held.rows), 0) if held.rows else 0
-            self._add(held, s.connection().execute(self._query(campaign_id).where(Label.id > top)))
-        if len(held.rows) != n or (held.rows and next(reversed(held.rows)) != last):
+            self._add(s, held, self._fetch(s, campaign_id, int(held.ids[-1]) if len(held.ids) else 0))
+        if len(held.ids) != n or (len(held.ids) and int(held.ids[-1]) != last):
             self._reload(s, held, campaign_id, withdrawn)
 
     def judgments(self, s: Session, campaign_id: int, version: tuple[object, ...]) -> list[Judgment]:
@@ -129,7 +171,7 @@ class LabelStore:
         held = self._slot(campaign_id)
         with held.lock:
             self._refresh(s, held, campaign_id, version)
-            return [Judgment(r, held.people[p], held.entities[e], u) for r, p, e, u in held.rows.values()]
+            return [Judgment(r, held.people[p], held.entities[e], bool(u)) for r, p, e, u in held.rows.tolist()]
 
     def read(self, s: Session, campaign_id: int, version: tuple[object, ...], *, rules: SynonymRules,
              region_class: Mapping[int, str], limit: int | None = None) -> ReadJudgments:
@@ -137,37 +179,34 @@ class LabelStore:
         held = self._slot(campaign_id)
         with held.lock:
             self._refresh(s, held, campaign_id, version)
-            state = (len(held.rows), next(reversed(held.rows), 0) if held.rows else 0, held.withdrawn)
-            if held.table is None or held.table[0] != state:
-                held.table = (state, np.array(list(held.rows.values()), dtype=np.int64).reshape(-1, 4))
-            table = held.table[1]
-            if limit is not None:
-                table = table[:limit]
+            table = held.rows if limit is None else held.rows[:limit]
             table = table[table[:, _UNSURE] == 0]
             used_entities = np.unique(table[:, _ENTITIES])
-            words = typed_attribute_words({a for e in used_entities for _, attrs in held.entities[e] for a in attrs}, rules=rules)
-            if held.read_with != (rules, words):
-                held.read_with, held.reading_of, held.readings = (rules, words), {}, []
+            words = typed_attribute_words(frozenset().union(*(held.attributes[e] for e in used_entities.tolist())), rules=rules)
+            reading_of, readings = held.read_with.pop((rules, words)) if (rules, words) in held.read_with else ({}, [])
+            while len(held.read_with) >= _READINGS_KEPT:
+                held.read_with.pop(next(iter(held.read_with)))
+            held.read_with[(rules, words)] = (reading_of, readings)  # the most recently used last
             classes = sorted({c for c in region_class.values()})
             class_code = {c: i + 1 for i, c in enumerate(classes)}  # 0: a region outside the campaign
             region_ids = table[:, _REGION]
             regions, at = np.unique(region_ids, return_inverse=True)
-            region_cls = np.array([class_code.get(region_class.get(int(r), ""), 0) for r in regions], dtype=np.int64)
+            region_cls = np.array([class_code.get(region_class.get(r, ""), 0) for r in regions.tolist()], dtype=np.int64)
             key = table[:, _ENTITIES] * (len(classes) + 1) + region_cls[at.reshape(-1)]
             distinct, which = np.unique(key, return_inverse=True)
             codes = np.empty(len(distinct), dtype=np.int64)
             for i, k in enumerate(distinct.tolist()):
                 e, c = divmod(k, len(classes) + 1)
                 cls = classes[c - 1] if c else None
-                found = held.reading_of.get((e, cls))
+                found = reading_of.get((e, cls))
                 if found is None:
-                    found = held.reading_of[(e, cls)] = len(held.readings)
-                    held.readings.append(read_label(held.entities[e], cls, rules=rules, words=words))
+                    found = reading_of[(e, cls)] = len(readings)
+                    readings.append(read_label(held.entities[e], cls, rules=rules, words=words))
                 codes[i] = found
             people = table[:, _PERSON]
             used_people = np.unique(people)
-            annotators = tuple(sorted(held.people[p] for p in used_people))
+            annotators = tuple(sorted(held.people[p] for p in used_people.tolist()))
             recode = np.zeros(len(held.people), dtype=np.int64)
             for p in used_people.tolist():
                 recode[p] = annotators.index(held.people[p])
-            return ReadJudgments(region_ids.copy(), annotators, recode[people], tuple(held.readings), codes[which.reshape(-1)], words)
+            return ReadJudgments(region_ids.copy(), annotators, recode[people], tuple(readings), codes[which.reshape(-1)], words)

@@ -209,3 +209,58 @@ def test_rules_are_kept_with_their_results_until_a_new_label(client: TestClient,
         again = campaign_rules(campaign_results(s, campaign_id, cache=cache), min_support=0.01)
         assert again is not first
         assert again.rules.equals(campaign_rules(campaign_results(s, campaign_id), min_support=0.01).rules)
+
+
+def test_warming_makes_what_the_first_results_page_and_csv_need(client: TestClient, campaign_id: int) -> None:
+    from app.services.campaign_analysis import campaign_rules, warm_results
+    from app.services.exports import cached_concepts_export, concepts_export
+
+    cache = ResultsCache()
+    assert warm_results(client.app.state.sessions, cache, min_support=0.02) == []  # type: ignore[attr-defined]  # no labels: nothing to warm
+    _label(client, campaign_id, "p", 12)
+    assert warm_results(client.app.state.sessions, cache, min_support=0.02) == [campaign_id]  # type: ignore[attr-defined]
+    made: list[object] = []
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        res = campaign_results(s, campaign_id, cache=cache)
+        rules = res.cache.get_or_make(("rules", "predicted", 2, 0.02, True, *res.version), lambda: made.append(1))  # type: ignore[union-attr]
+        assert not made and rules is campaign_rules(res, min_support=0.02)  # found made, not made again
+        assert cached_concepts_export(res, "csv").body == concepts_export(campaign_results(s, campaign_id), "csv").body  # the uncached path agrees
+        assert res.table.presence.equals(campaign_results(s, campaign_id).table.presence)
+
+
+def test_a_result_being_made_is_made_once_for_threads_asking_together() -> None:
+    import threading
+
+    cache = ResultsCache()
+    started, release = threading.Event(), threading.Event()
+    calls: list[int] = []
+
+    def make() -> list[int]:
+        calls.append(1)
+        started.set()
+        release.wait(10)
+        return calls
+
+    first = threading.Thread(target=lambda: cache.get_or_make(("k",), make))
+    first.start()
+    started.wait(10)
+    got: list[object] = []
+    second = threading.Thread(target=lambda: got.append(cache.get_or_make(("k",), make)))
+    second.start()
+    second.join(0.5)  # let it ask while the first is still making (without the wait it would make it again)
+    assert second.is_alive()
+    release.set()
+    first.join(10)
+    second.join(10)
+    assert calls == [1] and got == [calls]
+
+
+def test_a_failed_make_is_not_kept_and_the_next_asker_makes_it() -> None:
+    cache = ResultsCache()
+
+    def fail() -> int:
+        raise ValueError("no")
+
+    with pytest.raises(ValueError):
+        cache.get_or_make(("k",), fail)
+    assert cache.get_or_make(("k",), lambda: 7) == 7
