@@ -110,7 +110,8 @@ class LabelStore:
                     cur.close()
         query = (select(Label.id, Label.client_id, Label.region_id, Label.person_id, type_coerce(Label.entities, String), Label.unsure)
                  .where(Label.campaign_id == campaign_id, Label.id > after).order_by(Label.id))
-        return [tuple(r) for r in conn.execute(query)]  # type: ignore[misc]
+        # A driver that decodes JSON itself gives lists: kept as their JSON text, one key per distinct value.
+        return [(i, c, r, p, e if isinstance(e, (str, bytes)) else json.dumps(e), u) for i, c, r, p, e, u in conn.execute(query)]
 
     def _add(self, s: Session, held: _Held, rows: list[tuple[int, object, int, int, object, int]]) -> None:
         if not rows:
