@@ -16,6 +16,7 @@ one is recorded from the activation on, so Grad-CAM costs about one forward pass
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import re
 import warnings
@@ -114,16 +115,16 @@ def _op_name(func: object) -> str:
     return name.split(".", 1)[0]  # an exported graph's aten overloads are named like "amax.default"
 
 
-def _spatial_pool_scale(func: object, args: tuple[object, ...], kwargs: dict[str, object], activation: torch.Tensor) -> str | None:
-    """For a global spatial pooling of ``activation`` (mean, amax, sum over h and w, adaptive average
-    pooling to 1x1), the sum over the map of d(pooled)/d(activation) per channel: "one", or "area"
-    (h*w) for a sum. None for anything else (which is then differentiated the ordinary way)."""
+def _global_pool(func: object, args: tuple[object, ...], kwargs: dict[str, object]) -> tuple[str, str] | None:
+    """For a global spatial pooling of a map (mean, amax, sum over h and w, adaptive average pooling
+    to 1x1): its kind ("mean", "amax" or "sum"; adaptive pooling is a mean) and the sum over the map
+    of d(pooled)/d(map) per channel: "one", or "area" (h*w) for a sum. None for anything else."""
     name = _op_name(func)
-    if name not in _GLOBAL_POOLS or not args or args[0] is not activation or activation.ndim != 4:
+    if name not in _GLOBAL_POOLS or not args or not isinstance(args[0], torch.Tensor) or args[0].ndim != 4:
         return None
     if name in ("adaptive_avg_pool2d", "_adaptive_avg_pool2d"):
         size = args[1] if len(args) > 1 else kwargs.get("output_size")
-        return "one" if size in (1, (1, 1), [1, 1]) else None
+        return ("mean", "one") if size in (1, (1, 1), [1, 1]) else None
     dims = args[1] if len(args) > 1 else kwargs.get("dim")
     if isinstance(dims, int):
         return None
@@ -131,7 +132,71 @@ def _spatial_pool_scale(func: object, args: tuple[object, ...], kwargs: dict[str
         return None
     if sorted(d % 4 for d in dims) != [2, 3]:
         return None
-    return _GLOBAL_POOLS[name]
+    return name, _GLOBAL_POOLS[name]
+
+
+class _SpreadPooled(torch.autograd.Function):
+    """A global mean or sum pooling of a map whose backward hands the pooled gradient back as a
+    broadcast view over h x w. torch's own backward writes that gradient out in full first (an
+    activation-sized pass per batch); the next operation's backward reads the view as it reads a
+    full tensor, so the gradient is the same (to the last bit through a ReLU or an addition; an
+    elementwise backward kernel may round a broadcast input differently, as SiLU's does by ~1e-16)."""
+
+    @staticmethod
+    def forward(ctx: Any, x: torch.Tensor, pool: Callable[[torch.Tensor], torch.Tensor], area: int) -> torch.Tensor:
+        ctx.shape, ctx.dtype, ctx.area = x.shape, x.dtype, area
+        return pool(x)
+
+    @staticmethod
+    def backward(ctx: Any, grad: torch.Tensor) -> tuple[torch.Tensor, None, None]:
+        n, c, h, w = ctx.shape
+        spread = grad.reshape(n, c, 1, 1).to(ctx.dtype)
+        if ctx.area != 1:
+            spread = spread / ctx.area  # as torch's mean backward divides the spread gradient
+        return spread.expand(n, c, h, w), None, None
+
+
+def _spread_pool(func: Any, args: tuple[object, ...], kwargs: dict[str, object], found: tuple[str, str]) -> torch.Tensor | None:
+    """A global mean/sum pooling (``found`` by :func:`_global_pool`) of a map that records gradients,
+    run as :class:`_SpreadPooled`; None otherwise (an amax keeps torch's backward, which picks its positions)."""
+    x = args[0]
+    if found[0] == "amax" or not isinstance(x, torch.Tensor) or not x.requires_grad or not torch.is_grad_enabled():
+        return None
+    area = x.shape[2] * x.shape[3] if found[0] == "mean" else 1
+    rest = args[1:]
+    result: torch.Tensor = _SpreadPooled.apply(x, lambda t: func(t, *rest, **kwargs), area)  # type: ignore[no-untyped-call]
+    return result
+
+
+_MAX_UNBIND = 4  # q, k, v (or k, v) of a packed projection; a longer dimension keeps torch's select
+
+
+def _select_parts(name: str, args: tuple[object, ...], kwargs: dict[str, object], parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...]]]) -> torch.Tensor | None:
+    """``x.select(dim, i)`` (or ``x[i]``) on a short dimension of a tensor that records gradients, as
+    the i-th part of one ``x.unbind(dim)`` shared by every such select of ``x``: the same views, but
+    one backward step stacks the parts' gradients, where each select's backward writes a zero
+    tensor the size of ``x`` and the three are then added (as for q, k and v of attention's packed
+    projection). None when the call is not one."""
+    x: object
+    dim: object
+    index: object
+    if name == "__getitem__" and len(args) == 2 and not kwargs:
+        x, dim, index = args[0], 0, args[1]
+    elif name == "select" and len(args) == 3 and not kwargs:
+        x, dim, index = args
+    else:
+        return None
+    if not isinstance(x, torch.Tensor) or type(dim) is not int or type(index) is not int or not x.requires_grad or not torch.is_grad_enabled():
+        return None
+    if not -x.ndim <= dim < x.ndim:
+        return None
+    dim %= x.ndim
+    if not 2 <= x.shape[dim] <= _MAX_UNBIND or not -x.shape[dim] <= index < x.shape[dim]:
+        return None
+    key = (id(x), dim)
+    if key not in parts:
+        parts[key] = (x, torch.unbind(x, dim))  # x is kept, so its id stays its own
+    return parts[key][1][index]
 
 
 def _attention_with_rows(*args: Any, **kwargs: Any) -> torch.Tensor:
@@ -142,6 +207,19 @@ def _attention_with_rows(*args: Any, **kwargs: Any) -> torch.Tensor:
         q, k, v, scale = call
         return attention_rows(q, k, v, scale=scale)
     return F.scaled_dot_product_attention(*args, **kwargs)
+
+
+def _in_projection_unbound(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, w: torch.Tensor, b: torch.Tensor | None = None) -> list[torch.Tensor]:
+    """torch's packed in-projection of self-attention, its q, k, v taken with one ``unbind`` instead
+    of a select each (see :func:`_select_parts`: the same values, a cheaper backward); other
+    attention (k or v not the query) goes to torch's own."""
+    if not (q is k and k is v):
+        packed: Callable[..., list[torch.Tensor]] = F._in_projection_packed  # type: ignore[attr-defined]  # private in the stubs
+        return packed(q, k, v, w, b)
+    proj = F.linear(q, w, b)
+    e = q.size(-1)
+    proj = proj.view(*proj.shape[:-1], 3, e).unsqueeze(0).transpose(0, -2).squeeze(-2).contiguous()
+    return list(proj.unbind(0))
 
 
 @functools.cache
@@ -160,6 +238,8 @@ def _mha_with_rows() -> Callable[..., Any] | None:
     names = dict(fn.__globals__)
     names["scaled_dot_product_attention"] = _attention_with_rows
     names["has_torch_function"] = lambda *_args: False
+    if "_in_projection_packed" in code.co_names:
+        names["_in_projection_packed"] = _in_projection_unbound
     copy = FunctionType(code, names, fn.__name__, fn.__defaults__, fn.__closure__)
     copy.__kwdefaults__ = fn.__kwdefaults__
     return copy
@@ -173,14 +253,18 @@ class _Tail(TorchFunctionMode):
       d logit / d pooled (times h*w for a sum, whatever positions an amax ties on), so the backward
       pass stops at the pooled N x C values and never makes a gradient map. Other uses of the
       activation are differentiated as usual and the two parts add up.
+    * A global mean or sum pooling of a later map hands its gradient back as a broadcast view
+      (:class:`_SpreadPooled`), not written out over the map.
     * Attention runs as :func:`analysis.attention_rows.attention_rows`, whose backward works only on
-      the query rows that carry gradient (one, below a class-token head's last attention).
+      the query rows that carry gradient (one, below a class-token head's last attention); the
+      selects that split a packed q, k, v projection share one ``unbind`` (:func:`_select_parts`).
     """
 
     def __init__(self, activation: torch.Tensor) -> None:
         super().__init__()
         self.activation = activation
         self.pooled: list[tuple[torch.Tensor, str]] = []
+        self.parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...]]] = {}
 
     def __torch_function__(self, func: Any, types: Any, args: tuple[object, ...] = (), kwargs: dict[str, object] | None = None) -> Any:
         kwargs = kwargs or {}
@@ -190,14 +274,15 @@ class _Tail(TorchFunctionMode):
         if func is F.multi_head_attention_forward:
             mha: Callable[..., Any] = _mha_with_rows() or func
             return mha(*args, **kwargs)
-        scale = _spatial_pool_scale(func, args, kwargs, self.activation)
-        if scale is None:
-            return func(*args, **kwargs)
-        with torch.no_grad():
-            value = func(self.activation.detach(), *args[1:], **kwargs)
-        leaf = value.requires_grad_(True)
-        self.pooled.append((leaf, scale))
-        return leaf
+        pool = _global_pool(func, args, kwargs) if name in _GLOBAL_POOLS else None
+        if pool is not None and args[0] is self.activation:
+            with torch.no_grad():
+                value = func(self.activation.detach(), *args[1:], **kwargs)
+            leaf = value.requires_grad_(True)
+            self.pooled.append((leaf, pool[1]))
+            return leaf
+        found = _spread_pool(func, args, kwargs, pool) if pool is not None else _select_parts(name, args, kwargs, self.parts)
+        return func(*args, **kwargs) if found is None else found
 
 
 @dataclass(frozen=True)
@@ -233,16 +318,51 @@ def channel_gradient(tapped: Tapped, target: torch.Tensor, grid: TokenGrid | Non
     return alpha, full
 
 
+def _ordinary(tensor: torch.Tensor) -> torch.Tensor:
+    """An ordinary tensor over the same memory as ``tensor`` (an inference tensor cannot take part in
+    autograd; this alias can, and costs no copy)."""
+    if not tensor.is_inference():
+        return tensor
+    with torch.inference_mode(False):
+        return torch.empty(0, dtype=tensor.dtype, device=tensor.device).set_(tensor.untyped_storage(), tensor.storage_offset(), tensor.size(), tensor.stride())
+
+
+def _inference_conflict(exc: RuntimeError) -> bool:
+    """Whether ``exc`` is autograd refusing a tensor made in inference mode (saved for backward, or
+    changed in place after the layer)."""
+    return "nference tensor" in str(exc)
+
+
 class HookTap:
-    """Tap by a forward hook on ``layer``: gradients off before it, on from its (detached) output."""
+    """Tap by a forward hook on ``layer``: no autograd before it, a graph from its output on.
+
+    The part before the layer runs in inference mode, as plain batched inference does (the lighter
+    way through torch's dispatcher, which matters for models of many small operations); the layer's
+    output is then aliased as an ordinary tensor, without a copy, and the rest of the forward pass
+    records gradients. A model that uses a tensor from before the layer in a way autograd must
+    save (a product with the tapped map, an in-place change) is refused that by torch; the tap
+    then runs it again with gradients merely switched off before the layer, and keeps doing so.
+    """
 
     def __init__(self, module: nn.Module, layer: nn.Module, name: str) -> None:
         self.module, self.layer, self.name = module, layer, name
+        self.inference = True  # False once the model has shown it needs ordinary tensors before the layer
 
     def __call__(self, x: torch.Tensor) -> Tapped:
+        if self.inference:
+            try:
+                return self._run(x, inference=True)
+            except RuntimeError as exc:
+                if not _inference_conflict(exc):
+                    raise
+                self.inference = False
+        return self._run(x, inference=False)
+
+    def _run(self, x: torch.Tensor, *, inference: bool) -> Tapped:
         captured: list[torch.Tensor] = []
         modes: list[_Tail] = []
         name = self.name
+        after = contextlib.ExitStack()
 
         def hook(_module: nn.Module, _inputs: object, output: object) -> torch.Tensor:
             if captured:
@@ -253,24 +373,24 @@ class HookTap:
                     f"layer {name!r} must give an N x C x h x w feature map or N x tokens x dim; it gave {type(output).__name__}{shape}. "
                     "Choose another layer ('heedmap layers' lists them)."
                 )
-            activation = output.detach().requires_grad_(True)
+            after.enter_context(torch.inference_mode(False))  # record the graph from here on, for this forward only
+            after.enter_context(torch.enable_grad())
+            activation = _ordinary(output.detach()).requires_grad_(True)
             captured.append(activation)
-            torch.set_grad_enabled(True)  # record the graph from here on, for this forward only
             mode = _Tail(activation)
-            mode.__enter__()  # type: ignore[no-untyped-call]  # untyped in torch
+            after.enter_context(mode)
             modes.append(mode)
             return activation
 
         handle = self.layer.register_forward_hook(hook)
-        previous = torch.is_grad_enabled()
         try:
-            torch.set_grad_enabled(False)
-            out = self.module(x)
+            with torch.inference_mode() if inference else torch.no_grad():
+                try:
+                    out = self.module(x)
+                finally:
+                    after.close()
         finally:
-            for mode in modes:
-                mode.__exit__(None, None, None)  # type: ignore[no-untyped-call]  # untyped in torch
             handle.remove()
-            torch.set_grad_enabled(previous)
         if not captured:
             raise GradientUnavailableError(f"layer {name!r} did not run in the forward pass; check 'target_layer'.")
         return Tapped(out, captured[0], tuple(modes[0].pooled) if modes else ())
@@ -453,7 +573,7 @@ def _ts_constant(value: torch._C.Value) -> object:
 
 
 def _ts_pool_scale(node: torch._C.Node) -> str | None:
-    """The scale of a global spatial pooling node of a 4-d map (see :func:`_spatial_pool_scale`), else None."""
+    """The scale of a global spatial pooling node of a 4-d map (see :func:`_global_pool`), else None."""
     kind = node.kind().split("::", 1)[-1]
     inputs = list(node.inputs())
     if kind not in _GLOBAL_POOLS or len(inputs) < 2:

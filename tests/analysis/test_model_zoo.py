@@ -239,3 +239,123 @@ def test_vit_attention_after_the_layer_runs_row_sparse_backward_and_gradcam_equa
     ref, pred = direct_gradcam(eager, layer, x, output=None, prefix=1)
     assert ours.predicted.tolist() == pred.tolist() and float(ref.max()) > 0
     torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
+
+
+@pytest.mark.parametrize("fmt", ["exported", "factory"])
+@pytest.mark.parametrize("name", ["silu", "dense_concat"])
+def test_pooling_after_an_elementwise_tail_spreads_its_gradient_and_gradcam_equals_formula(name: str, fmt: str, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    # silu: mean(silu(conv3)); dense_concat: adaptive_avg_pool(relu(norm)): the pooled map is not the
+    # layer's own, so its backward hands a broadcast gradient to the SiLU / ReLU backward.
+    entry = BY_NAME[name]
+    eager, d = zoo_files[name]
+    loaded = _load(fmt, entry, d)
+    x = torch.randn(4, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(13))
+    tapped = loaded.tap(x)
+    assert "_SpreadPooledBackward" in _backward_node_names(loaded.logits(tapped.out))
+    ours = compute_saliency(loaded, x)
+    ref, pred = direct_gradcam(eager, loaded.target_layer, x, output=None, prefix=None)
+    assert ours.predicted.tolist() == pred.tolist() and float(ref.max()) > 0
+    torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
+
+
+@pytest.mark.parametrize("act", ["identity", "relu", "silu"])
+@pytest.mark.parametrize("pool", ["mean", "mean_keepdim", "sum", "adaptive"])
+def test_spread_pooled_gradient_is_torchs(pool: str, act: str) -> None:
+    from analysis.layer_taps import _SpreadPooled
+
+    x = torch.randn(3, 5, 7, 6, dtype=torch.float64)
+    pools = {
+        "mean": lambda t: t.mean(dim=(2, 3)),
+        "mean_keepdim": lambda t: t.mean(dim=(-1, -2), keepdim=True),
+        "sum": lambda t: t.sum(dim=(2, 3)),
+        "adaptive": lambda t: F.adaptive_avg_pool2d(t, 1),
+    }
+    fn = pools[pool]
+    area = 1 if pool == "sum" else 42
+    a, b = x.clone().requires_grad_(True), x.clone().requires_grad_(True)
+    f = {"identity": lambda t: t * 1.0, "relu": F.relu, "silu": F.silu}[act]
+    ya, yb = fn(f(a)), _SpreadPooled.apply(f(b), fn, area)
+    assert torch.equal(ya, yb)  # the forward is torch's own pooling
+    g = torch.randn_like(ya)
+    (ga,) = torch.autograd.grad(ya, a, g)
+    (gb,) = torch.autograd.grad(yb, b, g)
+    if act == "silu":  # SiLU's backward kernel vectorises a broadcast gradient differently: last-bit differences
+        torch.testing.assert_close(gb, ga, rtol=1e-14, atol=0.0)
+    else:
+        assert torch.equal(ga, gb)
+
+
+@pytest.mark.parametrize("fmt", ["exported", "factory"])
+def test_vit_packed_projection_is_split_by_one_unbind(fmt: str, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    # The q, k, v parts of attention's packed projection after the layer: one unbind, not three selects.
+    eager, d = zoo_files["vit"]
+    loaded = _load(fmt, BY_NAME["vit"], d)
+    x = torch.randn(3, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(4))
+    names = _backward_node_names(loaded.logits(loaded.tap(x).out))
+    assert "UnbindBackward0" in names
+    ours = compute_saliency(loaded, x)
+    ref, _ = direct_gradcam(eager, loaded.target_layer, x, output=None, prefix=1)
+    torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
+
+
+def test_select_parts_only_splits_short_dimensions_that_record_gradients() -> None:
+    from analysis.layer_taps import _select_parts
+
+    parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...]]] = {}
+    x = torch.randn(3, 4, 5, requires_grad=True)
+    with torch.enable_grad():
+        first = _select_parts("__getitem__", (x, 1), {}, parts)
+        again = _select_parts("select", (x, 0, -1), {}, parts)
+        assert first is not None and again is not None and torch.equal(first, x[1]) and torch.equal(again, x[2])
+        assert len(parts) == 1  # one unbind served both
+        assert _select_parts("select", (x, 2, 0), {}, parts) is None  # 5 long: torch's select
+        assert _select_parts("select", (x.detach(), 0, 0), {}, parts) is None  # no gradient recorded
+        assert _select_parts("__getitem__", (x, slice(0, 1)), {}, parts) is None
+    with torch.no_grad():
+        assert _select_parts("select", (x, 0, 0), {}, parts) is None
+
+
+class _GatedAfterLayer(nn.Module):
+    """A gate computed from the input before the layer multiplies the layer's map (autograd must
+    save the gate), and a tensor from before the layer is changed in place after it."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.features = nn.Sequential(nn.Conv2d(3, 6, 3, padding=1), nn.ReLU())
+        self.gate = nn.Conv2d(3, 6, 1)
+        self.fc = nn.Linear(6, 3)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        g = torch.sigmoid(self.gate(x))
+        a = self.features(x)
+        g.mul_(2.0)
+        return self.fc((a * g).mean(dim=(2, 3)))
+
+
+@pytest.mark.parametrize("fmt", ["exported", "factory"])
+def test_model_using_tensors_from_before_the_layer_falls_back_from_inference_mode(fmt: str) -> None:
+    torch.manual_seed(3)
+    model = _GatedAfterLayer().eval()
+    sidecar = Sidecar(classes=("bottle", "can", "carton"), input_size=(SIZE, SIZE), target_layer="features")
+    module = torch.export.export(model, (torch.randn(2, 3, SIZE, SIZE),), dynamic_shapes=({0: torch.export.Dim("batch")},)).module() if fmt == "exported" else copy.deepcopy(model)
+    loaded = prepare_model(module, sidecar)
+    x = torch.randn(4, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(8))
+    ref, pred = direct_gradcam(model, "features", x, output=None, prefix=None)
+    for _ in range(2):  # the second batch goes straight to the ordinary path
+        ours = compute_saliency(loaded, x)
+        assert ours.predicted.tolist() == pred.tolist() and float(ref.max()) > 0
+        torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
+    assert loaded.tap.inference is False  # type: ignore[union-attr]
+
+
+def test_tap_runs_the_part_before_the_layer_in_inference_mode(zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    eager, d = zoo_files["residual_flatten"]
+    loaded = _load("factory", BY_NAME["residual_flatten"], d)
+    seen: list[bool] = []
+    handle = loaded.module.inner.get_submodule("block1").register_forward_hook(lambda _m, _i, out: seen.append(out.is_inference()))
+    try:
+        tapped = loaded.tap(torch.randn(2, 3, SIZE, SIZE))
+    finally:
+        handle.remove()
+    assert seen == [True] and loaded.tap.inference is True  # type: ignore[union-attr]
+    assert not tapped.activation.is_inference() and tapped.activation.requires_grad
