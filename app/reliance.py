@@ -7,6 +7,7 @@ from __future__ import annotations
 import hashlib
 import json
 import sys
+import weakref
 from collections.abc import Callable, Sequence
 from dataclasses import replace
 from pathlib import Path
@@ -18,6 +19,7 @@ import torch
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from analysis.concept_table import ConceptTable
 from analysis.errors import ImageInputError, InvalidInputError
 from analysis.expectations import Verdict, decide_expectations, read_expectations
 from analysis.images import read_rgb, to_model_input
@@ -184,7 +186,7 @@ def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: in
     key = hashlib.sha256(json.dumps(
         {"model": model_sha, "run": res.campaign.run_id, "cls": cls, "concepts": sorted(concepts), "draws": draws, "seed": seed,
          "images": image_ids, "targets": targets, "method": res.method, "evidence": _evidence(res, image_ids, concepts),
-         "version": 5}, sort_keys=True).encode()).hexdigest()[:20]
+         "version": 6}, sort_keys=True).encode()).hexdigest()[:20]
     return key, image_ids, targets
 
 
@@ -193,30 +195,78 @@ def _evidence(res: Results, image_ids: list[int], concepts: list[str]) -> str:
     carrying its concepts, with all they show (which decides "alone", :func:`_inputs`), and, for a concept refining
     an entity, every region showing that entity with all it shows and whether its image shows the concept (which
     decides the plain look's donors, :func:`_plain_look`). New labels that change none of these keep stored results;
-    any that do run the tests again."""
-    table = res.table
-    ids = table.regions.ids
-    if ids is None:
+    any that do run the tests again.
+
+    What each region shows is digested once per concept table (:func:`_region_facts`: tables are made once per
+    labels version) and each concept's donor facts once per table, so the stored-verdict reads behind a results
+    page do array work per rule instead of walking every region of an entity in Python."""
+    facts = _region_facts(res.table)
+    if facts is None:
         return ""
-    carries = table.regions.carries.tocsr()
-    image_of = np.asarray(table.meta.index)[table.regions.region_image]
-    index = {c: k for k, c in enumerate(table.concepts)}
-    facts: list[object] = []
-    wanted = set(image_ids)
-    cols = [index[c] for c in concepts if c in index]
-    on = np.asarray(carries[:, cols].sum(axis=1)).ravel() > 0 if cols else np.zeros(carries.shape[0], dtype=bool)
-    for r in np.nonzero(on)[0]:
-        if int(image_of[r]) in wanted:
-            facts.append(["covered", int(ids[r]), int(image_of[r]), sorted(table.concepts[c] for c in carries[r].indices)])
+    table = res.table
+    digest = hashlib.sha256()
+    cols = [facts.column[c] for c in concepts if c in facts.column]
+    if cols:
+        on = np.asarray(facts.carries[:, cols].sum(axis=1)).ravel() > 0
+        rows = np.nonzero(on & np.isin(facts.image, np.asarray(image_ids, dtype=np.int64)))[0]
+        for part in (facts.ids[rows], facts.image[rows], facts.digest[rows]):
+            digest.update(np.ascontiguousarray(part).tobytes())
     for concept in concepts:
         entity = table.families.get(concept)
-        if entity is None or entity not in index or concept not in index:
-            continue
-        shows_concept = table.presence[concept].to_numpy(dtype=bool)[table.regions.region_image]
-        for r in np.nonzero(np.asarray(carries[:, index[entity]].todense()).ravel() > 0)[0]:
-            facts.append(["donor", concept, int(ids[r]), int(image_of[r]), bool(shows_concept[r]),
-                          sorted(table.concepts[c] for c in carries[r].indices)])
-    return hashlib.sha256(json.dumps(facts).encode()).hexdigest()
+        if entity is not None and entity in facts.column and concept in facts.column:
+            digest.update(concept.encode() + b"\0" + facts.donors(table, concept, entity))
+    return digest.hexdigest()
+
+
+class _RegionFacts:
+    """What every region of a concept table shows, as arrays: region ids, image ids, and a digest of the set of
+    concept names each region carries (two 64-bit lanes, each a sum of per-name keys taken from sha256 of the name,
+    so it does not depend on the table's column order); plus each refinement's donor facts, made on first use."""
+
+    def __init__(self, table: ConceptTable, ids: np.ndarray) -> None:
+        self.ids = np.asarray(ids, dtype=np.int64)
+        self.image = np.asarray(table.meta.index, dtype=np.int64)[table.regions.region_image]
+        self.column = {c: k for k, c in enumerate(table.concepts)}
+        self.carries = table.regions.carries.tocsc()
+        csr = table.regions.carries.tocsr()
+        keys = np.array([np.frombuffer(hashlib.sha256(c.encode()).digest()[:16], dtype="<u8") for c in table.concepts],
+                        dtype=np.uint64).reshape(-1, 2)
+        lanes = np.zeros((csr.shape[0], 2), dtype=np.uint64)
+        counts = np.diff(csr.indptr)
+        if csr.nnz:
+            rows = np.repeat(np.arange(csr.shape[0]), counts)
+            for lane in range(2):
+                np.add.at(lanes[:, lane], rows, keys[csr.indices, lane])  # wraps modulo 2**64
+        self.digest = np.column_stack([lanes, counts.astype(np.uint64)])
+        self._donors: dict[str, bytes] = {}
+
+    def donors(self, table: ConceptTable, concept: str, entity: str) -> bytes:
+        found = self._donors.get(concept)
+        if found is None:
+            found = self._donors[concept] = self._donor_digest(table, concept, entity)
+        return found
+
+    def _donor_digest(self, table: ConceptTable, concept: str, entity: str) -> bytes:
+        rows = np.nonzero(np.asarray(self.carries[:, self.column[entity]].todense()).ravel() > 0)[0]
+        shows = table.presence[concept].to_numpy(dtype=bool)[table.regions.region_image][rows]
+        h = hashlib.sha256()
+        for part in (self.ids[rows], self.image[rows], shows, self.digest[rows]):
+            h.update(np.ascontiguousarray(part).tobytes())
+        return h.digest()
+
+
+_FACTS: dict[int, _RegionFacts] = {}
+
+
+def _region_facts(table: ConceptTable) -> _RegionFacts | None:
+    """The table's region facts, made once per table object (kept while it lives); None for a table without region ids."""
+    if table.regions.ids is None:
+        return None
+    found = _FACTS.get(id(table))
+    if found is None:
+        found = _FACTS[id(table)] = _RegionFacts(table, table.regions.ids)
+        weakref.finalize(table, _FACTS.pop, id(table), None)
+    return found
 
 
 def _read_cached(path: Path) -> tuple[bool, InterventionResult | None]:

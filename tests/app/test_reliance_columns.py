@@ -74,3 +74,38 @@ def test_stored_interventions_are_run_again_when_labels_change_what_they_cover_o
     assert _stored_key({**base, 11: {"green belt": 1.0, "can body": 1.0}}) != key  # covered region no longer alone
     assert _stored_key({**base, 31: {"grey belt": 1.0}}) != key  # the plain look's donors change
     assert _stored_key({**base, 41: {"cap": 1.0, "label": 1.0}}) == key  # unrelated to what is covered or donated
+
+
+def test_the_storage_key_digests_each_table_once_and_each_refinement_s_donors_once(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Stored-verdict reads behind a results page ask for the storage key of every rule: what each region shows is
+    digested once per concept table (made once per labels version), not walked again per rule."""
+    from types import SimpleNamespace
+
+    import app.reliance as reliance
+    from analysis.concept_table import build_concept_table
+
+    made: list[int] = []
+    real = reliance._RegionFacts
+
+    class Counting(real):  # type: ignore[misc, valid-type]
+        def __init__(self, *args: object) -> None:
+            made.append(1)
+            super().__init__(*args)
+
+    donors: list[str] = []
+    real_digest = real._donor_digest
+    monkeypatch.setattr(reliance, "_RegionFacts", Counting)
+    monkeypatch.setattr(real, "_donor_digest", lambda self, table, concept, entity: donors.append(concept) or real_digest(self, table, concept, entity))
+    meta = pd.DataFrame({"true_class": ["can", "can", "bottle"], "predicted_class": ["can", "can", "bottle"], "confidence": [0.9] * 3,
+                         "split": ["test"] * 3}, index=[1, 2, 3])
+    concepts = {11: {"green belt": 1.0}, 21: {"green belt": 1.0, "tag": 1.0}, 31: {"belt": 1.0}}
+    table = build_concept_table(meta, {1: [11], 2: [21], 3: [31]}, {r: 0.5 for r in (11, 21, 31)}, concepts, method="majority",
+                                families={"green belt": "belt"})
+    res = SimpleNamespace(table=table, campaign=SimpleNamespace(run_id=1), method="majority")
+    keys = {reliance._plan(res, "sha", "can", c, 5, 200, 0)[0] for c in (["green belt"], ["tag"], ["green belt"], ["green belt", "tag"])}  # type: ignore[arg-type]
+    assert len(keys) == 3 and made == [1] and donors.count("green belt") == 1
+    # Another table (a new labels version) is digested again, and an identical one gives the same keys.
+    again = build_concept_table(meta, {1: [11], 2: [21], 3: [31]}, {r: 0.5 for r in (11, 21, 31)}, concepts, method="majority",
+                                families={"green belt": "belt"})
+    assert reliance._plan(SimpleNamespace(table=again, campaign=res.campaign, method="majority"), "sha", "can", ["tag"], 5, 200, 0)[0] in keys  # type: ignore[arg-type]
+    assert made == [1, 1]
