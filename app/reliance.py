@@ -31,12 +31,12 @@ from analysis.interventions import (
     InterventionResult,
     NotTestableError,
     ablation_test,
-    grow_by_colour,
     insertion_test,
-    needs_recolour,
     plain_colours,
     plan_regions,
+    plan_removal,
     recolour_test,
+    unlike_attribute,
 )
 from analysis.model_io import LoadedModel, load_model
 from analysis.reliance import RelianceFinding, RuleTests, VerdictSettings, concepts_key, judge_family
@@ -117,7 +117,7 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
 MAX_PLAIN_IMAGES = 200
 
 
-def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, concept: str) -> tuple[torch.Tensor | None, str]:
+def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, concept: str, tested: torch.Tensor) -> tuple[torch.Tensor | None, str]:
     """The plain look of the entity that ``concept`` refines ("belt" for "green belt"), one colour per image
     (up to MAX_PLAIN_IMAGES images, any class), and where it came from; or (None, why it cannot be found).
 
@@ -125,8 +125,10 @@ def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, con
     anywhere (an image has one belt: its other regions show the same green belt). Regions carrying another
     attribute of the entity ("grey belt") are positive evidence that the attribute is absent and are used
     when at least two images have one; otherwise regions of the bare entity are used. Those can still
-    hold the attribute where people named the entity but left the attribute out, which pulls the plain
-    look toward the attribute and the estimate toward zero (it errs toward understating reliance)."""
+    hold the attribute where people named the entity but left the attribute out (a group labelled "belt"
+    over green belts): every donor whose colour lies within the spread of ``tested`` (N x 3, each tested
+    image's mean colour under its masks) is dropped (:func:`analysis.interventions.unlike_attribute`),
+    whichever way it was labelled."""
     table = res.table
     entity = table.families.get(concept)
     if entity is None or entity not in table.concepts:
@@ -154,25 +156,35 @@ def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, con
                 per_image.setdefault(image, []).append(int(ids[r]))
         return per_image
 
-    per_image = donors(plain & shows(siblings))
-    source = f"regions labelled {' or '.join(repr(c) for c in siblings)}"
-    if len(per_image) < 2:
-        per_image, source = donors(plain), f"regions labelled {entity!r} alone in images without {concept!r}"
-    why = (f"recolouring needs regions labelled {entity!r} (or another attribute of it) without {concept!r} and without anything else, "
-           f"in images that do not show {concept!r} (the entity's plain look); {len(per_image)} image{'s have' if len(per_image) != 1 else ' has'} one")
-    if len(per_image) < 2:
-        return None, why
-    wanted = [r for rs in per_image.values() for r in rs]
-    rank_of = {int(rid): int(rank) + 1 for rid, rank in s.execute(select(RegionRow.id, RegionRow.rank).where(RegionRow.id.in_(wanted))).all()}
-    labels = region_labels_for(s, ProjectLayout(project), res.campaign.run_id, list(per_image))
-    x, kept = _read_inputs(s, model, [i for i in per_image if i in labels])
-    if len(kept) < 2:
-        return None, why
-    masks = np.stack([np.isin(labels[i], [rank_of[r] for r in per_image[i] if r in rank_of]) for i in kept])
-    try:
-        return plain_colours(x, masks), f"plain look from {source}, {len(kept)} images"
-    except NotTestableError:
-        return None, why
+    def colours(per_image: dict[int, list[int]]) -> torch.Tensor:
+        """Each donor image's mean colour under its donor regions (K x 3; none when fewer than two can be read)."""
+        wanted = [r for rs in per_image.values() for r in rs]
+        rank_of = {int(rid): int(rank) + 1 for rid, rank in s.execute(select(RegionRow.id, RegionRow.rank).where(RegionRow.id.in_(wanted))).all()}
+        labels = region_labels_for(s, ProjectLayout(project), res.campaign.run_id, list(per_image))
+        x, kept = _read_inputs(s, model, [i for i in per_image if i in labels])
+        masks = [np.isin(labels[i], [rank_of[r] for r in per_image[i] if r in rank_of]) for i in kept]
+        keep = [k for k, m in enumerate(masks) if m.any()]
+        if len(keep) < 2:
+            return torch.zeros((0, 3))
+        return plain_colours(x[keep], np.stack([masks[k] for k in keep]))
+
+    found, source, dropped = torch.zeros((0, 3)), "", 0
+    for rows, where in ((plain & shows(siblings), f"regions labelled {' or '.join(repr(c) for c in siblings)}"),
+                        (plain, f"regions labelled {entity!r} alone in images without {concept!r}")):
+        per_image = donors(rows) if rows.any() else {}
+        candidates = colours(per_image) if len(per_image) >= 2 else torch.zeros((0, 3))
+        unlike = unlike_attribute(candidates, tested) if len(candidates) else np.zeros(0, dtype=bool)
+        if int(unlike.sum()) >= 2:
+            found, source, dropped = candidates[torch.from_numpy(unlike)], where, int((~unlike).sum())
+            break
+        dropped = max(dropped, int((~unlike).sum()))
+    if len(found) < 2:
+        colour_note = (f"; {dropped} had a colour within the colours of the tested {concept!r} regions, so they cannot stand for "
+                       f"{entity!r} without it (label some with their other attribute, e.g. '{entity}: <colour>')") if dropped else ""
+        return None, (f"recolouring needs regions labelled {entity!r} (or another attribute of it) without {concept!r} and without "
+                      f"anything else, in at least two images that do not show {concept!r} (the entity's plain look){colour_note}")
+    left = f", {dropped} left out: their colour lies within the tested regions' colours" if dropped else ""
+    return found, f"plain look from {source}, {len(found)} images{left}"
 
 
 def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: int, max_images: int, seed: int) -> tuple[str, list[int], list[int]]:
@@ -321,18 +333,15 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
         return None
     index = model.classes.index(cls)
     label = f"{name} ({plan.note})" if plan.note else name
-    plain_note = ""
-    # An attribute of an entity (green belt) spans the entity, not only the salient pieces labelled: its masks
-    # are grown by colour to the rest of the entity before the policy looks at how much of the image they cover.
-    attribute = len(concepts) == 1 and concepts[0] in res.table.families
-    grown = grow_by_colour(x, masks) if attribute else masks
-    if needs_recolour(grown):
-        # Most of each image: covering has no room for a matched control. An attribute of an entity is removed
-        # by recolouring it to the entity's plain look instead.
-        plain, plain_note = (_plain_look(s, project, res, model, concepts[0]) if attribute else
-                             (None, "recolouring needs one concept that is an attribute of an entity (label it '<entity>: <attribute>')"))
+    # The default policy (analysis.interventions.plan_removal, decided from the masks before any result is seen):
+    # an attribute of an entity whose masks, grown by colour, cover most of each image is recoloured to the
+    # entity's plain look; anything else is covered.
+    removal = plan_removal(x, masks, concepts, families=res.table.families)
+    plain_note = removal.why_not_recolour
+    if removal.test == "recolour":
+        plain, plain_note = _plain_look(s, project, res, model, concepts[0], plain_colours(x, removal.masks))
         if plain is not None:
-            masks = grown
+            masks = removal.masks
             bar = _bar(f"{cls} / {name} (recolour)") if progress else None
             recoloured = replace(recolour_test(model, x, masks, index, plain=plain, concept=f"{label} ({plain_note})", draws=draws, seed=seed, progress=bar),
                                  shared=not plan.alone)

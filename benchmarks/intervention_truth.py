@@ -32,12 +32,13 @@ from analysis.interventions import (
     CoverPlan,
     InterventionResult,
     NotTestableError,
+    RemovalPlan,
     ablation_test,
-    grow_by_colour,
-    needs_recolour,
     plain_colours,
     plan_regions,
+    plan_removal,
     recolour_test,
+    unlike_attribute,
 )
 from analysis.model_io import LoadedModel, load_model
 from analysis.regions import extract_regions
@@ -51,6 +52,7 @@ from .measure import print_table
 
 CUES = ("tag", "belt", "object", "patch")
 MASKS = ("exact", "regions")
+RECOLOURS = ("recolour", "recolour, matched sham")
 
 
 @dataclass(frozen=True)
@@ -123,40 +125,64 @@ def _cell(r: InterventionResult | None, true: float) -> str:
     return f"{r.effect:.3f} ({r.effect / true:.2f}{left})" if abs(true) > 1e-9 else f"{r.effect:.3f}"
 
 
-def _plain_look(model: LoadedModel, seed: int, kind: str, n: int = 60) -> torch.Tensor:
-    """The belt's plain look (model input space) as the product finds it: the mean colour of regions that
-    show the belt and nothing else in scenes drawn without any cue ("regions": saliency regions a careful
-    annotator names "belt" alone; "exact": every belt pixel)."""
-    scenes = [render_scene(SceneConfig(seed=seed, cue="none"), "test", i) for i in range(n)]
-    sc = model.sidecar
-    x = to_model_input([s_.image for s_ in scenes], size=sc.input_size, mean=sc.mean, std=sc.std)
-    parts = np.stack([s_.mask for s_ in scenes])
-    if kind == "exact":
-        return plain_colours(x, parts == PART_IDS["belt"])
-    labelled = [extract_regions(m)[1] for m in compute_saliency(model, x).maps]
-    masks = np.stack([np.isin(lab, [k for k in range(1, int(lab.max()) + 1) if visible_parts(lab == k, parts[i]) == ["belt"]])
-                      for i, lab in enumerate(labelled)])
-    return plain_colours(x, masks)
+# The demo's concepts that refine an entity (an attribute named before the part: "green belt" of "belt"),
+# read from the generator's own names, as the app reads them from labels ("belt: green").
+FAMILIES = {CUE_CONCEPTS[c]: CUE_PARTS[c] for c in CUES if CUE_CONCEPTS[c] != CUE_PARTS[c]}
+_DONORS: dict[tuple[int, int, str, str], torch.Tensor] = {}
 
 
-def _recolour(model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_], cls: int, seed: int, kind: str) -> InterventionResult | None:
-    """The recolouring test, or None where no region shows the plain belt alone (as the product finds it: not testable)."""
-    try:
-        plain = _plain_look(model, seed + 300, kind)
-    except NotTestableError:
-        return None
-    return recolour_test(model, x, masks, cls, plain=plain, concept="cue", draws=5, seed=seed, n_boot=2000, n_perm=5000)
+def _donor_colours(model: LoadedModel, seed: int, kind: str, cue: str, n: int = 60) -> torch.Tensor:
+    """Candidate donors of the entity's plain look, one colour per scene (model input space), as a grouped
+    labelling leaves them: regions naming the entity alone ("belt", no colour) in scenes drawn at the demo's
+    cue rates, so some are belts that carry the attribute ("regions": saliency regions a careful annotator
+    names the entity alone; "exact": every pixel of the entity)."""
+    key = (id(model), seed, kind, cue)
+    if key not in _DONORS:
+        scenes = [render_scene(SceneConfig(seed=seed, cue=cue), "test", i) for i in range(n)]  # type: ignore[arg-type]
+        sc = model.sidecar
+        x = to_model_input([s_.image for s_ in scenes], size=sc.input_size, mean=sc.mean, std=sc.std)
+        parts = np.stack([s_.mask for s_ in scenes])
+        entity = PART_IDS[CUE_PARTS[cue]]
+        if kind == "exact":
+            masks = parts == entity
+        else:
+            labelled = [extract_regions(m)[1] for m in compute_saliency(model, x).maps]
+            masks = np.stack([np.isin(lab, [k for k in range(1, int(lab.max()) + 1) if visible_parts(lab == k, parts[i]) == [CUE_PARTS[cue]]])
+                              for i, lab in enumerate(labelled)])
+        has = masks.reshape(n, -1).any(axis=1)
+        _DONORS[key] = plain_colours(x[torch.from_numpy(has)], masks[has]) if has.sum() else torch.zeros((0, 3))
+    return _DONORS[key]
 
 
-def _policy(cue: str, x: torch.Tensor, masks: npt.NDArray[np.bool_]) -> tuple[str, npt.NDArray[np.bool_]]:
-    """What the product's default policy runs, and on which masks: for an attribute of an entity (the green
-    belt) the masks grown by colour to the rest of the entity, recoloured where they cover most of each
-    image; else covering with the default fill on the masks as they are."""
-    if cue == "belt":
-        grown = grow_by_colour(x, masks)
-        if needs_recolour(grown):
-            return "recolour", grown
-    return DEFAULT_FILLS[0], masks
+def _recolour(model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_], cls: int, seed: int, kind: str, cue: str,
+              sham: str = "attribute") -> tuple[InterventionResult | None, str]:
+    """The recolouring test with the product's donor screen (donors whose colour lies within the tested regions'
+    colours are dropped: :func:`analysis.interventions.unlike_attribute`), or None where fewer than two donors are
+    left (as the product finds it: not testable); and how many donors were kept of how many."""
+    donors = _donor_colours(model, seed + 300, kind, cue)
+    keep = unlike_attribute(donors, plain_colours(x, masks)) if len(donors) else np.zeros(0, dtype=bool)
+    note = f"{int(keep.sum())}/{len(donors)}"
+    if keep.sum() < 2:
+        return None, note
+    return recolour_test(model, x, masks, cls, plain=donors[torch.from_numpy(keep)], concept="cue", draws=5, seed=seed, n_boot=2000,
+                         n_perm=5000, sham=sham), note  # type: ignore[arg-type]
+
+
+def _policy(cue: str, x: torch.Tensor, masks: npt.NDArray[np.bool_]) -> RemovalPlan:
+    """What the product's default policy runs for the cue's concept, and on which masks
+    (:func:`analysis.interventions.plan_removal`, the function the app runs)."""
+    return plan_removal(x, masks, [CUE_CONCEPTS[cue]], families=FAMILIES)
+
+
+def _run_policy(plan: RemovalPlan, model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_], cls: int, seed: int, kind: str,
+                cue: str) -> InterventionResult | None:
+    """The default policy's test, as the app runs it: recolouring where the plan says so and donors are found,
+    else covering with the default fill on the masks as they are (not testable where they cover most of each image)."""
+    if plan.test == "recolour":
+        found, _ = _recolour(model, x, plan.masks, cls, seed, kind, cue)
+        if found is not None:
+            return found
+    return _estimate(model, x, masks, cls, DEFAULT_FILLS[0], seed)
 
 
 def main(argv: list[str] | None = None) -> str:
@@ -191,27 +217,32 @@ def main(argv: list[str] | None = None) -> str:
                     keep = masks[kind].reshape(len(true), -1).any(axis=1)
                     label = kind if kind == "exact" else f"regions ({'alone' if plan.alone else 'shared'})"
                     if keep.sum() < 2:
-                        rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), "-", "-", *["-"] * (len(FILLS) + 2)])
+                        rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), "-", "-", *["-"] * (len(FILLS) + len(RECOLOURS) + 2)])
                         continue
                     x, m = pairs.with_cue[torch.from_numpy(keep)], masks[kind][keep]
                     share = float(m.reshape(len(m), -1).mean())
                     results: dict[str, InterventionResult | None] = {f: _estimate(model, x, m, index, f, args.seed) for f in FILLS}
-                    chosen, grown = _policy(cue, x, m)
-                    if cue == "belt":  # an attribute of an entity: recolouring to the belt's plain look, masks grown by colour
-                        results["recolour"] = _recolour(model, x, grown, index, args.seed, kind)
+                    removal = _policy(cue, x, m)
+                    donors = "-"
+                    if CUE_CONCEPTS[cue] in FAMILIES:  # an attribute of an entity: recolouring to its plain look, masks grown by colour
+                        results["recolour"], donors = _recolour(model, x, removal.grown, index, args.seed, kind, cue)
+                        results["recolour, matched sham"], _ = _recolour(model, x, removal.grown, index, args.seed, kind, cue, sham="matched")
+                    chosen = _run_policy(removal, model, x, m, index, args.seed, kind, cue)
                     # The truth on the images each test used (covering leaves out masks over MAX_COVER_SHARE of the image).
                     small = m.reshape(len(m), -1).mean(axis=1) <= MAX_COVER_SHARE
                     t_all = float(true[keep].mean())
                     t_cover = float(true[keep][small].mean()) if small.sum() >= 2 else t_all
 
-                    def cell(f: str) -> str:
-                        if f not in results:
+                    def cell(f: str, r: InterventionResult | None = None) -> str:
+                        if r is None and f not in results:
                             return "-"
-                        return _cell(results[f], t_all if f == "recolour" else t_cover)
+                        found = r if r is not None else results[f]
+                        return _cell(found, t_all if f.startswith("recolour") else t_cover)
 
-                    covered = f"{share:.0%}" + (f" (grown {float(grown.reshape(len(grown), -1).mean()):.0%})" if cue == "belt" else "")
-                    rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), covered, f"{t_all:.3f}", *[cell(f) for f in (*FILLS, "recolour")],
-                                 f"{chosen}: {cell(chosen)}"])
+                    decided = chosen.fill if chosen is not None else "not testable"
+                    covered = f"{share:.0%}" + (f" (grown {float(removal.grown.reshape(len(m), -1).mean()):.0%})" if CUE_CONCEPTS[cue] in FAMILIES else "")
+                    rows.append([CUE_CONCEPTS[cue], label, int(keep.sum()), covered, f"{t_all:.3f}", *[cell(f) for f in (*FILLS, *RECOLOURS)], donors,
+                                 f"{decided}: {cell(decided, chosen) if chosen is not None else '-'}"])
                     print(rows[-1], flush=True)
             else:
                 # The cue-less model: every cue in every class, one family, against the truth; on the cue's exact
@@ -227,22 +258,21 @@ def main(argv: list[str] | None = None) -> str:
                         true = float(true_each.mean())
                         name = f"{CUE_CONCEPTS[test_cue]}"
                         found: dict[str, InterventionResult | None] = {f: _estimate(model, pairs.with_cue, pairs.exact, index, f, args.seed) for f in FILLS}
-                        chosen, grown = _policy(test_cue, pairs.with_cue, pairs.exact)
-                        if chosen == "recolour":
-                            found["recolour"] = _recolour(model, pairs.with_cue, grown, index, args.seed, "exact")
+                        removal = _policy(test_cue, pairs.with_cue, pairs.exact)
+                        if CUE_CONCEPTS[test_cue] in FAMILIES:
+                            found["recolour"], _ = _recolour(model, pairs.with_cue, removal.grown, index, args.seed, "exact", test_cue)
+                        default = _run_policy(removal, model, pairs.with_cue, pairs.exact, index, args.seed, "exact", test_cue)
                         print(f"cue-less model, {test_cue} in {cls}: true {true:.3f}, " + ", ".join(f"{f} {_cell(r, 0.0)}" for f, r in found.items()), flush=True)
                         for f in (*FILLS, "default"):
                             true_of[(f, cls, name)] = true
-                            r = found[chosen if f == "default" else f]
+                            r = default if f == "default" else found[f]
                             family[f].append(RuleTests(cls, name, (r,) if r is not None else ()))
                         regions, plan = _region_masks(model, pairs.with_cue, pairs.parts, CUE_PARTS[test_cue])
                         keep = regions.reshape(len(regions), -1).any(axis=1)
                         r = None
                         if keep.sum() >= 2:
                             x, m = pairs.with_cue[torch.from_numpy(keep)], regions[keep]
-                            chosen, grown = _policy(test_cue, x, m)
-                            r = (_recolour(model, x, grown, index, args.seed, "regions") if chosen == "recolour"
-                                 else _estimate(model, x, m, index, chosen, args.seed))
+                            r = _run_policy(_policy(test_cue, x, m), model, x, m, index, args.seed, "regions", test_cue)
                             r = replace(r, shared=not plan.alone) if r is not None else None
                         true_of[("default, regions", cls, name)] = float(true_each[keep].mean()) if keep.any() else true
                         family["default, regions"].append(RuleTests(cls, name, (r,) if r is not None else ()))
@@ -263,7 +293,8 @@ def main(argv: list[str] | None = None) -> str:
                             null_rows.append([name, cls, where, f"{true_of[(f, cls, name)]:.3f}", d.name if d else "-", f"{d.effect:.3f}" if d else "-",
                                               f"[{d.interval[0]:.3f}, {d.interval[1]:.3f}]" if d else "-", f"{d.adjusted_p:.3g}" if d else "-",
                                               v.reliance if d else "not testable"])
-    header = ["cue", "mask", "images", "image covered", "true effect", *[f"{f} (x true)" for f in (*FILLS, "recolour")], f"{policy} (x true)"]
+    header = ["cue", "mask", "images", "image covered", "true effect", *[f"{f} (x true)" for f in (*FILLS, *RECOLOURS)], "donors kept",
+              f"{policy} (x true)"]
     table = print_table(header, rows)
     per_test = print_table(["cue-less model: cue", "class", "mask", "true effect", "decided by", "estimate", "95% interval", "adjusted p", "verdict"], null_rows)
     null = print_table(["cue-less model, fill", "tests (cue x class)", "not testable", "shared regions", "confirmed", "false confirmations", "share false", "missed (true >= min effect)"], lines)
@@ -273,8 +304,11 @@ def main(argv: list[str] | None = None) -> str:
             f"\"image covered\": mean share of the image under the mask; an image whose mask covers more than {MAX_COVER_SHARE:.0%} has no "
             f"matched control for covering and is left out, and a covering test left with fewer than two images is not testable. "
             f"Recolour: the masks grown by colour to the rest of the belt (connected pixels within 3 robust "
-            f"standard deviations of the regions' colour), their mean colour moved to a random donor's plain belt (regions naming the belt alone in scenes "
-            f"without any cue), texture kept, against a sham recolouring of the same pixels to another cue image's green; no image is left out. "
+            f"standard deviations of the regions' colour), their mean colour moved to a random donor's plain look, texture kept, against a "
+            f"sham recolouring of the same pixels to another cue image's green; no image is left out. Donors: regions naming the belt alone "
+            f"(no colour, as a grouped label leaves it) in 60 scenes drawn at the demo's cue rates, so some are green belts; the product's "
+            f"screen drops every donor whose colour lies within the tested regions' colours (\"donors kept\": kept/found). \"matched sham\": "
+            f"the sham moves the pixels as far as the removal (pixel space), brighter or darker along their own colour. "
             f"The {policy} (median mask over {MAX_COVER_SHARE:.0%} of the image), as the product decides it. "
             f"Verdicts: {settings.describe(sum(1 for r in null_rows if r[-1] != 'not testable' and r[2] == 'exact'))} (each family "
             f"corrected on its own: the exact pixels' and the regions'); a test in regions that also show other concepts (\"shared\") can "

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import pandas as pd
+import pytest
 
 from analysis.interventions import InterventionResult
 from analysis.reliance import RuleTests, VerdictSettings, judge_family
