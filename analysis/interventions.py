@@ -447,22 +447,14 @@ MIN_DONOR_SCALE = 0.05  # added to the colours' spread in every direction, model
 _TRIM = 0.975  # the reweighting step keeps the tested colours inside this chi-square quantile
 
 
-def unlike_attribute(donors: torch.Tensor, attribute: torch.Tensor, *, level: float = DONOR_LEVEL,
-                     min_scale: float = MIN_DONOR_SCALE) -> npt.NDArray[np.bool_]:
-    """Which plain-look donors (K x 3 colours, model input space) lie outside the colour spread of the regions
-    under test (``attribute``, N x 3: each tested image's mean colour under its masks).
+def beyond_spread(donors: torch.Tensor, attribute: torch.Tensor, *, level: float = DONOR_LEVEL,
+                  min_scale: float = MIN_DONOR_SCALE) -> torch.Tensor:
+    """Which colours (K x 3) lie beyond the spread of ``attribute`` (N x 3): their squared Mahalanobis distance
+    exceeds the chi-square ``level`` quantile with 3 degrees of freedom (scipy.stats.chi2); also the spread's centre.
 
-    Donors are regions that show the entity without the attribute in their label, but a label can leave an
-    attribute out: a grouped label "belt" over a crop of a green belt names no colour. Such a donor moves the
-    tested pixels to another green, which is what the sham does, so it pulls the estimate toward zero (on the
-    belt demo with grouped labelling, 19 of 21 bare "belt" donors were green and the estimate read 0.03x the
-    truth). A donor whose squared Mahalanobis distance from the tested colours is at most the chi-square
-    ``level`` quantile (3 degrees of freedom, scipy.stats.chi2) cannot stand for the entity without the
-    attribute as far as colour can tell, whatever its label says, and is dropped.
-
-    The spread is a full covariance, because the tested colours vary mostly along one direction (the same
-    colour under brighter or dimmer light), so a per-channel spread would keep a brightly lit green. It is fitted
-    robustly: the median as a start, then two reweighting steps that keep the colours inside the ``_TRIM``
+    The spread is a full covariance, because the tested colours vary mostly along one direction (the same colour
+    under brighter or dimmer light), so a per-channel spread would call a brightly lit green unlike them. It is
+    fitted robustly: the median as a start, then two reweighting steps that keep the colours inside the ``_TRIM``
     quantile, with the consistency factor of a trimmed normal (Croux & Haesbroeck, 1999), plus ``min_scale``
     squared in every direction (a floor for colours that hardly vary)."""
     from scipy.stats import chi2
@@ -491,7 +483,41 @@ def unlike_attribute(donors: torch.Tensor, attribute: torch.Tensor, *, level: fl
         if len(inside) == 0:
             break
         centre, cov = inside.mean(dim=0), spread(inside)
-    keep: npt.NDArray[np.bool_] = (distance(donors, centre, cov) > float(chi2.ppf(level, 3))).numpy()
+    outside: torch.Tensor = distance(donors, centre, cov) > float(chi2.ppf(level, 3))
+    return outside
+
+
+def unlike_attribute(donors: torch.Tensor, attribute: torch.Tensor, *, level: float = DONOR_LEVEL,
+                     min_scale: float = MIN_DONOR_SCALE) -> npt.NDArray[np.bool_]:
+    """Which plain-look donors (K x 3 colours, model input space) can stand for the entity without the attribute,
+    judged by colour against the regions under test (``attribute``, N x 3: each tested image's mean colour under
+    its masks).
+
+    Donors are regions that show the entity without the attribute in their label, but a label can leave an
+    attribute out: a grouped label "belt" over a crop of a green belt names no colour. Such a donor moves the
+    tested pixels to another green, which is what the sham does, so it pulls the estimate toward zero (on the
+    belt demo with grouped labelling, 19 of 21 bare "belt" donors were green and the estimate read 0.03x the
+    truth). A donor is kept when both hold:
+
+    - it lies beyond the tested colours' spread (:func:`beyond_spread`, chi-square ``level``);
+    - it is nearer the plain look than the tested colours' centre. The spread is narrow across its main
+      direction, so a green belt's region that holds a piece of the object lies beyond it yet is still green.
+      The plain look is the median of the donors kept, found by alternating (two means, one of them fixed at
+      the attribute's centre).
+    """
+    donors = torch.as_tensor(donors, dtype=torch.float64)
+    outside = beyond_spread(donors, attribute, level=level, min_scale=min_scale)
+    centre = torch.as_tensor(attribute, dtype=torch.float64).median(dim=0).values
+    nearer = outside.clone()
+    for _ in range(20):
+        if not nearer.any():
+            break
+        plain = donors[nearer].median(dim=0).values
+        again = outside & ((donors - plain).norm(dim=1) < (donors - centre).norm(dim=1))
+        if torch.equal(again, nearer):
+            break
+        nearer = again
+    keep: npt.NDArray[np.bool_] = nearer.numpy()
     return keep
 
 

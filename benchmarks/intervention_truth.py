@@ -131,12 +131,14 @@ FAMILIES = {CUE_CONCEPTS[c]: CUE_PARTS[c] for c in CUES if CUE_CONCEPTS[c] != CU
 _DONORS: dict[tuple[int, int, str, str], torch.Tensor] = {}
 
 
-def _donor_colours(model: LoadedModel, seed: int, kind: str, cue: str, n: int = 60) -> torch.Tensor:
+def _donor_colours(model: LoadedModel, seed: int, kind: str, cue: str) -> torch.Tensor:
     """Candidate donors of the entity's plain look, one colour per scene (model input space), as a grouped
     labelling leaves them: regions naming the entity alone ("belt", no colour) in scenes drawn at the demo's
     cue rates, so some are belts that carry the attribute ("regions": saliency regions a careful annotator
-    names the entity alone; "exact": every pixel of the entity)."""
+    names the entity alone, in 600 scenes, since few saliency regions show the bare belt; "exact": every pixel
+    of the entity, in 60 scenes)."""
     key = (id(model), seed, kind, cue)
+    n = 60 if kind == "exact" else 600
     if key not in _DONORS:
         scenes = [render_scene(SceneConfig(seed=seed, cue=cue), "test", i) for i in range(n)]  # type: ignore[arg-type]
         sc = model.sidecar
@@ -306,7 +308,7 @@ def main(argv: list[str] | None = None) -> str:
             f"Recolour: the masks grown by colour to the rest of the belt (connected pixels within 3 robust "
             f"standard deviations of the regions' colour), their mean colour moved to a random donor's plain look, texture kept, against a "
             f"sham recolouring of the same pixels to another cue image's green; no image is left out. Donors: regions naming the belt alone "
-            f"(no colour, as a grouped label leaves it) in 60 scenes drawn at the demo's cue rates, so some are green belts; the product's "
+            f"(no colour, as a grouped label leaves it) in scenes drawn at the demo's cue rates (60 for exact pixels, 600 for saliency regions), so some are green belts; the product's "
             f"screen drops every donor whose colour lies within the tested regions' colours (\"donors kept\": kept/found). \"matched sham\": "
             f"the sham moves the pixels as far as the removal (pixel space), brighter or darker along their own colour. "
             f"The {policy} (median mask over {MAX_COVER_SHARE:.0%} of the image), as the product decides it. "

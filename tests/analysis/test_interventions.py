@@ -292,7 +292,7 @@ def test_donors_carrying_the_attribute_s_colour_are_dropped_and_the_estimate_rec
 def test_the_donor_screen_drops_ordinary_draws_of_the_attribute_at_its_stated_level() -> None:
     # Under a normal model the squared Mahalanobis distance of a fresh draw follows chi-square with 3 degrees of
     # freedom (scipy.stats.chi2): about 1 - level of fresh draws lie outside and are kept, with correlated channels too.
-    from analysis.interventions import DONOR_LEVEL, unlike_attribute
+    from analysis.interventions import DONOR_LEVEL, beyond_spread
 
     rng = np.random.default_rng(0)
     centre = np.array([-0.4, 0.5, -0.3])
@@ -300,7 +300,7 @@ def test_the_donor_screen_drops_ordinary_draws_of_the_attribute_at_its_stated_le
     tested = torch.from_numpy(centre + rng.normal(size=(4000, 3)) @ root.T)
     fresh = torch.from_numpy(centre + rng.normal(size=(40000, 3)) @ root.T)
     for level in (DONOR_LEVEL, 0.9):
-        kept = float(unlike_attribute(fresh, tested, level=level, min_scale=0.0).mean())
+        kept = float(beyond_spread(fresh, tested, level=level, min_scale=0.0).double().mean())
         assert abs(kept - (1 - level)) <= 0.2 * (1 - level) + 0.002, (level, kept)
 
 
@@ -308,7 +308,7 @@ def test_the_donor_screen_follows_the_colour_under_brighter_light_and_keeps_anot
     # The demo's scenes vary the light by up to 15% either way, so a green belt's colour moves along one line.
     # A brightly lit green belt lies far from the centre in every channel but on that line: it is dropped. A grey
     # belt of the same brightness is kept.
-    from analysis.interventions import unlike_attribute
+    from analysis.interventions import beyond_spread, unlike_attribute
 
     rng = np.random.default_rng(1)
     green, grey = np.array([64.0, 124.0, 72.0]), np.array([88.0, 88.0, 94.0])
@@ -320,6 +320,12 @@ def test_the_donor_screen_follows_the_colour_under_brighter_light_and_keeps_anot
     tested = colours(green, rng.uniform(0.85, 1.15, 40))
     donors = torch.cat([colours(green, np.array([0.86, 1.0, 1.11, 1.15])), colours(grey, np.array([0.85, 0.95, 1.0, 1.15]))])
     assert unlike_attribute(donors, tested).tolist() == [False] * 4 + [True] * 4
+    # A green belt's region holding a tenth of a red can lies beyond the tested colours' narrow spread, but nearer
+    # green than grey: dropped too. A grey belt region holding the same piece of can is kept.
+    red = np.array([190.0, 50.0, 50.0])
+    mixed = torch.cat([colours(0.9 * green + 0.1 * red, np.array([0.9, 1.1])), colours(0.9 * grey + 0.1 * red, np.array([1.0]))])
+    assert beyond_spread(mixed[:2], tested).all()
+    assert unlike_attribute(torch.cat([donors, mixed]), tested).tolist() == [False] * 4 + [True] * 4 + [False, False, True]
 
 
 def test_the_policy_recolours_an_attribute_over_most_of_the_image_and_covers_the_rest() -> None:
