@@ -191,10 +191,12 @@ def _plan(res: Results, model_sha: str, cls: str, concepts: list[str], draws: in
     """The cache key of a rule's interventions (a fill is added per test), the images of the rule,
     and the other-class images to paste into."""
     table = res.table
-    rows = (table.meta["predicted_class"].astype(str) == cls) & table.presence[concepts].all(axis=1)
-    image_ids = [int(i) for i in table.meta.index[rows]][:max_images]
-    others = [int(i) for i in table.meta.index[table.meta["predicted_class"].astype(str) != cls]]
-    targets = sorted(np.random.default_rng(seed).choice(others, size=min(max_images, len(others)), replace=False).tolist()) if others else []
+    facts = _region_facts(table)
+    of_class = facts.predicted == cls
+    rows = of_class & table.presence[concepts].to_numpy(dtype=bool).all(axis=1)
+    image_ids = facts.image_ids[rows][:max_images].tolist()
+    others = facts.image_ids[~of_class]
+    targets = sorted(np.random.default_rng(seed).choice(others, size=min(max_images, len(others)), replace=False).tolist()) if len(others) else []
     key = hashlib.sha256(json.dumps(
         {"model": model_sha, "run": res.campaign.run_id, "cls": cls, "concepts": sorted(concepts), "draws": draws, "seed": seed,
          "images": image_ids, "targets": targets, "method": res.method, "evidence": _evidence(res, image_ids, concepts),
@@ -213,7 +215,7 @@ def _evidence(res: Results, image_ids: list[int], concepts: list[str]) -> str:
     labels version) and each concept's donor facts once per table, so the stored-verdict reads behind a results
     page do array work per rule instead of walking every region of an entity in Python."""
     facts = _region_facts(res.table)
-    if facts is None:
+    if not facts.has_regions:
         return ""
     table = res.table
     digest = hashlib.sha256()
@@ -231,12 +233,17 @@ def _evidence(res: Results, image_ids: list[int], concepts: list[str]) -> str:
 
 
 class _RegionFacts:
-    """What every region of a concept table shows, as arrays: region ids, image ids, and a digest of the set of
-    concept names each region carries (two 64-bit lanes, each a sum of per-name keys taken from sha256 of the name,
-    so it does not depend on the table's column order); plus each refinement's donor facts, made on first use."""
+    """A concept table's facts that the storage keys read, as arrays: each row's image id and predicted class, and
+    what every region shows: region ids, image ids, and a digest of the set of concept names each region carries
+    (two 64-bit lanes, each a sum of per-name keys taken from sha256 of the name, so it does not depend on the
+    table's column order); plus each refinement's donor facts, made on first use. ``has_regions`` is False for a
+    table made without region ids."""
 
-    def __init__(self, table: ConceptTable, ids: np.ndarray) -> None:
-        self.ids = np.asarray(ids, dtype=np.int64)
+    def __init__(self, table: ConceptTable) -> None:
+        self.image_ids = np.asarray(table.meta.index, dtype=np.int64)
+        self.predicted = table.meta["predicted_class"].astype(str).to_numpy()
+        self.has_regions = table.regions.ids is not None
+        self.ids = np.asarray(table.regions.ids if table.regions.ids is not None else np.zeros(len(table.regions.region_image)), dtype=np.int64)
         self.image = np.asarray(table.meta.index, dtype=np.int64)[table.regions.region_image]
         self.column = {c: k for k, c in enumerate(table.concepts)}
         self.carries = table.regions.carries.tocsc()
@@ -270,13 +277,11 @@ class _RegionFacts:
 _FACTS: dict[int, _RegionFacts] = {}
 
 
-def _region_facts(table: ConceptTable) -> _RegionFacts | None:
-    """The table's region facts, made once per table object (kept while it lives); None for a table without region ids."""
-    if table.regions.ids is None:
-        return None
+def _region_facts(table: ConceptTable) -> _RegionFacts:
+    """The table's facts, made once per table object (kept while it lives)."""
     found = _FACTS.get(id(table))
     if found is None:
-        found = _FACTS[id(table)] = _RegionFacts(table, table.regions.ids)
+        found = _FACTS[id(table)] = _RegionFacts(table)
         weakref.finalize(table, _FACTS.pop, id(table), None)
     return found
 

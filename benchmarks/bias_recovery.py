@@ -28,10 +28,10 @@ from .measure import print_table
 CUES = ("tag", "belt", "object", "none")
 
 
-def one_run(cue: str, seed: int, size: str, aggregation: str) -> dict[str, object]:
+def one_run(cue: str, seed: int, size: str, aggregation: str, group_size: int = 12) -> dict[str, object]:
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp)
-        summary = run_demo(out, size=size, cue=cue, seed=seed, annotators=3, method=aggregation)  # type: ignore[arg-type]
+        summary = run_demo(out, size=size, cue=cue, seed=seed, annotators=3, method=aggregation, group_size=group_size)  # type: ignore[arg-type]
         game = demo_pointing_game(out)
         rules = pd.read_csv(out / "rules.csv")
     can = rules[rules["class"] == "can"]
@@ -60,6 +60,7 @@ def main(argv: list[str] | None = None) -> str:
     p.add_argument("--seeds", type=int, default=None, help="how many seeds (default 3, or 1 with --quick)")
     p.add_argument("--aggregation", default="majority", choices=["majority", "dawid-skene", "one-coin"])
     p.add_argument("--cues", nargs="*", choices=list(CUES), help="run only these cues (default: every cue and the control)")
+    p.add_argument("--group-size", type=int, default=12, help="crops per labelling group, as `heedmap demo` labels (default 12); 0: one region at a time")
     p.add_argument("--out", type=Path, default=Path("benchmarks/out"))
     args = p.parse_args(argv)
     size = "small" if args.quick else "default"
@@ -67,12 +68,12 @@ def main(argv: list[str] | None = None) -> str:
     rows = []
     for cue in args.cues or CUES:
         for seed in seeds:
-            rows.append(one_run(cue, seed, size, args.aggregation))
+            rows.append(one_run(cue, seed, size, args.aggregation, args.group_size))
             print(f"{cue} seed {seed}: rank {rows[-1]['rank']}, lift {rows[-1]['lift']}", flush=True)
     frame = pd.DataFrame(rows)
     args.out.mkdir(parents=True, exist_ok=True)
     frame.to_csv(args.out / "bias_recovery.csv", index=False)
-    (args.out / "bias_recovery.json").write_text(json.dumps({"size": size, "aggregation": args.aggregation, "runs": rows}, indent=1))
+    (args.out / "bias_recovery.json").write_text(json.dumps({"size": size, "aggregation": args.aggregation, "group_size": args.group_size, "runs": rows}, indent=1))
     cols = ["cue", "seed", "concept", "test_accuracy", "counterfactual_accuracy", "rank", "rule", "lift", "cue_concept_rules_in_class", "cue_families_in_class", "cue_verdict", "pointing_game",
             "pointing_chance"]
     return print_table(["cue", "seed", "injected concept", "test acc", "counterfactual acc", "rank in class", "top cue rule", "lift", "cue rules in 'can'",
