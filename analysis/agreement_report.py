@@ -8,6 +8,7 @@ from itertools import combinations
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 from scipy import sparse
 
 from .agreement import alpha_with_interval, cohen_kappa_codes, fleiss_kappa
@@ -71,19 +72,46 @@ def _fleiss(counts: sparse.csr_matrix, m: np.ndarray) -> tuple[float | None, str
         return None, f"undefined: {exc}"
 
 
+def _co_rated(labels: LongLabels) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64], npt.NDArray[np.int64], npt.NDArray[np.int64]]:
+    """Every item's pairs of annotators (first < second) with their two labels, from the judgments alone.
+
+    One label per annotator and item (the last one given, as in a table of annotators by items): memory grows with
+    the pairs of judgments on the same item, not with annotators x items.
+    """
+    i, a, y = labels.item_codes, labels.annotator_codes, labels.label_codes
+    key = a.astype(np.int64) * max(len(labels.items), 1) + i
+    _, last_first = np.unique(key[::-1], return_index=True)
+    keep = len(key) - 1 - last_first
+    order = keep[np.lexsort((a[keep], i[keep]))]
+    i, a, y = i[order], a[order], y[order]
+    firsts, seconds, first_labels, second_labels = [], [], [], []
+    for gap in range(1, int(np.bincount(i).max(initial=0))):  # the j-th and (j + gap)-th rater of the same item
+        same = np.nonzero(i[gap:] == i[:-gap])[0]
+        firsts.append(a[same])
+        seconds.append(a[same + gap])
+        first_labels.append(y[same])
+        second_labels.append(y[same + gap])
+    empty = np.zeros(0, dtype=np.int64)
+    return tuple(np.concatenate(v).astype(np.int64) if v else empty for v in (firsts, seconds, first_labels, second_labels))  # type: ignore[return-value]
+
+
 def _pairs(labels: LongLabels, min_common: int) -> list[PairKappa]:
     out = []
-    given = np.full((len(labels.annotators), len(labels.items)), -1, dtype=np.int64)  # annotator x item -> label code, -1 where none
-    given[labels.annotator_codes, labels.item_codes] = labels.label_codes
-    for a, b in combinations(range(len(labels.annotators)), 2):
-        common = (given[a] >= 0) & (given[b] >= 0)
-        n_common = int(np.count_nonzero(common))
+    n_ann = len(labels.annotators)
+    first, second, y_first, y_second = _co_rated(labels)
+    pair = first * n_ann + second
+    order = np.argsort(pair, kind="stable")
+    pair, y_first, y_second = pair[order], y_first[order], y_second[order]
+    found, start, n_of = np.unique(pair, return_index=True, return_counts=True)
+    at = {int(p): (int(s), int(n)) for p, s, n in zip(found.tolist(), start.tolist(), n_of.tolist())}
+    for a, b in combinations(range(n_ann), 2):
+        s, n_common = at.get(a * n_ann + b, (0, 0))
         name_a, name_b = labels.annotators[a], labels.annotators[b]
         if n_common < min_common:
             out.append(PairKappa(name_a, name_b, n_common, None, f"fewer than {min_common} items in common"))
             continue
         try:
-            k = cohen_kappa_codes(given[a][common], given[b][common])
+            k = cohen_kappa_codes(y_first[s : s + n_common], y_second[s : s + n_common])
             out.append(PairKappa(name_a, name_b, n_common, k))
         except InvalidInputError as exc:
             out.append(PairKappa(name_a, name_b, n_common, None, str(exc)))

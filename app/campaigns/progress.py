@@ -13,7 +13,7 @@ from analysis.concepts import Judgment, entity_overlap
 
 from ..models import CampaignRegion, Label, Person, Prediction, RegionRow, Skip, WithdrawnLabel
 from .checks import check_answers
-from .judgments import entities_of, region_classes
+from .judgments import entities_of
 from .records import CampaignInfo
 from .synonym_rules import synonym_rules
 
@@ -95,22 +95,31 @@ class ClassProgress:
     complete: int  # regions with all their labels
 
 
+def _median_seconds(s: Session, campaign_id: int) -> dict[str, float]:
+    """Each person's median seconds per label, in the database (the middle one or two of their ranked times, averaged)."""
+    ranked = (select(Label.person_id, Label.seconds_spent.label("v"),
+                     func.row_number().over(partition_by=Label.person_id, order_by=Label.seconds_spent).label("k"),
+                     func.count().over(partition_by=Label.person_id).label("n"))
+              .where(Label.campaign_id == campaign_id, Label.seconds_spent.is_not(None)).subquery())
+    middle = (2 * ranked.c.k >= ranked.c.n) & (2 * ranked.c.k <= ranked.c.n + 2)  # k = (n+1)//2 or (n+2)//2
+    return {name: float(v) for name, v in s.execute(select(Person.name, func.avg(ranked.c.v)).join(Person, Person.id == ranked.c.person_id)
+                                                     .where(middle).group_by(Person.name))}
+
+
 def campaign_progress(s: Session, campaign: CampaignInfo) -> tuple[list[AnnotatorProgress], list[ClassProgress]]:
-    """Per annotator (labels, skips, time, check-item score) and per predicted class (coverage)."""
-    rules, _ = synonym_rules(s, campaign.id)
+    """Per annotator (labels, skips, time, check-item score) and per predicted class (coverage), counted in the database."""
     answers = check_answers(s, campaign.id)
-    classes = region_classes(s, campaign.id)
-    # Counts in the database; the stored answers are decoded only for labels of check items.
-    counts = {name: (int(n), int(unsure or 0)) for name, n, unsure in s.execute(
-        select(Person.name, func.count(), func.sum(case((Label.unsure, 1), else_=0))).join(Person, Person.id == Label.person_id)
-        .where(Label.campaign_id == campaign.id).group_by(Person.name))}
-    seconds: dict[str, list[float]] = {}
-    for name, spent in s.execute(select(Person.name, Label.seconds_spent).join(Person, Person.id == Label.person_id)
-                                 .where(Label.campaign_id == campaign.id, Label.seconds_spent.is_not(None))):
-        if spent is not None:
-            seconds.setdefault(name, []).append(float(spent))
+    # Grouped by person id along the (campaign, person) index, then named: grouping by the joined name sorts every label.
+    by_person = s.execute(select(Label.person_id, func.count(), func.sum(case((Label.unsure, 1), else_=0)))
+                          .where(Label.campaign_id == campaign.id).group_by(Label.person_id)).all()
+    name_of = dict(s.execute(select(Person.id, Person.name).where(Person.id.in_([p for p, _, _ in by_person]))).all()) if by_person else {}
+    counts = {name_of[p]: (int(n), int(unsure or 0)) for p, n, unsure in by_person}
+    median = _median_seconds(s, campaign.id)
     checks: dict[str, list[float]] = {}
-    if answers:
+    if answers:  # the stored answers are decoded only for labels of check items
+        rules, _ = synonym_rules(s, campaign.id)
+        classes = dict(s.execute(select(RegionRow.id, Prediction.predicted).join(Prediction, Prediction.id == RegionRow.prediction_id)
+                                 .where(RegionRow.id.in_(list(answers)))).all())
         for name, region, ents in s.execute(select(Person.name, Label.region_id, Label.entities).join(Person, Person.id == Label.person_id)
                                             .where(Label.campaign_id == campaign.id, Label.region_id.in_(list(answers)))):
             given = Judgment(region, name, entities_of(ents))
@@ -120,7 +129,7 @@ def campaign_progress(s: Session, campaign: CampaignInfo) -> tuple[list[Annotato
     annotators = [
         AnnotatorProgress(
             n, counts.get(n, (0, 0))[0], int(skips.get(n, 0)), counts.get(n, (0, 0))[1],
-            statistics.median(seconds[n]) if seconds.get(n) else None,
+            median.get(n),
             len(checks.get(n, [])),
             statistics.fmean(checks[n]) if checks.get(n) else None,
         )

@@ -47,6 +47,31 @@ def test_report_fleiss_applies_with_equal_ratings_and_pairs_match_cohen() -> Non
     assert all(0 <= a.agreement_with_others <= 1 for a in rep.annotators if a.agreement_with_others is not None)
 
 
+def test_every_pair_of_a_sparse_crowd_matches_cohen_on_its_common_items() -> None:
+    """Twelve annotators each judging part of 80 items: each pair's items in common and its kappa, against
+    scikit-learn's cohen_kappa_score on those items (pairs are found from the judgments, not a full table)."""
+    from sklearn.metrics import cohen_kappa_score
+
+    rng = np.random.default_rng(1)
+    truth = rng.integers(0, 4, 80)
+    given = np.where(rng.random((12, 80)) < 0.7, truth, rng.integers(0, 4, (12, 80))).astype(object)
+    given[rng.random((12, 80)) < np.linspace(0.2, 0.95, 12)[:, None]] = None  # the later annotators judge few items
+    rep = agreement_report(from_frame(_long(given.tolist())), n_boot=0, min_common=5)
+    names = sorted({f"obs{i}" for i in range(12)})
+    assert [(p.first, p.second) for p in rep.pairs] == [(a, b) for k, a in enumerate(names) for b in names[k + 1 :]]
+    checked = 0
+    for p in rep.pairs:
+        a, b = int(p.first[3:]), int(p.second[3:])
+        common = [u for u in range(80) if given[a, u] is not None and given[b, u] is not None]
+        assert p.n_common == len(common)
+        if len(common) < 5:
+            assert p.kappa is None and "fewer than 5" in p.note
+        elif p.kappa is not None:
+            assert p.kappa == pytest.approx(cohen_kappa_score([given[a, u] for u in common], [given[b, u] for u in common]))
+            checked += 1
+    assert checked > 20 and any(p.kappa is None for p in rep.pairs)
+
+
 @pytest.mark.parametrize(
     ("text", "message"),
     [
