@@ -23,7 +23,7 @@ import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
 from types import FunctionType
-from typing import Any
+from typing import Any, cast
 
 import torch
 import torch.nn.functional as F
@@ -154,6 +154,43 @@ class _SpreadPooled(torch.autograd.Function):
         if ctx.area != 1:
             spread = spread / ctx.area  # as torch's mean backward divides the spread gradient
         return spread.expand(n, c, h, w), None, None
+
+
+SPREAD_MEAN_OP = "heedmap::spread_mean"  # called from edited TorchScript graphs
+
+
+@torch.library.custom_op(SPREAD_MEAN_OP, mutates_args=())
+def _spread_mean_op(x: torch.Tensor, dim: list[int], keepdim: bool, adaptive: bool) -> torch.Tensor:
+    """A mean over ``dim`` (``adaptive``: torch's adaptive average pooling to 1x1, the same mean over
+    the last two dimensions) whose backward is :class:`_SpreadPooled`'s broadcast view."""
+    if adaptive:
+        return F.adaptive_avg_pool2d(x, 1)
+    return x.mean(dim, keepdim)
+
+
+@_spread_mean_op.register_fake
+def _(x: torch.Tensor, dim: list[int], keepdim: bool, adaptive: bool) -> torch.Tensor:
+    return F.adaptive_avg_pool2d(x, 1) if adaptive else x.mean(dim, keepdim)
+
+
+def _spread_mean_setup(ctx: Any, inputs: tuple[object, ...], output: torch.Tensor) -> None:
+    x, dim, keepdim, adaptive = cast(tuple[torch.Tensor, list[int], bool, bool], inputs)  # the op's schema
+    ctx.shape, ctx.dtype = x.shape, x.dtype
+    ctx.dims = sorted({d % x.ndim for d in ([-2, -1] if adaptive else dim)})
+    ctx.keepdim = bool(keepdim or adaptive)
+
+
+def _spread_mean_backward(ctx: Any, grad: torch.Tensor) -> tuple[torch.Tensor, None, None, None]:
+    if not ctx.keepdim:
+        for d in ctx.dims:
+            grad = grad.unsqueeze(d)
+    count = 1
+    for d in ctx.dims:
+        count *= ctx.shape[d]
+    return (grad.to(ctx.dtype) / count).expand(ctx.shape), None, None, None
+
+
+_spread_mean_op.register_autograd(_spread_mean_backward, setup_context=_spread_mean_setup)
 
 
 def _spread_pool(func: Any, args: tuple[object, ...], kwargs: dict[str, object], found: tuple[str, str]) -> torch.Tensor | None:
@@ -586,32 +623,69 @@ def _ts_pool_scale(node: torch._C.Node) -> str | None:
     return _GLOBAL_POOLS[kind]
 
 
-def _ts_attention_rows(graph: torch._C.Graph, block: torch._C.Block, leaf: torch._C.Value, seen: list[bool]) -> None:
-    """Make the plain attention calls after the tap's ``leaf`` (``seen[0]`` turns True there; blocks
-    inside nodes are walked in order) run as ``heedmap::attention_rows``, whose backward works only
-    on query rows that carry gradient (see :mod:`analysis.attention_rows`; the forward is the same
-    attention). Those before it keep torch's operator: a Python-registered one costs more per call."""
+def _ts_tail_ops(graph: torch._C.Graph, block: torch._C.Block, leaf: torch._C.Value, seen: list[bool]) -> None:
+    """Rewrite operations after the tap's ``leaf`` (``seen[0]`` turns True there; blocks inside nodes
+    are walked in order), as :class:`_Tail` does for eager and exported models: plain attention
+    calls run as ``heedmap::attention_rows``, whose backward works only on query rows that carry
+    gradient (see :mod:`analysis.attention_rows`; the forward is the same attention), and means
+    (and 1x1 adaptive average poolings) of later values run as ``heedmap::spread_mean``, whose
+    backward hands back a broadcast view. Those before the leaf keep torch's operators: a
+    Python-registered one costs more per call."""
     for node in list(block.nodes()):
         if node.outputsSize() == 1 and node.output().unique() == leaf.unique():
             seen[0] = True
         for inner in node.blocks():
-            _ts_attention_rows(graph, inner, leaf, seen)
-        if not seen[0] or node.kind() != "aten::scaled_dot_product_attention" or node.outputsSize() != 1:
+            _ts_tail_ops(graph, inner, leaf, seen)
+        if not seen[0] or node.outputsSize() != 1:
             continue
-        inputs = list(node.inputs())
-        if len(inputs) not in (7, 8):
-            continue
-        constants = [_ts_constant(v) if v.node().kind() == "prim::Constant" else "not constant" for v in inputs[3:]]
-        mask, causal = constants[0], constants[2]
-        gqa = constants[4] if len(constants) > 4 else False
-        if mask is not None or causal is not False or gqa is not False:  # dropout is 0 in eval mode, checked when run
-            continue
-        rows = graph.create(ATTENTION_ROWS_OP, [inputs[0], inputs[1], inputs[2], inputs[6], inputs[4]], 2)
-        rows.insertBefore(node)
-        rows.outputsAt(0).setType(node.output().type())
-        rows.outputsAt(1).setType(node.output().type())
-        node.output().replaceAllUsesWith(rows.outputsAt(0))
-        node.destroy()
+        if node.kind() == "aten::scaled_dot_product_attention":
+            _ts_attention_node(graph, node)
+        elif node.kind() in ("aten::mean", "aten::adaptive_avg_pool2d"):
+            _ts_mean_node(graph, node, leaf)
+
+
+def _ts_attention_node(graph: torch._C.Graph, node: torch._C.Node) -> None:
+    inputs = list(node.inputs())
+    if len(inputs) not in (7, 8):
+        return
+    constants = [_ts_constant(v) if v.node().kind() == "prim::Constant" else "not constant" for v in inputs[3:]]
+    mask, causal = constants[0], constants[2]
+    gqa = constants[4] if len(constants) > 4 else False
+    if mask is not None or causal is not False or gqa is not False:  # dropout is 0 in eval mode, checked when run
+        return
+    rows = graph.create(ATTENTION_ROWS_OP, [inputs[0], inputs[1], inputs[2], inputs[6], inputs[4]], 2)
+    rows.insertBefore(node)
+    rows.outputsAt(0).setType(node.output().type())
+    rows.outputsAt(1).setType(node.output().type())
+    node.output().replaceAllUsesWith(rows.outputsAt(0))
+    node.destroy()
+
+
+def _ts_mean_node(graph: torch._C.Graph, node: torch._C.Node, leaf: torch._C.Value) -> None:
+    """``aten::mean(x, dims, keepdim, None)`` or ``aten::adaptive_avg_pool2d(x, [1, 1])`` of a value
+    other than the leaf (whose poolings are leaves of their own) as ``heedmap::spread_mean``."""
+    inputs = list(node.inputs())
+    if inputs[0].unique() == leaf.unique():
+        return
+    if node.kind() == "aten::adaptive_avg_pool2d":
+        if len(inputs) != 2 or _ts_constant(inputs[1]) not in ([1, 1], 1):
+            return
+        made = [graph.insertConstant([-2, -1]), graph.insertConstant(True), graph.insertConstant(True)]  # type: ignore[attr-defined]
+        dims, keepdim, adaptive = made
+    else:
+        if len(inputs) != 4 or not isinstance(_ts_constant(inputs[1]), list) or not isinstance(_ts_constant(inputs[2]), bool):
+            return
+        if inputs[3].node().kind() != "prim::Constant" or _ts_constant(inputs[3]) is not None:  # a dtype: torch's mean
+            return
+        made = [graph.insertConstant(False)]  # type: ignore[attr-defined]
+        dims, keepdim, adaptive = inputs[1], inputs[2], made[0]
+    for value in made:
+        value.node().moveBefore(node)
+    spread = graph.create(SPREAD_MEAN_OP, [inputs[0], dims, keepdim, adaptive], 1)
+    spread.insertBefore(node)
+    spread.output().setType(node.output().type())
+    node.output().replaceAllUsesWith(spread.output())
+    node.destroy()
 
 
 def _ts_leaf_after(graph: torch._C.Graph, value: torch._C.Value) -> torch._C.Value:
@@ -724,7 +798,7 @@ class ScriptGraph:
                 if scale is not None and use.user.outputsSize() == 1:
                     pooled.append(_ts_leaf_after(graph, use.user.output()))
                     scales.append(scale)
-        _ts_attention_rows(graph, graph.block(), leaf, [False])
+        _ts_tail_ops(graph, graph.block(), leaf, [False])
         fn = self._function(graph, [leaf, *pooled])
         return ScriptTap(fn, self.module._c, name, tuple(scales)), None
 

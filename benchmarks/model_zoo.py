@@ -134,7 +134,7 @@ def compare_attention(entry: object, batches: int) -> list[list[object]]:
 
     rows: list[list[object]] = []
     x = torch.randn(BATCH, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(1))
-    originals = (layer_taps._attention_with_rows, layer_taps._mha_with_rows, layer_taps._ts_attention_rows)
+    originals = (layer_taps._attention_with_rows, layer_taps._mha_with_rows, layer_taps._ts_attention_node)
 
     def torch_attention(*args: object, **kwargs: object) -> torch.Tensor:
         return torch.nn.functional.scaled_dot_product_attention(*args, **kwargs)  # type: ignore[arg-type]
@@ -142,9 +142,9 @@ def compare_attention(entry: object, batches: int) -> list[list[object]]:
     def swap(off: bool) -> None:
         if off:
             layer_taps._attention_with_rows, layer_taps._mha_with_rows = torch_attention, lambda: None  # type: ignore[assignment]
-            layer_taps._ts_attention_rows = lambda *_a: None  # type: ignore[assignment]
+            layer_taps._ts_attention_node = lambda *_a: None  # type: ignore[assignment]
         else:
-            layer_taps._attention_with_rows, layer_taps._mha_with_rows, layer_taps._ts_attention_rows = originals
+            layer_taps._attention_with_rows, layer_taps._mha_with_rows, layer_taps._ts_attention_node = originals
 
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)

@@ -241,7 +241,7 @@ def test_vit_attention_after_the_layer_runs_row_sparse_backward_and_gradcam_equa
     torch.testing.assert_close(torch.from_numpy(ours.maps), ref, rtol=1e-4, atol=1e-5 * max(1.0, float(ref.max())))
 
 
-@pytest.mark.parametrize("fmt", ["exported", "factory"])
+@pytest.mark.parametrize("fmt", FORMATS)
 @pytest.mark.parametrize("name", ["silu", "dense_concat"])
 def test_pooling_after_an_elementwise_tail_spreads_its_gradient_and_gradcam_equals_formula(name: str, fmt: str, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
     # silu: mean(silu(conv3)); dense_concat: adaptive_avg_pool(relu(norm)): the pooled map is not the
@@ -251,7 +251,7 @@ def test_pooling_after_an_elementwise_tail_spreads_its_gradient_and_gradcam_equa
     loaded = _load(fmt, entry, d)
     x = torch.randn(4, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(13))
     tapped = loaded.tap(x)
-    assert "_SpreadPooledBackward" in _backward_node_names(loaded.logits(tapped.out))
+    assert any("spread" in n.lower() for n in _backward_node_names(loaded.logits(tapped.out)))
     ours = compute_saliency(loaded, x)
     ref, pred = direct_gradcam(eager, loaded.target_layer, x, output=None, prefix=None)
     assert ours.predicted.tolist() == pred.tolist() and float(ref.max()) > 0
