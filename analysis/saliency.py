@@ -14,6 +14,7 @@ upsampling) are overridden to match the paper.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from typing import Literal
 
@@ -21,7 +22,6 @@ import captum
 import numpy as np
 import numpy.typing as npt
 import torch
-import torch.nn.functional as F
 from captum.attr import LayerAttribution, LayerGradCam
 
 from .errors import GradientUnavailableError, InvalidInputError
@@ -158,8 +158,34 @@ def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, tor
             f"the predicted class's logit does not depend on layer {model.sidecar.target_layer!r}; choose a layer before the output ('heedmap layers' lists them)."
         )
     coarse = torch.relu(weighted_sum(tapped.activation.detach(), alpha, model.grid))
-    h, w = model.sidecar.input_size
-    return probs, F.interpolate(coarse.float(), size=(h, w), mode="bilinear", align_corners=False)
+    return probs, upsample_bilinear(coarse.float(), model.sidecar.input_size)
+
+
+def upsample_bilinear(maps: torch.Tensor, size: tuple[int, int]) -> torch.Tensor:
+    """``F.interpolate(maps, size, mode="bilinear", align_corners=False)`` for N x 1 x h x w maps, as
+    two small matrix products (rows, then columns: bilinear interpolation is separable). torch's
+    kernel works one channel at a time and costs several times more for one-channel maps; the
+    values agree to float rounding (a test checks)."""
+    n, _, h, w = maps.shape
+    rows = _bilinear_weights(h, size[0], maps.dtype, maps.device)
+    cols = _bilinear_weights(w, size[1], maps.dtype, maps.device)
+    return torch.matmul(torch.matmul(rows, maps[:, 0]), cols.T).unsqueeze(1)
+
+
+@functools.lru_cache(maxsize=64)
+def _bilinear_weights(n_in: int, n_out: int, dtype: torch.dtype, device: torch.device) -> torch.Tensor:
+    """n_out x n_in weights of bilinear interpolation along one axis, with torch's source positions
+    for ``align_corners=False``: (i + 0.5) * n_in / n_out - 0.5, clamped at 0, between its two
+    neighbouring inputs (the last input repeats at the edge)."""
+    src = ((torch.arange(n_out, dtype=torch.float64) + 0.5) * (n_in / n_out) - 0.5).clamp_min(0.0)
+    low = src.floor().long().clamp_max(n_in - 1)
+    high = (low + 1).clamp_max(n_in - 1)
+    frac = src - low
+    out = torch.arange(n_out)
+    weights = torch.zeros(n_out, n_in, dtype=torch.float64)
+    weights.index_put_((out, low), 1.0 - frac, accumulate=True)
+    weights.index_put_((out, high), frac, accumulate=True)
+    return weights.to(dtype=dtype, device=device)
 
 
 def weighted_sum(activation: torch.Tensor, alpha: torch.Tensor, grid: TokenGrid | None) -> torch.Tensor:

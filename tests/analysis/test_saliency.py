@@ -157,3 +157,15 @@ def test_inplace_after_target_layer_is_a_clear_error() -> None:
     loaded = prepare_model(_InplaceAfter(), SIDECAR)
     with pytest.raises(GradientUnavailableError, match="in-place"):
         compute_saliency(loaded, torch.randn(2, 3, 32, 32))
+
+
+@pytest.mark.parametrize(("h", "w", "size"), [(12, 12, (96, 96)), (7, 5, (64, 48)), (1, 1, (32, 32)), (16, 16, (16, 16)), (6, 9, (37, 101)), (20, 20, (8, 8))])
+def test_upsample_bilinear_equals_torch_interpolate(h: int, w: int, size: tuple[int, int]) -> None:
+    # The reference is torch's own bilinear kernel (align_corners=False), which Grad-CAM's maps used before.
+    from analysis.saliency import upsample_bilinear
+
+    maps = torch.rand(5, 1, h, w, generator=torch.Generator().manual_seed(h * w)) * 10
+    ref = F.interpolate(maps, size=size, mode="bilinear", align_corners=False)
+    ours = upsample_bilinear(maps, size)
+    assert ours.shape == ref.shape
+    torch.testing.assert_close(ours, ref, rtol=1e-5, atol=1e-5)
