@@ -18,7 +18,7 @@ import pandas as pd
 from scipy import sparse
 
 from .concept_table import ConceptTable, concept_table_from_regions
-from .concept_votes import ConceptEstimate, PresenceVotes, ReadJudgments, estimate_concepts, read_judgments, votes_from_read
+from .concept_votes import ConceptEstimate, PresenceVotes, ReadJudgments, estimate_concepts, read_judgments, sorted_distinct, votes_from_read
 from .concepts import Judgment, judgment_concepts
 from .errors import InvalidInputError, NotEnoughLabelsError
 from .reliability import METHODS, Method
@@ -173,7 +173,7 @@ def _carried(est: ConceptEstimate, region_ids: npt.NDArray[np.int64]) -> tuple[l
     pc = v.pair_concept[present]
     n_up = sizes[pc]
     up = np.arange(int(n_up.sum()), dtype=np.int64) - np.repeat(np.cumsum(n_up) - n_up, n_up)
-    keys = np.unique(np.repeat(v.pair_region[present], n_up) * n_c + flat[np.repeat(starts[pc], n_up) + up])
+    keys = sorted_distinct(np.repeat(v.pair_region[present], n_up) * n_c + flat[np.repeat(starts[pc], n_up) + up])
     key_region = keys // n_c
     codes = np.searchsorted(np.asarray(v.regions, dtype=np.int64), region_ids)
     first, last = np.searchsorted(key_region, codes, "left"), np.searchsorted(key_region, codes, "right")
@@ -181,7 +181,7 @@ def _carried(est: ConceptEstimate, region_ids: npt.NDArray[np.int64]) -> tuple[l
     rows = np.repeat(np.arange(len(region_ids), dtype=np.int64), n_each)
     at = np.repeat(first, n_each) + np.arange(int(n_each.sum()), dtype=np.int64) - np.repeat(np.cumsum(n_each) - n_each, n_each)
     concept_codes = keys[at] % n_c
-    used = np.unique(concept_codes)
+    used = sorted_distinct(concept_codes)
     cols = np.searchsorted(used, concept_codes)
     carries = sparse.csc_matrix((np.ones(len(rows), dtype=bool), (rows, cols)), shape=(len(region_ids), len(used)))
     return [v.concepts[c] for c in used.tolist()], carries

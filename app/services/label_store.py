@@ -28,7 +28,7 @@ import numpy.typing as npt
 from sqlalchemy import String, select, type_coerce
 from sqlalchemy.orm import Session
 
-from analysis.concept_votes import Reading, ReadJudgments, read_label
+from analysis.concept_votes import Reading, ReadJudgments, read_label, sorted_distinct
 from analysis.concepts import Judgment, typed_attribute_words
 from analysis.synonyms import SynonymRules
 
@@ -182,7 +182,7 @@ class LabelStore:
             self._refresh(s, held, campaign_id, version)
             table = held.rows if limit is None else held.rows[:limit]
             table = table[table[:, _UNSURE] == 0]
-            used_entities = np.unique(table[:, _ENTITIES])
+            used_entities = sorted_distinct(table[:, _ENTITIES])
             words = typed_attribute_words(frozenset().union(*(held.attributes[e] for e in used_entities.tolist())), rules=rules)
             reading_of, readings = held.read_with.pop((rules, words)) if (rules, words) in held.read_with else ({}, [])
             while len(held.read_with) >= _READINGS_KEPT:
@@ -205,7 +205,7 @@ class LabelStore:
                     readings.append(read_label(held.entities[e], cls, rules=rules, words=words))
                 codes[i] = found
             people = table[:, _PERSON]
-            used_people = np.unique(people)
+            used_people = sorted_distinct(people)
             annotators = tuple(sorted(held.people[p] for p in used_people.tolist()))
             recode = np.zeros(len(held.people), dtype=np.int64)
             for p in used_people.tolist():
