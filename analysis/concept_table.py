@@ -95,13 +95,17 @@ class ConceptTable:
 
     def frame(self) -> pd.DataFrame:
         """A flat export: meta, then "concept: X" (0/1) and "saliency share: X" per concept, and the method."""
+        presence = self.presence.astype(int).add_prefix("concept: ")
+        share = self.share.round(4).add_prefix("saliency share: ")
+        return pd.concat([self.frame_meta(), presence, share], axis=1)
+
+    def frame_meta(self) -> pd.DataFrame:
+        """The columns of :meth:`frame` before the concepts: the method, the sampling weight of a sample, then META_COLUMNS."""
         out = self.meta.copy()
         out.insert(0, "aggregation", self.method)
         if self.design is not None:
             out.insert(1, "sampling weight", self.design.weights)
-        presence = self.presence.astype(int).add_prefix("concept: ")
-        share = self.share.round(4).add_prefix("saliency share: ")
-        return pd.concat([out, presence, share], axis=1)
+        return out
 
 
 def _checked_meta(meta: pd.DataFrame) -> pd.DataFrame:

@@ -359,7 +359,7 @@ def _cell(v: object) -> object:
 _NEEDS_QUOTING = re.compile(r'[,"\r\n]')
 
 
-def _field(value: object) -> str:
+def csv_field(value: object) -> str:
     """One cell's text exactly as ``csv.writer`` (comma, minimal quoting, "\\n" line ends) writes it as one of several fields."""
     text = "" if value is None else value if isinstance(value, str) else str(value)
     if not _NEEDS_QUOTING.search(text):
@@ -369,7 +369,7 @@ def _field(value: object) -> str:
     return buf.getvalue()[:-2]
 
 
-def _column_cells(col: pd.Series) -> list[str]:
+def csv_column_cells(col: pd.Series) -> list[str]:
     """One column's cells as :func:`_cell` and ``csv.writer`` write them, each distinct value formatted once where the type allows
     (a concept table's columns hold few distinct values, mostly 0)."""
     kind = col.dtype.kind
@@ -385,9 +385,9 @@ def _column_cells(col: pd.Series) -> list[str]:
             return list(text[codes].tolist())
     elif kind == "O" and pd.api.types.infer_dtype(col, skipna=False) == "string":
         codes, uniques = pd.factorize(col.to_numpy(dtype=object), use_na_sentinel=False)
-        text = np.array([_field(_cell(v)) for v in np.asarray(uniques).tolist()], dtype=object)
+        text = np.array([csv_field(_cell(v)) for v in np.asarray(uniques).tolist()], dtype=object)
         return list(text[codes].tolist())
-    return [_field(_cell(v)) for v in col.tolist()]
+    return [csv_field(_cell(v)) for v in col.tolist()]
 
 
 def to_csv(frame: pd.DataFrame) -> str:
@@ -401,6 +401,6 @@ def to_csv(frame: pd.DataFrame) -> str:
         writer.writerow(header)
         writer.writerows([[_cell(v)] for v in frame.iloc[:, 0].tolist()] if frame.shape[1] else [[]] * len(frame))
         return buf.getvalue()
-    columns = [_column_cells(frame.iloc[:, i]) for i in range(frame.shape[1])]
-    lines = [",".join(_field(h) for h in header), *map(",".join, zip(*columns))]
+    columns = [csv_column_cells(frame.iloc[:, i]) for i in range(frame.shape[1])]
+    lines = [",".join(csv_field(h) for h in header), *map(",".join, zip(*columns))]
     return "\n".join(lines) + "\n"

@@ -8,7 +8,7 @@ from pathlib import Path
 
 from sqlalchemy.orm import Session
 
-from analysis.exports import FORMATS, export_frame, rules_document
+from analysis.exports import FORMATS, concept_table_csv, export_frame, rules_document
 from analysis.rules import to_csv
 
 from .. import campaigns
@@ -51,7 +51,8 @@ def rules_export(res: Results, fmt: str, *, target: str = "predicted", max_len: 
 def concepts_export(res: Results, fmt: str) -> Export:
     """The image-by-concept table (presence and saliency share per concept) as CSV, JSON or Parquet."""
     fmt = _format(fmt)
-    body = export_frame(res.table.frame().reset_index(), fmt, about={"campaign": res.campaign.name, "aggregation": res.method})
+    about = {"campaign": res.campaign.name, "aggregation": res.method}
+    body = concept_table_csv(res.table) if fmt == "csv" else export_frame(res.table.frame().reset_index(), fmt, about=about)
     return Export(body, f"concepts-campaign-{res.campaign.id}.{fmt}", MEDIA[fmt])
 
 

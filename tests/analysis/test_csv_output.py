@@ -55,3 +55,20 @@ def test_csv_of_a_concept_table_sized_frame_equals_the_csv_modules() -> None:
     meta = pd.DataFrame({"image_id": np.arange(500), "true_class": rng.choice(["can", "bottle", "carton"], 500), "confidence": rng.random(500)})
     frame = pd.concat([meta, presence, share], axis=1)
     assert to_csv(frame) == _written_by_csv_module(frame)
+
+
+def test_concept_table_csv_is_the_general_writers_bytes() -> None:
+    from dataclasses import replace
+
+    from analysis.exports import concept_table_csv
+    from analysis.sampling import Design
+
+    from .tables import random_rows, table_from_rows
+
+    # Concept names a spreadsheet or a CSV reader could trip on, beside plain ones; shares of several regions per image.
+    table = table_from_rows(random_rows(3, n=400, concepts=("cap", '=tag"x', "rim, steel", "label\nband", "body")))
+    assert concept_table_csv(table) == to_csv(table.frame().reset_index()).encode("utf-8")
+    sampled = replace(table, design=Design(np.arange(len(table)) % 2, np.array([500.0, 700.0])))  # adds the sampling weight column
+    assert concept_table_csv(sampled) == to_csv(sampled.frame().reset_index()).encode("utf-8")
+    bare = table_from_rows([("can", "can", 0.9, set()), ("bottle", "can", 0.6, set())])  # no concept at all
+    assert concept_table_csv(bare) == to_csv(bare.frame().reset_index()).encode("utf-8")
