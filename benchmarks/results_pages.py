@@ -35,8 +35,7 @@ def main(argv: list[str] | None = None) -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("project", type=Path, help="a COPY of a project directory (it is written to)")
     p.add_argument("--campaign", type=int, default=1)
-    p.add_argument("--profile", type=Path, help="write a cProfile file per request here (the calling thread only)")
-    p.add_argument("--sample", action="store_true", help=argparse.SUPPRESS)  # print the app threads' hottest frames per request (/tmp/ps/sampler.py)
+    p.add_argument("--profile", type=Path, help="write a cProfile file per request here")
     args = p.parse_args(argv)
 
     from fastapi.testclient import TestClient
@@ -78,16 +77,7 @@ def main(argv: list[str] | None = None) -> None:
         cpu, wall = time.process_time(), time.perf_counter()
         if prof:
             prof.enable()
-        if args.sample:
-            sys.path.insert(0, "/tmp/ps")
-            from sampler import Sampler  # type: ignore[import-not-found]
-
-            with Sampler() as sampler:
-                r = client.get(url)
-            print("==", name)
-            sampler.report()
-        else:
-            r = client.get(url)
+        r = client.get(url)
         if prof:
             prof.disable()
             prof.dump_stats(str(args.profile / f"{name}.prof"))
