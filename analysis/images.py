@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import csv
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -99,7 +101,7 @@ def _check_size(im: Image.Image, path: Path, max_pixels: int) -> tuple[int, int]
 def check_image(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> tuple[int, int]:
     """Return (width, height), upright after its EXIF orientation, after checking the file opens,
     is within the pixel limit and has a pixel format heedmap reads correctly."""
-    try:
+    with _image_errors(path):
         with Image.open(path) as im:
             width, height = _check_size(im, Path(path), max_pixels)
             im.verify()
@@ -110,15 +112,28 @@ def check_image(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> tuple[in
                 problem = _unreadable_mode(im, Path(path))
                 if problem:
                     raise ImageInputError(problem)
+    if orientation in (5, 6, 7, 8):  # rotated by 90 or 270 degrees
+        width, height = height, width
+    return width, height
+
+
+@contextmanager
+def _image_errors(path: Path) -> Iterator[None]:
+    """Turn what opening, verifying and decoding ``path`` can raise into one ImageInputError naming the file.
+
+    Our own ImageInputError (over the pixel limit, a misread format) passes through unchanged: it is a
+    ValueError, and wrapping it again would bury its advice inside "not a readable image (...)".
+    """
+    try:
+        yield
+    except ImageInputError:
+        raise
     except FileNotFoundError:
         raise ImageInputError(f"{path} does not exist.") from None
     except Image.DecompressionBombError:
         raise ImageInputError(f"{path} is too large to decode safely; downscale it.") from None
     except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
         raise ImageInputError(f"{path} is not a readable image ({exc}).") from None
-    if orientation in (5, 6, 7, 8):  # rotated by 90 or 270 degrees
-        width, height = height, width
-    return width, height
 
 
 def as_rgb(im: Image.Image, path: Path) -> Image.Image:
@@ -148,21 +163,13 @@ def read_rgb(path: Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> Image.Image
     ``verify()``, and the orientation is read after decoding (a PNG keeps it after its pixels, so
     asking for it first would decode the image twice).
     """
-    try:
+    with _image_errors(path):
         with Image.open(path) as im:
             _check_size(im, Path(path), max_pixels)
             im.verify()
         with Image.open(path) as im:
             im.load()
             return as_rgb(im, Path(path))
-    except ImageInputError:
-        raise
-    except FileNotFoundError:
-        raise ImageInputError(f"{path} does not exist.") from None
-    except Image.DecompressionBombError:
-        raise ImageInputError(f"{path} is too large to decode safely; downscale it.") from None
-    except (UnidentifiedImageError, OSError, SyntaxError, ValueError) as exc:
-        raise ImageInputError(f"{path} is not a readable image ({exc}).") from None
 
 
 def mean_fill(mean: tuple[float, float, float], *, channel_order: str = "RGB") -> tuple[int, int, int]:

@@ -101,3 +101,21 @@ def test_read_rgb_refuses_a_truncated_or_damaged_file_with_a_message(tmp_path: P
             read_rgb(tmp_path / name)
     with pytest.raises(ImageInputError, match="over the limit"):
         read_rgb(tmp_path / "ok.png", max_pixels=100)
+
+
+def test_check_image_and_read_rgb_give_their_own_messages_unwrapped(tmp_path: Path) -> None:
+    """An over-the-limit or misread-format image gets the one message that says what to do, from both
+    readers alike, not that message again inside "X is not a readable image (...)"."""
+    Image.fromarray(np.zeros((20, 10, 3), dtype=np.uint8)).save(tmp_path / "big.png")
+    Image.fromarray(np.full((8, 8), 0.5, dtype=np.float32), mode="F").save(tmp_path / "f.tif")
+    Image.fromarray(np.full((8, 8), -5, dtype=np.int32), mode="I").save(tmp_path / "i.tif")
+    for name, want in (("big.png", f"{tmp_path / 'big.png'} is 10x20 = 200 pixels, over the limit of 100; downscale it or raise --max-pixels."),
+                       ("f.tif", f"{tmp_path / 'f.tif'} holds 32-bit floating-point pixels, which have no agreed 0-255 meaning; save it as an 8- or 16-bit image."),
+                       ("i.tif", f"{tmp_path / 'i.tif'} holds 32-bit integer pixels outside 0..65535; save it as an 8- or 16-bit image.")):
+        for read in (check_image, read_rgb):
+            with pytest.raises(ImageInputError) as caught:
+                read(tmp_path / name, max_pixels=100)
+            assert str(caught.value) == want, (read.__name__, name)
+    with pytest.raises(ImageInputError) as caught:
+        check_image(tmp_path / "missing.png")
+    assert str(caught.value) == f"{tmp_path / 'missing.png'} does not exist."
