@@ -19,6 +19,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import re
+import threading
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -400,8 +401,13 @@ class HookTap:
         modes: list[_Tail] = []
         name = self.name
         after = contextlib.ExitStack()
+        caller = threading.get_ident()
 
-        def hook(_module: nn.Module, _inputs: object, output: object) -> torch.Tensor:
+        def hook(_module: nn.Module, _inputs: object, output: object) -> torch.Tensor | None:
+            # The hook sits on a module shared by every thread: a forward running in another thread at
+            # the same time (the saliency job computes two batches at once) passes through untouched.
+            if threading.get_ident() != caller:
+                return None
             if captured:
                 raise GradientUnavailableError(f"layer {name!r} runs more than once in one forward pass; choose a layer that runs once.")
             if not isinstance(output, torch.Tensor) or output.ndim not in (3, 4):

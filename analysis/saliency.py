@@ -150,9 +150,12 @@ def _single_pass(model: LoadedModel, x: torch.Tensor) -> tuple[torch.Tensor, tor
         )
     probs = torch.softmax(logits.detach().float(), dim=1)
     predicted = probs.argmax(dim=1)
-    with torch.enable_grad():  # d (each image's predicted logit) / d layer, seeded with the one-hot of the predicted class
-        seed = torch.zeros_like(logits).scatter_(1, predicted[:, None], 1.0)
-        alpha, _ = channel_gradient(tapped, logits, model.grid, seed=seed)
+    with torch.enable_grad():  # d (each image's predicted logit) / d layer
+        # The sum of each image's predicted logit: its gradient reaches every logit as exactly the one-hot
+        # of the predicted class. (Seeding the backward pass with that one-hot instead makes torch import
+        # its symbolic-shape module, and sympy with it, on the first call: 1-2 s of a job's start.)
+        target = logits.gather(1, predicted[:, None]).sum()
+        alpha, _ = channel_gradient(tapped, target, model.grid)
     if alpha is None:
         raise GradientUnavailableError(
             f"the predicted class's logit does not depend on layer {model.sidecar.target_layer!r}; choose a layer before the output ('heedmap layers' lists them)."

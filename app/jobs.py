@@ -6,6 +6,7 @@ import hashlib
 import json
 import secrets
 import sys
+from collections import deque
 from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -25,6 +26,7 @@ from analysis.regions import Region, ThresholdPolicy, extract_regions_batch
 from analysis.saliency import SaliencyBatch, compute_saliency, saliency_provenance
 
 from .db import write_session
+from .errors import InvalidRequestError
 from .layout import ProjectLayout
 from .maps import as_float16, sync_folder, write_array
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
@@ -319,6 +321,19 @@ def prepare_run(factory: sessionmaker[Session], project_dir: Path, model: Loaded
     return PreparedRun(run_id=run_id, todo=[t for t in todo if t[0] not in done], report=report, layout=layout)
 
 
+def compute_streams(model: LoadedModel, threads: int) -> tuple[int, int]:
+    """How many batches the job computes at once, and the torch threads each one gets, out of ``threads``.
+
+    On CPU, two batches at once with half the threads each (one each on two threads): one image batch
+    of a small model (the demo CNN at 64 px) is a row of short layers, and two threads splitting each
+    layer wait on each other at every one of them, while two batches in threads of their own each keep
+    a core busy. A large model gives up nothing by it. Elsewhere (cuda), and with one thread, one batch.
+    """
+    if model.device != "cpu" or threads < 2:
+        return 1, max(1, threads)
+    return 2, threads // 2
+
+
 def run_saliency(
     factory: sessionmaker[Session],
     project_dir: Path,
@@ -332,6 +347,7 @@ def run_saliency(
     images: list[ImageRecord] | None = None,
     name: str = "default",
     source: Path | None = None,
+    streams: int | None = None,
 ) -> JobReport:
     """Process every image of the run's image set that it has not done yet; each batch commits once.
 
@@ -342,43 +358,58 @@ def run_saliency(
     ``name`` labels the run ("test", "counterfactual"); ``model_files`` (model, sidecar) are
     recorded so later steps can load the same model again.
 
-    Three threads share the work: a reader decodes and resizes the next batch's images, this thread
-    runs the model, and a writer finds each batch's regions and stores it, so neither reading nor
-    writing holds up the model.
+    A reader thread decodes and resizes images ahead; ``streams`` threads (default from
+    :func:`compute_streams`, sharing torch's threads) predict and compute Grad-CAM, each on a batch of
+    its own; this thread finds each batch's regions and stores the batches in order. Every batch is
+    computed alone, so the results do not depend on how many run at once.
     """
     prep = prepare_run(factory, project_dir, model, params=params, model_files=model_files, images=images, name=name, source=source)
     todo, sc = prep.todo, model.sidecar
     total = len(todo)
-    batches = [todo[start : start + batch_size] for start in range(0, total, batch_size)]
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-reader") as reader, \
-            ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-writer") as writer:
-        reads = [reader.submit(read_batch, sc, batches[0])] if batches else []
-        pending: Future[None] | None = None
-        done = 0
-        for b, batch in enumerate(batches):
-            read = reads[b].result()
-            reads[b] = Future()  # let the batch's pixels go
-            if b + 1 < len(batches):
-                reads.append(reader.submit(read_batch, sc, batches[b + 1]))  # decoded while this batch computes
-            res = compute_saliency(model, read.inputs) if read.inputs is not None else None
-            if pending is not None:
-                pending.result()  # the previous batch is stored before this one is handed over
-            pending = writer.submit(_finish_and_store, factory, prep, sc.classes, read, res, params)
-            done += len(batch)
-            if after_batch:
-                pending.result()  # what after_batch sees is stored
-                pending = None
-            if progress:
-                progress(done, total)
-            if after_batch:
-                after_batch(b)
-        if pending is not None:
-            pending.result()
-        for f in reads:
-            f.cancel()
+    batches = iter([todo[start : start + batch_size] for start in range(0, total, batch_size)])
+    outer_threads = torch.get_num_threads()
+    n_streams, stream_threads = compute_streams(model, outer_threads) if streams is None else (streams, max(1, outer_threads // streams))
+    if n_streams < 1:
+        raise InvalidRequestError(f"streams must be 1 or more; got {streams}.")
+    in_flight: deque[tuple[Future[BatchInput], Future[SaliencyBatch | None]]] = deque()
+    # Reading and storing do little torch work (normalising, float16): on one thread each, so that no
+    # OpenMP team of theirs spins after it, on the cores the compute threads need.
+    torch.set_num_threads(1)
+    try:
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-reader", initializer=torch.set_num_threads, initargs=(1,)) as reader, \
+                ThreadPoolExecutor(max_workers=n_streams, thread_name_prefix="heedmap-compute", initializer=torch.set_num_threads,
+                                   initargs=(stream_threads,)) as compute:
+
+            def start_next() -> None:
+                batch = next(batches, None)
+                if batch is not None:
+                    read = reader.submit(read_batch, sc, batch)
+                    in_flight.append((read, compute.submit(_saliency_of, model, read)))
+
+            try:
+                for _ in range(n_streams + 1):  # every compute thread busy, and the next batch ready for the first to finish
+                    start_next()
+                done = stored = 0
+                while in_flight:
+                    read_f, saliency_f = in_flight.popleft()
+                    res, read = saliency_f.result(), read_f.result()
+                    start_next()
+                    store_batch(factory, prep.layout, prep.run_id, sc.classes, finish_batch(read, res, params), prep.report)
+                    done += len(read.ids) + len(read.unreadable)
+                    if progress:
+                        progress(done, total)
+                    if after_batch:
+                        after_batch(stored)
+                    stored += 1
+            finally:
+                for read_f, saliency_f in in_flight:  # stopped early: nothing more is started
+                    saliency_f.cancel()
+                    read_f.cancel()
+    finally:
+        torch.set_num_threads(outer_threads)  # a compute thread's setting is also torch's default for new threads
     return prep.report
 
 
-def _finish_and_store(factory: sessionmaker[Session], prep: PreparedRun, classes: tuple[str, ...], read: BatchInput, res: SaliencyBatch | None,
-                      params: RegionParams) -> None:
-    store_batch(factory, prep.layout, prep.run_id, classes, finish_batch(read, res, params), prep.report)
+def _saliency_of(model: LoadedModel, read: Future[BatchInput]) -> SaliencyBatch | None:
+    batch = read.result()
+    return compute_saliency(model, batch.inputs) if batch.inputs is not None else None

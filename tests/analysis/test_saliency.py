@@ -169,3 +169,42 @@ def test_upsample_bilinear_equals_torch_interpolate(h: int, w: int, size: tuple[
     ours = upsample_bilinear(maps, size)
     assert ours.shape == ref.shape
     torch.testing.assert_close(ours, ref, rtol=1e-5, atol=1e-5)
+
+
+def test_gradient_of_the_summed_predicted_logits_is_the_one_hot_seeded_gradient_bit_for_bit() -> None:
+    """Grad-CAM's d y^c / d A (Selvaraju et al., 2017, eq. 1) for every image at once: the backward pass
+    from the sum of each image's predicted logit reaches the logits as exactly the one-hot of the
+    predicted class, so it equals the pass seeded with that one-hot, bit for bit."""
+    from analysis.layer_taps import channel_gradient
+
+    loaded = prepare_model(_model(3), SIDECAR)
+    x = torch.randn(7, 3, 32, 32, generator=torch.Generator().manual_seed(4))
+    assert loaded.tap is not None
+    alphas = []
+    for seeded in (False, True):
+        tapped = loaded.tap(x)
+        logits = loaded.logits(tapped.out)
+        pred = logits.detach().argmax(1)
+        with torch.enable_grad():
+            if seeded:
+                alpha, _ = channel_gradient(tapped, logits, None, seed=torch.zeros_like(logits).scatter_(1, pred[:, None], 1.0))
+            else:
+                alpha, _ = channel_gradient(tapped, logits.gather(1, pred[:, None]).sum(), None)
+        assert alpha is not None
+        alphas.append(alpha)
+    assert torch.equal(alphas[0], alphas[1])
+
+
+def test_saliency_does_not_import_sympy() -> None:
+    """Seeding torch's backward pass with a gradient tensor imports its symbolic-shape module and sympy
+    (1-2 s at the start of every saliency job); Grad-CAM here does without (a fresh interpreter)."""
+    import subprocess
+    import sys
+
+    code = ("import sys, torch\nfrom analysis.architectures import SorterCNN\nfrom analysis.model_io import Sidecar, prepare_model\n"
+            "from analysis.saliency import compute_saliency\n"
+            "m = prepare_model(SorterCNN(num_classes=3, width=8).eval(), Sidecar(classes=('a', 'b', 'c'), input_size=(32, 32), mean=(0.0, 0.0, 0.0), "
+            "std=(1.0, 1.0, 1.0), target_layer='features'))\n"
+            "compute_saliency(m, torch.randn(2, 3, 32, 32))\nprint('sympy' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300, check=True)
+    assert out.stdout.strip() == "False", out.stderr

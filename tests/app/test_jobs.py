@@ -98,3 +98,71 @@ def test_a_second_saliency_job_is_refused_naming_the_first(tmp_path: Path, capsy
     assert "another saliency job is running" in err and f"process {os.getpid()}" in err and "Traceback" not in err
     with saliency_job_lock(project):  # released when the first ended
         pass
+
+
+def _stored(factory, layout):  # type: ignore[no-untyped-def]
+    """Every stored prediction (by image path) with its map, region-label map and regions."""
+    import numpy as np
+
+    from app.maps import read_region_labels, read_saliency
+
+    out = {}
+    with factory() as s:
+        for pred, path in s.execute(select(Prediction, ImageRow.path).join(ImageRow, ImageRow.id == Prediction.image_id)):
+            regions = [(r.rank, r.x0, r.y0, r.x1, r.y1, r.area, r.mass_share)
+                       for r in s.scalars(select(RegionRow).where(RegionRow.prediction_id == pred.id).order_by(RegionRow.rank))]
+            out[path] = (pred.predicted, pred.confidence, pred.empty_map, np.asarray(read_saliency(layout, pred.map_path)),
+                         read_region_labels(layout, pred.map_path), regions)
+    return out
+
+
+@pytest.mark.parametrize("streams", [2, 3])
+def test_batches_computed_at_once_store_what_one_at_a_time_stores(tmp_path: Path, small_scenes: Path, varied_model: LoadedModel, streams: int) -> None:
+    """Several batches in flight in threads of their own (a forward hook on the shared model sees
+    every thread's forward) store the same predictions, maps and regions as one batch at a time, and
+    those maps are Grad-CAM computed directly on each image's batch."""
+    import numpy as np
+
+    from analysis.images import read_rgb, to_model_input
+    from analysis.saliency import compute_saliency
+    from app.layout import ProjectLayout
+
+    records = find_images(small_scenes / "manifest.csv")
+    got = {}
+    for n in (1, streams):
+        factory = session_factory(make_engine(tmp_path / f"s{n}"))
+        register_images(factory, records)
+        report = run_saliency(factory, tmp_path / f"s{n}", varied_model, batch_size=4, progress=None, streams=n)
+        assert report.processed == len(records)
+        got[n] = _stored(factory, ProjectLayout(tmp_path / f"s{n}"))
+    assert got[1].keys() == got[streams].keys() and len(got[1]) == len(records)
+    assert len({v[0] for v in got[1].values()}) > 1  # the model predicts more than one class here
+    for path, one in got[1].items():
+        other = got[streams][path]
+        assert one[:3] == other[:3] and one[5] == other[5], path
+        assert np.array_equal(one[3], other[3]) and np.array_equal(one[4], other[4]), path
+    with session_factory(make_engine(tmp_path / "s1"))() as s:
+        paths = [p for p, in s.execute(select(ImageRow.path).order_by(ImageRow.id))]
+    for start in range(0, len(paths), 4):
+        chunk = paths[start : start + 4]
+        direct = compute_saliency(varied_model, to_model_input([read_rgb(Path(p)) for p in chunk], **varied_model.sidecar.input_options()))
+        for k, p in enumerate(chunk):
+            assert np.array_equal(got[streams][p][3], direct.maps[k].astype(np.float16).astype(np.float32)), p
+            assert varied_model.classes[int(direct.predicted[k])] == got[streams][p][0]
+
+
+def test_the_job_leaves_torchs_thread_setting_as_it_found_it(tmp_path: Path, small_scenes: Path, tiny_model: LoadedModel) -> None:
+    import threading
+
+    import torch
+
+    before = torch.get_num_threads()
+    factory = session_factory(make_engine(tmp_path / "p"))
+    register_images(factory, find_images(small_scenes / "manifest.csv"))
+    run_saliency(factory, tmp_path / "p", tiny_model, batch_size=4, progress=None, streams=2)
+    assert torch.get_num_threads() == before
+    seen: list[int] = []
+    t = threading.Thread(target=lambda: seen.append(torch.get_num_threads()))  # a new thread starts from torch's default again
+    t.start()
+    t.join()
+    assert seen == [before]
