@@ -11,12 +11,12 @@ from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import numpy.typing as npt
 import torch
-from sqlalchemy import insert, select
+from sqlalchemy import Table, insert, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from analysis.errors import ImageInputError
@@ -251,16 +251,17 @@ def store_batch(factory: sessionmaker[Session], layout: ProjectLayout, run_id: i
                 row.problem = why
         for _, path in result.nonfinite:
             report.skipped.append((path, "the model gave NaN or infinite outputs for this image; nothing was stored for it (check the model and its input scaling)"))
-        if result.ids:  # bulk inserts: a batch's rows cost a few statements, not one flush per image
-            s.execute(insert(Prediction), [
+        if result.ids:  # Core inserts of plain rows: a batch's rows cost two statements, not one ORM flush per image
+            predictions = cast(Table, Prediction.__table__)
+            inserted = s.execute(insert(predictions).returning(predictions.c.image_id, predictions.c.id), [
                 {"run_id": run_id, "image_id": image_id, "predicted": classes[result.predicted[k]], "confidence": result.confidence[k],
                  "empty_map": result.empty[k], "map_path": layout.map_ref(shard_rel, k)} for k, image_id in enumerate(result.ids)])
-            pred_of = dict(s.execute(select(Prediction.image_id, Prediction.id).where(Prediction.run_id == run_id, Prediction.image_id.in_(result.ids))).all())
+            pred_of = {int(image_id): int(pid) for image_id, pid in inserted}
             rows = [{"prediction_id": pred_of[image_id], "rank": r.rank, "x0": r.x0, "y0": r.y0, "x1": r.x1, "y1": r.y1, "area": r.area,
                      "mass_share": r.mass_share, "crop_path": "", "outline_path": ""}
                     for image_id, regions in zip(result.ids, result.regions) for r in regions]
             if rows:
-                s.execute(insert(RegionRow), rows)
+                s.execute(insert(cast(Table, RegionRow.__table__)), rows)
         pixels = int(np.prod(result.maps.shape[1:])) if result.maps.ndim == 3 else 0
         for k in range(len(result.ids)):
             regions = result.regions[k]
@@ -372,11 +373,12 @@ def run_saliency(
     if n_streams < 1:
         raise InvalidRequestError(f"streams must be 1 or more; got {streams}.")
     in_flight: deque[tuple[Future[BatchInput], Future[SaliencyBatch | None]]] = deque()
-    # Reading and storing do little torch work (normalising, float16): on one thread each, so that no
-    # OpenMP team of theirs spins after it, on the cores the compute threads need.
-    torch.set_num_threads(1)
+    # torch's thread count is the process's (and, for some libraries under it, each thread's): set here and
+    # in every compute thread. Reading and storing do little torch work (normalising, float16) and get the
+    # same small count, so no wide OpenMP team of theirs spins on the cores the compute threads need.
+    torch.set_num_threads(stream_threads)
     try:
-        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-reader", initializer=torch.set_num_threads, initargs=(1,)) as reader, \
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="heedmap-reader", initializer=torch.set_num_threads, initargs=(stream_threads,)) as reader, \
                 ThreadPoolExecutor(max_workers=n_streams, thread_name_prefix="heedmap-compute", initializer=torch.set_num_threads,
                                    initargs=(stream_threads,)) as compute:
 
@@ -406,7 +408,7 @@ def run_saliency(
                     saliency_f.cancel()
                     read_f.cancel()
     finally:
-        torch.set_num_threads(outer_threads)  # a compute thread's setting is also torch's default for new threads
+        torch.set_num_threads(outer_threads)
     return prep.report
 
 

@@ -359,3 +359,38 @@ def test_tap_runs_the_part_before_the_layer_in_inference_mode(zoo_files: dict[st
         handle.remove()
     assert seen == [True] and loaded.tap.inference is True  # type: ignore[union-attr]
     assert not tapped.activation.is_inference() and tapped.activation.requires_grad
+
+
+@pytest.mark.parametrize("fmt", FORMATS)
+@pytest.mark.parametrize("name", ["residual_flatten", "vit"])
+def test_gradcam_in_two_threads_at_once_equals_one_at_a_time(name: str, fmt: str, zoo_files: dict[str, tuple[nn.Module, Path]]) -> None:
+    """The saliency job computes two batches at once on one loaded model, each in a thread of its own:
+    every format's tap (forward hooks on shared modules, TorchScript's edited graph) must keep the two
+    apart, giving each batch exactly what it gets alone."""
+    import threading
+
+    loaded = _load(fmt, BY_NAME[name], zoo_files[name][1])
+    inputs = [torch.randn(4, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(20 + i)) for i in range(8)]
+    alone = [compute_saliency(loaded, x) for x in inputs]
+    together: dict[int, object] = {}
+    failures: list[BaseException] = []
+    start = threading.Barrier(2)
+
+    def work(part: int) -> None:
+        try:
+            start.wait()
+            for i in range(part, len(inputs), 2):
+                together[i] = compute_saliency(loaded, inputs[i])
+        except BaseException as exc:  # noqa: BLE001  # reported below, with the thread's error
+            failures.append(exc)
+
+    threads = [threading.Thread(target=work, args=(p,)) for p in (0, 1)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not failures, failures
+    for i, one in enumerate(alone):
+        got = together[i]
+        assert isinstance(got, type(one))
+        assert (got.predicted == one.predicted).all() and (got.maps == one.maps).all() and (got.probabilities == one.probabilities).all(), i
