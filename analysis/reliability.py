@@ -192,16 +192,27 @@ def _item_groups(i: IntArray, code: IntArray, n_items: int, fixed: IntArray) -> 
     Returns each item's group (0..G-1) and one item of each group. Items alike in this way get the same
     posterior at every EM step (from the same start), so EM over one item per group, weighted by the
     group's total weight, is the same EM with the same sums; with binary presence votes from a few
-    annotators there are a few hundred groups among hundreds of thousands of items. The grouping refines
-    position by position through each item's sorted codes: each pass costs the items with that many codes.
+    annotators there are a few hundred groups among hundreds of thousands of items. Where they fit in 62
+    bits, each item's count, known answer and sorted codes are the digits of one integer, grouped in one pass;
+    otherwise the grouping refines position by position through the sorted codes.
     """
     order = np.lexsort((code, i))
     codes = code[order]
     per_item = np.bincount(i, minlength=n_items)
     start = np.concatenate([[0], np.cumsum(per_item)[:-1]])
-    group = np.unique(per_item * (int(fixed.max(initial=-1)) + 2) + fixed + 1, return_inverse=True)[1].reshape(-1).astype(np.int64)
+    longest = int(per_item.max(initial=0))
     n_codes = int(code.max()) + 1
-    for p in range(int(per_item.max(initial=0))):
+    first_key = per_item * (int(fixed.max(initial=-1)) + 2) + fixed + 1
+    if math.log2(float(first_key.max(initial=0)) + 1) + longest * math.log2(n_codes + 1) < 62:
+        key = first_key.astype(np.int64)
+        for p in range(longest):  # digit p: the item's p-th code + 1, or 0 past its last (every key has the same digits)
+            at = np.nonzero(per_item > p)[0]
+            key *= n_codes + 1
+            key[at] += codes[start[at] + p] + 1
+        _, first, group = np.unique(key, return_index=True, return_inverse=True)
+        return group.reshape(-1).astype(np.int64), first.astype(np.int64)
+    group = np.unique(first_key, return_inverse=True)[1].reshape(-1).astype(np.int64)
+    for p in range(longest):
         at = np.nonzero(per_item > p)[0]  # items of a group all have the same count: groups split, never merge
         _, again = np.unique(group[at] * n_codes + codes[start[at] + p], return_inverse=True)
         group[at] = again.reshape(-1) + int(group.max()) + 1

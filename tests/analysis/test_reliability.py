@@ -152,6 +152,26 @@ def test_alike_items_are_fitted_once_with_the_same_result(one_coin: bool, monkey
         np.testing.assert_allclose(ours.posterior, ref.probas_.sort_index()[[0, 1]].to_numpy(), atol=1e-4)
 
 
+@pytest.mark.parametrize("spread", [1, 2**40])  # small codes: one integer per item; codes too wide for that: refined pass by pass
+def test_item_groups_are_exactly_the_items_with_the_same_judgments_and_answer(spread: int) -> None:
+    from analysis.reliability import _item_groups
+
+    rng = np.random.default_rng(5)
+    n_items = 400
+    per = rng.integers(0, 5, n_items)  # some items without any judgment
+    items = np.repeat(np.arange(n_items), per)
+    codes = rng.integers(0, 4, len(items)) * spread  # repeats within an item too
+    fixed = np.where(rng.random(n_items) < 0.1, rng.integers(0, 2, n_items), -1)
+    group, one = _item_groups(items, codes, n_items, fixed)
+    signature = [(tuple(sorted(codes[items == u].tolist())), int(fixed[u])) for u in range(n_items)]
+    partition = {}
+    for u, sig in enumerate(signature):
+        partition.setdefault(sig, []).append(u)
+    assert len(one) == len(partition) < n_items
+    assert all(len({int(group[u]) for u in members}) == 1 for members in partition.values())
+    assert all(signature[int(one[g])] == signature[u] for u, g in enumerate(group.tolist()))
+
+
 def _careful_crowd(seed: int, n: int, typo: float) -> tuple[list[str], np.ndarray, np.ndarray, np.ndarray]:
     """Three equally careful annotators naming what a region shows: right 90% of the time, else a typo
     (the word cut short, "strok" for "stroke") or another word. One word dominates, as "stroke" does on
