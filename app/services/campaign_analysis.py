@@ -264,10 +264,12 @@ def agreement_summary(s: Session, campaign: CampaignInfo | int, *, cache: Result
 def warm_results(sessions: Callable[[], Session], cache: ResultsCache, *, min_support: float, campaigns_kept: int = 3,
                  stop: threading.Event | None = None) -> list[int]:
     """Compute, into ``cache``, what the results page and the concepts CSV of the most recent campaigns with labels
-    need (their labels read, the concept table, the page's default rules, the CSV), so that the first page after
+    need (their labels read, the concept table, the page's default rules, the CSV), then the agreement page's figures
+    and the settling page's status (its earlier checkpoints, kept while labels come in), so that the first page after
     start-up does not pay for it. Returns the campaigns warmed; a campaign whose results cannot be made is passed
     over (its page says why when opened). ``stop`` set: no further campaign is started."""
     from .exports import cached_concepts_export  # exports builds on this module
+    from .stopping import stopping_status  # so does stopping
 
     with sessions() as s:
         labelled = s.scalars(select(Label.campaign_id).group_by(Label.campaign_id).order_by(Label.campaign_id.desc()).limit(campaigns_kept)).all()
@@ -282,5 +284,16 @@ def warm_results(sessions: Callable[[], Session], cache: ResultsCache, *, min_su
                 cached_concepts_export(res, "csv")
             except (NotFoundError, InvalidInputError, NotEnoughLabelsError):
                 continue
+        for page in ("agreement", "settling"):
+            if stop is not None and stop.is_set():
+                break
+            with sessions() as s:
+                try:
+                    if page == "agreement":
+                        agreement_summary(s, int(campaign_id), cache=cache)
+                    else:
+                        stopping_status(s, _campaign(s, int(campaign_id)), min_support=min_support, cache=cache)
+                except (NotFoundError, InvalidInputError, NotEnoughLabelsError):
+                    pass
         done.append(int(campaign_id))
     return done

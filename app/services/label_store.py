@@ -174,6 +174,13 @@ class LabelStore:
             self._refresh(s, held, campaign_id, version)
             return [Judgment(r, held.people[p], held.entities[e], bool(u)) for r, p, e, u in held.rows.tolist()]
 
+    def nth_id(self, s: Session, campaign_id: int, version: tuple[object, ...], n: int) -> int | None:
+        """The id of the campaign's ``n``-th label in id order (1 is the first), as of ``version``; None when there are fewer."""
+        held = self._slot(campaign_id)
+        with held.lock:
+            self._refresh(s, held, campaign_id, version)
+            return int(held.ids[n - 1]) if 0 < n <= len(held.ids) else None
+
     def read(self, s: Session, campaign_id: int, version: tuple[object, ...], *, rules: SynonymRules,
              region_class: Mapping[int, str], limit: int | None = None) -> ReadJudgments:
         """The usable judgments read (see :func:`analysis.concept_votes.read_judgments`; the same result), the first ``limit`` labels when given."""

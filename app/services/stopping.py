@@ -16,7 +16,7 @@ from analysis.stopping import ClassSettling, checkpoints, settling
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..campaigns.plans import SETTLE_WINDOW, PlanInfo
-from ..models import CampaignRegion, Label
+from ..models import CampaignRegion
 from .campaign_analysis import ResultsCache, _method, _read, campaign_results, campaign_rules, prediction_frame, region_classes
 
 TOP_RULES = 3
@@ -44,14 +44,7 @@ def _rules_at(s: Session, c: CampaignInfo, n: int, *, min_support: float, max_le
     return made.table.rules(target="predicted", min_support=min_support, max_len=max_len, prune=True).rules
 
 
-def _first_labels(s: Session, campaign_id: int, n: int) -> tuple[int, int | None]:
-    """How many of the campaign's labels, and the highest id, among its first ``n`` labels by id (one index walk)."""
-    first = select(Label.id).where(Label.campaign_id == campaign_id).order_by(Label.id).limit(n).subquery()
-    count, last = s.execute(select(func.count(), func.max(first.c.id))).one()
-    return int(count), last
-
-
-def _checkpoint_key(s: Session, c: CampaignInfo, n: int, version: tuple[object, ...], plan: PlanInfo | None) -> tuple[object, ...]:
+def _checkpoint_key(s: Session, c: CampaignInfo, n: int, version: tuple[object, ...], plan: PlanInfo | None, cache: ResultsCache) -> tuple[object, ...]:
     """What the results from the campaign's first ``n`` labels depend on, so they are made once and kept while more labels come in.
 
     Labels are only stored (with an id above every id held) or undone (moved to the withdrawn table). So the first ``n``
@@ -61,7 +54,7 @@ def _checkpoint_key(s: Session, c: CampaignInfo, n: int, version: tuple[object, 
     """
     regions = s.execute(select(func.count(), func.max(CampaignRegion.region_id), func.min(CampaignRegion.region_id))
                         .where(CampaignRegion.campaign_id == c.id)).one()
-    return (c.id, n, *_first_labels(s, c.id, n), version[3], version[4], *version[5:], replace(plan, closed_classes=()) if plan else None,
+    return (c.id, n, cache.labels.nth_id(s, c.id, version, n), version[3], version[4], *version[5:], replace(plan, closed_classes=()) if plan else None,
             *regions, c.run_id, tuple(c.classes))
 
 
@@ -87,10 +80,10 @@ def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, ca
     earlier, points = [], []
     for k in checkpoints(n, window):
         try:
-            if kept is None:
+            if kept is None or cache is None:
                 earlier.append(at(k))
             else:
-                earlier.append(kept.get_or_make((*_checkpoint_key(s, c, k, version, plan), min_support, max_len), functools.partial(at, k)))
+                earlier.append(kept.get_or_make((*_checkpoint_key(s, c, k, version, plan, cache), min_support, max_len), functools.partial(at, k)))
             points.append(k)
         except NotEnoughLabelsError:
             pass

@@ -85,3 +85,24 @@ def test_checkpoint_results_are_made_once_and_again_after_an_undo_among_them(fac
     made.clear()
     undone, fresh = both()
     assert _same(undone, fresh) and sorted(made) == sorted(undone.checkpoints)
+
+
+def test_start_up_warming_also_makes_the_agreement_and_settling_pages(factory, monkeypatch: pytest.MonkeyPatch) -> None:  # type: ignore[no-untyped-def]
+    from app.services import campaign_analysis
+
+    with write_session(factory) as s:
+        cid = campaigns.create_campaign(s, name="warm", run_id=1, labels_per_region=3, settle_window=10)
+        c = campaigns.get_campaign(s, cid)
+    assert _label(factory, c, "ann") >= 15 and _label(factory, c, "bob") >= 15
+    cache = ResultsCache()
+    assert campaign_analysis.warm_results(factory, cache, min_support=0.01) == [cid]
+
+    def made_again(*args: object, **kw: object) -> None:
+        raise AssertionError("made again: warming did not keep it")
+
+    monkeypatch.setattr(campaign_analysis, "_agreement", made_again)
+    monkeypatch.setattr(stopping, "_status", made_again)
+    with factory() as s:  # the pages' own calls find what warming made
+        shown = campaign_analysis.agreement_summary(s, cid, cache=cache)
+        status = stopping.stopping_status(s, c, min_support=0.01, cache=cache)
+    assert shown.report.n_judgments == 2 * c.n_regions and len(status.checkpoints) == 2
