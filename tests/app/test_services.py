@@ -264,3 +264,20 @@ def test_a_failed_make_is_not_kept_and_the_next_asker_makes_it() -> None:
     with pytest.raises(ValueError):
         cache.get_or_make(("k",), fail)
     assert cache.get_or_make(("k",), lambda: 7) == 7
+
+
+def test_the_app_warms_the_labelled_campaigns_results_at_start_up(client: TestClient, campaign_id: int) -> None:
+    from app import store
+    from app.main import create_app
+    from app.settings import Settings
+
+    _label(client, campaign_id, "p", 12)
+    settings: Settings = client.app.state.settings  # type: ignore[attr-defined]
+    with TestClient(create_app(settings)) as started:
+        assert started.app.state.warmed.wait(60)  # type: ignore[attr-defined]
+        cache: ResultsCache = started.app.state.results_cache  # type: ignore[attr-defined]
+        with started.app.state.sessions() as s:  # type: ignore[attr-defined]
+            version = store.labels_version(s, campaign_id)
+            made: list[object] = []
+            warm = cache.get_or_make(("results", *version), lambda: made.append(1))
+            assert not made and warm.table.presence.equals(campaign_results(s, campaign_id).table.presence)  # type: ignore[attr-defined]
