@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import secrets
 import sys
 from collections import deque
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -71,9 +72,34 @@ class RunSummary:
     key: str
 
 
-def image_set_key(records: list[ImageRecord]) -> dict[str, object]:
-    """What identifies an image set in a run's key: its size and a hash of its paths, labels and splits."""
-    rows = sorted(f"{Path(r.path).resolve()}\t{r.label}\t{r.split}" for r in records)
+def resolved_paths(paths: Iterable[str | os.PathLike[str]]) -> list[str]:
+    """``str(Path(p).resolve())`` of each path, each folder resolved once.
+
+    Resolving a path checks every folder on the way for a link (eight checks for a path eight folders
+    deep); images share a few folders, so a folder's resolution is kept and only the file itself is
+    checked (a file that is a link is resolved in full). The strings are the same as pathlib's.
+    """
+    folders: dict[str, str] = {}
+    out = []
+    for p in paths:
+        text = os.fspath(p)
+        head, tail = os.path.split(text)
+        if tail in ("", ".", ".."):
+            out.append(str(Path(text).resolve()))
+            continue
+        folder = folders.get(head)
+        if folder is None:
+            folder = folders[head] = os.path.realpath(head or ".")
+        candidate = os.path.join(folder, tail)
+        out.append(str(Path(candidate).resolve()) if os.path.islink(candidate) else candidate)
+    return out
+
+
+def image_set_key(records: list[ImageRecord], *, paths: list[str] | None = None) -> dict[str, object]:
+    """What identifies an image set in a run's key: its size and a hash of its paths, labels and splits.
+    ``paths``: the records' paths resolved already (:func:`resolved_paths`)."""
+    resolved = resolved_paths(r.path for r in records) if paths is None else paths
+    rows = sorted(f"{p}\t{r.label}\t{r.split}" for p, r in zip(resolved, records))
     return {"count": len(rows), "sha256": hashlib.sha256("\n".join(rows).encode()).hexdigest()}
 
 
@@ -124,8 +150,7 @@ def register_images(factory: sessionmaker[Session], records: list[ImageRecord], 
     problems = []
     with write_session(factory) as s:
         known = set(s.scalars(select(ImageRow.path)))
-        for rec in records:
-            path = str(Path(rec.path).resolve())
+        for rec, path in zip(records, resolved_paths(r.path for r in records)):
             if path in known:
                 continue
             known.add(path)
@@ -285,18 +310,20 @@ class PreparedRun:
 def prepare_run(factory: sessionmaker[Session], project_dir: Path, model: LoadedModel, *, params: RegionParams, model_files: tuple[Path | None, Path] | None,
                 images: list[ImageRecord] | None, name: str, source: Path | None) -> PreparedRun:
     """Find the run this job continues (same key) or make it, and list the images it has not done."""
-    with factory() as s:
-        rows = list(s.scalars(select(ImageRow).order_by(ImageRow.id)))
+    with factory() as s:  # plain rows, not ORM objects: a run of 100,000 images reads them all
+        rows = s.execute(select(ImageRow.id, ImageRow.path, ImageRow.label, ImageRow.split, ImageRow.problem).order_by(ImageRow.id)).all()
     if images is not None:
-        wanted = {str(Path(r.path).resolve()) for r in images}
+        paths = resolved_paths(r.path for r in images)
+        wanted = set(paths)
         rows = [r for r in rows if r.path in wanted]
         records = images
     else:
         records = [ImageRecord(path=Path(r.path), label=r.label, split=r.split) for r in rows]
+        paths = resolved_paths(r.path for r in records)
     provenance = {
         **saliency_provenance(model),
         "regions": params.to_json(),
-        "images": image_set_key(records),
+        "images": image_set_key(records, paths=paths),
         "run_name": name,
         "image_source": str(source) if source is not None else None,
     }
@@ -389,7 +416,9 @@ def run_saliency(
                     in_flight.append((read, compute.submit(_saliency_of, model, read)))
 
             try:
-                for _ in range(n_streams + 1):  # every compute thread busy, and the next batch ready for the first to finish
+                # Every compute thread busy, the next batches read and queued behind them, and room for
+                # results waiting while this thread stores (an fsync can stall it for a while).
+                for _ in range(2 * n_streams + 2):
                     start_next()
                 done = stored = 0
                 while in_flight:

@@ -163,6 +163,7 @@ def speed_table(work: Path, sizes: dict[str, int], *, rounds: int = 3, models: t
         records = _images(work, n, px)
         model = _model(arch, px)
         plain_rate(model, records[:BATCH])  # warm-up (page cache, allocator)
+        job_rate(model, records[: 2 * BATCH], work / "warm-up")  # and the job's first-use costs (imports, the tap's first pass)
         rate: dict[str, list[float]] = {k: [] for k in sides}
         cpu: dict[str, list[float]] = {k: [] for k in sides}
         for r in range(rounds):

@@ -166,3 +166,26 @@ def test_the_job_leaves_torchs_thread_setting_as_it_found_it(tmp_path: Path, sma
     t.start()
     t.join()
     assert seen == [before]
+
+
+def test_resolved_paths_are_pathlibs_resolve(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The run key and registration resolve image paths folder by folder; the strings must be exactly
+    pathlib's ``str(Path(p).resolve())``, links and '..' included, or a resumed run would get a new key."""
+    import os
+
+    from app.jobs import resolved_paths
+
+    real = tmp_path / "real" / "class_a"
+    real.mkdir(parents=True)
+    (real / "x.png").write_bytes(b"")
+    (real / "y.png").write_bytes(b"")
+    (tmp_path / "linked_dir").symlink_to(tmp_path / "real")
+    (real / "link.png").symlink_to(real / "y.png")
+    (tmp_path / "real" / "up").symlink_to(real)  # real/up/.. is real/class_a/.. = real, not real/up's folder by spelling
+    monkeypatch.chdir(tmp_path)
+    paths: list[str | os.PathLike[str]] = [
+        real / "x.png", tmp_path / "linked_dir" / "class_a" / "x.png", real / "link.png", "real/class_a/y.png",
+        "linked_dir/class_a/link.png", tmp_path / "real" / "up" / ".." / "class_a" / "x.png", "real/up/../class_a/missing.png",
+        "missing_dir/z.png", "real/class_a/.", "real/class_a/..", "x.png", Path("linked_dir") / "class_a" / "y.png",
+    ]
+    assert resolved_paths(paths) == [str(Path(p).resolve()) for p in paths]
