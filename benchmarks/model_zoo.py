@@ -22,7 +22,12 @@ an amax's backward on the whole map used to cost almost as much as the two small
 before it. TorchScript's layers after the tap are differentiated by eager autograd, not by its
 symbolic derivatives (SiLU's is five elementwise operations where eager autograd uses one kernel).
 Attention after the tap runs as analysis.attention_rows: below a class-token head only the class
-token's query row carries gradient, and its backward works on that row alone.
+token's query row carries gradient, and its backward works on that row alone. A mean of a later
+map (SiLU or ReLU after the layer, then global pooling) hands its gradient back as a broadcast
+view instead of writing it out (analysis.layer_taps._SpreadPooled, heedmap::spread_mean in
+TorchScript); the q, k, v parts of attention's packed projection are taken by one unbind (one
+backward step instead of three zero-filled copies added up); the part before the layer runs in
+inference mode as plain inference does; maps are upsampled by two small matrix products.
 
 Both sides run the same kernels before the layer: plain inference and the saliency stage's
 gradient-free part both take nn.MultiheadAttention's fused path in an eager or TorchScript model
