@@ -179,11 +179,12 @@ def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, con
             break
         dropped = max(dropped, int((~unlike).sum()))
     if len(found) < 2:
-        colour_note = (f"; {dropped} had a colour within the colours of the tested {concept!r} regions, so they cannot stand for "
-                       f"{entity!r} without it (label some with their other attribute, e.g. '{entity}: <colour>')") if dropped else ""
+        colour_note = (f"; {dropped} had the colour of the tested {concept!r} regions (within their spread, or nearer it than the "
+                       f"other donors' colour), so they cannot stand for {entity!r} without it (label some with their other attribute, "
+                       f"e.g. '{entity}: <colour>')") if dropped else ""
         return None, (f"recolouring needs regions labelled {entity!r} (or another attribute of it) without {concept!r} and without "
                       f"anything else, in at least two images that do not show {concept!r} (the entity's plain look){colour_note}")
-    left = f", {dropped} left out: their colour lies within the tested regions' colours" if dropped else ""
+    left = f", {dropped} left out: they had the tested regions' colour" if dropped else ""
     return found, f"plain look from {source}, {len(found)} images{left}"
 
 
