@@ -447,7 +447,7 @@ MIN_DONOR_SCALE = 0.05  # added to the colours' spread in every direction, model
 _TRIM = 0.975  # the reweighting step keeps the tested colours inside this chi-square quantile
 
 
-def beyond_spread(donors: torch.Tensor, attribute: torch.Tensor, *, level: float = DONOR_LEVEL,
+def beyond_spread(donors: torch.Tensor, attribute: torch.Tensor, *, within: torch.Tensor | None = None, level: float = DONOR_LEVEL,
                   min_scale: float = MIN_DONOR_SCALE) -> torch.Tensor:
     """Which colours (K x 3) lie beyond the spread of ``attribute`` (N x 3): their squared Mahalanobis distance
     exceeds the chi-square ``level`` quantile with 3 degrees of freedom (scipy.stats.chi2); also the spread's centre.
@@ -456,7 +456,10 @@ def beyond_spread(donors: torch.Tensor, attribute: torch.Tensor, *, level: float
     under brighter or dimmer light), so a per-channel spread would call a brightly lit green unlike them. It is
     fitted robustly: the median as a start, then two reweighting steps that keep the colours inside the ``_TRIM``
     quantile, with the consistency factor of a trimmed normal (Croux & Haesbroeck, 1999), plus ``min_scale``
-    squared in every direction (a floor for colours that hardly vary)."""
+    squared in every direction (a floor for colours that hardly vary), plus ``within`` when given (3 x 3: the
+    spread of the pixels inside the tested masks, :func:`pixel_spread`). With few tested images the spread of
+    their mean colours says little (three images give none at all), and a green belt's region then lies just
+    beyond it; a colour inside the spread of the attribute's own pixels is a colour the attribute shows."""
     from scipy.stats import chi2
 
     donors = torch.as_tensor(donors, dtype=torch.float64)
@@ -466,6 +469,11 @@ def beyond_spread(donors: torch.Tensor, attribute: torch.Tensor, *, level: float
     if not 0 < level < 1:
         raise InvalidInputError(f"level must be in (0, 1), e.g. {DONOR_LEVEL}; got {level!r}.")
     floor = min_scale**2 * torch.eye(3, dtype=torch.float64)
+    if within is not None:
+        within = torch.as_tensor(within, dtype=torch.float64)
+        if within.shape != (3, 3) or not torch.isfinite(within).all():
+            raise InvalidInputError(f"within must be a finite 3 x 3 covariance; got {tuple(within.shape)}.")
+        floor = floor + within
     cut = float(chi2.ppf(_TRIM, 3))
     consistency = _TRIM / float(chi2.cdf(cut, 5))
 
@@ -487,7 +495,19 @@ def beyond_spread(donors: torch.Tensor, attribute: torch.Tensor, *, level: float
     return outside
 
 
-def unlike_attribute(donors: torch.Tensor, attribute: torch.Tensor, *, level: float = DONOR_LEVEL,
+def pixel_spread(x: torch.Tensor, masks: BoolMaps) -> torch.Tensor:
+    """The pooled covariance (3 x 3, model input space) of the pixels under each image's mask about that image's
+    own mean colour: how much the attribute's colour varies within a region (noise, texture, seams)."""
+    masks = np.asarray(masks, dtype=bool)
+    parts = [x[i][:, torch.from_numpy(masks[i])].double() for i in range(len(x)) if masks[i].any()]
+    if not parts:
+        return torch.zeros((3, 3), dtype=torch.float64)
+    centred = torch.cat([p - p.mean(dim=1, keepdim=True) for p in parts], dim=1)
+    spread: torch.Tensor = centred @ centred.T / max(1, centred.shape[1] - len(parts))
+    return spread
+
+
+def unlike_attribute(donors: torch.Tensor, attribute: torch.Tensor, *, within: torch.Tensor | None = None, level: float = DONOR_LEVEL,
                      min_scale: float = MIN_DONOR_SCALE) -> npt.NDArray[np.bool_]:
     """Which plain-look donors (K x 3 colours, model input space) can stand for the entity without the attribute,
     judged by colour against the regions under test (``attribute``, N x 3: each tested image's mean colour under
@@ -499,14 +519,15 @@ def unlike_attribute(donors: torch.Tensor, attribute: torch.Tensor, *, level: fl
     belt demo with grouped labelling, 19 of 21 bare "belt" donors were green and the estimate read 0.03x the
     truth). A donor is kept when both hold:
 
-    - it lies beyond the tested colours' spread (:func:`beyond_spread`, chi-square ``level``);
+    - it lies beyond the tested colours' spread (:func:`beyond_spread`, chi-square ``level``; ``within``: the
+      spread of the tested pixels, :func:`pixel_spread`, added to that of the images' mean colours);
     - it is nearer the plain look than the tested colours' centre. The spread is narrow across its main
       direction, so a green belt's region that holds a piece of the object lies beyond it yet is still green.
       The plain look is the median of the donors kept, found by alternating (two means, one of them fixed at
       the attribute's centre).
     """
     donors = torch.as_tensor(donors, dtype=torch.float64)
-    outside = beyond_spread(donors, attribute, level=level, min_scale=min_scale)
+    outside = beyond_spread(donors, attribute, within=within, level=level, min_scale=min_scale)
     centre = torch.as_tensor(attribute, dtype=torch.float64).median(dim=0).values
     nearer = outside.clone()
     for _ in range(20):

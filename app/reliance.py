@@ -32,6 +32,7 @@ from analysis.interventions import (
     NotTestableError,
     ablation_test,
     insertion_test,
+    pixel_spread,
     plain_colours,
     plan_regions,
     plan_removal,
@@ -117,7 +118,8 @@ def _inputs(s: Session, project: Path, res: Results, model: LoadedModel, image_i
 MAX_PLAIN_IMAGES = 200
 
 
-def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, concept: str, tested: torch.Tensor) -> tuple[torch.Tensor | None, str]:
+def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, concept: str, tested: torch.Tensor,
+                within: torch.Tensor) -> tuple[torch.Tensor | None, str]:
     """The plain look of the entity that ``concept`` refines ("belt" for "green belt"), one colour per image
     (up to MAX_PLAIN_IMAGES images, any class), and where it came from; or (None, why it cannot be found).
 
@@ -127,8 +129,8 @@ def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, con
     when at least two images have one; otherwise regions of the bare entity are used. Those can still
     hold the attribute where people named the entity but left the attribute out (a group labelled "belt"
     over green belts): every donor whose colour lies within the spread of ``tested`` (N x 3, each tested
-    image's mean colour under its masks) is dropped (:func:`analysis.interventions.unlike_attribute`),
-    whichever way it was labelled."""
+    image's mean colour under its masks; ``within``: the spread of the tested pixels) is dropped
+    (:func:`analysis.interventions.unlike_attribute`), whichever way it was labelled."""
     table = res.table
     entity = table.families.get(concept)
     if entity is None or entity not in table.concepts:
@@ -173,7 +175,7 @@ def _plain_look(s: Session, project: Path, res: Results, model: LoadedModel, con
                         (plain, f"regions labelled {entity!r} alone in images without {concept!r}")):
         per_image = donors(rows) if rows.any() else {}
         candidates = colours(per_image) if len(per_image) >= 2 else torch.zeros((0, 3))
-        unlike = unlike_attribute(candidates, tested) if len(candidates) else np.zeros(0, dtype=bool)
+        unlike = unlike_attribute(candidates, tested, within=within) if len(candidates) else np.zeros(0, dtype=bool)
         if int(unlike.sum()) >= 2:
             found, source, dropped = candidates[torch.from_numpy(unlike)], where, int((~unlike).sum())
             break
@@ -345,7 +347,7 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
     removal = plan_removal(x, masks, concepts, families=res.table.families)
     plain_note = removal.why_not_recolour
     if removal.test == "recolour":
-        plain, plain_note = _plain_look(s, project, res, model, concepts[0], plain_colours(x, removal.masks))
+        plain, plain_note = _plain_look(s, project, res, model, concepts[0], plain_colours(x, removal.masks), pixel_spread(x, removal.masks))
         if plain is not None:
             masks = removal.masks
             bar = _bar(f"{cls} / {name} (recolour)") if progress else None
@@ -357,6 +359,15 @@ def rule_reliance(s: Session, project: Path, res: Results, model: LoadedModel, c
                 _write_cached(_cache_path(project, key, f), None, reason=f"covering: the regions cover {share:.0%} of the image; decided by recolouring")
             _write_cached(_cache_path(project, key, "paste"), None)
             return RuleTests(cls, name, (recoloured,), None)
+        # No plain look: covering the salient pieces of an attribute that spans the entity leaves the rest of it in
+        # place (0.00x the true effect on the green belt, benchmarks/intervention_truth.py), so it would read "no
+        # reliance" for a cue the model needs. Not tested, with the reason.
+        reason = f"the attribute spans most of each image, so covering its pieces would not remove it; recolouring cannot run: {plain_note}."
+        for g in (*fills, "paste"):
+            _write_cached(_cache_path(project, key, g), None, reason=reason)
+        if progress:
+            sys.stderr.write(f"{cls} / {name}: not tested: {reason}\n")
+        return None
     coverings_run = []
     for f in fills:
         found, result = stored[f]

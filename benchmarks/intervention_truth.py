@@ -34,6 +34,7 @@ from analysis.interventions import (
     NotTestableError,
     RemovalPlan,
     ablation_test,
+    pixel_spread,
     plain_colours,
     plan_regions,
     plan_removal,
@@ -162,7 +163,7 @@ def _recolour(model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_],
     colours are dropped: :func:`analysis.interventions.unlike_attribute`), or None where fewer than two donors are
     left (as the product finds it: not testable); and how many donors were kept of how many."""
     donors = _donor_colours(model, seed + 300, kind, cue)
-    keep = unlike_attribute(donors, plain_colours(x, masks)) if len(donors) else np.zeros(0, dtype=bool)
+    keep = unlike_attribute(donors, plain_colours(x, masks), within=pixel_spread(x, masks)) if len(donors) else np.zeros(0, dtype=bool)
     note = f"{int(keep.sum())}/{len(donors)}"
     if keep.sum() < 2:
         return None, note
@@ -178,12 +179,11 @@ def _policy(cue: str, x: torch.Tensor, masks: npt.NDArray[np.bool_]) -> RemovalP
 
 def _run_policy(plan: RemovalPlan, model: LoadedModel, x: torch.Tensor, masks: npt.NDArray[np.bool_], cls: int, seed: int, kind: str,
                 cue: str) -> InterventionResult | None:
-    """The default policy's test, as the app runs it: recolouring where the plan says so and donors are found,
-    else covering with the default fill on the masks as they are (not testable where they cover most of each image)."""
+    """The default policy's test, as the app runs it: recolouring where the plan says so (not testable where fewer
+    than two donors are found), else covering with the default fill on the masks as they are (not testable where
+    they cover most of each image)."""
     if plan.test == "recolour":
-        found, _ = _recolour(model, x, plan.masks, cls, seed, kind, cue)
-        if found is not None:
-            return found
+        return _recolour(model, x, plan.masks, cls, seed, kind, cue)[0]
     return _estimate(model, x, masks, cls, DEFAULT_FILLS[0], seed)
 
 
