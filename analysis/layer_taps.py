@@ -177,7 +177,7 @@ def _(x: torch.Tensor, dim: list[int], keepdim: bool, adaptive: bool) -> torch.T
 def _spread_mean_setup(ctx: Any, inputs: tuple[object, ...], output: torch.Tensor) -> None:
     x, dim, keepdim, adaptive = cast(tuple[torch.Tensor, list[int], bool, bool], inputs)  # the op's schema
     ctx.shape, ctx.dtype = x.shape, x.dtype
-    ctx.dims = sorted({d % x.ndim for d in ([-2, -1] if adaptive else dim)})
+    ctx.dims = sorted({d % x.ndim for d in ([-2, -1] if adaptive else (dim or range(x.ndim)))})  # [] is every dimension, as torch's mean
     ctx.keepdim = bool(keepdim or adaptive)
 
 
@@ -209,7 +209,7 @@ def _spread_pool(func: Any, args: tuple[object, ...], kwargs: dict[str, object],
 _MAX_UNBIND = 4  # q, k, v (or k, v) of a packed projection; a longer dimension keeps torch's select
 
 
-def _select_parts(name: str, args: tuple[object, ...], kwargs: dict[str, object], parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...]]]) -> torch.Tensor | None:
+def _select_parts(name: str, args: tuple[object, ...], kwargs: dict[str, object], parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...], int]]) -> torch.Tensor | None:
     """``x.select(dim, i)`` (or ``x[i]``) on a short dimension of a tensor that records gradients, as
     the i-th part of one ``x.unbind(dim)`` shared by every such select of ``x``: the same views, but
     one backward step stacks the parts' gradients, where each select's backward writes a zero
@@ -232,9 +232,10 @@ def _select_parts(name: str, args: tuple[object, ...], kwargs: dict[str, object]
     if not 2 <= x.shape[dim] <= _MAX_UNBIND or not -x.shape[dim] <= index < x.shape[dim]:
         return None
     key = (id(x), dim)
-    if key not in parts:
-        parts[key] = (x, torch.unbind(x, dim))  # x is kept, so its id stays its own
-    return parts[key][1][index]
+    held = parts.get(key)
+    if held is None or held[2] != x._version:  # x changed in place since its unbind: its parts are stale, unbind it again
+        held = parts[key] = (x, torch.unbind(x, dim), x._version)  # x is kept, so its id stays its own
+    return held[1][index]
 
 
 def _attention_with_rows(*args: Any, **kwargs: Any) -> torch.Tensor:
@@ -302,7 +303,7 @@ class _Tail(TorchFunctionMode):
         super().__init__()
         self.activation = activation
         self.pooled: list[tuple[torch.Tensor, str]] = []
-        self.parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...]]] = {}
+        self.parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...], int]] = {}
 
     def __torch_function__(self, func: Any, types: Any, args: tuple[object, ...] = (), kwargs: dict[str, object] | None = None) -> Any:
         kwargs = kwargs or {}
@@ -680,6 +681,8 @@ def _ts_mean_node(graph: torch._C.Graph, node: torch._C.Node, leaf: torch._C.Val
         dims, keepdim, adaptive = made
     else:
         if len(inputs) != 4 or not isinstance(_ts_constant(inputs[1]), list) or not isinstance(_ts_constant(inputs[2]), bool):
+            return
+        if not _ts_constant(inputs[1]):  # mean(x, []) is a mean over every dimension: torch's own, not a pooling
             return
         if inputs[3].node().kind() != "prim::Constant" or _ts_constant(inputs[3]) is not None:  # a dtype: torch's mean
             return

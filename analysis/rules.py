@@ -349,7 +349,7 @@ def spreadsheet_safe(value: object) -> object:
 def _cell(v: object) -> object:
     if isinstance(v, str):
         return spreadsheet_safe(v)
-    if v is None or (isinstance(v, float) and np.isnan(v)):
+    if v is None or v is pd.NA or v is pd.NaT or (isinstance(v, float) and np.isnan(v)):  # missing: an empty cell
         return ""
     if isinstance(v, (float, np.floating)):
         return f"{v:.6g}"

@@ -51,6 +51,8 @@ def _parser() -> argparse.ArgumentParser:
     v.add_argument("--port", type=int, default=None)
     v.add_argument("--db", default=None, metavar="URL", help="a PostgreSQL database for this run (postgresql://USER@HOST/DB); default: the project's own")
     v.add_argument("--workers", type=int, default=1, metavar="N", help="server processes (more than 1 needs PostgreSQL)")
+    v.add_argument("--warm-campaigns", type=int, default=None, metavar="N",
+                   help="recent labelled campaigns whose results are computed at start-up (default 3; 0: none)")
     c = sub.add_parser("campaign", help="create a labelling campaign over a saliency run")
     c.add_argument("project", type=Path)
     c.add_argument("--name", required=True)
@@ -175,7 +177,8 @@ def _factory(project: Path, *, create: bool = False) -> sessionmaker[Session]:
     return session_factory(open_project(project, create=create))
 
 
-def _serve(project: Path, port: int | None, *, database_url: str | None = None, workers: int = 1) -> None:
+def _serve(project: Path, port: int | None, *, database_url: str | None = None, workers: int = 1,
+           warm_campaigns: int | None = None) -> None:
     import os
 
     import uvicorn
@@ -184,7 +187,7 @@ def _serve(project: Path, port: int | None, *, database_url: str | None = None, 
     from .main import create_app
     from .people import admin_invite, load_key
 
-    settings = get_settings(project_dir=project, port=port, database_url=database_url, workers=workers)
+    settings = get_settings(project_dir=project, port=port, database_url=database_url, workers=workers, warm_campaigns=warm_campaigns)
     engine = open_project(project, database_url=settings.database_url)
     if settings.workers > 1 and not is_postgres(engine):
         engine.dispose()
@@ -204,6 +207,7 @@ def _serve(project: Path, port: int | None, *, database_url: str | None = None, 
     os.environ["HEEDMAP_PROJECT"] = str(Path(project).resolve())
     if settings.database_url:
         os.environ["HEEDMAP_DATABASE_URL"] = settings.database_url
+    os.environ["HEEDMAP_WARM_CAMPAIGNS"] = str(settings.warm_campaigns)
     uvicorn.run("app.main:app_from_environment", factory=True, host=settings.host, port=settings.port, workers=settings.workers, log_level="warning")
 
 
@@ -443,7 +447,7 @@ def _dispatch(args: argparse.Namespace) -> int:
                 return int(cli_models.saliency(args))
         return int(getattr(cli_models, args.command)(args))
     elif args.command == "serve":
-        _serve(args.project, args.port, database_url=args.db, workers=args.workers)
+        _serve(args.project, args.port, database_url=args.db, workers=args.workers, warm_campaigns=args.warm_campaigns)
     elif args.command in ("embed", "groups"):
         from . import cli_groups
 

@@ -396,9 +396,9 @@ def run_saliency(
     total = len(todo)
     batches = iter([todo[start : start + batch_size] for start in range(0, total, batch_size)])
     outer_threads = torch.get_num_threads()
-    n_streams, stream_threads = compute_streams(model, outer_threads) if streams is None else (streams, max(1, outer_threads // streams))
-    if n_streams < 1:
+    if streams is not None and streams < 1:
         raise InvalidRequestError(f"streams must be 1 or more; got {streams}.")
+    n_streams, stream_threads = compute_streams(model, outer_threads) if streams is None else (streams, max(1, outer_threads // streams))
     in_flight: deque[tuple[Future[BatchInput], Future[SaliencyBatch | None]]] = deque()
     # torch's thread count is the process's (and, for some libraries under it, each thread's): set here and
     # in every compute thread. Reading and storing do little torch work (normalising, float16) and get the

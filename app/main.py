@@ -70,7 +70,9 @@ def _warm_in_background(app: FastAPI, settings: Settings) -> tuple[threading.Eve
 
     def warm() -> None:
         try:
-            warm_results(app.state.sessions, app.state.results_cache, min_support=settings.min_support, stop=stop)
+            if settings.warm_campaigns:
+                warm_results(app.state.sessions, app.state.results_cache, min_support=settings.min_support,
+                             campaigns_kept=settings.warm_campaigns, stop=stop)
         except Exception:  # a page made later says what is wrong; start-up goes on without the warm results
             log.warning("warming the results at start-up failed; pages compute them when first opened", exc_info=settings.debug)
         finally:

@@ -24,6 +24,7 @@ class Settings:
     api_docs: bool = False  # serve /docs and /openapi.json (off: they map every route for anyone who can reach the port)
     database_url: str | None = None  # a PostgreSQL database for this run; None: the project's own (database.url or heedmap.db)
     workers: int = 1  # server processes; more than one needs PostgreSQL
+    warm_campaigns: int = 3  # recent labelled campaigns whose results are computed at start-up (0: none, pages compute on first view)
 
     def __post_init__(self) -> None:
         if not 1 <= self.port <= 65535:
@@ -36,12 +37,15 @@ class Settings:
             raise SettingsError(f"careless_seconds must be 0..600; got {self.careless_seconds}.")
         if not 1 <= self.workers <= 64:
             raise SettingsError(f"workers must be 1..64; got {self.workers}.")
+        if not 0 <= self.warm_campaigns <= 100:
+            raise SettingsError(f"warm_campaigns must be 0..100; got {self.warm_campaigns}.")
         if not 0 < self.min_support <= 1:
             raise SettingsError(f"min_support must be in (0, 1]; got {self.min_support}.")
 
 
 def get_settings(**overrides: object) -> Settings:
-    """Defaults, then HEEDMAP_PROJECT / HEEDMAP_PORT / HEEDMAP_DATABASE_URL / HEEDMAP_LABELS_PER_REGION, then ``overrides``."""
+    """Defaults, then HEEDMAP_PROJECT / HEEDMAP_PORT / HEEDMAP_DATABASE_URL / HEEDMAP_LABELS_PER_REGION /
+    HEEDMAP_WARM_CAMPAIGNS, then ``overrides``."""
     s = Settings()
     env = os.environ
     try:
@@ -53,6 +57,8 @@ def get_settings(**overrides: object) -> Settings:
             s = replace(s, database_url=env["HEEDMAP_DATABASE_URL"])
         if "HEEDMAP_LABELS_PER_REGION" in env:
             s = replace(s, labels_per_region=int(env["HEEDMAP_LABELS_PER_REGION"]))
+        if "HEEDMAP_WARM_CAMPAIGNS" in env:
+            s = replace(s, warm_campaigns=int(env["HEEDMAP_WARM_CAMPAIGNS"]))
     except ValueError as exc:
         raise SettingsError(f"a HEEDMAP_* environment variable is not a number: {exc}") from None
     return replace(s, **{k: v for k, v in overrides.items() if v is not None})  # type: ignore[arg-type]

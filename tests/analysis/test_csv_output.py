@@ -72,3 +72,16 @@ def test_concept_table_csv_is_the_general_writers_bytes() -> None:
     assert concept_table_csv(sampled) == to_csv(sampled.frame().reset_index()).encode("utf-8")
     bare = table_from_rows([("can", "can", 0.9, set()), ("bottle", "can", 0.6, set())])  # no concept at all
     assert concept_table_csv(bare) == to_csv(bare.frame().reset_index()).encode("utf-8")
+
+
+def test_missing_values_of_pandas_own_dtypes_are_empty_cells_in_both_writers() -> None:
+    frame = pd.DataFrame({
+        "name": pd.array(["can", pd.NA, "=cmd"], dtype="string"),
+        "n": pd.array([1, pd.NA, 3], dtype="Int64"),
+        "when": pd.to_datetime(["2026-01-01", None, "2026-01-02"]),
+    })
+    text = to_csv(frame)
+    rows = list(csv.reader(io.StringIO(text)))
+    assert rows[2] == ["", "", ""]  # not "<NA>" / "NaT"
+    assert rows[1][0] == "can" and rows[3][0] == spreadsheet_safe("=cmd")
+    assert to_csv(frame[["name"]]).splitlines()[2] == '""'  # one column: the csv module's lone empty field

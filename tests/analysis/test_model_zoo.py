@@ -301,7 +301,7 @@ def test_vit_packed_projection_is_split_by_one_unbind(fmt: str, zoo_files: dict[
 def test_select_parts_only_splits_short_dimensions_that_record_gradients() -> None:
     from analysis.layer_taps import _select_parts
 
-    parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...]]] = {}
+    parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...], int]] = {}
     x = torch.randn(3, 4, 5, requires_grad=True)
     with torch.enable_grad():
         first = _select_parts("__getitem__", (x, 1), {}, parts)
@@ -313,6 +313,34 @@ def test_select_parts_only_splits_short_dimensions_that_record_gradients() -> No
         assert _select_parts("__getitem__", (x, slice(0, 1)), {}, parts) is None
     with torch.no_grad():
         assert _select_parts("select", (x, 0, 0), {}, parts) is None
+
+
+def test_select_parts_after_an_in_place_change_gives_the_changed_values_and_torchs_gradient() -> None:
+    from analysis.layer_taps import _select_parts
+
+    parts: dict[tuple[int, int], tuple[torch.Tensor, tuple[torch.Tensor, ...], int]] = {}
+    w = torch.randn(3, 4, requires_grad=True)
+    with torch.enable_grad():
+        x = w * 1.0
+        first = _select_parts("select", (x, 0, 0), {}, parts)
+        assert first is not None
+        x.mul_(2.0)  # changed in place between two selects: the first unbind's parts are stale
+        second = _select_parts("select", (x, 0, 1), {}, parts)
+        assert second is not None and torch.equal(second, 2.0 * w[1].detach())
+        (second.sum() * 3.0).backward()
+    torch.testing.assert_close(w.grad, torch.tensor([[0.0] * 4, [6.0] * 4, [0.0] * 4]))  # d/dw of 3*sum(2*w[1])
+
+
+def test_spread_mean_over_every_dimension_has_torchs_gradient() -> None:
+    import analysis.layer_taps  # noqa: F401  registers the op
+
+    x = torch.randn(2, 3, 4, 5, dtype=torch.float64, requires_grad=True)
+    for dims, keep in (([], False), ([2, 3], True), ([-1], False)):
+        y = torch.ops.heedmap.spread_mean(x, dims, keep, False)
+        torch.testing.assert_close(y, x.mean(dims, keep))
+        (g,) = torch.autograd.grad(y.sum(), x)
+        (ref,) = torch.autograd.grad(x.mean(dims, keep).sum(), x)
+        torch.testing.assert_close(g, ref)
 
 
 class _GatedAfterLayer(nn.Module):

@@ -9,6 +9,7 @@ from sqlalchemy import func, select
 from analysis.images import ImageRecord, find_images
 from analysis.model_io import LoadedModel
 from app.db import make_engine, session_factory
+from app.errors import InvalidRequestError
 from app.jobs import register_images, run_saliency
 from app.models import ImageRow, Prediction, RegionRow, SaliencyRun
 
@@ -189,3 +190,10 @@ def test_resolved_paths_are_pathlibs_resolve(tmp_path: Path, monkeypatch: pytest
         "missing_dir/z.png", "real/class_a/.", "real/class_a/..", "x.png", Path("linked_dir") / "class_a" / "y.png",
     ]
     assert resolved_paths(paths) == [str(Path(p).resolve()) for p in paths]
+
+
+def test_a_job_with_no_streams_is_refused_with_a_message(tmp_path: Path, small_scenes: Path, tiny_model: LoadedModel) -> None:
+    factory = session_factory(make_engine(tmp_path / "p"))
+    register_images(factory, find_images(small_scenes / "manifest.csv"))
+    with pytest.raises(InvalidRequestError, match="streams must be 1 or more"):
+        run_saliency(factory, tmp_path / "p", tiny_model, batch_size=4, progress=None, streams=0)
