@@ -160,14 +160,18 @@ def extract_regions_batch(
     if n == 0:
         return found, out_labels
     masks = threshold_masks(maps, policy)
-    totals = np.array([float(m.sum(dtype=np.float64)) for m in maps])  # per map, as the one-map path sums
+    if maps.flags.c_contiguous:  # each row summed pairwise in float64 as one contiguous map's sum is: the same totals
+        totals = maps.reshape(n, -1).sum(axis=1, dtype=np.float64)
+    else:
+        totals = np.array([float(m.sum(dtype=np.float64)) for m in maps])  # per map, as the one-map path sums
     masks[totals <= 0] = False
     if not masks.any():
         return found, out_labels
     components = np.empty(maps.shape, dtype=np.intp)  # the index type, so counting below needs no converted copy
     count = int(ndimage.label(masks, structure=_EIGHT_PER_MAP, output=components))
-    flat = components.ravel()
-    masses = np.bincount(flat, weights=maps.ravel(), minlength=count + 1)[1:]
+    inside = masks.ravel()  # only masked pixels belong to a component: count those (the same sums, in the same order)
+    flat = components.ravel()[inside]
+    masses = np.bincount(flat, weights=maps.ravel()[inside], minlength=count + 1)[1:]
     areas = np.bincount(flat, minlength=count + 1)[1:]
     slices = ndimage.find_objects(components)
     owner = np.fromiter((sl[0].start for sl in slices), dtype=np.int64, count=count)  # the map each component is in
