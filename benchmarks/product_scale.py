@@ -263,6 +263,25 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
         get(client, f"/campaigns/{cid}/results")
         out["results_at_start_s"], out["results_at_start_s_cpu"] = time.perf_counter() - started, time.process_time() - started_cpu
         client.app.state.warmed.wait(timeout=900)  # type: ignore[attr-defined]
+    # What an annotator labelling during the start-up warming waits for: next task and submit, while the thread computes.
+    with TestClient(create_app(Settings(project_dir=project))) as client:
+        warmed = client.app.state.warmed  # type: ignore[attr-defined]
+        join(client, "later")
+        during: list[float] = []
+        while not warmed.is_set() and len(during) < 200:
+            t = time.perf_counter()
+            task = client.post(f"/api/campaigns/{cid}/tasks/next").json().get("task")
+            if task is None:
+                break
+            r = client.post(f"/api/campaigns/{cid}/regions/{task['region_id']}/labels",
+                            json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]})
+            if r.status_code != 201:
+                raise SystemExit(f"submit during warming gave {r.status_code}: {r.text[:300]}")
+            if not warmed.is_set():
+                during.append(time.perf_counter() - t)
+        if during:
+            out["task_during_warming_s"], out["task_during_warming_max_s"] = statistics.median(during), max(during)
+        warmed.wait(timeout=900)
 
     # The pages an analyst or admin opens, first loaded on a fresh app (nothing held), then the first load after one
     # more label in a running app (the labels held since the previous view; each page's results are new).
@@ -358,6 +377,8 @@ ROWS = [
     ("rules CSV, first request after a new label", "rules_csv_after_label_s"),
     ("settling page, first load after a new label", "stopping_after_label_s"),
     ("campaign admin page, after new labels", "admin_after_label_s"),
+    ("next task + submit, during start-up warming, median (s)", "task_during_warming_s"),
+    ("next task + submit, during start-up warming, slowest (s)", "task_during_warming_max_s"),
     ("vocabulary request, start of campaign", "vocabulary_start_s"),
     ("vocabulary request, end of campaign", "vocabulary_end_s"),
     ("next task, start of campaign", "next_start_s"),
@@ -397,7 +418,7 @@ def _reuse_table(dirs: list[Path]) -> str:
     print(f"pages of {', '.join(str(d) for d in dirs)} (copied first), {', '.join(format(f['labels'], ',.0f') for f in found)} labels; "
           "seconds: wall clock / processor time of this process (every thread); shared machine", flush=True)
     rows: list[list[object]] = []
-    for title, key in PAGE_ROWS + [(t, k) for t, k in ROWS if k.startswith(("vocabulary", "next", "submit"))] + [("peak memory of the process (MB)", "peak_rss_mb")]:
+    for title, key in PAGE_ROWS + [(t, k) for t, k in ROWS if k.startswith(("vocabulary", "next", "submit", "task_"))] + [("peak memory of the process (MB)", "peak_rss_mb")]:
         cells: list[object] = []
         for f in found:
             cells += [float(f[key]) if key in f else "-", float(f[f"{key}_cpu"]) if f"{key}_cpu" in f else "-"]
@@ -444,8 +465,8 @@ def main(argv: list[str] | None = None) -> str:
     print(f"{small:,} and {large:,} demo images (64 px), 3 simulated labels per region; seconds unless stated; shared 2-CPU machine")
     rows: list[list[object]] = []
     for title, key in ROWS:
-        a, b = found[small][key], found[large][key]
-        rows.append([title, float(a), float(b), float(b / a) if a else "-"])
+        a, b = found[small].get(key), found[large].get(key)  # a row can be missing (warming done before any task)
+        rows.append([title, "-" if a is None else float(a), "-" if b is None else float(b), float(b / a) if a and b is not None else "-"])
     help_s, bare_s = cli_start()
     rows.append(["CLI start-up, `heedmap --help` (s)", help_s, "", ""])
     rows.append(["a bare `python -c pass`, for scale (s)", bare_s, "", ""])
