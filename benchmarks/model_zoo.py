@@ -201,10 +201,11 @@ def main(argv: list[str] | None = None) -> str:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="3 batches per measurement instead of 8")
     p.add_argument("--only", nargs="*", help="zoo model names")
+    p.add_argument("--batches", type=int, default=0, metavar="N", help="batch pairs per measurement (default 8, --quick 3)")
     p.add_argument("--compare-attention", type=int, metavar="BATCHES", default=0,
                    help="instead: the ViT with torch's attention backward and with the row-sparse one, BATCHES alternating batches each")
     args = p.parse_args(argv)
-    batches = 3 if args.quick else 8
+    batches = args.batches if args.batches > 0 else 3 if args.quick else 8
     threads = torch.get_num_threads()
     torch.set_num_threads(1)
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
