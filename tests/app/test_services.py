@@ -308,3 +308,27 @@ def test_the_warm_campaigns_setting_is_bounded_and_read_from_the_environment(mon
         Settings(warm_campaigns=-1)
     monkeypatch.setenv("HEEDMAP_WARM_CAMPAIGNS", "0")
     assert get_settings().warm_campaigns == 0
+
+
+def test_the_prediction_frame_holds_each_predictions_row_and_its_regions_in_id_order(client: TestClient) -> None:
+    from sqlalchemy import select
+
+    from app import store
+    from app.models import ImageRow, Prediction, RegionRow
+
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        run_id = store.latest_run_id(s)
+        assert run_id is not None
+        frame = store.prediction_frame(s, run_id)
+        predictions = s.scalars(select(Prediction).where(Prediction.run_id == run_id)).all()
+        assert sorted(frame.index.tolist()) == frame.index.tolist() == sorted(p.image_id for p in predictions)
+        with_regions = 0
+        for p in predictions:
+            image = s.get(ImageRow, p.image_id)
+            regions = s.scalars(select(RegionRow).where(RegionRow.prediction_id == p.id).order_by(RegionRow.id)).all()
+            row = frame.loc[p.image_id]
+            assert (row["path"], row["label"], row["split"], row["predicted"]) == (image.path, image.label, image.split, p.predicted)
+            assert row["confidence"] == pytest.approx(p.confidence)
+            assert row["regions"] == [r.id for r in regions] and row["mass_shares"] == pytest.approx([r.mass_share for r in regions])
+            with_regions += bool(regions)
+        assert with_regions > 0
