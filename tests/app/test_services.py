@@ -266,24 +266,8 @@ def test_a_failed_make_is_not_kept_and_the_next_asker_makes_it() -> None:
     assert cache.get_or_make(("k",), lambda: 7) == 7
 
 
-def test_the_app_warms_the_labelled_campaigns_results_at_start_up(client: TestClient, campaign_id: int) -> None:
-    from app import store
-    from app.main import create_app
-    from app.settings import Settings
-
-    _label(client, campaign_id, "p", 12)
-    settings: Settings = client.app.state.settings  # type: ignore[attr-defined]
-    with TestClient(create_app(settings)) as started:
-        assert started.app.state.warmed.wait(60)  # type: ignore[attr-defined]
-        cache: ResultsCache = started.app.state.results_cache  # type: ignore[attr-defined]
-        with started.app.state.sessions() as s:  # type: ignore[attr-defined]
-            version = store.labels_version(s, campaign_id)
-            made: list[object] = []
-            warm = cache.get_or_make(("results", *version), lambda: made.append(1))
-            assert not made and warm.table.presence.equals(campaign_results(s, campaign_id).table.presence)  # type: ignore[attr-defined]
-
-
-def test_warming_can_be_turned_off_and_pages_still_compute_on_first_view(client: TestClient, campaign_id: int) -> None:
+@pytest.mark.parametrize("warm_campaigns", [3, 0])
+def test_the_app_warms_the_labelled_campaigns_results_at_start_up_unless_turned_off(client: TestClient, campaign_id: int, warm_campaigns: int) -> None:
     from dataclasses import replace
 
     from app import store
@@ -291,14 +275,18 @@ def test_warming_can_be_turned_off_and_pages_still_compute_on_first_view(client:
     from app.settings import Settings
 
     _label(client, campaign_id, "p", 12)
-    settings: Settings = replace(client.app.state.settings, warm_campaigns=0)  # type: ignore[attr-defined]
+    settings: Settings = replace(client.app.state.settings, warm_campaigns=warm_campaigns)  # type: ignore[attr-defined]
     with TestClient(create_app(settings)) as started:
         assert started.app.state.warmed.wait(60)  # type: ignore[attr-defined]
         cache: ResultsCache = started.app.state.results_cache  # type: ignore[attr-defined]
         with started.app.state.sessions() as s:  # type: ignore[attr-defined]
             version = store.labels_version(s, campaign_id)
-        made: list[int] = []
-        assert cache.get_or_make(("results", *version), lambda: made.append(1) or 1) == 1 and made == [1]  # nothing was warmed
+            made: list[int] = []
+            found = cache.get_or_make(("results", *version), lambda: made.append(1) or 1)
+            if warm_campaigns:  # made at start-up: the page finds it
+                assert not made and found.table.presence.equals(campaign_results(s, campaign_id).table.presence)  # type: ignore[attr-defined]
+            else:  # nothing warmed: the first page makes it
+                assert found == 1 and made == [1]
 
 
 def test_the_warm_campaigns_setting_is_bounded_and_read_from_the_environment(monkeypatch: pytest.MonkeyPatch) -> None:
