@@ -136,3 +136,10 @@ def test_deep_nesting_gets_a_message_from_the_pages_and_the_commands(client: Tes
     (tmp_path / "deep.toml").write_text(deep)
     _fails_cleanly(["check", str(project), str(tmp_path / "deep.toml")], capsys, "nested more than")
     _fails_cleanly(["ask", str(project), "(" * 400 + "tag" + ")" * 400], capsys, "nests more than", lines=3)  # the message, the question, a caret
+
+
+def test_serve_with_a_warming_count_out_of_range_says_so_before_serving(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    project = tmp_path / "p"
+    assert main(["init", str(project)]) == 0
+    capsys.readouterr()
+    _fails_cleanly(["serve", str(project), "--warm-campaigns", "-1"], capsys, "warm_campaigns must be 0..100", "-1")
