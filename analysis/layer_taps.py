@@ -214,7 +214,9 @@ def _select_parts(name: str, args: tuple[object, ...], kwargs: dict[str, object]
     the i-th part of one ``x.unbind(dim)`` shared by every such select of ``x``: the same views, but
     one backward step stacks the parts' gradients, where each select's backward writes a zero
     tensor the size of ``x`` and the three are then added (as for q, k and v of attention's packed
-    projection). None when the call is not one."""
+    projection). None when the call is not one. A part taken before ``x`` is changed in place and used
+    after it is refused by autograd (a view of an unbind whose base changed), where torch's own
+    select would pass; a later select unbinds the changed ``x`` again."""
     x: object
     dim: object
     index: object

@@ -9,7 +9,7 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from itertools import combinations
-from typing import Literal
+from typing import Any, Literal, cast
 
 import numpy as np
 import numpy.typing as npt
@@ -349,7 +349,7 @@ def spreadsheet_safe(value: object) -> object:
 def _cell(v: object) -> object:
     if isinstance(v, str):
         return spreadsheet_safe(v)
-    if v is None or v is pd.NA or v is pd.NaT or (isinstance(v, float) and np.isnan(v)):  # missing: an empty cell
+    if v is None or (pd.api.types.is_scalar(v) and bool(pd.isna(cast(Any, v)))):  # missing (None, NaN of any width, NA, NaT): an empty cell
         return ""
     if isinstance(v, (float, np.floating)):
         return f"{v:.6g}"

@@ -391,13 +391,13 @@ def run_saliency(
     its own; this thread finds each batch's regions and stores the batches in order. Every batch is
     computed alone, so the results do not depend on how many run at once.
     """
+    if streams is not None and streams < 1:  # before anything is written: a refused job leaves no run behind
+        raise InvalidRequestError(f"streams must be 1 or more; got {streams}.")
     prep = prepare_run(factory, project_dir, model, params=params, model_files=model_files, images=images, name=name, source=source)
     todo, sc = prep.todo, model.sidecar
     total = len(todo)
     batches = iter([todo[start : start + batch_size] for start in range(0, total, batch_size)])
     outer_threads = torch.get_num_threads()
-    if streams is not None and streams < 1:
-        raise InvalidRequestError(f"streams must be 1 or more; got {streams}.")
     n_streams, stream_threads = compute_streams(model, outer_threads) if streams is None else (streams, max(1, outer_threads // streams))
     in_flight: deque[tuple[Future[BatchInput], Future[SaliencyBatch | None]]] = deque()
     # torch's thread count is the process's (and, for some libraries under it, each thread's): set here and

@@ -37,8 +37,8 @@ class Settings:
             raise SettingsError(f"careless_seconds must be 0..600; got {self.careless_seconds}.")
         if not 1 <= self.workers <= 64:
             raise SettingsError(f"workers must be 1..64; got {self.workers}.")
-        if not 0 <= self.warm_campaigns <= 100:
-            raise SettingsError(f"warm_campaigns must be 0..100; got {self.warm_campaigns}.")
+        if not 0 <= self.warm_campaigns <= 20:
+            raise SettingsError(f"warm_campaigns must be 0..20; got {self.warm_campaigns}.")
         if not 0 < self.min_support <= 1:
             raise SettingsError(f"min_support must be in (0, 1]; got {self.min_support}.")
 

@@ -44,6 +44,7 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
     """One row per predicted image: image_id, path, label, split, predicted, confidence, regions (ids) and their mass shares.
 
     Built a column at a time from plain rows (a dict per row cost most of a cold read at 20,000 images)."""
+    s.flush()  # rows added in this session count, as a session's own queries would see them
     conn = s.connection()
     rows = conn.execute(
         select(ImageRow.id, ImageRow.path, ImageRow.label, ImageRow.split, Prediction.predicted, Prediction.confidence, Prediction.id)
@@ -64,6 +65,7 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
         {"image_id": ids, "path": paths, "label": labels, "split": splits, "predicted": predicted, "confidence": confidence,
          "regions": [regions.get(pid, []) for pid in pids], "mass_shares": [shares.get(pid, []) for pid in pids]},
         columns=["image_id", "path", "label", "split", "predicted", "confidence", "regions", "mass_shares"],
+        dtype=None if rows else object,  # a run with no predictions: object columns, as before
     )
     return frame.set_index("image_id")
 

@@ -79,9 +79,11 @@ def test_missing_values_of_pandas_own_dtypes_are_empty_cells_in_both_writers() -
         "name": pd.array(["can", pd.NA, "=cmd"], dtype="string"),
         "n": pd.array([1, pd.NA, 3], dtype="Int64"),
         "when": pd.to_datetime(["2026-01-01", None, "2026-01-02"]),
+        "mixed": pd.Series([1.5, np.float32("nan"), np.datetime64("NaT")], dtype=object),
     })
     text = to_csv(frame)
     rows = list(csv.reader(io.StringIO(text)))
-    assert rows[2] == ["", "", ""]  # not "<NA>" / "NaT"
+    assert rows[2] == ["", "", "", ""]  # not "<NA>" / "NaT" / "nan"
+    assert rows[3][3] == ""
     assert rows[1][0] == "can" and rows[3][0] == spreadsheet_safe("=cmd")
     assert to_csv(frame[["name"]]).splitlines()[2] == '""'  # one column: the csv module's lone empty field

@@ -73,6 +73,25 @@ def test_a_stack_gives_each_map_the_same_regions_and_labels_as_one_map_at_a_time
     assert sum(len(r) > 0 for r in regions) >= 20  # not degenerate: most maps have regions
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float16, np.float64])
+@pytest.mark.parametrize("layout", ["contiguous", "strided", "fortran"])
+def test_large_stacks_in_any_layout_give_each_map_the_one_map_regions_to_the_last_bit(dtype: type, layout: str) -> None:
+    # Maps of 224 x 224 (more pixels than numpy sums in one buffered chunk) and views that are not contiguous: the per-map
+    # totals, and so every mass share, must equal the one-map path's.
+    rng = np.random.default_rng(3)
+    maps = np.stack([ndimage.gaussian_filter(rng.random((224, 230)), 4) ** 3 for _ in range(4)]).astype(dtype)
+    if layout == "strided":
+        maps = maps[:, :, ::2][::-1]
+    elif layout == "fortran":
+        maps = np.asfortranarray(maps)
+    regions, labels = extract_regions_batch(maps, max_regions=3, min_area=4)
+    for k, m in enumerate(maps):
+        one, lab = extract_regions(m, max_regions=3, min_area=4)
+        assert regions[k] == one
+        np.testing.assert_array_equal(labels[k], lab)
+    assert all(regions)
+
+
 def test_a_stack_never_joins_components_across_maps() -> None:
     maps = np.ones((3, 6, 6), np.float32)  # the same full square in every map: one component each, not one in all
     regions, labels = extract_regions_batch(maps, max_regions=3, min_area=1)

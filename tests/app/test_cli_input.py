@@ -142,4 +142,4 @@ def test_serve_with_a_warming_count_out_of_range_says_so_before_serving(tmp_path
     project = tmp_path / "p"
     assert main(["init", str(project)]) == 0
     capsys.readouterr()
-    _fails_cleanly(["serve", str(project), "--warm-campaigns", "-1"], capsys, "warm_campaigns must be 0..100", "-1")
+    _fails_cleanly(["serve", str(project), "--warm-campaigns", "-1"], capsys, "warm_campaigns must be 0..20", "-1")

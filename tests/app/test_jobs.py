@@ -197,3 +197,5 @@ def test_a_job_with_no_streams_is_refused_with_a_message(tmp_path: Path, small_s
     register_images(factory, find_images(small_scenes / "manifest.csv"))
     with pytest.raises(InvalidRequestError, match="streams must be 1 or more"):
         run_saliency(factory, tmp_path / "p", tiny_model, batch_size=4, progress=None, streams=0)
+    with factory() as s:
+        assert s.scalars(select(SaliencyRun)).all() == []  # refused before a run was made

@@ -289,6 +289,31 @@ def test_the_app_warms_the_labelled_campaigns_results_at_start_up_unless_turned_
                 assert found == 1 and made == [1]
 
 
+def test_warming_more_campaigns_than_the_default_keeps_every_one_of_them(client: TestClient, campaign_id: int) -> None:
+    from dataclasses import replace
+
+    from app import store
+    from app.campaigns import create_campaign
+    from app.db import write_session
+    from app.main import create_app
+    from app.settings import Settings
+
+    with write_session(client.app.state.sessions) as s:  # type: ignore[attr-defined]
+        run_id = store.latest_run_id(s) or 0
+        ids = [campaign_id] + [create_campaign(s, name=f"audit {k}", run_id=run_id, labels_per_region=2) for k in range(5)]
+    for cid in ids:
+        _label(client, cid, f"p{cid}", 12)
+    settings: Settings = replace(client.app.state.settings, warm_campaigns=6)  # type: ignore[attr-defined]
+    with TestClient(create_app(settings)) as started:
+        assert started.app.state.warmed.wait(120)  # type: ignore[attr-defined]
+        cache: ResultsCache = started.app.state.results_cache  # type: ignore[attr-defined]
+        made: list[int] = []
+        with started.app.state.sessions() as s:  # type: ignore[attr-defined]
+            for cid in ids:  # the newest (warmed first) too: none was pushed out by the older ones
+                cache.get_or_make(("results", *store.labels_version(s, cid)), lambda cid=cid: made.append(cid))  # type: ignore[misc]
+    assert made == []
+
+
 def test_the_warm_campaigns_setting_is_bounded_and_read_from_the_environment(monkeypatch: pytest.MonkeyPatch) -> None:
     from app.settings import Settings, SettingsError, get_settings
 
