@@ -18,7 +18,6 @@ from .errors import install_error_handlers
 from .people import load_key
 from .security import install
 from .services.campaign_analysis import ResultsCache, warm_results
-from .services.label_store import LabelStore
 from .settings import Settings, get_settings
 
 UI_DIR = Path(__file__).resolve().parent.parent / "annotator_ui"
@@ -39,10 +38,7 @@ def create_app(settings: Settings) -> FastAPI:
         # SQLite has one writer: write requests queue on the event loop (deps._write_session). PostgreSQL
         # takes concurrent writes, kept correct by row locks (campaigns.assignment), across worker processes too.
         app.state.write_lock = None if is_postgres(engine) else asyncio.Lock()
-        # Room for what the warming makes (about seven entries a campaign) and the pages after it: warming more campaigns
-        # than the cache holds would push the newest out again.
-        app.state.results_cache = ResultsCache(size=max(32, 8 * settings.warm_campaigns + 8),
-                                               labels=LabelStore(campaigns_kept=max(8, settings.warm_campaigns + 2)))
+        app.state.results_cache = ResultsCache.for_warming(settings.warm_campaigns)
         app.state.key = load_key(settings.project_dir)
         stop, warming = _warm_in_background(app, settings)
         yield

@@ -44,9 +44,7 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
     """One row per predicted image: image_id, path, label, split, predicted, confidence, regions (ids) and their mass shares.
 
     Built a column at a time from plain rows (a dict per row cost most of a cold read at 20,000 images)."""
-    s.flush()  # rows added in this session count, as a session's own queries would see them
-    conn = s.connection()
-    rows = conn.execute(
+    rows = s.execute(
         select(ImageRow.id, ImageRow.path, ImageRow.label, ImageRow.split, Prediction.predicted, Prediction.confidence, Prediction.id)
         .join(Prediction, Prediction.image_id == ImageRow.id)
         .where(Prediction.run_id == run_id)
@@ -54,7 +52,7 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
     ).all()
     regions: dict[int, list[int]] = {}
     shares: dict[int, list[float]] = {}
-    found = conn.execute(select(RegionRow.prediction_id, RegionRow.id, RegionRow.mass_share).join(Prediction)
+    found = s.execute(select(RegionRow.prediction_id, RegionRow.id, RegionRow.mass_share).join(Prediction)
                          .where(Prediction.run_id == run_id).order_by(RegionRow.prediction_id, RegionRow.id)).all()
     for pid, group in itertools.groupby(found, key=operator.itemgetter(0)):  # each prediction's regions in id order
         part = list(group)

@@ -246,6 +246,18 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
             out[key], out[f"{key}_cpu"] = took, cpu
         return took
 
+    def next_task(client: TestClient, campaign: int) -> dict[str, object] | None:
+        r = client.post(f"/api/campaigns/{campaign}/tasks/next")
+        if r.status_code != 200:
+            raise SystemExit(f"next task gave {r.status_code}: {r.text[:300]}")
+        return r.json().get("task")  # type: ignore[no-any-return]
+
+    def submit(client: TestClient, campaign: int, task: dict[str, object]) -> None:
+        r = client.post(f"/api/campaigns/{campaign}/regions/{task['region_id']}/labels",
+                        json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]})
+        if r.status_code != 201:
+            raise SystemExit(f"submit gave {r.status_code}: {r.text[:300]}")
+
     pages = {"agreement_s": "agreement", "results_s": "results", "concepts_csv_s": "exports/concepts.csv", "rules_csv_s": "exports/rules.csv",
              "stopping_s": "stopping"}
     for key, page in pages.items():
@@ -270,13 +282,10 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
         during: list[float] = []
         while not warmed.is_set() and len(during) < 50:  # a few dozen labels at most: tasks stay for the rows after
             t = time.perf_counter()
-            task = client.post(f"/api/campaigns/{cid}/tasks/next").json().get("task")
+            task = next_task(client, cid)
             if task is None:
                 break
-            r = client.post(f"/api/campaigns/{cid}/regions/{task['region_id']}/labels",
-                            json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]})
-            if r.status_code != 201:
-                raise SystemExit(f"submit during warming gave {r.status_code}: {r.text[:300]}")
+            submit(client, cid, task)
             if not warmed.is_set():
                 during.append(time.perf_counter() - t)
         if during:
@@ -295,13 +304,10 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
             get(client, f"/campaigns/{cid}/{page}")
         for key, page in after.items():
             join(client, "later")
-            task = client.post(f"/api/campaigns/{cid}/tasks/next").json().get("task")
+            task = next_task(client, cid)
             if task is None:
                 raise SystemExit("no task left for the label before each page")
-            r = client.post(f"/api/campaigns/{cid}/regions/{task['region_id']}/labels",
-                            json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]})
-            if r.status_code != 201:
-                raise SystemExit(f"submit gave {r.status_code}: {r.text[:300]}")
+            submit(client, cid, task)
             join(client, "admin")
             get(client, f"/campaigns/{cid}/{page}", f"{key}_after_label_s")
         get(client, f"/admin/campaigns/{cid}", "admin_after_label_s")
@@ -311,18 +317,14 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
             costs: dict[str, list[float]] = {"next": [], "vocabulary": [], "submit": []}
             for _ in range(repeat):
                 t = time.perf_counter()
-                r = client.post(f"/api/campaigns/{campaign}/tasks/next")
+                task = next_task(client, campaign)
                 costs["next"].append(time.perf_counter() - t)
-                task = r.json().get("task") if r.status_code == 200 else None
                 if task is None:
-                    raise SystemExit(f"no task for {who}: {r.status_code} {r.text[:300]}")
+                    raise SystemExit(f"no task for {who}")
                 costs["vocabulary"].append(get(client, f"/api/campaigns/{campaign}/vocabulary"))
                 t = time.perf_counter()
-                r = client.post(f"/api/campaigns/{campaign}/regions/{task['region_id']}/labels",
-                                json={"client_id": uuid.uuid4().hex, "entities": [{"entity": "cap", "attributes": ["red"]}]})
+                submit(client, campaign, task)
                 costs["submit"].append(time.perf_counter() - t)
-                if r.status_code != 201:
-                    raise SystemExit(f"submit gave {r.status_code}: {r.text[:300]}")
         return {k: statistics.median(v) for k, v in costs.items()}
 
     for when, who, campaign in (("start", "start", fresh), ("end", "end", cid)):

@@ -76,6 +76,12 @@ class ResultsCache:
     _lock: threading.Lock = field(default_factory=threading.Lock)
     _apart: dict[str, ResultsCache] = field(default_factory=dict)
 
+    @classmethod
+    def for_warming(cls, campaigns: int) -> ResultsCache:
+        """A cache with room for what :func:`warm_results` makes for ``campaigns`` campaigns (about seven entries each) and
+        the pages after it, and a label store holding them all: a smaller one would push the newest warmed out again."""
+        return cls(size=max(32, 8 * campaigns + 8), labels=LabelStore(campaigns_kept=max(8, campaigns + 2)))
+
     def apart(self, name: str, *, size: int = 64) -> ResultsCache:
         """A cache of its own (sharing the labels held) for results that stay valid across labels versions, such as
         the results at a settling checkpoint: there the many entries each new label adds do not push them out."""
