@@ -9,6 +9,7 @@ application's campaign-analysis service.
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 
@@ -129,22 +130,27 @@ def campaign_table(
     preds = predictions[predictions["predicted"].isin(list(classes))] if classes else predictions
     if sample is not None:
         preds = preds[preds.index.isin(list(sample))]
+    # Every image's regions as flat arrays (its row in ``preds`` for each): the campaign's regions are kept, and an image
+    # is complete when each of its kept regions has been judged.
     region_lists = preds["regions"].tolist()
-    mass = {r: m for rs, ms in zip(region_lists, preds["mass_shares"].tolist()) for r, m in zip(rs, ms)}
-    kept_lists = [[r for r in rs if r in region_class] for rs in region_lists]
-    is_complete = np.array([all(r in judged for r in rs) for rs in kept_lists], dtype=bool)
+    sizes = np.fromiter(map(len, region_lists), dtype=np.int64, count=len(region_lists))
+    flat = np.fromiter(itertools.chain.from_iterable(region_lists), dtype=np.int64, count=int(sizes.sum()))
+    share_lists = preds["mass_shares"].tolist()
+    if any(len(ms) != n for ms, n in zip(share_lists, sizes.tolist())):
+        raise InvalidInputError("predictions' mass_shares must hold one value per region of the same row; give them with the regions.")
+    shares = np.fromiter(itertools.chain.from_iterable(share_lists), dtype=np.float64, count=len(flat))
+    owner = np.repeat(np.arange(len(region_lists), dtype=np.int64), sizes)
+    kept = np.isin(flat, np.fromiter(region_class.keys(), dtype=np.int64, count=len(region_class)))
+    unjudged = kept & ~np.isin(flat, np.asarray(votes.regions, dtype=np.int64))
+    is_complete = np.bincount(owner[unjudged], minlength=len(region_lists)) == 0
     complete = preds[is_complete] if len(preds) else preds
     if complete.empty:
         raise NotEnoughLabelsError("no image has all its regions labelled yet; label some more regions first.")
     meta = complete[["label", "predicted", "confidence", "split"]].rename(columns={"label": "true_class", "predicted": "predicted_class"})
-    image_rows: list[int] = []
-    region_ids: list[int] = []
-    for row, rs in enumerate(rs for rs, ok in zip(kept_lists, is_complete.tolist()) if ok):
-        image_rows.extend([row] * len(rs))
-        region_ids.extend(rs)
-    concepts, carries = _carried(est, np.array(region_ids, dtype=np.int64))
-    regions = RegionMass(np.array(image_rows, dtype=np.int64), np.array([float(mass.get(r, 0.0)) for r in region_ids], dtype=np.float64), carries,
-                         np.array(region_ids, dtype=np.int64))
+    take = kept & is_complete[owner]
+    region_ids = flat[take]
+    concepts, carries = _carried(est, region_ids)
+    regions = RegionMass((np.cumsum(is_complete) - 1)[owner[take]], shares[take], carries, region_ids)
     table = concept_table_from_regions(meta, regions, concepts, method=str(method), threshold=threshold, families=votes.families)
     if sample is not None:
         table = replace(table, design=sample_design([sample[int(i)] for i in table.meta.index], population or {}))

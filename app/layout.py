@@ -36,6 +36,12 @@ class ProjectLayout:
         """Folder of stored intervention results, one JSON file per rule, data and model version."""
         return self.root / "interventions"
 
+    @property
+    def label_cache(self) -> Path:
+        """Folder of each campaign's labels as the server last held them (app.services.label_snapshot): a cache the
+        database is checked against, safe to delete."""
+        return self.root / "cache"
+
     def intervention_file(self, key: str) -> Path:
         return self.interventions / f"{key}.json"
 

@@ -15,6 +15,7 @@ from fastapi.templating import Jinja2Templates
 
 from .db import is_postgres, lazy_write_factory, open_project, session_factory
 from .errors import install_error_handlers
+from .layout import ProjectLayout
 from .people import load_key
 from .security import install
 from .services.campaign_analysis import ResultsCache, warm_results
@@ -38,7 +39,7 @@ def create_app(settings: Settings) -> FastAPI:
         # SQLite has one writer: write requests queue on the event loop (deps._write_session). PostgreSQL
         # takes concurrent writes, kept correct by row locks (campaigns.assignment), across worker processes too.
         app.state.write_lock = None if is_postgres(engine) else asyncio.Lock()
-        app.state.results_cache = ResultsCache.for_warming(settings.warm_campaigns)
+        app.state.results_cache = ResultsCache.for_warming(settings.warm_campaigns, snapshots=ProjectLayout(settings.project_dir).label_cache)
         app.state.key = load_key(settings.project_dir)
         stop, warming = _warm_in_background(app, settings)
         yield

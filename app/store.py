@@ -7,13 +7,32 @@ import itertools
 import operator
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import pandas as pd
-from sqlalchemy import func, select
+from sqlalchemy import Select, func, select
 from sqlalchemy.orm import Session
 
 from .errors import NotFoundError
 from .models import Campaign, CampaignRegion, ImageRow, Label, Prediction, RegionRow, SaliencyRun, SynonymRule, WithdrawnLabel
+
+
+def plain_rows(s: Session, query: Select[*tuple[Any, ...]]) -> list[tuple[Any, ...]]:
+    """``query``'s rows as plain tuples. On SQLite they come straight from the driver: no row objects and no result
+    processing, several times faster at tens of thousands of rows. Only for columns the driver gives as they are
+    (integers, floats, text): not dates, JSON or booleans."""
+    conn = s.connection()
+    raw = conn.connection.dbapi_connection if conn.dialect.name == "sqlite" else None
+    if raw is None:
+        return [tuple(r) for r in conn.execute(query)]
+    compiled = query.compile(dialect=conn.dialect)
+    params = compiled.params
+    cur = raw.cursor()
+    try:
+        cur.execute(compiled.string, [params[k] for k in compiled.positiontup or ()])
+        return list(cur.fetchall())
+    finally:
+        cur.close()
 
 
 def latest_run_id(s: Session) -> int | None:
@@ -44,16 +63,16 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
     """One row per predicted image: image_id, path, label, split, predicted, confidence, regions (ids) and their mass shares.
 
     Built a column at a time from plain rows (a dict per row cost most of a cold read at 20,000 images)."""
-    rows = s.execute(
+    rows = plain_rows(s,
         select(ImageRow.id, ImageRow.path, ImageRow.label, ImageRow.split, Prediction.predicted, Prediction.confidence, Prediction.id)
         .join(Prediction, Prediction.image_id == ImageRow.id)
         .where(Prediction.run_id == run_id)
         .order_by(ImageRow.id)
-    ).all()
+    )
     regions: dict[int, list[int]] = {}
     shares: dict[int, list[float]] = {}
-    found = s.execute(select(RegionRow.prediction_id, RegionRow.id, RegionRow.mass_share).join(Prediction)
-                         .where(Prediction.run_id == run_id).order_by(RegionRow.prediction_id, RegionRow.id)).all()
+    found = plain_rows(s, select(RegionRow.prediction_id, RegionRow.id, RegionRow.mass_share).join(Prediction)
+                       .where(Prediction.run_id == run_id).order_by(RegionRow.prediction_id, RegionRow.id))
     for pid, group in itertools.groupby(found, key=operator.itemgetter(0)):  # each prediction's regions in id order
         part = list(group)
         regions[pid] = [r[1] for r in part]

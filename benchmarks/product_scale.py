@@ -183,6 +183,44 @@ def _campaign_named(factory, name: str) -> int:  # type: ignore[no-untyped-def]
     return int(found)
 
 
+def _join(client, token: str) -> None:  # type: ignore[no-untyped-def]
+    """Sign ``client`` in through the invite link ``token`` (the sign-in page's form carries a one-use token)."""
+    from app.deps import COOKIE, CSRF_HEADER
+    from app.people import csrf_token
+
+    page = client.get(f"/join/{token}")
+    found = re.search(r'name="join" value="([^"]+)"', page.text)
+    r = client.post(f"/join/{token}", data={"join": found.group(1) if found else ""}, follow_redirects=False)
+    if r.status_code != 303:
+        raise SystemExit(f"sign-in failed: {r.status_code} {r.text[:200]}")
+    client.headers[CSRF_HEADER] = csrf_token(client.app.state.key, client.cookies[COOKIE])
+
+
+def cold_page(project: Path, token: str, url: str) -> dict[str, float]:
+    """A server started afresh in this (new) process with its start-up warming off, signed in, and ``url`` asked for once:
+    a restart as it is, the page's own first-request work included (the app's start-up itself is not timed)."""
+    from fastapi.testclient import TestClient
+
+    from app.main import create_app
+    from app.settings import Settings
+
+    with TestClient(create_app(Settings(project_dir=project, warm_campaigns=0))) as client:
+        _join(client, token)
+        t, c = time.perf_counter(), time.process_time()
+        r = client.get(url)
+        took, cpu = time.perf_counter() - t, time.process_time() - c
+        if r.status_code != 200:
+            raise SystemExit(f"GET {url} gave {r.status_code}: {r.text[:300]}")
+    return {"s": took, "cpu": cpu}
+
+
+def _in_new_process(job: dict[str, object]) -> dict[str, float]:
+    done = subprocess.run([sys.executable, "-m", "benchmarks.product_scale", "--child", json.dumps(job)], cwd=ROOT, capture_output=True, text=True)
+    if done.returncode != 0:
+        raise SystemExit(f"{job} failed:\n{done.stderr[-3000:]}")
+    return json.loads(done.stdout.strip().splitlines()[-1])  # type: ignore[no-any-return]
+
+
 def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
     """Each page's latency (wall clock, and processor time under ``<key>_cpu``) and the labelling task's costs on a
     built project (campaigns "scale" and "fresh", as :func:`measure_size` makes them). Adds labels to the project."""
@@ -190,10 +228,10 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
     from sqlalchemy import func, select
 
     from app.db import make_engine, session_factory, write_session
-    from app.deps import COOKIE, CSRF_HEADER
+    from app.layout import ProjectLayout
     from app.main import create_app
     from app.models import Label
-    from app.people import create_invite, csrf_token
+    from app.people import create_invite
     from app.settings import Settings
 
     out: dict[str, float] = {}
@@ -213,12 +251,7 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
     engine.dispose()
 
     def join(client: TestClient, who: str) -> None:
-        page = client.get(f"/join/{tokens[who]}")  # the sign-in page's form carries a one-use token
-        found = re.search(r'name="join" value="([^"]+)"', page.text)
-        r = client.post(f"/join/{tokens[who]}", data={"join": found.group(1) if found else ""}, follow_redirects=False)
-        if r.status_code != 303:
-            raise SystemExit(f"sign-in as {who} failed: {r.status_code} {r.text[:200]}")
-        client.headers[CSRF_HEADER] = csrf_token(client.app.state.key, client.cookies[COOKIE])  # type: ignore[attr-defined]
+        _join(client, tokens[who])
 
     @contextlib.contextmanager
     def signed_in(who: str, *, warm: bool = True) -> Iterator[TestClient]:
@@ -260,9 +293,15 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
 
     pages = {"agreement_s": "agreement", "results_s": "results", "concepts_csv_s": "exports/concepts.csv", "rules_csv_s": "exports/rules.csv",
              "stopping_s": "stopping"}
+    kept = ProjectLayout(project).label_cache
     for key, page in pages.items():
-        with signed_in("analyst", warm=False) as client:  # warming off: the page computes everything on its first load
-            get(client, f"/campaigns/{cid}/{page}", f"{key.removesuffix('_s')}_cold_s")
+        # Each in a new process with the warming off: the page computes everything on its first load. First on a project
+        # never served (nothing kept beside the database), then on a restart (what the first start kept: labels,
+        # predictions, settling checkpoints).
+        shutil.rmtree(kept, ignore_errors=True)
+        for when in ("first", "cold"):
+            found = _in_new_process({"cold": str(project), "token": tokens["analyst"], "url": f"/campaigns/{cid}/{page}"})
+            out[f"{key.removesuffix('_s')}_{when}_s"], out[f"{key.removesuffix('_s')}_{when}_s_cpu"] = found["s"], found["cpu"]
         with signed_in("analyst") as client:  # a fresh app, its start-up warming done
             get(client, f"/campaigns/{cid}/{page}", key)
             if key == "results_s":
@@ -296,8 +335,8 @@ def measure_pages(project: Path, *, repeat: int = 5) -> dict[str, float]:
     # more label in a running app (the labels held since the previous view; each page's results are new).
     after = {"agreement": "agreement", "results": "results", "concepts_csv": "exports/concepts.csv", "rules_csv": "exports/rules.csv",
              "stopping": "stopping"}
-    with signed_in("admin", warm=False) as client:
-        get(client, f"/admin/campaigns/{cid}", "admin_cold_s")
+    found = _in_new_process({"cold": str(project), "token": tokens["admin"], "url": f"/admin/campaigns/{cid}"})
+    out["admin_cold_s"], out["admin_cold_s_cpu"] = found["s"], found["cpu"]
     with signed_in("admin") as client:
         get(client, f"/admin/campaigns/{cid}", "admin_s")
         for page in after.values():
@@ -358,12 +397,17 @@ def cli_start() -> tuple[float, float]:
 
 
 ROWS = [
-    ("agreement page, first load, warming off (cold)", "agreement_cold_s"),
-    ("results page, first load, warming off (cold)", "results_cold_s"),
-    ("concepts CSV, first request, warming off (cold)", "concepts_csv_cold_s"),
-    ("rules CSV, first request, warming off (cold)", "rules_csv_cold_s"),
-    ("settling page, first load, warming off (cold)", "stopping_cold_s"),
-    ("campaign admin page, first load, warming off (cold)", "admin_cold_s"),
+    ("agreement page, first load, warming off, project never served (nothing kept)", "agreement_first_s"),
+    ("results page, first load, warming off, project never served (nothing kept)", "results_first_s"),
+    ("concepts CSV, first request, warming off, project never served (nothing kept)", "concepts_csv_first_s"),
+    ("rules CSV, first request, warming off, project never served (nothing kept)", "rules_csv_first_s"),
+    ("settling page, first load, warming off, project never served (nothing kept)", "stopping_first_s"),
+    ("agreement page, first load, warming off, after a restart (cold)", "agreement_cold_s"),
+    ("results page, first load, warming off, after a restart (cold)", "results_cold_s"),
+    ("concepts CSV, first request, warming off, after a restart (cold)", "concepts_csv_cold_s"),
+    ("rules CSV, first request, warming off, after a restart (cold)", "rules_csv_cold_s"),
+    ("settling page, first load, warming off, after a restart (cold)", "stopping_cold_s"),
+    ("campaign admin page, first load, warming off, after a restart (cold)", "admin_cold_s"),
     ("app start-up until its warming is done, longest of the app starts (s)", "warm_s"),
     ("results page asked for the moment the app is up, start-up included", "results_at_start_s"),
     ("agreement page, first load after start-up warming", "agreement_s"),
@@ -399,7 +443,7 @@ ROWS = [
 ]
 
 
-PAGE_ROWS = [(title, key) for title, key in ROWS if key.endswith(("_cold_s", "warm_s", "at_start_s")) or "page" in title or "CSV" in title]
+PAGE_ROWS = [(title, key) for title, key in ROWS if key.endswith(("_first_s", "_cold_s", "warm_s", "at_start_s")) or "page" in title or "CSV" in title]
 
 
 def _reuse_table(dirs: list[Path]) -> str:
@@ -440,7 +484,10 @@ def main(argv: list[str] | None = None) -> str:
     args = p.parse_args(argv)
     if args.child:
         job = json.loads(args.child)
-        print(json.dumps(measure_pages(Path(job["reuse"]), repeat=5) if "reuse" in job else measure_size(job["n"], job["prepared"], Path(job["work"]))))
+        if "cold" in job:
+            print(json.dumps(cold_page(Path(job["cold"]), job["token"], job["url"])))
+        else:
+            print(json.dumps(measure_pages(Path(job["reuse"]), repeat=5) if "reuse" in job else measure_size(job["n"], job["prepared"], Path(job["work"]))))
         return ""
     if args.reuse:
         return _reuse_table(args.reuse)

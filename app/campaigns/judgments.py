@@ -11,17 +11,16 @@ from sqlalchemy.orm import Session
 from analysis.concepts import Judgment
 
 from ..models import CampaignRegion, ImageRow, Label, Person, Prediction, RegionRow, StoredEntities
+from ..store import plain_rows
 
 
 def region_classes(s: Session, campaign_id: int) -> dict[int, str]:
     """Predicted class of every region in the campaign."""
-    return dict(
-        s.execute(
-            select(CampaignRegion.region_id, Prediction.predicted)
-            .join(RegionRow, RegionRow.id == CampaignRegion.region_id).join(Prediction, Prediction.id == RegionRow.prediction_id)
-            .where(CampaignRegion.campaign_id == campaign_id)
-        ).all()
-    )
+    return dict(plain_rows(s,
+        select(CampaignRegion.region_id, Prediction.predicted)
+        .join(RegionRow, RegionRow.id == CampaignRegion.region_id).join(Prediction, Prediction.id == RegionRow.prediction_id)
+        .where(CampaignRegion.campaign_id == campaign_id)
+    ))
 
 
 def entities_of(raw: StoredEntities | None) -> tuple[tuple[str, tuple[str, ...]], ...]:

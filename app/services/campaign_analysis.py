@@ -6,9 +6,12 @@ itself is analysis.pipeline's.
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 from typing import TypeVar, cast
 
 import numpy as np
@@ -37,6 +40,7 @@ from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..errors import InvalidRequestError, NotFoundError
 from ..models import CampaignRegion, Label, Prediction, SaliencyRun
+from . import run_snapshot
 from .label_store import LabelStore
 
 T = TypeVar("T")
@@ -58,6 +62,41 @@ class Results:
         return self.table.method
 
 
+class _CollectorPauses:
+    """Nested pauses of Python's cycle collector from any thread: off at the first, back on (if it was on) after the last."""
+
+    def __init__(self) -> None:
+        self.depth, self.was_on, self.lock = 0, True, threading.Lock()
+
+    @contextlib.contextmanager
+    def paused(self) -> Iterator[None]:
+        with self.lock:
+            if self.depth == 0:
+                self.was_on = gc.isenabled()
+                gc.disable()
+            self.depth += 1
+        try:
+            yield
+        finally:
+            with self.lock:
+                self.depth -= 1
+                if self.depth == 0 and self.was_on:
+                    gc.enable()
+
+
+_pauses = _CollectorPauses()
+
+
+def collector_paused() -> contextlib.AbstractContextManager[None]:
+    """Python's cycle collector off while a result is made (on again when the last result being made is done).
+
+    Making a campaign's results creates hundreds of thousands of small objects beside a live heap of that size; at the
+    default thresholds the collector walks the whole heap again and again meanwhile (a third of a cold results page at
+    100,000 labels). Nothing is lost: objects freed by reference counting go at once, and cycles made meanwhile are
+    collected at the collector's next run after it is back on."""
+    return _pauses.paused()
+
+
 @dataclass
 class ResultsCache:
     """Computed results per (what, state of a campaign's labels), shared by the app's request threads.
@@ -77,10 +116,11 @@ class ResultsCache:
     _apart: dict[str, ResultsCache] = field(default_factory=dict)
 
     @classmethod
-    def for_warming(cls, campaigns: int) -> ResultsCache:
+    def for_warming(cls, campaigns: int, *, snapshots: Path | None = None) -> ResultsCache:
         """A cache with room for what :func:`warm_results` makes for ``campaigns`` campaigns (about seven entries each) and
-        the pages after it, and a label store holding them all: a smaller one would push the newest warmed out again."""
-        return cls(size=max(32, 8 * campaigns + 8), labels=LabelStore(campaigns_kept=max(8, campaigns + 2)))
+        the pages after it, and a label store holding them all: a smaller one would push the newest warmed out again.
+        ``snapshots``: where the label store keeps each campaign's labels between runs (see :class:`LabelStore`)."""
+        return cls(size=max(32, 8 * campaigns + 8), labels=LabelStore(campaigns_kept=max(8, campaigns + 2), snapshots=snapshots))
 
     def apart(self, name: str, *, size: int = 64) -> ResultsCache:
         """A cache of its own (sharing the labels held) for results that stay valid across labels versions, such as
@@ -102,7 +142,8 @@ class ResultsCache:
                     break
             pending.wait()  # made by another thread: found next time round (or, if that failed, made here)
         try:
-            found = make()
+            with collector_paused():
+                found = make()
             with self._lock:
                 while len(self._found) >= self.size:
                     self._found.pop(next(iter(self._found)))
@@ -136,8 +177,20 @@ def prediction_frame(s: Session, run_id: int, *, cache: ResultsCache | None = No
     """The run's predictions (``store.prediction_frame``; read-only), kept while the run's predictions stay the same."""
     if cache is None:
         return store.prediction_frame(s, run_id)
-    shape = s.execute(select(func.count(), func.max(Prediction.id)).where(Prediction.run_id == run_id)).one()
-    return cache.get_or_make(("predictions", run_id, *shape), lambda: store.prediction_frame(s, run_id))
+    folder = cache.labels.snapshots
+    if folder is None:
+        shape = s.execute(select(func.count(), func.max(Prediction.id)).where(Prediction.run_id == run_id)).one()
+        return cache.get_or_make(("predictions", run_id, *shape), lambda: store.prediction_frame(s, run_id))
+    sums = run_snapshot.run_sums(s, run_id)
+
+    def make() -> pd.DataFrame:  # from the file kept beside the database when it still matches, else read (and kept)
+        found = run_snapshot.read(folder, run_id, sums)
+        if found is None:
+            found = store.prediction_frame(s, run_id)
+            run_snapshot.write(folder, run_id, found, sums)
+        return found
+
+    return cache.get_or_make(("predictions", run_id, *sums), make)
 
 
 def _read(s: Session, campaign: CampaignInfo, cache: ResultsCache | None, version: tuple[object, ...] | None = None,

@@ -20,8 +20,9 @@ from __future__ import annotations
 import json
 import sqlite3
 import threading
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 import numpy.typing as npt
@@ -34,6 +35,7 @@ from analysis.synonyms import SynonymRules
 
 from ..campaigns.judgments import entities_of
 from ..models import Label, Person, WithdrawnLabel
+from . import label_snapshot
 
 Entities = tuple[tuple[str, tuple[str, ...]], ...]
 _REGION, _PERSON, _ENTITIES, _UNSURE = range(4)
@@ -48,9 +50,11 @@ class _Held:
     ids: npt.NDArray[np.int64] = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
     rows: npt.NDArray[np.int64] = field(default_factory=lambda: _NO_ROWS)
     loaded: bool = False
-    client_of: dict[object, int] = field(default_factory=dict)  # client id (text, or its bytes from SQLite) -> label id, to find undone labels
+    clients: npt.NDArray[np.bytes_] = field(default_factory=lambda: np.zeros(0, dtype="S1"))  # per label: its client id, to find undone labels
     withdrawn: tuple[int, int | None] = (0, None)  # withdrawn labels' count and highest id when last read
+    saved: int = -1  # labels held when last written to the snapshot file (-1: not since read)
     people: list[str] = field(default_factory=list)
+    person_ids: list[int] = field(default_factory=list)  # per person code
     person_code: dict[int, int] = field(default_factory=dict)  # person id -> code (index into people)
     entities: list[Entities] = field(default_factory=list)
     attributes: list[frozenset[str]] = field(default_factory=list)  # per entities code: the attribute words as typed
@@ -72,13 +76,46 @@ def _text(raw: object) -> tuple[str, Entities]:
     return key, entities_of(json.loads(raw) if isinstance(raw, str) else raw)  # type: ignore[arg-type]
 
 
+def _texts(held: _Held) -> list[str]:
+    """Each entities code's stored text (its key as text: every code has one)."""
+    texts = [""] * len(held.entities)
+    for key, code in held.entities_code.items():
+        if isinstance(key, str):
+            texts[code] = key
+    return texts
+
+
+def _empty(held: _Held) -> None:
+    """Back to nothing held (its lock kept: the caller holds it)."""
+    fresh = _Held()
+    for name in held.__dataclass_fields__:
+        if name != "lock":
+            setattr(held, name, getattr(fresh, name))
+
+
+def _client_bytes(clients: Sequence[object]) -> npt.NDArray[np.bytes_]:
+    """Client ids (text, or their bytes from SQLite) as one bytes array."""
+    if not clients:
+        return np.zeros(0, dtype="S1")
+    return np.array([c if isinstance(c, bytes) else str(c).encode() for c in clients], dtype=np.bytes_)
+
+
 class LabelStore:
     """Each campaign's labels, held per process and shared by the app's request threads."""
 
-    def __init__(self, *, campaigns_kept: int = 8) -> None:
+    def __init__(self, *, campaigns_kept: int = 8, snapshots: Path | None = None, save_every: int = 256) -> None:
+        """``snapshots``: a folder where each campaign's labels are kept between runs (:mod:`.label_snapshot`), rewritten
+        when the labels held have grown by ``save_every`` or an eighth since last written; None keeps nothing."""
         self._held: dict[int, _Held] = {}
         self._kept = campaigns_kept
         self._lock = threading.Lock()
+        self._snapshots = snapshots
+        self._save_every = max(1, save_every)
+
+    @property
+    def snapshots(self) -> Path | None:
+        """The folder where results' inputs are kept between runs (None: nothing is kept)."""
+        return self._snapshots
 
     def _slot(self, campaign_id: int) -> _Held:
         with self._lock:
@@ -117,13 +154,13 @@ class LabelStore:
         if not rows:
             return
         ids, clients, regions, persons, raws, unsure = zip(*rows)
-        held.client_of.update(zip(clients, ids))
         new_people = sorted({int(p) for p in set(persons)} - held.person_code.keys())
         if new_people:
             names = {int(i): str(name) for i, name in s.execute(select(Person.id, Person.name).where(Person.id.in_(new_people)))}
             for p in new_people:
                 held.person_code[p] = len(held.people)
                 held.people.append(str(names.get(p, f"person {p}")))
+                held.person_ids.append(p)
         codes = held.entities_code
         for raw in set(raws):
             if raw not in codes:
@@ -143,29 +180,74 @@ class LabelStore:
         block[:, _UNSURE] = np.fromiter((bool(u) for u in unsure), dtype=np.int64, count=n)
         held.ids = np.concatenate([held.ids, np.fromiter(ids, dtype=np.int64, count=n)])
         held.rows = np.concatenate([held.rows, block])
+        held.clients = np.concatenate([held.clients, _client_bytes(clients)])
 
     def _reload(self, s: Session, held: _Held, campaign_id: int, withdrawn: tuple[int, int | None]) -> None:
-        held.ids, held.rows, held.client_of = np.zeros(0, dtype=np.int64), _NO_ROWS, {}
+        held.ids, held.rows, held.clients = np.zeros(0, dtype=np.int64), _NO_ROWS, np.zeros(0, dtype="S1")
         self._add(s, held, self._fetch(s, campaign_id, 0))
-        held.withdrawn, held.loaded = withdrawn, True
+        held.withdrawn, held.loaded, held.saved = withdrawn, True, -1
+
+    def _drop_withdrawn(self, s: Session, held: _Held, campaign_id: int, withdrawn: tuple[int, int | None]) -> None:
+        """Drop the held labels undone since last read, found by their client ids (SQLite may hand an undone id out again)."""
+        since = held.withdrawn[1] or 0
+        gone = _client_bytes(s.execute(select(WithdrawnLabel.client_id).where(WithdrawnLabel.campaign_id == campaign_id, WithdrawnLabel.id > since)).scalars().all())
+        keep = ~np.isin(held.clients, gone)
+        held.ids, held.rows, held.clients = held.ids[keep], held.rows[keep], held.clients[keep]
+        held.withdrawn = withdrawn
 
     def _refresh(self, s: Session, held: _Held, campaign_id: int, version: tuple[object, ...]) -> None:
         """Bring ``held`` up to ``version`` (store.labels_version: campaign, count, highest id, withdrawn count, highest withdrawn id, ...)."""
         n, last, wn, wlast = version[1], version[2], version[3], version[4]
         withdrawn = (int(str(wn)), None if wlast is None else int(str(wlast)))
-        if not held.loaded:
+        if not held.loaded and not self._restore(s, held, campaign_id, withdrawn):
             self._reload(s, held, campaign_id, withdrawn)
         else:
-            if withdrawn != held.withdrawn:  # labels undone since, found by their client ids (SQLite may hand an undone id out again)
-                since = held.withdrawn[1] or 0
-                gone = [held.client_of.pop(c, None) or held.client_of.pop(c.encode(), None)
-                        for c in s.execute(select(WithdrawnLabel.client_id).where(WithdrawnLabel.campaign_id == campaign_id, WithdrawnLabel.id > since)).scalars()]
-                keep = ~np.isin(held.ids, np.array([i for i in gone if i is not None], dtype=np.int64))
-                held.ids, held.rows = held.ids[keep], held.rows[keep]
-                held.withdrawn = withdrawn
+            if withdrawn != held.withdrawn:
+                self._drop_withdrawn(s, held, campaign_id, withdrawn)
             self._add(s, held, self._fetch(s, campaign_id, int(held.ids[-1]) if len(held.ids) else 0))
         if len(held.ids) != n or (len(held.ids) and int(held.ids[-1]) != last):
             self._reload(s, held, campaign_id, withdrawn)
+        if self._snapshots is not None and (held.saved < 0 or len(held.ids) - held.saved >= max(self._save_every, held.saved // 8)):
+            self._save(self._snapshots, campaign_id, held, s)
+
+    def _restore(self, s: Session, held: _Held, campaign_id: int, withdrawn: tuple[int, int | None]) -> bool:
+        """Fill ``held`` from the campaign's snapshot file when it is whole and the database still holds its labels (less
+        any undone since); False (``held`` left empty) otherwise."""
+        if self._snapshots is None:
+            return False
+        snap = label_snapshot.read(self._snapshots, s, campaign_id)
+        if snap is None:
+            return False
+        held.ids, held.rows, held.clients, held.withdrawn = snap.ids, snap.rows, snap.clients, snap.withdrawn
+        names = {int(i): str(name) for i, name in s.execute(select(Person.id, Person.name).where(Person.id.in_(snap.person_ids)))}
+        held.person_ids = list(snap.person_ids)
+        held.people = [names.get(p, f"person {p}") for p in snap.person_ids]
+        held.person_code = {p: i for i, p in enumerate(snap.person_ids)}
+        held.entities = list(snap.entities)
+        held.attributes = [frozenset(a for _, attrs in ents for a in attrs) for ents in snap.entities]
+        held.entities_code = {t: i for i, t in enumerate(snap.texts)}
+        up_to = int(snap.ids[-1]) if len(snap.ids) else 0
+        if withdrawn != held.withdrawn:
+            self._drop_withdrawn(s, held, campaign_id, withdrawn)
+        if label_snapshot.database_sums(s, campaign_id, up_to) != self._sums(held):
+            _empty(held)  # the labels are read whole
+            return False
+        held.loaded, held.saved = True, len(snap.ids)
+        return True
+
+    @staticmethod
+    def _sums(held: _Held) -> tuple[int, ...]:
+        return label_snapshot.label_sums(held.ids, held.rows, held.person_ids, [len(t) for t in _texts(held)])
+
+    @staticmethod
+    def _save(folder: Path, campaign_id: int, held: _Held, s: Session) -> None:
+        ident = label_snapshot.identity(s, campaign_id)
+        if ident is None:
+            return
+        snap = label_snapshot.Snapshot(campaign_id, ident, held.ids, held.rows, held.clients, tuple(held.person_ids), tuple(_texts(held)),
+                                       tuple(held.entities), held.withdrawn)
+        label_snapshot.write(folder, snap)
+        held.saved = len(held.ids)  # not tried again until as many more labels, written or not
 
     def judgments(self, s: Session, campaign_id: int, version: tuple[object, ...]) -> list[Judgment]:
         """The campaign's labels as judgments, oldest first (as ``campaigns.judgments``), read incrementally."""

@@ -3,7 +3,12 @@
 from __future__ import annotations
 
 import functools
+import hashlib
+import json
+import logging
+from collections.abc import Callable
 from dataclasses import dataclass, replace
+from pathlib import Path
 
 import pandas as pd
 from sqlalchemy import func, select
@@ -11,6 +16,7 @@ from sqlalchemy.orm import Session
 
 from analysis.errors import NotEnoughLabelsError
 from analysis.pipeline import campaign_table
+from analysis.rules import top_rules
 from analysis.stopping import ClassSettling, checkpoints, settling
 
 from .. import campaigns, store
@@ -18,6 +24,9 @@ from ..campaigns import CampaignInfo
 from ..campaigns.plans import SETTLE_WINDOW, PlanInfo
 from ..models import CampaignRegion
 from .campaign_analysis import ResultsCache, _method, _read, campaign_results, campaign_rules, prediction_frame, region_classes
+from .label_snapshot import write_whole
+
+log = logging.getLogger("heedmap")
 
 TOP_RULES = 3
 
@@ -35,13 +44,55 @@ class StoppingStatus:
 
 def _rules_at(s: Session, c: CampaignInfo, n: int, *, min_support: float, max_len: int, cache: ResultsCache | None,
               version: tuple[object, ...]) -> pd.DataFrame:
-    """The predicted-class rules from the campaign's first ``n`` labels (held between requests when a cache is given)."""
+    """The predicted-class rules from the campaign's first ``n`` labels."""
     found, rules, region_class = _read(s, c, cache, version, limit=n)
     design = campaigns.sample_of(s, c.id)
     made = campaign_table(found, prediction_frame(s, c.run_id, cache=cache), rules=rules,
                           region_class=region_class, check_answers=campaigns.check_answers(s, c.id), classes=c.classes,
                           method=_method(c), sample=design[0] if design else None, population=design[1] if design else None)
     return made.table.rules(target="predicted", min_support=min_support, max_len=max_len, prune=True).rules
+
+
+def _tops(rules: pd.DataFrame) -> pd.DataFrame:
+    """Each class's top rules as :func:`analysis.stopping.settling` compares them at a checkpoint (class, family, concepts)."""
+    return top_rules(rules, TOP_RULES)[["class", "family", "concepts"]].astype(str).reset_index(drop=True)
+
+
+def _tops_at(at: Callable[[int], pd.DataFrame], n: int) -> pd.DataFrame:
+    return _tops(at(n))
+
+
+_KEPT_FORMAT = "heedmap settling checkpoints 1"
+_KEPT_ENTRIES = 16
+
+
+def _kept_tops(folder: Path | None, campaign_id: int, key: tuple[object, ...], make: Callable[[], pd.DataFrame]) -> pd.DataFrame:
+    """``make()`` (a checkpoint's top rules), kept in a file beside the database under a digest of ``key`` (which holds
+    everything they depend on), so that a restarted server does not compute the checkpoints again. A file that is not
+    whole or not ours is ignored (and replaced)."""
+    if folder is None:
+        return make()
+    name = f"settling-{int(campaign_id)}.json"
+    digest = hashlib.sha256(repr(key).encode()).hexdigest()
+    entries: dict[str, list[list[str]]] = {}
+    try:
+        found = json.loads((folder / name).read_text())
+        if isinstance(found, dict) and found.get("format") == _KEPT_FORMAT and isinstance(found.get("entries"), dict):
+            entries = {k: v for k, v in found["entries"].items()
+                       if isinstance(v, list) and all(isinstance(r, list) and len(r) == 3 and all(isinstance(x, str) for x in r) for r in v)}
+    except (OSError, ValueError) as exc:
+        if not isinstance(exc, FileNotFoundError):
+            log.info("ignored the kept settling checkpoints of campaign %s (%s)", campaign_id, exc)
+    if digest in entries:
+        return pd.DataFrame(entries[digest], columns=["class", "family", "concepts"], dtype=str)
+    tops = make()
+    entries.pop(digest, None)
+    entries[digest] = [[str(x) for x in r] for r in tops.itertuples(index=False)]
+    while len(entries) > _KEPT_ENTRIES:
+        entries.pop(next(iter(entries)))
+    text = json.dumps({"format": _KEPT_FORMAT, "entries": entries})
+    write_whole(folder, name, lambda fh: fh.write(text.encode()))
+    return tops
 
 
 def _checkpoint_key(s: Session, c: CampaignInfo, n: int, version: tuple[object, ...], plan: PlanInfo | None, cache: ResultsCache) -> tuple[object, ...]:
@@ -83,7 +134,8 @@ def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, ca
             if kept is None or cache is None:
                 earlier.append(at(k))
             else:
-                earlier.append(kept.get_or_make((*_checkpoint_key(s, c, k, version, plan, cache), min_support, max_len), functools.partial(at, k)))
+                key = (*_checkpoint_key(s, c, k, version, plan, cache), min_support, max_len, TOP_RULES)
+                earlier.append(kept.get_or_make(key, functools.partial(_kept_tops, cache.labels.snapshots, c.id, key, functools.partial(_tops_at, at, k))))
             points.append(k)
         except NotEnoughLabelsError:
             pass
