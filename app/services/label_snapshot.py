@@ -12,6 +12,7 @@ folder; no pickled objects are read back (numpy arrays and JSON only).
 
 from __future__ import annotations
 
+import hashlib
 import json
 import logging
 import os
@@ -26,6 +27,9 @@ import numpy as np
 import numpy.typing as npt
 from sqlalchemy import BigInteger, Text, case, cast, func, select
 from sqlalchemy.orm import Session
+
+from analysis.concept_votes import Reading
+from analysis.synonyms import SynonymRules
 
 from ..db import owner_only
 from ..models import Campaign, Label
@@ -49,6 +53,8 @@ class Snapshot:
     texts: tuple[str, ...]  # per entities code: the stored text
     entities: tuple[Entities, ...]  # per entities code: read
     withdrawn: tuple[int, int | None]
+    # Each (entities code, class)'s reading under one set of synonym rules and attribute words: (their digest, readings)
+    readings: tuple[str, dict[tuple[int, str | None], Reading]] = ("", {})
 
     def sums(self) -> tuple[int, ...]:
         """As :func:`database_sums` reads them from the database."""
@@ -67,6 +73,11 @@ def label_sums(ids: npt.NDArray[np.int64], rows: npt.NDArray[np.int64], person_i
     lengths = np.asarray(text_lengths, dtype=np.int64)[rows[:, 2]]
     return (len(ids), int(ids[-1]), int(ids.sum()), int(rows[:, 0].sum()), int(persons.sum()), int(rows[:, 3].sum()),
             *(int((ids * v % _P).sum()) for v in (rows[:, 0], persons, lengths)))
+
+
+def readings_digest(rules: SynonymRules, words: frozenset[str]) -> str:
+    """What readings depend on besides the label and its region's class: the synonym rules and the attribute words."""
+    return hashlib.sha256(repr((rules, sorted(words))).encode()).hexdigest()
 
 
 def identity(s: Session, campaign_id: int) -> tuple[str, str] | None:
@@ -116,7 +127,8 @@ def write(folder: Path, snap: Snapshot) -> bool:
     """Write ``snap`` whole or not at all; False when the folder cannot be written."""
     meta = {"format": FORMAT, "campaign": snap.campaign_id, "identity": list(snap.identity), "person_ids": list(snap.person_ids),
             "texts": list(snap.texts), "entities": [[[e, list(a)] for e, a in ents] for ents in snap.entities],
-            "withdrawn": list(snap.withdrawn), "sums": list(snap.sums())}
+            "withdrawn": list(snap.withdrawn), "sums": list(snap.sums()), "readings_of": snap.readings[0],
+            "readings": [[e, cls, list(r.families.items()), r.main] for (e, cls), r in snap.readings[1].items()]}
     return write_whole(folder, path_for(folder, snap.campaign_id).name, lambda fh: np.savez(
         fh, meta=np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8), ids=snap.ids, rows=snap.rows, clients=snap.clients))
 
@@ -137,9 +149,18 @@ def _checked(meta: dict[str, object], ids: npt.NDArray[np.generic], rows: npt.ND
               or rows[:, 2].min() < 0 or rows[:, 2].max() >= len(texts) or not np.isin(rows[:, 3], (0, 1)).all()):
         return None
     entities = tuple(tuple((str(e), tuple(str(a) for a in attrs)) for e, attrs in ents) for ents in found)
+    readings: dict[tuple[int, str | None], Reading] = {}
+    kept = meta.get("readings")
+    if isinstance(kept, list) and isinstance(meta.get("readings_of"), str):
+        for e, cls, fam, main in kept:
+            if not (isinstance(e, int) and 0 <= e < len(texts) and (cls is None or isinstance(cls, str)) and isinstance(main, str)):
+                return None
+            families = {str(c): str(f) for c, f in fam}
+            readings[(e, cls)] = Reading(families, tuple(families), main)
     snap = Snapshot(campaign_id, (str(ident[0]), str(ident[1])), ids.astype(np.int64, copy=False), rows.astype(np.int64, copy=False),
                     clients.astype(np.bytes_, copy=False), tuple(int(p) for p in person_ids),
-                    tuple(str(t) for t in texts), entities, (int(withdrawn[0]), None if withdrawn[1] is None else int(withdrawn[1])))
+                    tuple(str(t) for t in texts), entities, (int(withdrawn[0]), None if withdrawn[1] is None else int(withdrawn[1])),
+                    (str(meta["readings_of"]), readings) if readings else ("", {}))
     return snap if list(snap.sums()) == meta.get("sums") else None
 
 

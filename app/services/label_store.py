@@ -62,6 +62,10 @@ class _Held:
     # Readings of (entities code, class) per (rules, attribute words), the few most recently used: the first labels of a
     # campaign (the settling page's checkpoints) may use other attribute words than all of them, and pages alternate.
     read_with: dict[tuple[SynonymRules, frozenset[str]], tuple[dict[tuple[int, str | None], int], list[Reading]]] = field(default_factory=dict)
+    # The readings kept in the snapshot file: (digest of their rules and attribute words, their entries); and the digest
+    # of those last written there.
+    kept_readings: tuple[str, dict[tuple[int, str | None], Reading]] = ("", {})
+    saved_readings: str = ""
     lock: threading.Lock = field(default_factory=threading.Lock)
 
 
@@ -226,6 +230,7 @@ class LabelStore:
         held.entities = list(snap.entities)
         held.attributes = [frozenset(a for _, attrs in ents for a in attrs) for ents in snap.entities]
         held.entities_code = {t: i for i, t in enumerate(snap.texts)}
+        held.kept_readings, held.saved_readings = snap.readings, snap.readings[0]
         up_to = int(snap.ids[-1]) if len(snap.ids) else 0
         if withdrawn != held.withdrawn:
             self._drop_withdrawn(s, held, campaign_id, withdrawn)
@@ -245,9 +250,9 @@ class LabelStore:
         if ident is None:
             return
         snap = label_snapshot.Snapshot(campaign_id, ident, held.ids, held.rows, held.clients, tuple(held.person_ids), tuple(_texts(held)),
-                                       tuple(held.entities), held.withdrawn)
+                                       tuple(held.entities), held.withdrawn, held.kept_readings)
         label_snapshot.write(folder, snap)
-        held.saved = len(held.ids)  # not tried again until as many more labels, written or not
+        held.saved, held.saved_readings = len(held.ids), held.kept_readings[0]  # not tried again until as many more labels, written or not
 
     def judgments(self, s: Session, campaign_id: int, version: tuple[object, ...]) -> list[Judgment]:
         """The campaign's labels as judgments, oldest first (as ``campaigns.judgments``), read incrementally."""
@@ -274,6 +279,11 @@ class LabelStore:
             used_entities = sorted_distinct(table[:, _ENTITIES])
             words = typed_attribute_words(frozenset().union(*(held.attributes[e] for e in used_entities.tolist())), rules=rules)
             reading_of, readings = held.read_with.pop((rules, words)) if (rules, words) in held.read_with else ({}, [])
+            digest = label_snapshot.readings_digest(rules, words)
+            if not readings and held.kept_readings[0] == digest:  # read by an earlier run of the server, kept in the file
+                for key, reading in held.kept_readings[1].items():
+                    reading_of[key] = len(readings)
+                    readings.append(reading)
             while len(held.read_with) >= _READINGS_KEPT:
                 held.read_with.pop(next(iter(held.read_with)))
             held.read_with[(rules, words)] = (reading_of, readings)  # the most recently used last
@@ -293,6 +303,9 @@ class LabelStore:
                     found = reading_of[(e, cls)] = len(readings)
                     readings.append(read_label(held.entities[e], cls, rules=rules, words=words))
                 codes[i] = found
+            if limit is None and self._snapshots is not None and held.saved >= 0 and held.saved_readings != digest:
+                held.kept_readings = (digest, {key: readings[i] for key, i in reading_of.items()})
+                self._save(self._snapshots, campaign_id, held, s)  # the next start reads these instead of reading every label again
             people = table[:, _PERSON]
             used_people = sorted_distinct(people)
             annotators = tuple(sorted(held.people[p] for p in used_people.tolist()))

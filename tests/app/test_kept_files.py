@@ -266,3 +266,29 @@ def test_the_collector_pause_nests_across_threads_and_leaves_it_as_it_was() -> N
         assert not gc.isenabled()
     finally:
         gc.enable()
+
+
+def test_a_restart_reuses_the_kept_readings_and_reads_again_under_new_synonym_rules(factory, campaign, project: Path,
+                                                                                  monkeypatch: pytest.MonkeyPatch) -> None:  # type: ignore[no-untyped-def]
+    from app.services import label_store
+
+    folder = ProjectLayout(project).label_cache
+    _label(factory, campaign, "ann", limit=12)
+    _label(factory, campaign, "bob", limit=12, tag="Scraps")
+    read: list[object] = []
+    real = label_store.read_label
+
+    def counted(*args, **kw):  # type: ignore[no-untyped-def]
+        read.append(args[0])
+        return real(*args, **kw)
+
+    monkeypatch.setattr(label_store, "read_label", counted)
+    _agrees(factory, _restart(folder), campaign)
+    assert read  # nothing kept yet: every distinct label read, then kept with the labels
+    read.clear()
+    _agrees(factory, _restart(folder), campaign)
+    assert read == []  # a restart takes the readings from the file
+    with write_session(factory) as s:
+        campaigns.add_synonym_rule(s, campaign_id=campaign.id, kind="merge", source="scrap", target="paper scrap")
+    _agrees(factory, _restart(folder), campaign)  # other rules: read again, and the same as a fresh read
+    assert read
