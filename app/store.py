@@ -87,6 +87,13 @@ def prediction_frame(s: Session, run_id: int) -> pd.DataFrame:
     return frame.set_index("image_id")
 
 
+def run_counts(s: Session, run_id: int) -> tuple[int, int]:
+    """The run's predicted images and their regions, counted by the database."""
+    images = s.scalar(select(func.count(Prediction.id)).where(Prediction.run_id == run_id)) or 0
+    regions = s.scalar(select(func.count(RegionRow.id)).join(Prediction, RegionRow.prediction_id == Prediction.id).where(Prediction.run_id == run_id)) or 0
+    return int(images), int(regions)
+
+
 def labels_version(s: Session, campaign_id: int) -> tuple[object, ...]:
     """A key that changes whenever anything a campaign's results depend on changes: a label stored or undone,
     a synonym rule added or removed, a check item set, cleared or given another answer, the method, labels per region.

@@ -25,6 +25,6 @@ def home(request: Request, s: SessionDep, viewer: OptionalViewerDep) -> Response
     stats = None
     run_id = store.latest_run_id(s)
     if viewer.role != "annotator" and run_id is not None:
-        preds = store.prediction_frame(s, run_id)
-        stats = {"run_id": run_id, "images": len(preds), "regions": int(preds["regions"].map(len).sum())}
+        images, regions = store.run_counts(s, run_id)
+        stats = {"run_id": run_id, "images": images, "regions": regions}
     return render(request, "index.html", {"campaigns": listed, "progress": progress, "stats": stats}, viewer=viewer)

@@ -285,3 +285,14 @@ def test_agreement_and_synonym_editor(client: TestClient, campaign_id: int) -> N
     rule_id = page.context["rules"][0].id  # type: ignore[attr-defined]
     client.post(f"/campaigns/{campaign_id}/synonyms/{rule_id}/delete", data={"csrf": csrf})
     assert "lid" in dict(client.get(f"/campaigns/{campaign_id}/synonyms").context["counts"])  # type: ignore[attr-defined]
+
+
+def test_home_counts_the_latest_runs_images_and_regions(client: TestClient, campaign_id: int) -> None:
+    from app import store
+
+    join(client, "overseer", "analyst")
+    with client.app.state.sessions() as s:  # type: ignore[attr-defined]
+        run = store.latest_run_id(s)
+        assert run is not None
+        preds = store.prediction_frame(s, run)
+    assert f"Saliency run {run}: {len(preds)} images, {sum(len(r) for r in preds['regions'])} regions." in client.get("/").text
