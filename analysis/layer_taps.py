@@ -33,6 +33,7 @@ from torch.overrides import TorchFunctionMode
 
 from .attention_rows import ATTENTION_ROWS_OP, attention_rows, plain_attention_call
 from .errors import GradientUnavailableError, ModelInputError
+from .token_rows import ROWS_OPS, rows_call
 
 MIN_USEFUL_MAP = 4  # common practice: coarser maps make every region cover most of the image
 _MAX_PREFIX_GUESS = 5  # a class token plus up to four register tokens
@@ -263,6 +264,12 @@ def _in_projection_unbound(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, w:
     return list(proj.unbind(0))
 
 
+def _linear_maybe_rows(*args: Any, **kwargs: Any) -> torch.Tensor:
+    """``F.linear`` with the row-sparse backward (:func:`analysis.token_rows.rows_call`) where it applies."""
+    found = rows_call("linear", args, kwargs)
+    return F.linear(*args, **kwargs) if found is None else found
+
+
 @functools.cache
 def _mha_with_rows() -> Callable[..., Any] | None:
     """torch's ``F.multi_head_attention_forward`` (what ``nn.MultiheadAttention`` runs when it records
@@ -279,6 +286,8 @@ def _mha_with_rows() -> Callable[..., Any] | None:
     names = dict(fn.__globals__)
     names["scaled_dot_product_attention"] = _attention_with_rows
     names["has_torch_function"] = lambda *_args: False
+    if "linear" in code.co_names:  # the output projection: row-sparse below a class-token head (the in-projection stays torch's)
+        names["linear"] = _linear_maybe_rows
     if "_in_projection_packed" in code.co_names:
         names["_in_projection_packed"] = _in_projection_unbound
     copy = FunctionType(code, names, fn.__name__, fn.__defaults__, fn.__closure__)
@@ -299,6 +308,8 @@ class _Tail(TorchFunctionMode):
     * Attention runs as :func:`analysis.attention_rows.attention_rows`, whose backward works only on
       the query rows that carry gradient (one, below a class-token head's last attention); the
       selects that split a packed q, k, v projection share one ``unbind`` (:func:`_select_parts`).
+    * Linear layers, GELU and layer norms over the last dimension run with a backward that works only
+      on the rows (tokens) that carry gradient (:mod:`analysis.token_rows`).
     """
 
     def __init__(self, activation: torch.Tensor) -> None:
@@ -315,6 +326,10 @@ class _Tail(TorchFunctionMode):
         if func is F.multi_head_attention_forward:
             mha: Callable[..., Any] = _mha_with_rows() or func
             return mha(*args, **kwargs)
+        if name in ROWS_OPS:
+            rows = rows_call(name, args, kwargs)
+            if rows is not None:
+                return rows
         pool = _global_pool(func, args, kwargs) if name in _GLOBAL_POOLS else None
         if pool is not None and args[0] is self.activation:
             with torch.no_grad():
@@ -442,6 +457,14 @@ class HookTap:
         return Tapped(out, captured[0], tuple(modes[0].pooled) if modes else ())
 
 
+def _freeze(module: nn.Module) -> None:
+    """Parameters need no gradient here: Grad-CAM differentiates by the activation only, and a parameter that
+    requires grad makes every layer after the tap compute its weight's gradient too (as many matrix products
+    again as its input's gradient)."""
+    for p in module.parameters():
+        p.requires_grad_(False)
+
+
 class EagerGraph:
     """Layers of an eager module, by ``named_modules`` path, in the order their outputs complete."""
 
@@ -450,6 +473,7 @@ class EagerGraph:
     def __init__(self, module: nn.Module) -> None:
         self.module = module
         self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
+        _freeze(module)
 
     def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
         calls: dict[str, int] = {}
@@ -524,6 +548,7 @@ class FxGraph:
         self.module = gm
         self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
         self._taps: dict[str, str] = {}
+        _freeze(gm)
         self._outputs = self._layer_outputs()
 
     def _layer_outputs(self) -> dict[str, tuple[torch.fx.Node, str, int]]:
@@ -723,8 +748,7 @@ class ScriptGraph:
         self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
         self._ranks: dict[str, int] = {}
         self._taps: dict[str, tuple[Tap, nn.Module | None]] = {}
-        for p in scripted.parameters():
-            p.requires_grad_(False)
+        _freeze(scripted)
 
     def _graph_outputs(self) -> tuple[torch._C.Graph, dict[str, tuple[torch._C.Value, str, int, int]]]:
         """Module path -> (its output value, module type, node index, depth) in a fresh inlined graph.

@@ -175,7 +175,10 @@ def prepare_model(module: nn.Module, sidecar: Sidecar, *, kind: str = "module", 
     """Check a model against its sidecar, find (or choose) its Grad-CAM layer and tap it.
 
     ``module`` is an eager ``nn.Module``, the module of an exported program
-    (``torch.export.load(path).module()``) or a TorchScript module.
+    (``torch.export.load(path).module()``) or a TorchScript module. Its parameters are frozen
+    (``requires_grad`` False; an exported program made in the same process shares them with the
+    eager model): Grad-CAM differentiates by the layer's output only, and a parameter that requires
+    grad makes every layer after it compute its weight's gradient too.
 
     Raises
     ------
