@@ -6,7 +6,8 @@ its MLP and the final norm. torch's backward kernels still work on every row (on
 transformer that was a fifth of the saliency stage's time: the MLP's matrix products, GELU's
 backward, the norms' backward). These operations' forwards are torch's own; their backward finds
 the rows whose output gradient is not all zero and, when they are at most half of them, computes
-the input gradient from those rows alone and leaves zeros elsewhere:
+the input gradient from those rows alone and leaves zeros elsewhere (token sequences only, N x tokens x
+features: elsewhere every row carries gradient):
 
     linear:      dX_R = G_R W                       (x W^T + b, weight and bias frozen)
     gelu:        dX_R = gelu'(X_R) * G_R
@@ -133,7 +134,9 @@ def _frozen(*ts: object) -> bool:
 
 
 def _takes_rows(x: object) -> bool:
-    return isinstance(x, torch.Tensor) and x.requires_grad and x.ndim >= 2 and x.is_floating_point() and torch.is_grad_enabled()
+    """A token sequence (N x tokens x features) that records gradients: elsewhere (a head on pooled features, a
+    norm over a channels-last map) every row carries gradient, and finding that out would only cost time."""
+    return isinstance(x, torch.Tensor) and x.requires_grad and x.ndim == 3 and x.is_floating_point() and torch.is_grad_enabled()
 
 
 def rows_call(name: str, args: tuple[object, ...], kwargs: dict[str, object]) -> torch.Tensor | None:
