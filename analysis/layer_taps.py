@@ -661,7 +661,8 @@ def _ts_tail_ops(graph: torch._C.Graph, block: torch._C.Block, leaf: torch._C.Va
     """Rewrite operations after the tap's ``leaf`` (``seen[0]`` turns True there; blocks inside nodes
     are walked in order), as :class:`_Tail` does for eager and exported models: plain attention
     calls run as ``heedmap::attention_rows``, whose backward works only on query rows that carry
-    gradient (see :mod:`analysis.attention_rows`; the forward is the same attention), and means
+    gradient (see :mod:`analysis.attention_rows`; the forward is the same attention), linear layers,
+    GELU and layer norms as their :mod:`analysis.token_rows` operators (likewise), and means
     (and 1x1 adaptive average poolings) of later values run as ``heedmap::spread_mean``, whose
     backward hands back a broadcast view. Those before the leaf keep torch's operators: a
     Python-registered one costs more per call."""
@@ -676,6 +677,27 @@ def _ts_tail_ops(graph: torch._C.Graph, block: torch._C.Block, leaf: torch._C.Va
             _ts_attention_node(graph, node)
         elif node.kind() in ("aten::mean", "aten::adaptive_avg_pool2d"):
             _ts_mean_node(graph, node, leaf)
+        elif node.kind() in _TS_ROWS:
+            _ts_rows_node(graph, node)
+
+
+# aten node -> (our operator, how many of its inputs it takes): linear (input, weight, bias); gelu (input, approximate);
+# layer_norm (input, normalized_shape, weight, bias, eps; cudnn_enable dropped).
+_TS_ROWS = {"aten::linear": (ROWS_OPS["linear"], 3), "aten::gelu": (ROWS_OPS["gelu"], 2), "aten::layer_norm": (ROWS_OPS["layer_norm"], 5)}
+
+
+def _ts_rows_node(graph: torch._C.Graph, node: torch._C.Node) -> None:
+    """A linear layer, GELU or layer norm after the leaf as its :mod:`analysis.token_rows` operator (the same
+    forward; a backward over the token rows that carry gradient)."""
+    op, taken = _TS_ROWS[node.kind()]
+    inputs = list(node.inputs())
+    if len(inputs) < taken:
+        return
+    rows = graph.create(op, inputs[:taken], 1)
+    rows.insertBefore(node)
+    rows.output().setType(node.output().type())
+    node.output().replaceAllUsesWith(rows.output())
+    node.destroy()
 
 
 def _ts_attention_node(graph: torch._C.Graph, node: torch._C.Node) -> None:

@@ -34,8 +34,11 @@ ROWS_OPS = {"linear": "heedmap::linear_rows", "gelu": "heedmap::gelu_rows", "lay
 
 def _live_rows(grad: torch.Tensor) -> torch.Tensor | None:
     """Indices of the rows of ``grad`` (flattened leading dimensions) that are not all zero, when at most half
-    of them are; None when more are (torch's own backward is then as cheap). A NaN row counts as live."""
-    flat = grad.reshape(-1, grad.shape[-1]) if grad.ndim > 1 else grad.reshape(1, -1)
+    of them are; None when more are (torch's own backward is then as cheap), or when ``grad`` is no token
+    sequence (N x tokens x features). A NaN row counts as live."""
+    if grad.ndim != 3:
+        return None
+    flat = grad.reshape(-1, grad.shape[-1])
     live = flat.abs().amax(dim=1).ne(0)  # a tenth of ne(0).any(1)'s time on CPU; NaN stays NaN, which is not 0
     rows = live.nonzero().flatten()
     return None if 2 * len(rows) > flat.shape[0] else rows
@@ -65,7 +68,13 @@ def _gelu_backward(x: torch.Tensor, grad: torch.Tensor, approximate: str) -> tor
     return _scatter_rows(x.shape, rows, torch.ops.aten.gelu_backward(g, xr, approximate=approximate), grad)
 
 
-def _layer_norm_backward(x: torch.Tensor, weight: torch.Tensor | None, bias: torch.Tensor | None, eps: float, grad: torch.Tensor) -> torch.Tensor:
+def _layer_norm_backward(x: torch.Tensor, weight: torch.Tensor | None, bias: torch.Tensor | None, eps: float, grad: torch.Tensor,
+                         shape: list[int] | None = None) -> torch.Tensor:
+    if shape is not None and list(shape) != [x.shape[-1]]:  # over more than the last dimension: torch's own backward
+        with torch.enable_grad():
+            xd = x.detach().requires_grad_(True)
+            (dx,) = torch.autograd.grad(F.layer_norm(xd, shape, weight, bias, eps), xd, grad)
+        return dx
     shape = [x.shape[-1]]
     rows = _live_rows(grad)
     xr = x.reshape(-1, x.shape[-1]) if rows is None else x.reshape(-1, x.shape[-1]).index_select(0, rows)
@@ -163,3 +172,80 @@ def rows_call(name: str, args: tuple[object, ...], kwargs: dict[str, object]) ->
     except TypeError:  # an argument given twice or of an unexpected type: torch's own call says what is wrong
         return None
     return None
+
+
+# The registered forms, which edited TorchScript graphs call (an autograd Function costs less per call
+# from Python). Parameters there are frozen; a weight or bias that still requires grad gets its gradient.
+@torch.library.custom_op(ROWS_OPS["linear"], mutates_args=())
+def _linear_rows_op(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor | None) -> torch.Tensor:
+    return F.linear(x, weight, bias)
+
+
+@_linear_rows_op.register_fake
+def _(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor | None) -> torch.Tensor:
+    return x.new_empty((*x.shape[:-1], weight.shape[0]))
+
+
+def _linear_setup(ctx: Any, inputs: tuple[Any, ...], output: torch.Tensor) -> None:
+    x, weight, bias = inputs
+    ctx.x_shape, ctx.has_bias = x.shape, bias is not None
+    ctx.save_for_backward(x if weight.requires_grad else None, weight)
+
+
+def _linear_op_backward(ctx: Any, grad: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor | None, torch.Tensor | None]:
+    x, weight = ctx.saved_tensors
+    dw = grad.reshape(-1, grad.shape[-1]).t().matmul(x.reshape(-1, x.shape[-1])) if x is not None and ctx.needs_input_grad[1] else None
+    db = grad.reshape(-1, grad.shape[-1]).sum(0) if ctx.has_bias and ctx.needs_input_grad[2] else None
+    return (_linear_backward(ctx.x_shape, weight, grad) if ctx.needs_input_grad[0] else None), dw, db  # type: ignore[return-value]
+
+
+_linear_rows_op.register_autograd(_linear_op_backward, setup_context=_linear_setup)
+
+
+@torch.library.custom_op(ROWS_OPS["gelu"], mutates_args=())
+def _gelu_rows_op(x: torch.Tensor, approximate: str) -> torch.Tensor:
+    return F.gelu(x, approximate=approximate)
+
+
+@_gelu_rows_op.register_fake
+def _(x: torch.Tensor, approximate: str) -> torch.Tensor:
+    return torch.empty_like(x)
+
+
+def _gelu_setup(ctx: Any, inputs: tuple[Any, ...], output: torch.Tensor) -> None:
+    ctx.save_for_backward(inputs[0])
+    ctx.approximate = inputs[1]
+
+
+def _gelu_op_backward(ctx: Any, grad: torch.Tensor) -> tuple[torch.Tensor, None]:
+    (x,) = ctx.saved_tensors
+    return _gelu_backward(x, grad, ctx.approximate), None
+
+
+_gelu_rows_op.register_autograd(_gelu_op_backward, setup_context=_gelu_setup)
+
+
+@torch.library.custom_op(ROWS_OPS["layer_norm"], mutates_args=())
+def _layer_norm_rows_op(x: torch.Tensor, normalized_shape: list[int], weight: torch.Tensor | None, bias: torch.Tensor | None, eps: float) -> torch.Tensor:
+    return F.layer_norm(x, normalized_shape, weight, bias, eps)
+
+
+@_layer_norm_rows_op.register_fake
+def _(x: torch.Tensor, normalized_shape: list[int], weight: torch.Tensor | None, bias: torch.Tensor | None, eps: float) -> torch.Tensor:
+    return torch.empty_like(x)
+
+
+def _layer_norm_setup(ctx: Any, inputs: tuple[Any, ...], output: torch.Tensor) -> None:
+    x, shape, weight, bias, eps = inputs
+    if (weight is not None and weight.requires_grad) or (bias is not None and bias.requires_grad):
+        raise RuntimeError("heedmap::layer_norm_rows is for frozen parameters only; freeze the model's parameters first.")
+    ctx.save_for_backward(x, weight, bias)
+    ctx.shape, ctx.eps = list(shape), float(eps)
+
+
+def _layer_norm_op_backward(ctx: Any, grad: torch.Tensor) -> tuple[torch.Tensor, None, None, None, None]:
+    x, weight, bias = ctx.saved_tensors
+    return _layer_norm_backward(x, weight, bias, ctx.eps, grad, ctx.shape), None, None, None, None
+
+
+_layer_norm_rows_op.register_autograd(_layer_norm_op_backward, setup_context=_layer_norm_setup)

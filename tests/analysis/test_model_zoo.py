@@ -238,8 +238,9 @@ def test_vit_attention_after_the_layer_runs_row_sparse_backward_and_gradcam_equa
     tapped = loaded.tap(x)
     names = _backward_node_names(loaded.logits(tapped.out))
     assert any("attentionrows" in n.lower().replace("_", "") for n in names)
-    if fmt != "torchscript":  # the MLP, the norms and the output projection after the layer: row-sparse too
-        assert {"_LinearRowsBackward", "_GeluRowsBackward", "_LayerNormRowsBackward"} <= names
+    flat = {n.lower().replace("_", "") for n in names}
+    for op in ("linearrows", "gelurows", "layernormrows"):  # the MLP, the norms and the output projection too
+        assert any(op in n for n in flat), op
     ours = compute_saliency(loaded, x)
     ref, pred = direct_gradcam(eager, layer, x, output=None, prefix=1)
     assert ours.predicted.tolist() == pred.tolist() and float(ref.max()) > 0
