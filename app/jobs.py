@@ -26,11 +26,13 @@ from analysis.model_io import LoadedModel, Sidecar
 from analysis.regions import Region, ThresholdPolicy, extract_regions_batch
 from analysis.saliency import SaliencyBatch, compute_saliency, saliency_provenance
 
+from . import store
 from .db import write_session
 from .errors import InvalidRequestError
 from .layout import ProjectLayout
 from .maps import as_float16, sync_folder, write_array
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
+from .services import run_snapshot
 
 
 @dataclass(frozen=True)
@@ -438,7 +440,17 @@ def run_saliency(
                     read_f.cancel()
     finally:
         torch.set_num_threads(outer_threads)
+    keep_predictions(factory, prep.layout, prep.run_id)
     return prep.report
+
+
+def keep_predictions(factory: sessionmaker[Session], layout: ProjectLayout, run_id: int) -> None:
+    """Keep the finished run's prediction frame beside the database (``services.run_snapshot``), so that the first page
+    a server shows does not assemble it from the database (a quarter of a second at 20,000 images)."""
+    with factory() as s:
+        sums = run_snapshot.run_sums(s, run_id)
+        frame = store.prediction_frame(s, run_id)
+    run_snapshot.write(layout.label_cache, run_id, frame, sums)
 
 
 def _saliency_of(model: LoadedModel, read: Future[BatchInput]) -> SaliencyBatch | None:

@@ -4,6 +4,7 @@ made from; a torn, damaged or stale file is ignored and everything is read from 
 
 from __future__ import annotations
 
+import shutil
 import stat
 from pathlib import Path
 
@@ -170,7 +171,7 @@ def test_a_swapped_answer_in_the_kept_labels_is_caught_by_the_zip_checksum(facto
 
 def test_an_unwritable_cache_folder_changes_nothing_but_speed(factory, campaign, project: Path) -> None:  # type: ignore[no-untyped-def]
     folder = ProjectLayout(project).label_cache
-    folder.parent.mkdir(exist_ok=True)
+    shutil.rmtree(folder, ignore_errors=True)  # what the saliency job kept there
     folder.write_text("not a folder")  # mkdir and every write fail
     _label(factory, campaign, "ann", limit=6)
     held = _restart(folder)
@@ -292,3 +293,15 @@ def test_a_restart_reuses_the_kept_readings_and_reads_again_under_new_synonym_ru
         campaigns.add_synonym_rule(s, campaign_id=campaign.id, kind="merge", source="scrap", target="paper scrap")
     _agrees(factory, _restart(folder), campaign)  # other rules: read again, and the same as a fresh read
     assert read
+
+
+def test_the_saliency_job_keeps_its_finished_runs_predictions(factory, project: Path) -> None:  # type: ignore[no-untyped-def]
+    # The project fixture ran the job: its prediction frame is kept beside the database, equal to the stored rows.
+    folder = ProjectLayout(project).label_cache
+    with factory() as s:
+        run = store.latest_run_id(s)
+        assert run is not None
+        kept = run_snapshot.read(folder, run, run_snapshot.run_sums(s, run))
+        fresh = store.prediction_frame(s, run)
+    assert kept is not None
+    pd.testing.assert_frame_equal(kept, fresh, check_exact=True)
