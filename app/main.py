@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import gc
 import logging
 import threading
 from collections.abc import AsyncIterator
@@ -86,6 +87,9 @@ def _warm_in_background(app: FastAPI, settings: Settings) -> tuple[threading.Eve
             if settings.warm_campaigns:
                 warm_results(app.state.sessions, app.state.results_cache, min_support=settings.min_support,
                              campaigns_kept=settings.warm_campaigns, stop=stop)
+                # The results were made with the cycle collector paused (campaign_analysis.collector_paused): the
+                # collection it owes runs here, on this thread, not in the first request after the warming.
+                gc.collect()
         except Exception:  # a page made later says what is wrong; start-up goes on without the warm results
             log.warning("warming the results at start-up failed; pages compute them when first opened", exc_info=settings.debug)
         finally:
