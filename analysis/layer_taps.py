@@ -457,7 +457,7 @@ class HookTap:
         return Tapped(out, captured[0], tuple(modes[0].pooled) if modes else ())
 
 
-def _freeze(module: nn.Module) -> None:
+def freeze(module: nn.Module) -> None:
     """Parameters need no gradient here: Grad-CAM differentiates by the activation only, and a parameter that
     requires grad makes every layer after the tap compute its weight's gradient too (as many matrix products
     again as its input's gradient)."""
@@ -473,7 +473,6 @@ class EagerGraph:
     def __init__(self, module: nn.Module) -> None:
         self.module = module
         self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
-        _freeze(module)
 
     def layers(self, probe: torch.Tensor, *, input_size: tuple[int, int], grid: tuple[int, int] | None = None, prefix: int | None = None) -> list[LayerInfo]:
         calls: dict[str, int] = {}
@@ -548,7 +547,6 @@ class FxGraph:
         self.module = gm
         self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
         self._taps: dict[str, str] = {}
-        _freeze(gm)
         self._outputs = self._layer_outputs()
 
     def _layer_outputs(self) -> dict[str, tuple[torch.fx.Node, str, int]]:
@@ -770,7 +768,7 @@ class ScriptGraph:
         self.captured: tuple[object, dict[str, object]] | None = None  # the last layers() pass, recorded for autograd
         self._ranks: dict[str, int] = {}
         self._taps: dict[str, tuple[Tap, nn.Module | None]] = {}
-        _freeze(scripted)
+        freeze(scripted)
 
     def _graph_outputs(self) -> tuple[torch._C.Graph, dict[str, tuple[torch._C.Value, str, int, int]]]:
         """Module path -> (its output value, module type, node index, depth) in a fresh inlined graph.

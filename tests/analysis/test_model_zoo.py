@@ -81,8 +81,6 @@ def direct_gradcam(model: nn.Module, layer: str, x: torch.Tensor, *, output: str
     for m in model.modules():
         if hasattr(m, "inplace"):
             m.inplace = False
-    for p in model.parameters():  # heedmap freezes a module it prepares (an exported program shares the eager model's)
-        p.requires_grad_(True)
     saved: list[torch.Tensor] = []
     handle = model.get_submodule(layer).register_forward_hook(lambda _m, _i, o: saved.append(o))
     out = model(x)

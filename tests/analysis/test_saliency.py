@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 import torch
@@ -208,3 +210,24 @@ def test_saliency_does_not_import_sympy() -> None:
             "compute_saliency(m, torch.randn(2, 3, 32, 32))\nprint('sympy' in sys.modules)\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300, check=True)
     assert out.stdout.strip() == "False", out.stderr
+
+
+def test_a_module_given_is_left_trainable_and_a_loaded_one_is_frozen(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # prepare_model must not change a model the caller may still train; load_model owns what it loads and freezes
+    # it (a parameter that requires grad makes every layer after the tap compute its weight's gradient too).
+    from analysis.model_io import load_model
+
+    model = _model()
+    prepare_model(model, SIDECAR)
+    assert all(p.requires_grad for p in model.parameters())
+    frozen = prepare_model(_model(), SIDECAR, freeze_parameters=True)
+    assert not any(p.requires_grad for p in frozen.module.parameters())
+    program = torch.export.export(_model().eval(), (torch.randn(2, 3, 32, 32),), dynamic_shapes=({0: torch.export.Dim("batch")},))
+    torch.export.save(program, tmp_path / "model.pt2")
+    (tmp_path / "sidecar.json").write_text(json.dumps({"classes": list(SIDECAR.classes), "input_size": list(SIDECAR.input_size),
+                                                       "mean": list(SIDECAR.mean), "std": list(SIDECAR.std), "target_layer": SIDECAR.target_layer}))
+    loaded = load_model(tmp_path / "model.pt2", tmp_path / "sidecar.json")
+    assert not any(p.requires_grad for p in loaded.module.parameters())
+    x = torch.randn(3, 3, 32, 32, generator=torch.Generator().manual_seed(8))
+    torch.testing.assert_close(torch.from_numpy(compute_saliency(loaded, x).maps), torch.from_numpy(compute_saliency(prepare_model(model, SIDECAR), x).maps),
+                               rtol=1e-4, atol=1e-6)
