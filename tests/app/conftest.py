@@ -22,6 +22,31 @@ from app.store import latest_run_id
 
 
 @pytest.fixture()
+def factory(project: Path):  # type: ignore[no-untyped-def]
+    """Sessions on the project's database (the app's own kind: expire_on_commit off)."""
+    engine = make_engine(project)
+    yield session_factory(engine)
+    engine.dispose()
+
+
+@pytest.fixture()
+def checkpoints_made(monkeypatch: pytest.MonkeyPatch) -> list[int]:
+    """The label counts at which the settling page computed a checkpoint's rules through a cache (appended as made)."""
+    from app.services import stopping
+
+    made: list[int] = []
+    real = stopping._rules_at
+
+    def counted(s, c, n, **kw):  # type: ignore[no-untyped-def]
+        if kw.get("cache") is not None:
+            made.append(n)
+        return real(s, c, n, **kw)
+
+    monkeypatch.setattr(stopping, "_rules_at", counted)
+    return made
+
+
+@pytest.fixture()
 def campaign_id(project: Path) -> int:
     """A campaign over every region of the project's run, two annotators per region."""
     engine = make_engine(project)

@@ -24,13 +24,6 @@ from .conftest import join
 pytestmark = pytest.mark.both_databases
 
 
-@pytest.fixture()
-def factory(project: Path):  # type: ignore[no-untyped-def]
-    engine = make_engine(project)
-    yield session_factory(engine)
-    engine.dispose()
-
-
 def _campaign(factory, name: str = "c", k: int = 3, **kw: object) -> campaigns.CampaignInfo:  # type: ignore[no-untyped-def]
     with write_session(factory) as s:
         cid = campaigns.create_campaign(s, name=name, run_id=1, labels_per_region=k, **kw)  # type: ignore[arg-type]

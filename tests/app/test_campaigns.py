@@ -6,25 +6,17 @@ import threading
 import uuid
 from collections import Counter
 from datetime import timedelta
-from pathlib import Path
 
 import pytest
 from sqlalchemy import select
 
 from app import campaigns
-from app.db import make_engine, session_factory, write_session
+from app.db import write_session
 from app.errors import ConflictError
 from app.models import CampaignRegion, Label, utcnow
 from app.people import ensure_person
 
 pytestmark = pytest.mark.both_databases
-
-
-@pytest.fixture()
-def factory(project: Path):  # type: ignore[no-untyped-def]
-    engine = make_engine(project)
-    yield session_factory(engine)
-    engine.dispose()
 
 
 def _campaign(factory, k: int = 2, **kw: object) -> campaigns.CampaignInfo:  # type: ignore[no-untyped-def]

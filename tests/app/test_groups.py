@@ -26,13 +26,6 @@ pytestmark = pytest.mark.both_databases
 
 
 @pytest.fixture()
-def factory(project: Path):  # type: ignore[no-untyped-def]
-    engine = make_engine(project)
-    yield session_factory(engine)
-    engine.dispose()
-
-
-@pytest.fixture()
 def grouped(project: Path, factory, varied_model: LoadedModel) -> campaigns.CampaignInfo:  # type: ignore[no-untyped-def]
     """A campaign (two people per region) whose regions are embedded with the run's model and grouped in eights."""
     embed_run(factory, project, 1, varied_model)

@@ -14,7 +14,7 @@ import pytest
 
 from analysis.pipeline import campaign_votes
 from app import campaigns, store
-from app.db import make_engine, session_factory, write_session
+from app.db import write_session
 from app.layout import ProjectLayout
 from app.models import Campaign
 from app.people import ensure_person
@@ -23,13 +23,6 @@ from app.services.campaign_analysis import ResultsCache
 from app.services.label_store import LabelStore
 
 pytestmark = pytest.mark.both_databases
-
-
-@pytest.fixture()
-def factory(project: Path):  # type: ignore[no-untyped-def]
-    engine = make_engine(project)
-    yield session_factory(engine)
-    engine.dispose()
 
 
 @pytest.fixture()
@@ -200,17 +193,9 @@ def test_the_kept_predictions_equal_the_stored_ones_and_a_changed_run_is_read_ag
     pd.testing.assert_frame_equal(torn, fresh, check_exact=True)
 
 
-def test_a_restart_takes_the_settling_checkpoints_from_their_file(factory, campaign, project: Path, monkeypatch: pytest.MonkeyPatch) -> None:  # type: ignore[no-untyped-def]
+def test_a_restart_takes_the_settling_checkpoints_from_their_file(factory, campaign, project: Path, checkpoints_made: list[int]) -> None:  # type: ignore[no-untyped-def]
     folder = ProjectLayout(project).label_cache
-    made: list[int] = []
-    real = stopping._rules_at
-
-    def counted(s, c, n, **kw):  # type: ignore[no-untyped-def]
-        if kw.get("cache") is not None:
-            made.append(n)
-        return real(s, c, n, **kw)
-
-    monkeypatch.setattr(stopping, "_rules_at", counted)
+    made = checkpoints_made
     assert len(_label(factory, campaign, "ann")) >= 15 and len(_label(factory, campaign, "bob")) >= 15
 
     def status() -> stopping.StoppingStatus:

@@ -3,24 +3,15 @@ a label among them is undone, and always the same as a fresh computation."""
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import pytest
 
 from app import campaigns
-from app.db import make_engine, session_factory, write_session
+from app.db import write_session
 from app.people import ensure_person
 from app.services import stopping
 from app.services.campaign_analysis import ResultsCache
 
 pytestmark = pytest.mark.both_databases
-
-
-@pytest.fixture()
-def factory(project: Path):  # type: ignore[no-untyped-def]
-    engine = make_engine(project)
-    yield session_factory(engine)
-    engine.dispose()
 
 
 def _label(factory, c: campaigns.CampaignInfo, name: str, *, limit: int = 10_000) -> int:  # type: ignore[no-untyped-def]
@@ -46,16 +37,8 @@ def _same(a: stopping.StoppingStatus, b: stopping.StoppingStatus) -> bool:
     return (a.judgments, a.checkpoints, a.classes) == (b.judgments, b.checkpoints, b.classes)
 
 
-def test_checkpoint_results_are_made_once_and_again_after_an_undo_among_them(factory, monkeypatch: pytest.MonkeyPatch) -> None:  # type: ignore[no-untyped-def]
-    made: list[int] = []
-    real = stopping._rules_at
-
-    def counted(s, c, n, **kw):  # type: ignore[no-untyped-def]
-        if kw.get("cache") is not None:
-            made.append(n)
-        return real(s, c, n, **kw)
-
-    monkeypatch.setattr(stopping, "_rules_at", counted)
+def test_checkpoint_results_are_made_once_and_again_after_an_undo_among_them(factory, checkpoints_made: list[int]) -> None:  # type: ignore[no-untyped-def]
+    made = checkpoints_made
     with write_session(factory) as s:
         cid = campaigns.create_campaign(s, name="c", run_id=1, labels_per_region=3, settle_window=10)
         c = campaigns.get_campaign(s, cid)
