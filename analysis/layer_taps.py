@@ -265,7 +265,13 @@ def _in_projection_unbound(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, w:
 
 
 def _linear_maybe_rows(*args: Any, **kwargs: Any) -> torch.Tensor:
-    """``F.linear`` with the row-sparse backward (:func:`analysis.token_rows.rows_call`) where it applies."""
+    """``F.linear`` with the row-sparse backward (:func:`analysis.token_rows.rows_call`) where it applies. The
+    attention function calls its output projection on (tokens x batch) x features: seen as one sequence of rows."""
+    x = args[0] if args else None
+    if isinstance(x, torch.Tensor) and x.ndim == 2 and not kwargs and len(args) in (2, 3):
+        found = rows_call("linear", (x.unsqueeze(0), *args[1:]), {})
+        if found is not None:
+            return found.squeeze(0)
     found = rows_call("linear", args, kwargs)
     return F.linear(*args, **kwargs) if found is None else found
 

@@ -155,7 +155,7 @@ def rows_call(name: str, args: tuple[object, ...], kwargs: dict[str, object]) ->
         if name == "linear":
             given = dict(zip(("input", "weight", "bias"), args), **kwargs)
             x, w, b = given.get("input"), given.get("weight"), given.get("bias")
-            if set(given) <= {"input", "weight", "bias"} and _takes_rows(x) and isinstance(w, torch.Tensor) and _frozen(w, b):
+            if set(given) <= {"input", "weight", "bias"} and _takes_rows(x) and isinstance(w, torch.Tensor) and w.ndim == 2 and _frozen(w, b):
                 return linear_rows(x, w, b)  # type: ignore[arg-type]
         elif name == "gelu":
             given = dict(zip(("input", "approximate"), args), **kwargs)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import logging
 import os
 import secrets
 import sys
@@ -33,6 +34,8 @@ from .layout import ProjectLayout
 from .maps import as_float16, sync_folder, write_array
 from .models import ImageRow, Prediction, RegionRow, SaliencyRun
 from .services import run_snapshot
+
+log = logging.getLogger("heedmap")
 
 
 @dataclass(frozen=True)
@@ -447,10 +450,13 @@ def run_saliency(
 def keep_predictions(factory: sessionmaker[Session], layout: ProjectLayout, run_id: int) -> None:
     """Keep the finished run's prediction frame beside the database (``services.run_snapshot``), so that the first page
     a server shows does not assemble it from the database (a quarter of a second at 20,000 images)."""
-    with factory() as s:
-        sums = run_snapshot.run_sums(s, run_id)
-        frame = store.prediction_frame(s, run_id)
-    run_snapshot.write(layout.label_cache, run_id, frame, sums)
+    try:
+        with factory() as s:
+            sums = run_snapshot.run_sums(s, run_id)
+            frame = store.prediction_frame(s, run_id)
+        run_snapshot.write(layout.label_cache, run_id, frame, sums)
+    except Exception as exc:  # noqa: BLE001 - the run is stored; a first page then reads the frame from the database
+        log.info("could not keep run %s's predictions beside the database (%s)", run_id, exc)
 
 
 def _saliency_of(model: LoadedModel, read: Future[BatchInput]) -> SaliencyBatch | None:

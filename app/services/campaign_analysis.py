@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 import gc
 import threading
+import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -65,8 +66,10 @@ class Results:
 class _CollectorPauses:
     """Nested pauses of Python's cycle collector from any thread: off at the first, back on (if it was on) after the last."""
 
+    OVERDUE_S = 30.0  # under pauses that overlap without end, a collection runs anyway this often
+
     def __init__(self) -> None:
-        self.depth, self.was_on, self.lock = 0, True, threading.Lock()
+        self.depth, self.was_on, self.lock, self.since = 0, True, threading.Lock(), 0.0
 
     @contextlib.contextmanager
     def paused(self) -> Iterator[None]:
@@ -74,14 +77,20 @@ class _CollectorPauses:
             if self.depth == 0:
                 self.was_on = gc.isenabled()
                 gc.disable()
+                self.since = time.monotonic()
             self.depth += 1
         try:
             yield
         finally:
+            overdue = False
             with self.lock:
                 self.depth -= 1
                 if self.depth == 0 and self.was_on:
                     gc.enable()
+                elif self.depth > 0 and self.was_on and time.monotonic() - self.since > self.OVERDUE_S:
+                    overdue, self.since = True, time.monotonic()
+            if overdue:  # other results are still being made: collect once here rather than never
+                gc.collect()
 
 
 _pauses = _CollectorPauses()

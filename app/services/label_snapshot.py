@@ -17,7 +17,6 @@ import json
 import logging
 import os
 import tempfile
-import zipfile
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -25,18 +24,20 @@ from typing import BinaryIO
 
 import numpy as np
 import numpy.typing as npt
-from sqlalchemy import BigInteger, Text, case, cast, func, select
+from sqlalchemy import BigInteger, LargeBinary, Text, case, cast, func, select
 from sqlalchemy.orm import Session
 
 from analysis.concept_votes import Reading
 from analysis.synonyms import SynonymRules
 
+from .. import store
 from ..db import owner_only
 from ..models import Campaign, Label
 
 log = logging.getLogger("heedmap")
 
-FORMAT = "heedmap label snapshot 1"
+# Bumped whenever what a file holds, or how labels are read (the readings kept with them), changes.
+FORMAT = "heedmap label snapshot 2"
 Entities = tuple[tuple[str, tuple[str, ...]], ...]
 
 
@@ -95,6 +96,16 @@ def database_sums(s: Session, campaign_id: int, up_to: int) -> tuple[int, ...]:
                              for v in (Label.region_id, Label.person_id, func.length(cast(Label.entities, Text)))))
                     .where(Label.campaign_id == campaign_id, Label.id <= up_to)).one()
     return tuple(int(v) for v in row)
+
+
+def database_clients(s: Session, campaign_id: int, up_to: int) -> npt.NDArray[np.bytes_]:
+    """The client ids of the campaign's labels with ids up to ``up_to``, in id order. Each submission's client id is
+    new and stays spent after an undo, so equal arrays mean the same labels, whatever else happened to the
+    database (a backup restored and the same regions labelled again, by the same people, with answers as long)."""
+    found = store.plain_rows(s, select(cast(Label.client_id, LargeBinary)).where(Label.campaign_id == campaign_id, Label.id <= up_to).order_by(Label.id))
+    if not found:
+        return np.zeros(0, dtype="S1")
+    return np.array([c if isinstance(c, bytes) else str(c).encode() for (c,) in found], dtype=np.bytes_)
 
 
 def path_for(folder: Path, campaign_id: int) -> Path:
@@ -174,7 +185,7 @@ def read(folder: Path, s: Session, campaign_id: int) -> Snapshot | None:
         with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as z:  # our handle: closed when the file is torn too
             meta = json.loads(z["meta"].tobytes().decode())
             snap = _checked(meta, z["ids"], z["rows"], z["clients"], campaign_id) if isinstance(meta, dict) else None
-    except (OSError, ValueError, KeyError, TypeError, zipfile.BadZipFile, UnicodeDecodeError, EOFError) as exc:
+    except Exception as exc:  # noqa: BLE001 - a cache: whatever is wrong with the file, the labels are read from the database
         log.info("ignored the kept labels of campaign %s (%s); reading them from the database", campaign_id, exc)
         return None
     if snap is None or identity(s, campaign_id) != snap.identity:

@@ -234,7 +234,8 @@ class LabelStore:
         up_to = int(snap.ids[-1]) if len(snap.ids) else 0
         if withdrawn != held.withdrawn:
             self._drop_withdrawn(s, held, campaign_id, withdrawn)
-        if label_snapshot.database_sums(s, campaign_id, up_to) != self._sums(held):
+        if (label_snapshot.database_sums(s, campaign_id, up_to) != self._sums(held)
+                or not np.array_equal(label_snapshot.database_clients(s, campaign_id, up_to), held.clients)):
             _empty(held)  # the labels are read whole
             return False
         held.loaded, held.saved = True, len(snap.ids)

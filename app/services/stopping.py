@@ -22,7 +22,8 @@ from analysis.stopping import ClassSettling, checkpoints, settling
 from .. import campaigns, store
 from ..campaigns import CampaignInfo
 from ..campaigns.plans import SETTLE_WINDOW, PlanInfo
-from ..models import CampaignRegion
+from ..models import CampaignRegion, SaliencyRun
+from . import label_snapshot
 from .campaign_analysis import ResultsCache, _method, _read, campaign_results, campaign_rules, prediction_frame, region_classes
 from .label_snapshot import write_whole
 
@@ -62,7 +63,7 @@ def _tops_at(at: Callable[[int], pd.DataFrame], n: int) -> pd.DataFrame:
     return _tops(at(n))
 
 
-_KEPT_FORMAT = "heedmap settling checkpoints 1"
+_KEPT_FORMAT = "heedmap settling checkpoints 2"
 _KEPT_ENTRIES = 16
 
 
@@ -105,8 +106,11 @@ def _checkpoint_key(s: Session, c: CampaignInfo, n: int, version: tuple[object, 
     """
     regions = s.execute(select(func.count(), func.max(CampaignRegion.region_id), func.min(CampaignRegion.region_id))
                         .where(CampaignRegion.campaign_id == c.id)).one()
+    run = s.get(SaliencyRun, c.run_id)
     return (c.id, n, cache.labels.nth_id(s, c.id, version, n), version[3], version[4], *version[5:], replace(plan, closed_classes=()) if plan else None,
-            *regions, c.run_id, tuple(c.classes))
+            *regions, c.run_id, tuple(c.classes),
+            # which database: the campaign's name and creation time, the run's key (the key is kept in a file across runs)
+            label_snapshot.identity(s, c.id), run.config_key if run else None)
 
 
 def _status(s: Session, c: CampaignInfo, *, min_support: float, max_len: int, cache: ResultsCache | None = None,

@@ -70,6 +70,7 @@ def test_calls_it_does_not_handle_keep_torchs_own() -> None:
     assert rows_call("layer_norm", (x, 8), {}) is None  # an int shape: torch's own (which accepts it)
     assert rows_call("gelu", (x,), {"approximate": "erf"}) is None
     assert rows_call("softmax", (x, -1), {}) is None
+    assert rows_call("linear", (x, torch.randn(8)), {}) is None  # a 1-d weight: torch's own
     assert rows_call("linear", (torch.randn(2, 8, requires_grad=True), w), {}) is None  # pooled features: every row is live
     assert rows_call("layer_norm", (torch.randn(2, 4, 4, 8, requires_grad=True), [8]), {}) is None  # a channels-last map
     with torch.no_grad():

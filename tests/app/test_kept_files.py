@@ -290,3 +290,45 @@ def test_the_saliency_job_keeps_its_finished_runs_predictions(factory, project: 
         fresh = store.prediction_frame(s, run)
     assert kept is not None
     pd.testing.assert_frame_equal(kept, fresh, check_exact=True)
+
+
+def test_a_database_restored_and_labelled_again_alike_is_read_whole(factory, campaign, project: Path) -> None:  # type: ignore[no-untyped-def]
+    # As after a backup restored underneath: the last label is gone and the same person labels the same region again,
+    # with an answer as long, under the same id. Counts and sums agree; the new submission's client id does not.
+    from sqlalchemy import delete, insert, select
+
+    from app.models import Label
+
+    folder = ProjectLayout(project).label_cache
+    _label(factory, campaign, "ann", limit=8)
+    _agrees(factory, _restart(folder), campaign)
+    with write_session(factory) as s:
+        last = s.execute(select(Label.id, Label.region_id, Label.person_id, Label.entities, Label.unsure)
+                         .where(Label.campaign_id == campaign.id).order_by(Label.id.desc()).limit(1)).one()
+        text = last.entities[0][0]
+        swapped = [[text[::-1] if text[::-1] != text else text.upper(), list(last.entities[0][1])], *last.entities[1:]]
+        s.execute(delete(Label).where(Label.id == last.id))
+        s.execute(insert(Label).values(id=last.id, client_id="restored-and-labelled-again", campaign_id=campaign.id, region_id=last.region_id,
+                                       person_id=last.person_id, entities=swapped, unsure=last.unsure))
+    held = _restart(folder)
+    _agrees(factory, held, campaign)
+    assert _Counting.full_reads == 1
+
+
+def test_settling_checkpoints_kept_for_another_campaign_of_the_same_id_are_not_used(factory, campaign, project: Path,
+                                                                                   checkpoints_made: list[int]) -> None:  # type: ignore[no-untyped-def]
+    folder = ProjectLayout(project).label_cache
+    assert len(_label(factory, campaign, "ann")) >= 15 and len(_label(factory, campaign, "bob")) >= 15
+
+    def status() -> stopping.StoppingStatus:
+        with factory() as s:
+            c = campaigns.get_campaign(s, campaign.id)
+            return stopping.stopping_status(s, c, min_support=0.01, cache=ResultsCache(labels=LabelStore(snapshots=folder)))
+
+    first = status()
+    assert sorted(checkpoints_made) == sorted(first.checkpoints)
+    with write_session(factory) as s:
+        s.get(Campaign, campaign.id).name = "another"  # type: ignore[union-attr]  # as another database's campaign 1 would be
+    checkpoints_made.clear()
+    status()
+    assert sorted(checkpoints_made) == sorted(first.checkpoints)  # made again, not taken from the file
