@@ -126,7 +126,6 @@ def campaign_table(
         raise InvalidInputError(f"method must be one of {', '.join(METHODS)}; got {method!r}.")
     votes = campaign_votes(judgments, rules=rules, region_class=region_class, check_answers=check_answers)
     est = estimate_concepts(votes, method=method, threshold=threshold)
-    judged = set(votes.regions)  # every judged region has its concepts (none, possibly)
     preds = predictions[predictions["predicted"].isin(list(classes))] if classes else predictions
     if sample is not None:
         preds = preds[preds.index.isin(list(sample))]
@@ -154,7 +153,7 @@ def campaign_table(
     table = concept_table_from_regions(meta, regions, concepts, method=str(method), threshold=threshold, families=votes.families)
     if sample is not None:
         table = replace(table, design=sample_design([sample[int(i)] for i in table.meta.index], population or {}))
-    return CampaignTable(table, len(judged))
+    return CampaignTable(table, len(votes.regions))  # the judged regions, each once (each has its concepts, none possibly)
 
 
 def _carried(est: ConceptEstimate, region_ids: npt.NDArray[np.int64]) -> tuple[list[str], sparse.csc_matrix]:

@@ -20,7 +20,7 @@ from .models import Campaign, CampaignRegion, ImageRow, Label, Prediction, Regio
 def plain_rows(s: Session, query: Select[*tuple[Any, ...]]) -> list[tuple[Any, ...]]:
     """``query``'s rows as plain tuples. On SQLite they come straight from the driver: no row objects and no result
     processing, several times faster at tens of thousands of rows. Only for columns the driver gives as they are
-    (integers, floats, text): not dates, JSON or booleans."""
+    (integers, floats, text, bytes): not dates or JSON; booleans come as 0 or 1."""
     conn = s.connection()
     raw = conn.connection.dbapi_connection if conn.dialect.name == "sqlite" else None
     if raw is None:

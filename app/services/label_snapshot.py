@@ -2,11 +2,12 @@
 server reads only the labels stored since, not every label again (at 100,000 labels a full read is about half a second).
 
 The file is a cache, never a source of truth: it is used only when the database still holds exactly its labels. What
-it holds is checked against the database (the labels up to its highest id: their count and the sums of their ids,
-regions, people and not-sure marks; the campaign's name and creation time) and against itself (codes in range, ids
-rising); anything else, a file torn by a crash or a different database included, is ignored and the labels are read
-whole. Labels are only ever stored or undone, never changed, so equal counts and sums over the same ids mean the same
-labels. Written whole or not at all (a temporary file renamed over the old), owner-only, in the project's ``cache``
+it holds is checked against the database (the labels up to its highest id, less those undone since: their client ids
+in id order, their count, and sums of their ids, regions, people, not-sure marks and id-weighted products of region,
+person and answer length; the campaign's name and creation time) and against itself (codes in range, ids rising, its
+own sums); anything else, a file torn by a crash or a different database included, is ignored and the labels are read
+whole. Labels are only ever stored or undone, never changed, and every submission's client id is new, so the same
+client ids mean the same labels; the sums check that the file's rows are theirs. Written whole or not at all (a temporary file renamed over the old), owner-only, in the project's ``cache``
 folder; no pickled objects are read back (numpy arrays and JSON only).
 """
 
@@ -103,9 +104,14 @@ def database_clients(s: Session, campaign_id: int, up_to: int) -> npt.NDArray[np
     new and stays spent after an undo, so equal arrays mean the same labels, whatever else happened to the
     database (a backup restored and the same regions labelled again, by the same people, with answers as long)."""
     found = store.plain_rows(s, select(cast(Label.client_id, LargeBinary)).where(Label.campaign_id == campaign_id, Label.id <= up_to).order_by(Label.id))
-    if not found:
+    return client_bytes([c for (c,) in found])
+
+
+def client_bytes(clients: Sequence[object]) -> npt.NDArray[np.bytes_]:
+    """Client ids (text, or their bytes from SQLite) as one bytes array."""
+    if not clients:
         return np.zeros(0, dtype="S1")
-    return np.array([c if isinstance(c, bytes) else str(c).encode() for (c,) in found], dtype=np.bytes_)
+    return np.array([c if isinstance(c, bytes) else str(c).encode() for c in clients], dtype=np.bytes_)
 
 
 def path_for(folder: Path, campaign_id: int) -> Path:

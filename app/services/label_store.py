@@ -20,19 +20,20 @@ from __future__ import annotations
 import json
 import sqlite3
 import threading
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import numpy.typing as npt
-from sqlalchemy import String, select, type_coerce
+from sqlalchemy import LargeBinary, String, cast, select, type_coerce
 from sqlalchemy.orm import Session
 
 from analysis.concept_votes import Reading, ReadJudgments, read_label, sorted_distinct
 from analysis.concepts import Judgment, typed_attribute_words
 from analysis.synonyms import SynonymRules
 
+from .. import store
 from ..campaigns.judgments import entities_of
 from ..models import Label, Person, WithdrawnLabel
 from . import label_snapshot
@@ -97,13 +98,6 @@ def _empty(held: _Held) -> None:
             setattr(held, name, getattr(fresh, name))
 
 
-def _client_bytes(clients: Sequence[object]) -> npt.NDArray[np.bytes_]:
-    """Client ids (text, or their bytes from SQLite) as one bytes array."""
-    if not clients:
-        return np.zeros(0, dtype="S1")
-    return np.array([c if isinstance(c, bytes) else str(c).encode() for c in clients], dtype=np.bytes_)
-
-
 class LabelStore:
     """Each campaign's labels, held per process and shared by the app's request threads."""
 
@@ -136,23 +130,18 @@ class LabelStore:
     def _fetch(self, s: Session, campaign_id: int, after: int) -> list[tuple[int, object, int, int, object, int]]:
         """(id, client id, region, person id, entities as stored, unsure) of the campaign's labels with ids above ``after``, in id order.
 
-        On SQLite the rows come straight from the driver with the entities as bytes: each distinct text is decoded (and
-        checked) once, not once per row, and no row objects are made (at 100,000 labels that was most of a cold read)."""
-        conn = s.connection()
-        if conn.dialect.name == "sqlite":
-            raw = conn.connection.dbapi_connection
-            if raw is not None:
-                cur = raw.cursor()
-                try:
-                    cur.execute("SELECT id, CAST(client_id AS BLOB), region_id, person_id, CAST(entities AS BLOB), unsure FROM labels "
-                                "WHERE campaign_id = ? AND id > ? ORDER BY id", (campaign_id, after))
-                    return list(cur.fetchall())
-                finally:
-                    cur.close()
-        query = (select(Label.id, Label.client_id, Label.region_id, Label.person_id, type_coerce(Label.entities, String), Label.unsure)
-                 .where(Label.campaign_id == campaign_id, Label.id > after).order_by(Label.id))
+        On SQLite the rows come straight from the driver (``store.plain_rows``) with the entities as bytes: each distinct
+        text is decoded (and checked) once, not once per row, and no row objects are made (at 100,000 labels that was
+        most of a cold read)."""
+        sqlite = s.connection().dialect.name == "sqlite"
+        client, entities = ((cast(Label.client_id, LargeBinary), cast(Label.entities, LargeBinary)) if sqlite
+                            else (Label.client_id, type_coerce(Label.entities, String)))
+        rows = store.plain_rows(s, select(Label.id, client, Label.region_id, Label.person_id, entities, Label.unsure)
+                                .where(Label.campaign_id == campaign_id, Label.id > after).order_by(Label.id))
+        if sqlite:
+            return rows  # the six columns asked for
         # A driver that decodes JSON itself gives lists: kept as their JSON text, one key per distinct value.
-        return [(i, c, r, p, e if isinstance(e, (str, bytes)) else json.dumps(e), u) for i, c, r, p, e, u in conn.execute(query)]
+        return [(i, c, r, p, e if isinstance(e, (str, bytes)) else json.dumps(e), u) for i, c, r, p, e, u in rows]
 
     def _add(self, s: Session, held: _Held, rows: list[tuple[int, object, int, int, object, int]]) -> None:
         if not rows:
@@ -184,7 +173,7 @@ class LabelStore:
         block[:, _UNSURE] = np.fromiter((bool(u) for u in unsure), dtype=np.int64, count=n)
         held.ids = np.concatenate([held.ids, np.fromiter(ids, dtype=np.int64, count=n)])
         held.rows = np.concatenate([held.rows, block])
-        held.clients = np.concatenate([held.clients, _client_bytes(clients)])
+        held.clients = np.concatenate([held.clients, label_snapshot.client_bytes(clients)])
 
     def _reload(self, s: Session, held: _Held, campaign_id: int, withdrawn: tuple[int, int | None]) -> None:
         held.ids, held.rows, held.clients = np.zeros(0, dtype=np.int64), _NO_ROWS, np.zeros(0, dtype="S1")
@@ -194,7 +183,7 @@ class LabelStore:
     def _drop_withdrawn(self, s: Session, held: _Held, campaign_id: int, withdrawn: tuple[int, int | None]) -> None:
         """Drop the held labels undone since last read, found by their client ids (SQLite may hand an undone id out again)."""
         since = held.withdrawn[1] or 0
-        gone = _client_bytes(s.execute(select(WithdrawnLabel.client_id).where(WithdrawnLabel.campaign_id == campaign_id, WithdrawnLabel.id > since)).scalars().all())
+        gone = label_snapshot.client_bytes(s.execute(select(WithdrawnLabel.client_id).where(WithdrawnLabel.campaign_id == campaign_id, WithdrawnLabel.id > since)).scalars().all())
         keep = ~np.isin(held.clients, gone)
         held.ids, held.rows, held.clients = held.ids[keep], held.rows[keep], held.clients[keep]
         held.withdrawn = withdrawn
